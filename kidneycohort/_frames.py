@@ -1,0 +1,53 @@
+"""One parser for table arguments: every stage accepts polars or pandas alike."""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from typing import Any
+
+import polars as pl
+
+from kidneycohort.errors import InputDataError, did_you_mean
+
+FrameLike = pl.DataFrame | pl.LazyFrame | Any  # Any: a pandas DataFrame
+
+
+def to_polars(data: FrameLike, name: str = "table") -> pl.DataFrame:
+    """Return ``data`` as an eager polars DataFrame.
+
+    Accepts a polars DataFrame or LazyFrame, or a pandas DataFrame (converted once at
+    the boundary). ``name`` is used in error messages.
+    """
+    if isinstance(data, pl.DataFrame):
+        return data
+    if isinstance(data, pl.LazyFrame):
+        return data.collect()
+    try:
+        import pandas as pd
+    except ImportError:  # pragma: no cover - pandas is a dependency
+        pd = None
+    if pd is not None and isinstance(data, pd.DataFrame):
+        return pl.from_pandas(data)
+    raise InputDataError(
+        f"{name}: expected a polars or pandas DataFrame, got {type(data).__name__}"
+    )
+
+
+def require_columns(df: pl.DataFrame | pl.LazyFrame, columns: Iterable[str], name: str) -> None:
+    """Raise :class:`InputDataError` naming the first missing column (with a suggestion)."""
+    have = df.collect_schema().names() if isinstance(df, pl.LazyFrame) else df.columns
+    for column in columns:
+        if column not in have:
+            raise InputDataError(
+                f"{name}: missing required column '{column}'{did_you_mean(column, have)}"
+            )
+
+
+def conform(df: pl.DataFrame, schema: Mapping[str, pl.DataType]) -> pl.DataFrame:
+    """Select ``schema``'s columns in order, adding missing ones as nulls, casting types."""
+    return df.select(
+        [
+            (pl.col(c) if c in df.columns else pl.lit(None)).cast(t).alias(c)
+            for c, t in schema.items()
+        ]
+    )

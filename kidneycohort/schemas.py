@@ -1,0 +1,138 @@
+"""Column contracts of the tables that flow between stages.
+
+One place names every canonical table's columns and types, so that stages written
+separately agree, tests can check a stage's output against its contract, and the
+run folder's schema version means something. See DESIGN.md's data contract.
+"""
+
+from __future__ import annotations
+
+from typing import Final
+
+import polars as pl
+
+SCHEMA_VERSION: Final = "1.0"
+
+# ---- inputs (what the tool reads when no column map is given) -----------------------
+PATIENTS_REQUIRED: Final = ("patient_id",)
+PATIENTS: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "sex": pl.String(),  # "female" / "male"
+    "birth_date": pl.Date(),
+    "age_at_index": pl.Float64(),
+    "index_date": pl.Date(),
+    "group": pl.String(),
+    "height_cm": pl.Float64(),
+    "weight_kg": pl.Float64(),
+    "black_race": pl.Boolean(),
+    "death_date": pl.Date(),
+    "kfrt_date": pl.Date(),
+    "end_of_followup": pl.Date(),
+}
+
+RAW_LABS_REQUIRED: Final = ("patient_id", "sample_date", "analyte", "value", "unit")
+RAW_LABS: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "sample_date": pl.Datetime("us"),  # a date is read as midnight
+    "analyte": pl.String(),
+    "value": pl.String(),  # as reported: "1.2", "<0.2", "0,9", "see comment"
+    "unit": pl.String(),
+    "setting": pl.String(),  # outpatient / inpatient / emergency
+}
+
+EVENTS_REQUIRED: Final = ("patient_id", "event_date", "event")
+EVENTS: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "event_date": pl.Date(),
+    "event": pl.String(),  # dialysis / transplant / death / kidney_death
+    "end_date": pl.Date(),  # optional: end of a dialysis episode
+}
+CANONICAL_EVENTS: Final = ("dialysis", "transplant", "death", "kidney_death")
+
+# ---- stage outputs ------------------------------------------------------------------
+LABS: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "sample_date": pl.Date(),
+    "sample_datetime": pl.Datetime("us"),
+    "analyte": pl.String(),
+    "value": pl.Float64(),  # in the analyte's standard unit (units.STANDARD_UNIT)
+    "unit": pl.String(),  # the standard unit
+    "reported_value": pl.String(),
+    "reported_unit": pl.String(),
+    "qualifier": pl.String(),  # null, "<" or ">"
+    "setting": pl.String(),
+    "source": pl.String(),
+    "source_row": pl.Int64(),
+    "n_collapsed": pl.Int32(),  # same patient/analyte/day results folded into this row
+}
+
+REJECTED: Final[dict[str, pl.DataType]] = {
+    "table": pl.String(),
+    "source": pl.String(),
+    "source_row": pl.Int64(),
+    "patient_id": pl.String(),
+    "reason": pl.String(),  # a code of kidneycohort.harmonize.REASON_CODES
+    "detail": pl.String(),
+}
+
+EGFR: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "sample_date": pl.Date(),
+    "sample_datetime": pl.Datetime("us"),
+    "years_from_index": pl.Float64(),
+    "age_years": pl.Float64(),
+    "equation": pl.String(),
+    "egfr": pl.Float64(),  # NaN/null when not computable; see egfr_reason
+    "egfr_unit": pl.String(),  # "mL/min/1.73m2" (indexed) or "mL/min" (clearance)
+    "creatinine_mg_dl": pl.Float64(),
+    "cystatin_c_mg_l": pl.Float64(),
+    "setting": pl.String(),
+    "egfr_reason": pl.String(),  # null when computed
+}
+
+BASELINE: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "equation": pl.String(),
+    "baseline_egfr": pl.Float64(),
+    "baseline_date": pl.Date(),
+    "baseline_n_values": pl.Int32(),
+    "baseline_method": pl.String(),
+    "baseline_reason": pl.String(),  # null when a baseline was found
+}
+
+SLOPES: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "equation": pl.String(),
+    "n_values": pl.Int32(),
+    "span_years": pl.Float64(),
+    "slope_per_year": pl.Float64(),
+    "intercept": pl.Float64(),
+    "slope_se": pl.Float64(),
+    "log_slope_pct_per_year": pl.Float64(),
+    "eligible": pl.Boolean(),
+    "ineligible_reason": pl.String(),
+    "rapid_decline": pl.Boolean(),
+}
+
+TRANSITIONS: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "equation": pl.String(),
+    "axis": pl.String(),  # "G" or "A"
+    "transition_date": pl.Date(),
+    "from_category": pl.String(),
+    "to_category": pl.String(),
+    "direction": pl.String(),  # "worsening" / "improvement"
+}
+
+ENDPOINTS: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "endpoint": pl.String(),
+    "start_date": pl.Date(),
+    "end_date": pl.Date(),
+    "years": pl.Float64(),
+    "event": pl.Int8(),  # 1 event, 0 censored
+    "competing": pl.Int8(),  # 1 when follow-up ended by a competing event (death)
+    "reason": pl.String(),  # which component fired, or why censored
+}
+
+DAYS_PER_YEAR: Final = 365.25
