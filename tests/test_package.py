@@ -1,0 +1,47 @@
+"""Foundation checks: the package installs as documented and says its cautions."""
+
+from __future__ import annotations
+
+import re
+from importlib import resources
+from pathlib import Path
+
+from click.testing import CliRunner
+
+import kidneycohort as kc
+from kidneycohort.cli import cli
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def test_py_typed_is_shipped() -> None:
+    assert resources.files("kidneycohort").joinpath("py.typed").is_file()
+
+
+def test_readme_opens_with_job_then_two_setup_commands() -> None:
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    blocks = re.findall(r"```bash\n(.*?)\n```", text, flags=re.S)
+    assert len(blocks) >= 2
+    demo, tests = blocks[0], blocks[1]
+    assert "pip install -e ." in demo and "kidneycohort demo" in demo
+    assert "pip install -e '.[test]'" in tests and "pytest" in tests
+    # the CI script runs the line after the marker, i.e. the second block
+    assert "<!-- test-command -->\n```bash\n" + tests in text
+    first_paragraph = text.split("\n\n")[1]
+    assert "creatinine" in first_paragraph and "eGFR" in first_paragraph
+
+
+def test_cautions_in_readme_and_cli() -> None:
+    readme = (ROOT / "README.md").read_text(encoding="utf-8").lower()
+    for phrase in ("research estimates", "drug dosing", "clinical judgement", "local guidelines"):
+        assert phrase in readme
+    result = CliRunner().invoke(cli, ["--help"])
+    assert result.exit_code == 0
+    assert "not for individual clinical decisions" in result.output
+    assert any("drug dosing" in c for c in kc.CAUTIONS)
+
+
+def test_version_is_exposed() -> None:
+    result = CliRunner().invoke(cli, ["--version"])
+    assert result.exit_code == 0
+    assert kc.__version__ in result.output
