@@ -1,0 +1,364 @@
+"""Readers for CSV, Parquet and DuckDB sources, handing back polars LazyFrames.
+
+Every reader returns the canonical columns of its table kind (``labs``, ``patients``,
+``events``; see ``kidneycohort.schemas``) plus two bookkeeping columns:
+
+* ``source`` — the source label (:meth:`SourceSpec.source_name`),
+* ``source_row`` — the 1-based data row number in the file (header not counted), so a
+  rejected row can be found again in the extract.
+
+Date columns are parsed with one format per column (given, or inferred from the
+first values); a value that does not fit becomes null and its text is kept in a
+companion ``<column>_as_read`` column, so the harmonise stage can reject that row
+with reason ``unparseable_date`` instead of losing it. Defaults applied from the
+source spec are recorded per row in an ``assumption`` column.
+
+CSV and Parquet are scanned lazily (nothing is read until the harmonise stage
+collects). DuckDB results are fetched once through Arrow.
+"""
+
+from __future__ import annotations
+
+import codecs
+import logging
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any, Final
+
+import polars as pl
+
+from kidneycohort import schemas
+from kidneycohort.errors import InputDataError, did_you_mean
+from kidneycohort.io.maps import SourceSpec, TableKind
+
+logger = logging.getLogger(__name__)
+
+AS_READ_SUFFIX: Final = "_as_read"
+
+SCHEMAS: Final[dict[str, dict[str, pl.DataType]]] = {
+    "labs": schemas.RAW_LABS,
+    "patients": schemas.PATIENTS,
+    "events": schemas.EVENTS,
+}
+REQUIRED: Final[dict[str, tuple[str, ...]]] = {
+    "labs": schemas.RAW_LABS_REQUIRED,
+    "patients": schemas.PATIENTS_REQUIRED,
+    "events": schemas.EVENTS_REQUIRED,
+}
+
+# Formats tried, in order, when a date column has no stated format. "iso" accepts ISO
+# 8601 dates with or without a time part in one column.
+ISO: Final = "iso"
+_ISO_PARTS: Final = (
+    "%Y-%m-%dT%H:%M:%S%.f",
+    "%Y-%m-%d %H:%M:%S%.f",
+    "%Y-%m-%dT%H:%M",
+    "%Y-%m-%d %H:%M",
+    "%Y-%m-%d",
+)
+CANDIDATE_DATE_FORMATS: Final = (
+    ISO,
+    "%d/%m/%Y",
+    "%m/%d/%Y",
+    "%d/%m/%Y %H:%M",
+    "%m/%d/%Y %H:%M",
+    "%d.%m.%Y",
+    "%d.%m.%Y %H:%M",
+    "%d-%m-%Y",
+    "%Y/%m/%d",
+    "%Y%m%d",
+    "%d%b%Y",
+    "%d-%b-%Y",
+)
+_DAY_MONTH_PAIRS: Final = (("%d/%m/%Y", "%m/%d/%Y"), ("%d/%m/%Y %H:%M", "%m/%d/%Y %H:%M"))
+_INFER_SAMPLE: Final = 5000
+
+
+def _parse_with(expr: pl.Expr, fmt: str) -> pl.Expr:
+    text = expr.cast(pl.String).str.strip_chars()
+    if fmt == ISO:
+        return pl.coalesce(
+            [text.str.to_datetime(f, strict=False, time_unit="us") for f in _ISO_PARTS]
+        )
+    return text.str.to_datetime(fmt, strict=False, time_unit="us")
+
+
+def infer_date_format(values: pl.Series, *, name: str, column: str) -> str:
+    """Pick the candidate format that parses the most of ``values``.
+
+    The winner must parse at least half of the non-empty values (the rest become
+    row-level ``unparseable_date`` rejections downstream) and must not tie with the
+    opposite day/month order.
+
+    Raises
+    ------
+    InputDataError
+        When no candidate parses half of the values, or when day-first and month-first
+        orders parse equally many (e.g. only dates like ``03/04/2020``), naming ``name``
+        and ``column``.
+    """
+    text = values.cast(pl.String).str.strip_chars()
+    text = text.filter(text.is_not_null() & (text != ""))
+    if text.len() == 0:
+        return ISO
+    frame = text.to_frame("v")
+    counts = frame.select(
+        _parse_with(pl.col("v"), fmt).is_not_null().sum().alias(str(i))
+        for i, fmt in enumerate(CANDIDATE_DATE_FORMATS)
+    ).row(0)
+    parsed = dict(zip(CANDIDATE_DATE_FORMATS, counts, strict=True))
+    best = max(CANDIDATE_DATE_FORMATS, key=lambda fmt: parsed[fmt])
+    if 2 * parsed[best] < text.len():
+        failed = frame.filter(_parse_with(pl.col("v"), best).is_null())["v"][0]
+        raise InputDataError(
+            f"{name}: date column '{column}' cannot be parsed (got {failed!r}); set "
+            "date_format to its strftime format, e.g. '%d/%m/%Y'"
+        )
+    for day_first, month_first in _DAY_MONTH_PAIRS:
+        if parsed[best] == parsed[day_first] == parsed[month_first]:
+            raise InputDataError(
+                f"{name}: date column '{column}' is ambiguous (e.g. {text[0]!r} reads as "
+                f"{day_first} and as {month_first}); set date_format"
+            )
+    return best
+
+
+def parse_date_columns(
+    frame: pl.LazyFrame,
+    targets: Mapping[str, pl.DataType],
+    *,
+    name: str,
+    date_format: str | None = None,
+) -> pl.LazyFrame:
+    """Parse the text date columns of ``frame`` named in ``targets`` (column -> type).
+
+    Columns already of a temporal type are cast; text columns are parsed with
+    ``date_format`` or an inferred format (:func:`infer_date_format` on the first
+    values). Text that does not parse becomes null and is kept in
+    ``<column>_as_read``.
+    """
+    schema = frame.collect_schema()
+    exprs: list[pl.Expr] = []
+    for column, dtype in targets.items():
+        if column not in schema or not dtype.is_temporal():
+            continue
+        have = schema[column]
+        if have.is_temporal():
+            exprs.append(pl.col(column).cast(dtype))
+            continue
+        if have == pl.Null:
+            exprs.append(pl.col(column).cast(dtype))
+            continue
+        fmt = date_format
+        if fmt is None:
+            sample = (
+                frame.select(pl.col(column).cast(pl.String).str.strip_chars())
+                .filter(pl.col(column).is_not_null() & (pl.col(column) != ""))
+                .head(_INFER_SAMPLE)
+                .collect()
+                .to_series()
+            )
+            fmt = infer_date_format(sample, name=name, column=column)
+            logger.info("%s: date column '%s' read with format %s", name, column, fmt)
+        parsed = _parse_with(pl.col(column), fmt)
+        raw = pl.col(column).cast(pl.String).str.strip_chars()
+        exprs.append(parsed.cast(dtype).alias(column))
+        exprs.append(
+            pl.when(parsed.is_null() & raw.is_not_null() & (raw != ""))
+            .then(raw)
+            .otherwise(None)
+            .alias(column + AS_READ_SUFFIX)
+        )
+    return frame.with_columns(exprs) if exprs else frame
+
+
+def _check_utf8_head(path: Path, name: str) -> None:
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    with path.open("rb") as handle:
+        chunk = handle.read(1 << 20)
+    try:
+        decoder.decode(chunk, final=False)
+    except UnicodeDecodeError as exc:
+        raise InputDataError(
+            f"{name}: not readable as UTF-8 (byte {exc.start}); set encoding, e.g. "
+            "'latin-1' or 'cp1252'"
+        ) from None
+
+
+def _scan_csv(spec: SourceSpec, path: Path, name: str) -> pl.LazyFrame:
+    options: dict[str, Any] = {
+        "separator": spec.delimiter,
+        "infer_schema": False,  # every column as text; the stage casts by contract
+        "row_index_name": "source_row",
+        "row_index_offset": 1,
+    }
+    encoding = codecs.lookup(spec.encoding).name
+    if encoding in ("utf-8", "utf-8-sig"):
+        _check_utf8_head(path, name)
+        return pl.scan_csv(path, **options)
+    try:
+        text = path.read_bytes().decode(spec.encoding)
+    except UnicodeDecodeError as exc:
+        raise InputDataError(
+            f"{name}: not readable as {spec.encoding} (byte {exc.start}); check encoding"
+        ) from None
+    logger.info("%s: decoded from %s in memory", name, spec.encoding)
+    return pl.scan_csv(text.encode("utf-8"), **options)
+
+
+def _read_duckdb(spec: SourceSpec, path: Path, name: str) -> pl.LazyFrame:
+    import duckdb
+
+    if (spec.table is None) == (spec.query is None):
+        raise InputDataError(f"{name}: a DuckDB source needs exactly one of table or query")
+    try:
+        con = duckdb.connect(str(path), read_only=True)
+    except duckdb.Error as exc:
+        raise InputDataError(f"{name}: cannot open as a DuckDB database ({exc})") from None
+    try:
+        if spec.table is not None:
+            tables = [row[0] for row in con.sql("SHOW TABLES").fetchall()]
+            if spec.table not in tables:
+                raise InputDataError(
+                    f"{name}: no table '{spec.table}'{did_you_mean(spec.table, tables)}; "
+                    f"tables: {', '.join(tables) or 'none'}"
+                )
+            relation = con.table(spec.table)
+        else:
+            relation = con.sql(spec.query)  # type: ignore[arg-type]
+        frame = relation.pl()
+    except duckdb.Error as exc:
+        raise InputDataError(f"{name}: query failed ({str(exc).splitlines()[0]})") from None
+    finally:
+        con.close()
+    return (
+        frame.with_row_index("source_row", offset=1)
+        .with_columns(pl.col("source_row").cast(pl.Int64))
+        .lazy()
+    )
+
+
+def scan_source(spec: SourceSpec) -> pl.LazyFrame:
+    """Open ``spec``'s file as a LazyFrame with its own column names (no mapping)."""
+    path = Path(spec.path)
+    name = str(spec.path)
+    if not path.exists():
+        raise InputDataError(f"{name}: file not found")
+    fmt = spec.resolved_format()
+    if fmt == "csv":
+        frame = _scan_csv(spec, path, name)
+    elif fmt == "parquet":
+        try:
+            frame = pl.scan_parquet(path, row_index_name="source_row", row_index_offset=1)
+            frame.collect_schema()
+        except (pl.exceptions.ComputeError, OSError) as exc:
+            raise InputDataError(f"{name}: not a readable Parquet file ({exc})") from None
+    else:
+        frame = _read_duckdb(spec, path, name)
+    return frame.with_columns(pl.col("source_row").cast(pl.Int64))
+
+
+def read_source(
+    spec: SourceSpec | str | Path, kind: TableKind = "labs", **fields: Any
+) -> pl.LazyFrame:
+    """Read one source as the canonical ``kind`` table (lazily where the format allows).
+
+    Parameters
+    ----------
+    spec
+        A :class:`SourceSpec`, or a path (then ``fields`` are SourceSpec fields).
+    kind
+        ``"labs"`` (raw lab results), ``"patients"`` or ``"events"``.
+
+    Returns
+    -------
+    polars.LazyFrame
+        Canonical columns present in the source (types of ``schemas.RAW_LABS``,
+        ``PATIENTS`` or ``EVENTS`` for dates; other columns kept as read), every other
+        source column unchanged, plus ``source``, ``source_row``, ``assumption`` and a
+        ``<date column>_as_read`` column per text date column.
+
+    Raises
+    ------
+    InputDataError
+        File not found, unreadable encoding or format, a required column missing after
+        the column map (with a "did you mean"), a date column that cannot be parsed.
+    """
+    if not isinstance(spec, SourceSpec):
+        spec = SourceSpec(path=str(spec), **fields)
+    elif fields:
+        spec = spec.model_copy(update=fields)
+    if kind not in SCHEMAS:
+        raise InputDataError(f"unknown table kind {kind!r}{did_you_mean(kind, SCHEMAS)}")
+    name = str(spec.path)
+    frame = scan_source(spec)
+    have = [c for c in frame.collect_schema().names() if c != "source_row"]
+    for source_column in spec.columns:
+        if source_column not in have:
+            raise InputDataError(
+                f"{name}: column map names '{source_column}', not in the file"
+                f"{did_you_mean(source_column, have)}"
+            )
+    frame = frame.rename(spec.columns)
+    have = [spec.columns.get(c, c) for c in have]
+    for column in REQUIRED[kind]:
+        if column not in have and column not in spec.defaults:
+            raise InputDataError(
+                f"{name}: missing required column '{column}'"
+                f"{did_you_mean(column, have)}; map it in columns"
+            )
+    target = SCHEMAS[kind]
+    exprs: list[pl.Expr] = [pl.lit(spec.source_name(), pl.String).alias("source")]
+    assumptions: list[pl.Expr] = []
+    for column, default in spec.defaults.items():
+        if column in have:
+            empty = pl.col(column).is_null() | (
+                pl.col(column).cast(pl.String).str.strip_chars() == ""
+            )
+            exprs.append(
+                pl.when(empty).then(pl.lit(default)).otherwise(pl.col(column)).alias(column)
+            )
+        else:
+            empty = pl.lit(True)
+            exprs.append(pl.lit(default).alias(column))
+        assumptions.append(
+            pl.when(empty).then(pl.lit(f"{column} '{default}' from source defaults"))
+        )
+    if assumptions:
+        joined = pl.concat_str(assumptions, separator="; ", ignore_nulls=True)
+        exprs.append(pl.when(joined != "").then(joined).alias("assumption"))
+    else:
+        exprs.append(pl.lit(None, pl.String).alias("assumption"))
+    frame = frame.with_columns(exprs)
+    value_maps = {
+        column: mapping
+        for column, mapping in spec.values.items()
+        if column in frame.collect_schema()
+    }
+    if value_maps:
+        frame = frame.with_columns(
+            pl.col(c).cast(pl.String).str.strip_chars().replace(m) for c, m in value_maps.items()
+        )
+    return parse_date_columns(frame, target, name=name, date_format=spec.date_format)
+
+
+def read_labs(spec: SourceSpec | str | Path, **fields: Any) -> pl.LazyFrame:
+    """:func:`read_source` for raw lab results (``kind="labs"``)."""
+    return read_source(spec, "labs", **fields)
+
+
+def read_patients(spec: SourceSpec | str | Path, **fields: Any) -> pl.LazyFrame:
+    """:func:`read_source` for the patients table (``kind="patients"``)."""
+    return read_source(spec, "patients", **fields)
+
+
+def read_events(spec: SourceSpec | str | Path, **fields: Any) -> pl.LazyFrame:
+    """:func:`read_source` for the events table (``kind="events"``)."""
+    return read_source(spec, "events", **fields)
+
+
+def read_many(specs: list[SourceSpec], kind: TableKind = "labs") -> pl.LazyFrame:
+    """Read several sources of one kind and stack them (columns aligned by name)."""
+    if not specs:
+        raise InputDataError(f"{kind}: no sources given")
+    return pl.concat([read_source(s, kind) for s in specs], how="diagonal_relaxed")
