@@ -1,0 +1,307 @@
+"""Which eGFR values count: care setting and acute kidney injury (AKI) flags.
+
+Slopes, baselines and KDIGO categories describe chronic kidney function. Results taken
+in hospital or the emergency department, and results distorted by an episode of acute
+kidney injury, are commonly left out of that work. This module marks such results
+instead of dropping them: :func:`apply_value_filter` returns the input table with the
+flag columns below added, so a user can see what was excluded and why, and every
+downstream stage (:func:`kidneycohort.baseline.baseline`,
+:func:`kidneycohort.slopes.egfr_slopes`, :mod:`kidneycohort.kdigo`) skips the rows with
+``excluded`` true.
+
+Columns added
+-------------
+``aki_flag`` (bool)
+    The creatinine of this sample meets a KDIGO 2012 creatinine criterion for AKI
+    against earlier samples of the same patient (null when the sample has no creatinine).
+``aki_criterion`` (str)
+    ``"rise_0.3_mg_dl_48h"`` or ``"ratio_1.5_7d"`` (the first one met), else null.
+``aki_recovery`` (bool)
+    Not itself flagged, but within ``aki_recovery_days`` after a flagged sample.
+``excluded`` (bool)
+    The row is left out of baseline, slope and category work.
+``exclusion_reason`` (str)
+    ``"setting_<setting>"``, ``"aki"`` or ``"aki_recovery"`` (the first that applies),
+    null when the row is used.
+
+AKI criteria (KDIGO 2012 AKI guideline, section 2.1.1): an increase in serum creatinine
+by at least 0.3 mg/dL within 48 hours, or to at least 1.5 times baseline known or
+presumed to have occurred within the prior 7 days. The reference value for each
+criterion is the lowest creatinine of the same patient in the preceding window
+(``[t - 48 h, t)`` and ``[t - 7 d, t)``); using the lowest prior value as the presumed
+baseline is common practice in electronic-record AKI detection. Urine-output criteria
+cannot be assessed from laboratory tables and are not used.
+
+All flags are computed per patient with window expressions only, so they are the same
+on any partition of patients (DESIGN.md, partition rule).
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Final
+
+import polars as pl
+from pydantic import BaseModel, ConfigDict, Field
+
+from kidneycohort import schemas
+from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort.errors import InputDataError, did_you_mean
+
+logger = logging.getLogger(__name__)
+
+AKI_CRITERIA: Final = ("rise_0.3_mg_dl_48h", "ratio_1.5_7d")
+"""Names of the creatinine criteria, as written to ``aki_criterion``."""
+
+KNOWN_SETTINGS: Final = ("outpatient", "inpatient", "emergency")
+
+EGFR_REQUIRED: Final = ("patient_id", "equation", "years_from_index", "egfr")
+
+_TIME: Final = "_sample_time"
+
+
+class ValueFilter(BaseModel):
+    """Which eGFR results count for baseline, slope and category work.
+
+    Field names are the keys of the ``value_filter`` section of a study config.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    exclude_settings: tuple[str, ...] = Field(
+        default=("inpatient", "emergency"),
+        description=(
+            "Care settings whose results are left out (values of the 'setting' column; "
+            "results with no recorded setting are kept)."
+        ),
+    )
+    exclude_aki: bool = Field(
+        default=True,
+        description="Leave out results flagged as acute kidney injury by the KDIGO creatinine criteria.",
+    )
+    aki_recovery_days: float = Field(
+        default=30.0,
+        ge=0,
+        description=(
+            "Days after an AKI-flagged result during which later results are also left out "
+            "(recovery window; 0 keeps them)."
+        ),
+    )
+    aki_rise_mg_dl: float = Field(
+        default=0.3,
+        gt=0,
+        description="Absolute creatinine rise (mg/dL) that flags AKI (KDIGO 2012: 0.3).",
+    )
+    aki_rise_hours: float = Field(
+        default=48.0,
+        gt=0,
+        description="Window (hours) for the absolute rise (KDIGO 2012: 48).",
+    )
+    aki_ratio: float = Field(
+        default=1.5,
+        gt=1,
+        description="Ratio to the lowest prior creatinine that flags AKI (KDIGO 2012: 1.5).",
+    )
+    aki_ratio_days: float = Field(
+        default=7.0,
+        gt=0,
+        description="Window (days) for the ratio criterion (KDIGO 2012: 7).",
+    )
+
+
+def sample_time_expr(columns: list[str]) -> pl.Expr:
+    """Sample time as a datetime: ``sample_datetime`` when present, else ``sample_date``."""
+    parts: list[pl.Expr] = []
+    if "sample_datetime" in columns:
+        parts.append(pl.col("sample_datetime").cast(pl.Datetime("us")))
+    if "sample_date" in columns:
+        parts.append(pl.col("sample_date").cast(pl.Date).cast(pl.Datetime("us")))
+    if not parts:
+        return pl.lit(None, dtype=pl.Datetime("us"))
+    return pl.coalesce(parts)
+
+
+def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
+    """Add ``aki_flag``, ``aki_criterion`` and ``aki_recovery`` to an eGFR (or labs) table.
+
+    The criteria are applied to the creatinine of each distinct sample of a patient
+    (the ``egfr`` table repeats a sample once per equation), then joined back.
+
+    .. math::
+
+        \\text{AKI}(t) \\iff c_t - \\min_{[t-48h,\\,t)} c \\ge 0.3
+        \\;\\lor\\; c_t \\ge 1.5 \\min_{[t-7d,\\,t)} c
+
+    Parameters
+    ----------
+    egfr : polars or pandas DataFrame
+        Needs ``patient_id``, ``creatinine_mg_dl`` and ``sample_datetime`` or
+        ``sample_date``.
+    rule : ValueFilter, optional
+        Thresholds and the recovery window; the KDIGO defaults when omitted.
+
+    Returns
+    -------
+    polars.DataFrame
+        The input rows in their order with the three columns added.
+
+    Raises
+    ------
+    InputDataError
+        When a needed column is missing.
+
+    References
+    ----------
+    .. [1] KDIGO Acute Kidney Injury Work Group. KDIGO clinical practice guideline for
+       acute kidney injury. Kidney Int Suppl 2012;2:1-138, recommendation 2.1.1.
+    """
+    rule = rule or ValueFilter()
+    df = to_polars(egfr, "egfr")
+    require_columns(df, ("patient_id", "creatinine_mg_dl"), "egfr")
+    if "sample_datetime" not in df.columns and "sample_date" not in df.columns:
+        raise InputDataError(
+            "egfr: missing required column 'sample_date' (or 'sample_datetime') needed for "
+            "AKI flags; add it or set exclude_aki: false"
+        )
+    time = sample_time_expr(df.columns)
+    samples = (
+        df.select(
+            pl.col("patient_id").cast(pl.String),
+            time.alias(_TIME),
+            pl.col("creatinine_mg_dl").cast(pl.Float64).alias("_creat"),
+        )
+        .filter(pl.col("_creat").is_not_null() & pl.col(_TIME).is_not_null())
+        # one creatinine per patient and time: the highest, so a spike is never hidden
+        .group_by("patient_id", _TIME)
+        .agg(pl.col("_creat").max())
+        .sort("patient_id", _TIME)
+    )
+    rise_window = f"{round(rule.aki_rise_hours * 3600)}s"
+    ratio_window = f"{round(rule.aki_ratio_days * 86400)}s"
+    creat = pl.col("_creat")
+    low_48h = creat.rolling_min_by(_TIME, window_size=rise_window, closed="left").over("patient_id")
+    low_7d = creat.rolling_min_by(_TIME, window_size=ratio_window, closed="left").over("patient_id")
+    # a tiny tolerance so that 1.0 -> 1.3 (a rise of 0.3 in binary floating point) counts
+    eps = 1e-9
+    rise = (creat - low_48h) >= rule.aki_rise_mg_dl - eps
+    ratio = creat >= rule.aki_ratio * low_7d - eps
+    samples = samples.with_columns(
+        pl.when(rise)
+        .then(pl.lit(AKI_CRITERIA[0]))
+        .when(ratio)
+        .then(pl.lit(AKI_CRITERIA[1]))
+        .otherwise(pl.lit(None, dtype=pl.String))
+        .alias("aki_criterion")
+    ).with_columns(aki_flag=pl.col("aki_criterion").is_not_null())
+    last_aki = pl.when(pl.col("aki_flag")).then(pl.col(_TIME)).forward_fill().over("patient_id")
+    recovery = pl.duration(microseconds=round(rule.aki_recovery_days * 86400e6))
+    samples = samples.with_columns(
+        aki_recovery=(
+            ~pl.col("aki_flag")
+            & last_aki.is_not_null()
+            & ((pl.col(_TIME) - last_aki) <= recovery)
+            & pl.lit(rule.aki_recovery_days > 0)
+        )
+    ).drop("_creat")
+    out = (
+        df.with_columns(pl.col("patient_id").cast(pl.String), time.alias(_TIME))
+        .join(samples, on=["patient_id", _TIME], how="left", maintain_order="left")
+        .drop(_TIME)
+    )
+    logger.info(
+        "AKI flags: %d samples flagged, %d in recovery windows",
+        int(samples["aki_flag"].sum()),
+        int(samples["aki_recovery"].sum()),
+    )
+    return out
+
+
+def apply_value_filter(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
+    """Mark the results that do not count, keeping every row (see module docstring).
+
+    Parameters
+    ----------
+    egfr : polars or pandas DataFrame
+        An ``egfr`` table (``schemas.EGFR``); ``setting`` is needed when
+        ``exclude_settings`` is not empty, ``creatinine_mg_dl`` when ``exclude_aki``.
+    rule : ValueFilter, optional
+        Defaults to ``ValueFilter()`` (inpatient and emergency results and AKI left out).
+
+    Returns
+    -------
+    polars.DataFrame
+        The input with ``excluded`` and ``exclusion_reason`` (and the AKI flag columns
+        when ``exclude_aki``) added; no row is removed.
+
+    Raises
+    ------
+    InputDataError
+        When a column the rule needs is missing.
+    """
+    rule = rule or ValueFilter()
+    df = to_polars(egfr, "egfr")
+    for setting in rule.exclude_settings:
+        if setting not in KNOWN_SETTINGS:
+            logger.warning(
+                "value_filter.exclude_settings: %r is not one of %s%s",
+                setting,
+                ", ".join(KNOWN_SETTINGS),
+                did_you_mean(setting, KNOWN_SETTINGS),
+            )
+    reasons: list[pl.Expr] = []
+    if rule.exclude_settings:
+        if "setting" not in df.columns:
+            raise InputDataError(
+                "egfr: missing column 'setting' needed by value_filter.exclude_settings="
+                f"{list(rule.exclude_settings)}; add it or set exclude_settings: []"
+            )
+        setting = pl.col("setting").cast(pl.String).str.strip_chars().str.to_lowercase()
+        reasons.append(
+            pl.when(setting.is_in(list(rule.exclude_settings))).then(pl.lit("setting_") + setting)
+        )
+    if rule.exclude_aki:
+        df = flag_aki(df, rule)
+        reasons.append(pl.when(pl.col("aki_flag").fill_null(False)).then(pl.lit("aki")))
+        reasons.append(
+            pl.when(pl.col("aki_recovery").fill_null(False)).then(pl.lit("aki_recovery"))
+        )
+    reason = pl.coalesce(reasons) if reasons else pl.lit(None, dtype=pl.String)
+    df = df.with_columns(exclusion_reason=reason.cast(pl.String)).with_columns(
+        excluded=pl.col("exclusion_reason").is_not_null()
+    )
+    logger.info("value filter: %d of %d rows excluded", int(df["excluded"].sum()), df.height)
+    return df
+
+
+def usable_egfr(
+    egfr: FrameLike, value_filter: ValueFilter | None, name: str = "egfr"
+) -> pl.DataFrame:
+    """The eGFR rows a derivation may use, with ``_days`` (days from index) added.
+
+    Shared by the baseline, slope and category stages: checks the contract columns,
+    applies ``value_filter`` when given (or honours an ``excluded`` column already
+    present), and keeps rows with a finite eGFR. The full input is returned as well
+    via :func:`egfr_keys` so that no patient disappears from an output.
+    """
+    df = to_polars(egfr, name)
+    require_columns(df, EGFR_REQUIRED, name)
+    df = df.with_columns(
+        pl.col("patient_id").cast(pl.String),
+        pl.col("equation").cast(pl.String),
+        pl.col("years_from_index").cast(pl.Float64),
+        pl.col("egfr").cast(pl.Float64),
+    )
+    if value_filter is not None:
+        df = apply_value_filter(df, value_filter)
+    if "excluded" not in df.columns:
+        df = df.with_columns(excluded=pl.lit(False))
+    # rounding to a microsecond keeps -365 days exactly -365 after the years round trip
+    return df.with_columns(
+        _days=(pl.col("years_from_index") * schemas.DAYS_PER_YEAR).round(6),
+        _finite=pl.col("egfr").is_not_null() & pl.col("egfr").is_finite(),
+    )
+
+
+def egfr_keys(df: pl.DataFrame) -> pl.DataFrame:
+    """Every (patient_id, equation) present in a table, in first-seen order."""
+    return df.select("patient_id", "equation").unique(maintain_order=True)
