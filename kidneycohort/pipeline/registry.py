@@ -1,0 +1,191 @@
+"""Step registry: named library stages with the tables they need and make.
+
+A step is a thin adapter around one library function. It declares the tables it reads
+(``needs``), the tables it writes (``makes``) and, optionally, the config section whose
+typed options it takes. The runner checks a whole recipe against these declarations
+before any data is read (the same check kedro makes when a pipeline is built).
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable, Iterable, Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pydantic import BaseModel
+
+from kidneycohort.errors import ConfigError, did_you_mean
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass
+class StepContext:
+    """What a step receives: its input tables, its options and the run's settings.
+
+    Attributes
+    ----------
+    tables : dict
+        The tables named in the step's ``needs`` (and any of its ``optional_needs`` that
+        an earlier step made), as polars DataFrames or fitted objects.
+    options : pydantic.BaseModel or None
+        The validated options of the step's config section.
+    sections : dict
+        Every validated config section, by name (a step may read another's options,
+        e.g. the primary equation chosen in ``egfr``).
+    run_dir : pathlib.Path
+        The run folder being written (a temporary folder until the run succeeds).
+    seed : int
+        The study seed (for any resampling a step does).
+    accounting : list of dict
+        Row-accounting records a step adds for the manifest.
+    accounting_by_reason : list of dict
+        Rejected-row counts by reason a step adds for the manifest.
+    """
+
+    tables: dict[str, Any]
+    options: BaseModel | None
+    sections: Mapping[str, BaseModel]
+    run_dir: Path
+    seed: int
+    accounting: list[dict[str, Any]] = field(default_factory=list)
+    accounting_by_reason: list[dict[str, Any]] = field(default_factory=list)
+
+
+StepFunction = Callable[[StepContext], Mapping[str, Any]]
+
+
+@dataclass(frozen=True)
+class Step:
+    """One registered pipeline step.
+
+    Parameters
+    ----------
+    name : str
+        The name recipes use.
+    run : callable
+        ``run(context) -> {table_name: table}``; must return exactly ``makes``.
+    needs : tuple of str
+        Tables that must exist before the step runs.
+    makes : tuple of str
+        Tables the step returns. Names that are run-folder files (see
+        :mod:`kidneycohort.pipeline.run_folder`) are written as soon as the step ends.
+    section : str or None
+        The config section holding this step's options (several steps may share one).
+    options : type of pydantic.BaseModel or None
+        The model that validates the section; the same object the library function takes.
+    optional_needs : tuple of str
+        Tables used when an earlier step made them (e.g. ``events``).
+    description : str
+        One line for the config reference and ``--help``.
+    check : callable or None
+        ``check(study_config)`` run at validation time for rules that span sections
+        (e.g. the primary equation is one of the equations computed); raises
+        :class:`~kidneycohort.errors.ConfigError`.
+    """
+
+    name: str
+    run: StepFunction
+    needs: tuple[str, ...] = ()
+    makes: tuple[str, ...] = ()
+    section: str | None = None
+    options: type[BaseModel] | None = None
+    optional_needs: tuple[str, ...] = ()
+    description: str = ""
+    check: Callable[[Any], None] | None = None
+
+
+class StepRegistry:
+    """A name -> :class:`Step` map with did-you-mean lookups.
+
+    The default registry (:func:`default_registry`) holds the library's stages; tests and
+    extensions can build their own and pass it to the runner.
+    """
+
+    def __init__(self, steps: Iterable[Step] = ()) -> None:
+        self._steps: dict[str, Step] = {}
+        for step in steps:
+            self.add(step)
+
+    def add(self, step: Step) -> Step:
+        """Register ``step``; a second step of the same name is a programming error."""
+        if step.name in self._steps:
+            raise ValueError(f"step '{step.name}' is already registered")
+        sections = {s.section: s.options for s in self._steps.values() if s.section}
+        if step.section in sections and sections[step.section] is not step.options:
+            raise ValueError(
+                f"step '{step.name}': section '{step.section}' is already validated by "
+                f"{sections[step.section]!r}; steps sharing a section share its model"
+            )
+        self._steps[step.name] = step
+        return step
+
+    def register(
+        self,
+        name: str,
+        *,
+        needs: Iterable[str] = (),
+        makes: Iterable[str] = (),
+        section: str | None = None,
+        options: type[BaseModel] | None = None,
+        optional_needs: Iterable[str] = (),
+        description: str = "",
+        check: Callable[[Any], None] | None = None,
+    ) -> Callable[[StepFunction], StepFunction]:
+        """Decorator form of :meth:`add`."""
+
+        def decorate(func: StepFunction) -> StepFunction:
+            self.add(
+                Step(
+                    name=name,
+                    run=func,
+                    needs=tuple(needs),
+                    makes=tuple(makes),
+                    section=section,
+                    options=options,
+                    optional_needs=tuple(optional_needs),
+                    description=description or (func.__doc__ or "").strip().split("\n")[0],
+                    check=check,
+                )
+            )
+            return func
+
+        return decorate
+
+    def get(self, name: str, where: str = "recipe steps") -> Step:
+        """Return the step called ``name`` or raise :class:`ConfigError` naming ``where``."""
+        try:
+            return self._steps[name]
+        except KeyError:
+            raise ConfigError(
+                f"{where}: unknown step '{name}'{did_you_mean(name, self._steps)}; "
+                f"known steps: {', '.join(sorted(self._steps))}"
+            ) from None
+
+    def sections(self) -> dict[str, type[BaseModel] | None]:
+        """Config section name -> options model, over all registered steps."""
+        return {s.section: s.options for s in self._steps.values() if s.section}
+
+    def __iter__(self) -> Iterator[Step]:
+        return iter(self._steps.values())
+
+    def __contains__(self, name: object) -> bool:
+        return name in self._steps
+
+    def __len__(self) -> int:
+        return len(self._steps)
+
+
+_DEFAULT: StepRegistry | None = None
+
+
+def default_registry() -> StepRegistry:
+    """The registry of the library's stages (built on first use)."""
+    global _DEFAULT
+    if _DEFAULT is None:
+        from kidneycohort.pipeline import steps
+
+        _DEFAULT = steps.build_registry()
+    return _DEFAULT

@@ -1,0 +1,102 @@
+"""Reading the configured sources, checking them before a run, hashing them after."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from kidneycohort.errors import InputDataError
+from kidneycohort.io import SourceSpec, read_source
+from kidneycohort.pipeline.config import StudyConfig
+from kidneycohort.pipeline.manifest import sha256_of
+
+# config table -> (run table name, reader kind)
+SOURCE_TABLES = {
+    "patients": ("patients", "patients"),
+    "labs": ("raw_labs", "labs"),
+    "events": ("events", "events"),
+}
+
+
+def _where(table: str, specs: list[SourceSpec], i: int) -> str:
+    return f"data.{table}[{i}]" if len(specs) > 1 else f"data.{table}"
+
+
+def _lazy(config: StudyConfig, table: str) -> pl.LazyFrame | None:
+    specs = config.data.specs(table)
+    if not specs:
+        return None
+    _, kind = SOURCE_TABLES[table]
+    frames = []
+    for i, spec in enumerate(specs):
+        try:
+            frames.append(read_source(spec, kind))  # type: ignore[arg-type]
+        except InputDataError as exc:
+            raise InputDataError(f"{_where(table, specs, i)}: {exc}") from None
+    return frames[0] if len(frames) == 1 else pl.concat(frames, how="diagonal_relaxed")
+
+
+def check_inputs(config: StudyConfig) -> dict[str, list[str]]:
+    """Check every configured file exists and its column map fits, reading only headers.
+
+    Returns table -> the columns the reader will hand over. Raises
+    :class:`~kidneycohort.errors.InputDataError` naming the config field (``data.labs``),
+    the file and the column.
+    """
+    out: dict[str, list[str]] = {}
+    for table in SOURCE_TABLES:
+        specs = config.data.specs(table)
+        for i, spec in enumerate(specs):
+            if not Path(spec.path).is_file():
+                raise InputDataError(
+                    f"{_where(table, specs, i)}.path: file '{spec.path}' not found; paths "
+                    "are relative to the config file"
+                )
+        frame = _lazy(config, table)
+        if frame is not None:
+            out[table] = frame.collect_schema().names()
+    return out
+
+
+def read_sources(config: StudyConfig) -> dict[str, pl.DataFrame]:
+    """Read the configured sources into ``patients``, ``raw_labs`` (and ``events``)."""
+    check_inputs(config)
+    out: dict[str, pl.DataFrame] = {}
+    for table, (name, _) in SOURCE_TABLES.items():
+        frame = _lazy(config, table)
+        if frame is not None:
+            out[name] = frame.collect()
+    return out
+
+
+def input_records(config: StudyConfig, tables: dict[str, Any]) -> list[dict[str, Any]]:
+    """Manifest ``inputs``: path, SHA-256 and data rows of every source file."""
+    records = []
+    for table, (name, _) in SOURCE_TABLES.items():
+        read = tables.get(name)
+        for spec in config.data.specs(table):
+            path = Path(spec.path)
+            rows = None
+            if isinstance(read, pl.DataFrame) and "source" in read.columns:
+                rows = int(read.filter(pl.col("source") == spec.source_name()).height)
+            records.append(
+                {
+                    "table": table,
+                    "path": _display_path(path, config),
+                    "sha256": sha256_of(path),
+                    "rows": rows,
+                }
+            )
+    return records
+
+
+def _display_path(path: Path, config: StudyConfig) -> str:
+    """The input path relative to the config folder when inside it (portable manifests)."""
+    if config.config_path is not None:
+        try:
+            return path.resolve().relative_to(config.config_path.parent).as_posix()
+        except ValueError:
+            pass
+    return path.as_posix()
