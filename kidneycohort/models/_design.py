@@ -1,0 +1,119 @@
+"""Shared pieces of the model fits: covariate encoding, complete cases, warning capture."""
+
+from __future__ import annotations
+
+import sys
+import warnings
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+import polars as pl
+
+from kidneycohort.errors import InputDataError, did_you_mean
+
+__all__ = ["CapturedWarnings", "capture_warnings", "encode_covariates", "split_complete_cases"]
+
+_CONVERGENCE_WORDS = ("converge", "boundary", "hessian", "singular", "positive definite", "delta")
+
+
+def encode_covariates(
+    frame: pl.DataFrame, covariates: Sequence[str], table: str
+) -> tuple[pl.DataFrame, list[str]]:
+    """Numeric model columns for ``covariates``: numbers as they are, booleans as 0/1,
+    text or categorical columns as 0/1 indicators of each level but the first (sorted),
+    named ``column=level``. Returns the encoded frame and the term names in order."""
+    columns: list[pl.Series] = []
+    names: list[str] = []
+    for name in covariates:
+        if name not in frame.columns:
+            raise InputDataError(
+                f"{table}: covariate '{name}' is not a column{did_you_mean(name, frame.columns)}; "
+                "name a column of the patients table"
+            )
+        dtype = frame.schema[name]
+        series = frame[name]
+        if dtype.is_numeric():
+            columns.append(series.cast(pl.Float64).alias(name))
+            names.append(name)
+        elif dtype == pl.Boolean:
+            columns.append(series.cast(pl.Float64).alias(name))
+            names.append(name)
+        elif dtype in (pl.String, pl.Categorical) or isinstance(dtype, pl.Enum):
+            levels = sorted(series.drop_nulls().cast(pl.String).unique().to_list())
+            text = series.cast(pl.String)
+            for level in levels[1:]:
+                term = f"{name}={level}"
+                columns.append((text == level).cast(pl.Float64).alias(term))
+                names.append(term)
+        else:
+            raise InputDataError(
+                f"{table}: covariate '{name}' has type {dtype}; use a number, boolean or text column"
+            )
+    return pl.DataFrame(columns) if columns else pl.DataFrame(), names
+
+
+def split_complete_cases(
+    frame: pl.DataFrame, columns: Sequence[str]
+) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Rows with every ``columns`` value present, and the others with a reason code
+    ``missing_<column>`` (first missing column) for the model's exclusion report."""
+    if not columns:
+        return frame, pl.DataFrame(schema={"patient_id": pl.String, "reason": pl.String})
+    reason = pl.lit(None, dtype=pl.String)
+    for name in reversed(columns):
+        missing = pl.col(name).is_null()
+        if frame.schema[name].is_float():
+            missing = missing | pl.col(name).is_nan()
+        reason = pl.when(missing).then(pl.lit(f"missing_{name}")).otherwise(reason)
+    marked = frame.with_columns(reason.alias("_reason"))
+    kept = marked.filter(pl.col("_reason").is_null()).drop("_reason")
+    dropped = marked.filter(pl.col("_reason").is_not_null()).select(
+        pl.col("patient_id").cast(pl.String), pl.col("_reason").alias("reason")
+    )
+    return kept, dropped
+
+
+@dataclass
+class CapturedWarnings:
+    """Warnings raised inside :func:`capture_warnings`: convergence messages are kept for
+    the caller to act on; every other warning is re-issued unchanged on exit."""
+
+    convergence: list[str] = field(default_factory=list)
+
+
+def _is_convergence(record: warnings.WarningMessage) -> bool:
+    category = record.category.__name__.lower()
+    if "convergence" in category:
+        return True
+    if category in ("statisticalwarning", "approximationwarning"):
+        return any(word in str(record.message).lower() for word in _CONVERGENCE_WORDS)
+    return False
+
+
+def _module_of(filename: str) -> str | None:
+    for name, module in list(sys.modules.items()):
+        if getattr(module, "__file__", None) == filename:
+            return name
+    return None
+
+
+@contextmanager
+def capture_warnings() -> Iterator[CapturedWarnings]:
+    """Record warnings of a statsmodels / lifelines fit so that convergence problems are
+    turned into our own :class:`~kidneycohort.errors.StatisticalWarning` deliberately."""
+    captured = CapturedWarnings()
+    with warnings.catch_warnings(record=True) as records:
+        warnings.simplefilter("always")
+        yield captured
+    for record in records:
+        if _is_convergence(record):
+            captured.convergence.append(str(record.message).strip().splitlines()[0])
+        else:
+            warnings.warn_explicit(
+                record.message,
+                record.category,
+                record.filename,
+                record.lineno,
+                module=_module_of(record.filename),
+            )
