@@ -468,7 +468,9 @@ def load_config(
     recipe = load_recipe(recipe_path)
     steps = [registry.get(name, where=f"recipe '{recipe.name}' steps") for name in recipe.steps]
 
-    used = {s.section: s.options for s in steps if s.section}
+    used: dict[str, type[BaseModel] | None] = {}
+    for step in steps:
+        used.update(step.section_models())
     for key in data:
         if key not in FIXED_SECTIONS and key not in used:
             raise ConfigError(

@@ -80,6 +80,9 @@ class Step:
         Tables used when an earlier step made them (e.g. ``events``).
     description : str
         One line for the config reference and ``--help``.
+    extra_sections : mapping of str to model
+        Further config sections the step reads (e.g. ``value_filter`` for baseline and
+        slopes); each is validated by its model and handed over in ``context.sections``.
     check : callable or None
         ``check(study_config)`` run at validation time for rules that span sections
         (e.g. the primary equation is one of the equations computed); raises
@@ -94,7 +97,15 @@ class Step:
     options: type[BaseModel] | None = None
     optional_needs: tuple[str, ...] = ()
     description: str = ""
+    extra_sections: Mapping[str, type[BaseModel]] = field(default_factory=dict)
     check: Callable[[Any], None] | None = None
+
+    def section_models(self) -> dict[str, type[BaseModel] | None]:
+        """Every config section this step reads -> the model validating it."""
+        out: dict[str, type[BaseModel] | None] = dict(self.extra_sections)
+        if self.section:
+            out[self.section] = self.options
+        return out
 
 
 class StepRegistry:
@@ -113,12 +124,13 @@ class StepRegistry:
         """Register ``step``; a second step of the same name is a programming error."""
         if step.name in self._steps:
             raise ValueError(f"step '{step.name}' is already registered")
-        sections = {s.section: s.options for s in self._steps.values() if s.section}
-        if step.section in sections and sections[step.section] is not step.options:
-            raise ValueError(
-                f"step '{step.name}': section '{step.section}' is already validated by "
-                f"{sections[step.section]!r}; steps sharing a section share its model"
-            )
+        sections = self.sections()
+        for name, model in step.section_models().items():
+            if name in sections and sections[name] is not model:
+                raise ValueError(
+                    f"step '{step.name}': section '{name}' is already validated by "
+                    f"{sections[name]!r}; steps sharing a section share its model"
+                )
         self._steps[step.name] = step
         return step
 
@@ -132,6 +144,7 @@ class StepRegistry:
         options: type[BaseModel] | None = None,
         optional_needs: Iterable[str] = (),
         description: str = "",
+        extra_sections: Mapping[str, type[BaseModel]] | None = None,
         check: Callable[[Any], None] | None = None,
     ) -> Callable[[StepFunction], StepFunction]:
         """Decorator form of :meth:`add`."""
@@ -147,6 +160,7 @@ class StepRegistry:
                     options=options,
                     optional_needs=tuple(optional_needs),
                     description=description or (func.__doc__ or "").strip().split("\n")[0],
+                    extra_sections=dict(extra_sections or {}),
                     check=check,
                 )
             )
@@ -166,7 +180,10 @@ class StepRegistry:
 
     def sections(self) -> dict[str, type[BaseModel] | None]:
         """Config section name -> options model, over all registered steps."""
-        return {s.section: s.options for s in self._steps.values() if s.section}
+        out: dict[str, type[BaseModel] | None] = {}
+        for step in self._steps.values():
+            out.update(step.section_models())
+        return out
 
     def __iter__(self) -> Iterator[Step]:
         return iter(self._steps.values())
