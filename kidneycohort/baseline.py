@@ -28,11 +28,11 @@ import logging
 from typing import Final, Literal
 
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import Field, model_validator
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
-from kidneycohort.aki import ValueFilter, apply_value_filter, egfr_keys, usable_egfr
+from kidneycohort.aki import RuleModel, ValueFilter, apply_value_filter, egfr_keys, usable_egfr
 from kidneycohort.errors import ConfigError, InputDataError
 
 logger = logging.getLogger(__name__)
@@ -58,10 +58,8 @@ UACR_BASELINE: Final[dict[str, pl.DataType]] = {
 """Layout of :func:`baseline_uacr` output (UACR in mg/g)."""
 
 
-class BaselineRule(BaseModel):
+class BaselineRule(RuleModel):
     """How a patient's baseline is chosen (config key ``baseline``)."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
     method: Literal["last_in_window", "mean_in_window", "median_in_window", "mean_last_n"] = Field(
         default="last_in_window", description="Which value(s) in the window make the baseline."

@@ -80,11 +80,11 @@ from typing import Final, Literal
 import numpy as np
 import numpy.typing as npt
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import Field
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
-from kidneycohort.aki import ValueFilter, apply_value_filter, usable_egfr
+from kidneycohort.aki import RuleModel, ValueFilter, apply_value_filter, usable_egfr
 from kidneycohort.baseline import uacr_timeline
 from kidneycohort.errors import InputDataError, UnknownUnitError, did_you_mean
 from kidneycohort.units import UACR_MG_G_PER_MG_MMOL, normalize_unit
@@ -159,10 +159,8 @@ _KEYS: Final = ["patient_id", "_eq", "axis"]
 _NOISE_DECIMALS: Final = 9
 
 
-class SustainRule(BaseModel):
+class SustainRule(RuleModel):
     """When a category counts as sustained (config key ``sustain``)."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
     confirm_after_days: float = Field(
         default=90.0,

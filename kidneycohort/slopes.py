@@ -39,11 +39,11 @@ import logging
 from typing import Final
 
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import Field, model_validator
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform
-from kidneycohort.aki import ValueFilter, egfr_keys, usable_egfr
+from kidneycohort.aki import RuleModel, ValueFilter, egfr_keys, usable_egfr
 from kidneycohort.errors import ConfigError
 
 logger = logging.getLogger(__name__)
@@ -56,10 +56,8 @@ SLOPE_REASONS: Final[dict[str, str]] = {
 """Codes written to ``ineligible_reason``."""
 
 
-class SlopeRule(BaseModel):
+class SlopeRule(RuleModel):
     """Which patients get an eGFR slope and which slopes are rapid (config key ``slopes``)."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
     min_values: int = Field(
         default=3, ge=2, description="Fewest usable values for an eligible slope."
