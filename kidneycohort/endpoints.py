@@ -609,7 +609,7 @@ def _prepare_egfr(egfr: FrameLike, equation: str, needed: bool) -> pl.DataFrame:
     )
     equations = df["equation"].unique().drop_nulls().to_list()
     df = df.filter(pl.col("equation") == equation)
-    if needed and df.height == 0:
+    if df.height == 0 and equations:
         raise InputDataError(
             f"egfr: no rows for equation {equation!r}{did_you_mean(equation, equations)}; "
             f"available: {', '.join(sorted(equations)) or 'none'}"
