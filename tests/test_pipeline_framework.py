@@ -280,3 +280,20 @@ def test_run_folder_tables_equal_the_step_results(tmp_path: Path) -> None:
     assert_frame_equal(written, result.tables["tables/lab_counts"], check_dtypes=False)
     md = (result.run_dir / "tables" / "lab_counts.md").read_text().splitlines()
     assert md[0] == "| patient_id | n |" and md[2] == "| P1 | 2 |"
+
+
+def test_unknown_key_inside_a_tagged_union_item() -> None:
+    from pydantic import BaseModel
+
+    from kidneycohort.endpoints import EndpointDefinition
+    from kidneycohort.pipeline.config import check_keys
+
+    class Section(BaseModel):
+        definitions: list[EndpointDefinition]
+
+    data = {"definitions": [{"kind": "death"}, {"kind": "egfr_decline", "percnt": 40}]}
+    with pytest.raises(
+        ConfigError,
+        match=r"endpoints\.definitions\[1\]: unknown key 'percnt' \(did you mean 'percent'\?\)",
+    ):
+        check_keys(data, Section, "endpoints")

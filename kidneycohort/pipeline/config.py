@@ -20,7 +20,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
@@ -257,20 +257,45 @@ def check_keys(data: Any, model: type[BaseModel], where: str) -> None:
         pairs = _models_in(names[key].annotation)
         child = f"{where}.{key}"
         if isinstance(value, list):
-            listed = {m for m, k in pairs if k == "list"}
-            if len(listed) == 1:
-                sub = listed.pop()
-                for i, item in enumerate(value):
+            listed = [m for m, k in pairs if k == "list"]
+            for i, item in enumerate(value):
+                sub = _pick_model(listed, item)
+                if sub is not None:
                     check_keys(item, sub, f"{child}[{i}]")
         elif isinstance(value, Mapping):
-            bare = {m for m, k in pairs if k == ""}
-            mapped = {m for m, k in pairs if k == "dict"}
-            if len(bare) == 1:
-                check_keys(value, bare.pop(), child)
-            elif not bare and len(mapped) == 1:
-                sub = mapped.pop()
+            bare = [m for m, k in pairs if k == ""]
+            mapped = [m for m, k in pairs if k == "dict"]
+            sub = _pick_model(bare, value)
+            if sub is not None:
+                check_keys(value, sub, child)
+            elif not bare and mapped:
                 for k, item in value.items():
-                    check_keys(item, sub, f"{child}.{k}")
+                    sub = _pick_model(mapped, item)
+                    if sub is not None:
+                        check_keys(item, sub, f"{child}.{k}")
+
+
+def _pick_model(candidates: Sequence[type[BaseModel]], item: Any) -> type[BaseModel] | None:
+    """The one candidate model ``item`` is meant for, or None when that is unclear.
+
+    With several candidates (a tagged union such as endpoint kinds) the model whose
+    ``Literal`` tag fields all match the item's values is chosen.
+    """
+    unique = list(dict.fromkeys(candidates))
+    if len(unique) == 1:
+        return unique[0]
+    if not isinstance(item, Mapping):
+        return None
+    matches = []
+    for model in unique:
+        tags = {
+            name: typing.get_args(info.annotation)
+            for name, info in model.model_fields.items()
+            if typing.get_origin(info.annotation) is Literal
+        }
+        if tags and all(name in item and item[name] in allowed for name, allowed in tags.items()):
+            matches.append(model)
+    return matches[0] if len(matches) == 1 else None
 
 
 def _short(value: Any, limit: int = 60) -> str:

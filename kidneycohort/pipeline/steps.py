@@ -12,12 +12,18 @@ as named in :mod:`kidneycohort.pipeline.run_folder`.
 
 from __future__ import annotations
 
+import datetime as dt
 import logging
+import warnings
+from collections.abc import Mapping
 from typing import Any
 
 import polars as pl
+from pydantic import BaseModel, ConfigDict, Field
 
 from kidneycohort import schemas
+from kidneycohort.endpoints import EndpointDefinition, EndpointRules
+from kidneycohort.errors import ConfigError, ConvergenceError, InputDataError, StatisticalWarning
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 
 logger = logging.getLogger(__name__)
@@ -119,7 +125,262 @@ def _add_baseline_and_slopes(registry: StepRegistry) -> None:
         }
 
 
-_STAGES = (_add_harmonize, _add_baseline_and_slopes)
+def primary_equation(sections: Mapping[str, Any], tables: Mapping[str, Any] | None = None) -> str:
+    """The study's primary eGFR equation: ``egfr.primary_equation``, else its first one."""
+    egfr = sections.get("egfr")
+    primary = getattr(egfr, "primary_equation", None)
+    if primary:
+        return str(primary)
+    equations = list(getattr(egfr, "equations", None) or [])
+    if equations:
+        return str(equations[0])
+    if tables is not None and isinstance(tables.get("egfr"), pl.DataFrame):
+        found = tables["egfr"]["equation"].drop_nulls().unique().sort().to_list()
+        if found:
+            return str(found[0])
+    raise ConfigError("egfr.primary_equation: no equation chosen; set egfr.equations")
+
+
+class EndpointsSection(BaseModel):
+    """Endpoint definitions, their default rules and the data cut (config key ``endpoints``).
+
+    The keys are the parameters of :func:`kidneycohort.endpoints.derive_endpoints`;
+    ``definitions`` and ``rules`` are its own models. The endpoints are derived on the
+    study's primary equation (``egfr.primary_equation``).
+    """
+
+    model_config = ConfigDict(extra="forbid")
+
+    definitions: list[EndpointDefinition] = Field(
+        min_length=1,
+        description="Endpoint definitions, each with a `kind` (egfr_decline, egfr_below, "
+        "kidney_failure, death, kidney_death, composite) and that kind's keys.",
+    )
+    rules: EndpointRules = Field(
+        default_factory=EndpointRules,
+        description="Confirmation and timing rules used by every definition without its own.",
+    )
+    data_cut: dt.date = Field(
+        description="Data-cut date: nothing after it is used; every endpoint is censored at it."
+    )
+
+
+def _add_endpoints(registry: StepRegistry) -> None:
+    from kidneycohort.endpoints import derive_endpoints
+
+    @registry.register(
+        "endpoints",
+        needs=["egfr", "baseline", "cohort"],
+        optional_needs=["cohort_events"],
+        makes=["endpoints"],
+        section="endpoints",
+        options=EndpointsSection,
+        description="Time-to-event rows per patient and endpoint (kidneycohort.endpoints).",
+    )
+    def endpoints_step(ctx: StepContext) -> dict[str, Any]:
+        """Time-to-event rows, one per patient per endpoint definition."""
+        opts = ctx.options
+        assert isinstance(opts, EndpointsSection)
+        table = derive_endpoints(
+            ctx.tables["egfr"],
+            ctx.tables["baseline"],
+            ctx.tables["cohort"],
+            ctx.tables.get("cohort_events"),
+            opts.definitions,
+            equation=primary_equation(ctx.sections, ctx.tables),
+            data_cut=opts.data_cut,
+            rules=opts.rules,
+        )
+        return {"endpoints": table}
+
+
+def _add_kdigo(registry: StepRegistry) -> None:
+    from kidneycohort.aki import ValueFilter
+    from kidneycohort.kdigo import SustainRule, sustained_stages, transition_matrix, transitions
+
+    @registry.register(
+        "kdigo",
+        needs=["egfr", "labs", "cohort"],
+        makes=["stages", "transitions", "transition_matrix", "models/transition_counts"],
+        section="sustain",
+        options=SustainRule,
+        extra_sections={"value_filter": ValueFilter},
+        description="Sustained KDIGO G and A stages and their transitions (kidneycohort.kdigo).",
+    )
+    def kdigo_step(ctx: StepContext) -> dict[str, Any]:
+        """Sustained KDIGO stages, transitions and transition counts."""
+        stages = sustained_stages(
+            ctx.tables["egfr"],
+            ctx.tables["labs"],
+            ctx.tables["cohort"],
+            rule=ctx.options,  # type: ignore[arg-type]
+            value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
+        )
+        matrix = transition_matrix(stages)
+        primary = primary_equation(ctx.sections, ctx.tables)
+        # the figure reads one matrix per axis: G on the primary equation, and A
+        counts = matrix.filter(
+            ((pl.col("axis") == "G") & (pl.col("equation") == primary)) | (pl.col("axis") == "A")
+        ).select(
+            "axis",
+            "from_category",
+            "to_category",
+            pl.col("n_transitions").alias("n"),
+            "rate_per_100_person_years",
+        )
+        return {
+            "stages": stages,
+            "transitions": transitions(stages),
+            "transition_matrix": matrix,
+            "models/transition_counts": counts,
+        }
+
+
+def _fit_each_endpoint(endpoints: pl.DataFrame, fit: Any, what: str) -> list[tuple[str, Any]]:
+    """Fit ``fit(endpoint_name)`` per endpoint; an endpoint that cannot be fitted warns."""
+    out = []
+    names = sorted(endpoints.filter(pl.col("event").is_not_null())["endpoint"].unique().to_list())
+    for name in names:
+        try:
+            out.append((name, fit(name)))
+        except (ConvergenceError, InputDataError) as exc:
+            warnings.warn(
+                f"{what} of endpoint '{name}' not estimated: {exc}",
+                StatisticalWarning,
+                stacklevel=2,
+            )
+    return out
+
+
+def _evaluable(endpoints: pl.DataFrame) -> pl.DataFrame:
+    # not-evaluable patients (null event, with a reason) are counted in the endpoint
+    # table; the estimators take the evaluable rows
+    return endpoints.filter(pl.col("event").is_not_null())
+
+
+def _add_survival(registry: StepRegistry) -> None:
+    from kidneycohort.models.survival import (
+        CoxModel,
+        CumulativeIncidence,
+        KaplanMeier,
+        SurvivalSpec,
+    )
+
+    def curves(estimator: Any, ctx: StepContext) -> dict[str, Any]:
+        spec = ctx.options
+        assert isinstance(spec, SurvivalSpec)
+        rows = _evaluable(ctx.tables["endpoints"])
+        fits = _fit_each_endpoint(
+            rows,
+            lambda name: estimator.from_spec(spec, endpoint=name).fit(rows, ctx.tables["cohort"]),
+            estimator.__name__,
+        )
+        curve = [f.curves_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
+        risk = [f.at_risk_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
+        return {
+            "models/survival_curves": pl.concat(curve) if curve else _empty_curves(),
+            "models/at_risk": pl.concat(risk) if risk else _empty_at_risk(),
+        }
+
+    @registry.register(
+        "kaplan_meier",
+        needs=["endpoints", "cohort"],
+        makes=["models/survival_curves", "models/at_risk"],
+        section="survival",
+        options=SurvivalSpec,
+        description="Kaplan–Meier curves per endpoint and group (kidneycohort.models.survival).",
+    )
+    def kaplan_meier_step(ctx: StepContext) -> dict[str, Any]:
+        """Kaplan–Meier curves and numbers at risk per endpoint and group."""
+        return curves(KaplanMeier, ctx)
+
+    @registry.register(
+        "cumulative_incidence",
+        needs=["endpoints", "cohort"],
+        makes=["models/survival_curves", "models/at_risk"],
+        section="survival",
+        options=SurvivalSpec,
+        description="Aalen–Johansen cumulative incidence with death competing, per endpoint.",
+    )
+    def cumulative_incidence_step(ctx: StepContext) -> dict[str, Any]:
+        """Aalen–Johansen cumulative incidence per endpoint and group."""
+        return curves(CumulativeIncidence, ctx)
+
+    @registry.register(
+        "cox",
+        needs=["endpoints", "cohort"],
+        makes=["models/hazard_ratios"],
+        section="survival",
+        options=SurvivalSpec,
+        description="Cox hazard ratios per endpoint with the proportional-hazards test.",
+    )
+    def cox_step(ctx: StepContext) -> dict[str, Any]:
+        """Cox hazard ratios (group, covariates, strata) per endpoint."""
+        spec = ctx.options
+        assert isinstance(spec, SurvivalSpec)
+        rows = _evaluable(ctx.tables["endpoints"])
+        fits = _fit_each_endpoint(
+            rows,
+            lambda name: CoxModel.from_spec(spec, endpoint=name).fit(rows, ctx.tables["cohort"]),
+            "Cox model",
+        )
+        parts = []
+        for name, fit in fits:
+            ph = fit.ph_test_.select("term", pl.col("p").alias("ph_p"))
+            parts.append(
+                fit.summary()
+                .join(ph, on="term", how="left", maintain_order="left")
+                .select(
+                    pl.lit(name).alias("endpoint"),
+                    "term",
+                    "hr",
+                    "hr_lower",
+                    "hr_upper",
+                    "p",
+                    "ph_p",
+                )
+            )
+        empty = pl.DataFrame(schema=HAZARD_RATIOS)
+        return {"models/hazard_ratios": pl.concat(parts) if parts else empty}
+
+
+HAZARD_RATIOS = {
+    "endpoint": pl.String(),
+    "term": pl.String(),
+    "hr": pl.Float64(),
+    "hr_lower": pl.Float64(),
+    "hr_upper": pl.Float64(),
+    "p": pl.Float64(),
+    "ph_p": pl.Float64(),
+}
+
+
+def _empty_curves() -> pl.DataFrame:
+    return pl.DataFrame(
+        schema={
+            "endpoint": pl.String,
+            "group": pl.String,
+            "years": pl.Float64,
+            "estimate": pl.Float64,
+            "lower": pl.Float64,
+            "upper": pl.Float64,
+            "measure": pl.String,
+        }
+    )
+
+
+def _empty_at_risk() -> pl.DataFrame:
+    return pl.DataFrame(
+        schema={
+            "endpoint": pl.String,
+            "group": pl.String,
+            "years": pl.Float64,
+            "n_at_risk": pl.Int64,
+        }
+    )
+
+
+_STAGES = (_add_harmonize, _add_baseline_and_slopes, _add_endpoints, _add_kdigo, _add_survival)
 
 
 def build_registry() -> StepRegistry:
