@@ -26,6 +26,7 @@ References
 
 from __future__ import annotations
 
+import contextvars
 import datetime as dt
 import logging
 from collections.abc import Iterable, Mapping, Sequence
@@ -74,7 +75,31 @@ NOT_EVALUABLE_REASONS: Final = {
 
 
 # ---------------------------------------------------------------------------- models
-class EndpointRules(BaseModel):
+# Set while a model or a config list is being validated, so that only the outermost call
+# turns pydantic's report into one ConfigError (pydantic calls a custom __init__ for
+# nested models too).
+_VALIDATING: contextvars.ContextVar[bool] = contextvars.ContextVar("_validating", default=False)
+
+
+class _ConfigModel(BaseModel):
+    """Frozen, typo-proof config model whose bad values raise :class:`ConfigError`."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    def __init__(self, **data: Any) -> None:
+        if _VALIDATING.get():  # nested inside another model or a config parse
+            super().__init__(**data)
+            return
+        token = _VALIDATING.set(True)
+        try:
+            super().__init__(**data)
+        except ValidationError as exc:
+            raise ConfigError(_one_line(exc, type(self).__name__)) from None
+        finally:
+            _VALIDATING.reset(token)
+
+
+class EndpointRules(_ConfigModel):
     """Confirmation and timing rules of lab-based endpoints (and what counts as dialysis).
 
     Defaults are the common practice of kidney trials' analysis plans; each one is a
@@ -85,8 +110,6 @@ class EndpointRules(BaseModel):
     .. [1] Levey AS et al. Am J Kidney Dis. 2014;64(6):821-835.
        doi:10.1053/j.ajkd.2014.07.030
     """
-
-    model_config = ConfigDict(frozen=True, extra="forbid")
 
     confirmation: Literal["next_value", "sustained_to_end"] = Field(
         "next_value",
@@ -179,9 +202,7 @@ class EndpointRules(BaseModel):
         return self
 
 
-class _Endpoint(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
+class _Endpoint(_ConfigModel):
     name: str = Field(
         "",
         description=(
@@ -396,7 +417,9 @@ _ALL_KINDS: Final = (EgfrDecline, EgfrBelow, KidneyFailure, Death, KidneyDeath, 
 
 
 def _one_line(exc: ValidationError, where: str, items: Sequence[Any] | None = None) -> str:
-    err = exc.errors()[0]
+    errors = exc.errors()
+    # A misspelt key also makes the intended field "missing": report the misspelling.
+    err = next((e for e in errors if e["type"] == "extra_forbidden"), errors[0])
     loc = ".".join(str(x) for x in err["loc"])
     got = err.get("input")
     hint = ""
@@ -407,11 +430,14 @@ def _one_line(exc: ValidationError, where: str, items: Sequence[Any] | None = No
             fields |= set(model.model_fields)
         hint = did_you_mean(field, sorted(fields))
     elif err["type"] in ("union_tag_invalid", "union_tag_not_found"):
-        hint = did_you_mean(str(got), [m.model_fields["kind"].default for m in _ALL_KINDS])
-        hint += "; kind must be one of " + ", ".join(
-            m.model_fields["kind"].default for m in _ALL_KINDS
+        kinds = [m.model_fields["kind"].default for m in _ALL_KINDS]
+        tag = err.get("ctx", {}).get("tag")
+        return (
+            f"{where}.{loc}.kind: unknown or missing endpoint kind {tag!r}"
+            f"{did_you_mean(str(tag), kinds)}; kind must be one of {', '.join(kinds)}"
         )
-    return f"{where}.{loc}: {err['msg']} (got {got!r}){hint}"
+    place = f"{where}.{loc}" if loc else where
+    return f"{place}: {err['msg']} (got {got!r}){hint}"
 
 
 def parse_endpoint_definitions(
@@ -437,10 +463,17 @@ def parse_endpoint_definitions(
         closest field name.
     """
     raw = [i.model_dump() if isinstance(i, BaseModel) else i for i in items]
+    return _validate(_DEFINITIONS_ADAPTER.validate_python, raw, where)
+
+
+def _validate(validator: Any, raw: Any, where: str) -> Any:
+    token = _VALIDATING.set(True)
     try:
-        return _DEFINITIONS_ADAPTER.validate_python(raw)
+        return validator(raw)
     except ValidationError as exc:
         raise ConfigError(_one_line(exc, where)) from None
+    finally:
+        _VALIDATING.reset(token)
 
 
 def usual_kidney_composite(
@@ -493,14 +526,15 @@ def _dates_as_date(df: pl.DataFrame, columns: Iterable[str], name: str) -> pl.Da
         dtype = df.schema[column]
         if dtype == pl.String:
             bad = df.filter(
-                pl.col(column).is_not_null() & pl.col(column).str.to_date(strict=False).is_null()
+                pl.col(column).is_not_null()
+                & pl.col(column).str.to_date("%Y-%m-%d", strict=False).is_null()
             )
             if bad.height:
                 raise InputDataError(
                     f"{name}: column '{column}' has {bad.height} values that are not dates "
                     f"(first: {bad[column][0]!r}); use YYYY-MM-DD"
                 )
-            exprs.append(pl.col(column).str.to_date(strict=False))
+            exprs.append(pl.col(column).str.to_date("%Y-%m-%d", strict=False))
         elif isinstance(dtype, pl.Datetime):
             exprs.append(pl.col(column).dt.date())
         elif dtype not in (pl.Date, pl.Null):
@@ -1261,10 +1295,7 @@ def derive_endpoints(
     if isinstance(rules, EndpointRules) or rules is None:
         default_rules = rules or EndpointRules()
     else:
-        try:
-            default_rules = EndpointRules.model_validate(dict(rules))
-        except ValidationError as exc:
-            raise ConfigError(_one_line(exc, "rules")) from None
+        default_rules = _validate(EndpointRules.model_validate, dict(rules), "rules")
     defs = parse_endpoint_definitions(list(definitions))
     if not defs:
         raise ConfigError("endpoints: no endpoint definitions given; pass definitions=[...]")
