@@ -1,0 +1,605 @@
+"""eGFR slope models: linear mixed models with random intercept and slope(s) per patient.
+
+Two models, one class (:class:`SlopeModel`):
+
+- ``knot_years=None``: one slope, eGFR ~ group x time with a random intercept and a
+  random slope per patient (unstructured 2 x 2 covariance), REML.
+- ``knot_years=k`` (default 0.25 y, 3 months): a linear spline in time with a knot at
+  ``k``, fixed effects per group for the intercept, the acute slope (0 to k) and the
+  chronic slope (after k), random effects on all three (unstructured 3 x 3). It reports
+  the acute change (baseline to knot), the chronic slope and the total slope over each
+  horizon, per group and as differences between groups (delta method, 95 % CI, p).
+
+The fitting is statsmodels' ``MixedLM``; this module builds the design, handles
+non-convergence (a stated fallback sequence, each step announced by a
+:class:`~kidneycohort.errors.StatisticalWarning`), and lays out the results.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from collections.abc import Sequence
+from typing import Literal, Self
+
+import numpy as np
+import polars as pl
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from scipy import stats
+from statsmodels.regression.mixed_linear_model import MixedLM, MixedLMParams
+
+from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort.errors import (
+    ConfigError,
+    ConvergenceError,
+    InputDataError,
+    StatisticalWarning,
+    did_you_mean,
+)
+from kidneycohort.models._design import capture_warnings, encode_covariates
+
+logger = logging.getLogger(__name__)
+
+__all__ = ["RandomEffects", "SlopeModel", "SlopeModelSpec"]
+
+RandomEffects = Literal["unstructured", "diagonal", "intercept_and_slope", "intercept"]
+
+SUMMARY_COLUMNS = ("contrast", "quantity", "estimate", "se", "lower", "upper", "p")
+TRAJECTORY_COLUMNS = ("group", "years", "mean", "lower", "upper")
+
+# What each structure falls back to when its fit does not converge (stated, in order).
+_FALLBACK: dict[str, tuple[str, ...]] = {
+    "unstructured": ("unstructured", "diagonal", "intercept_and_slope", "intercept"),
+    "diagonal": ("diagonal", "intercept_and_slope", "intercept"),
+    "intercept_and_slope": ("intercept_and_slope", "intercept"),
+    "intercept": ("intercept",),
+}
+# Messages that make a fit unusable; statsmodels' "Retrying ... with <optimizer>" notes
+# are not failures by themselves (the next optimizer may converge).
+_FAILURE_WORDS = ("not positive definite", "gradient optimization failed", "fit error")
+_OPTIMIZERS = ["lbfgs", "bfgs", "cg"]
+
+
+class SlopeModelSpec(BaseModel):
+    """Options of the eGFR slope model of one study (config key ``slope_model``)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    knot_years: float | None = Field(
+        0.25,
+        gt=0,
+        description="Knot of the two-slope model in years (3 months = 0.25); null for one slope.",
+    )
+    horizons_years: list[float] = Field(
+        default_factory=lambda: [2.0, 3.0],
+        description="Horizons (years) of the total slope, each longer than the knot.",
+    )
+    covariates: list[str] = Field(
+        default_factory=list,
+        description="Patients columns adjusted for (centred, so trajectories are at their mean).",
+    )
+    group_column: str = Field("group", description="Patients column naming the arm or group.")
+    reference_group: str | None = Field(
+        None, description="Group the differences are taken against (default: first, sorted)."
+    )
+    equation: str | None = Field(
+        None, description="eGFR equation to model when the eGFR table holds several."
+    )
+    max_years: float | None = Field(
+        None, gt=0, description="Leave out values after this time (reported as after_max_years)."
+    )
+    random_effects: RandomEffects = Field(
+        "unstructured",
+        description="Random-effects structure to try first; simpler ones follow on non-convergence.",
+    )
+    confidence: float = Field(0.95, gt=0, lt=1, description="Confidence level.")
+    trajectory_step_years: float = Field(
+        0.25, gt=0, description="Spacing (years) of the model-based mean trajectories."
+    )
+
+    @model_validator(mode="after")
+    def _horizons_after_knot(self) -> SlopeModelSpec:
+        for horizon in self.horizons_years:
+            if horizon <= 0 or (self.knot_years is not None and horizon <= self.knot_years):
+                raise ValueError(
+                    f"horizons_years: {horizon} must be positive and after the knot "
+                    f"({self.knot_years} years)"
+                )
+        return self
+
+
+class SlopeModel:
+    r"""Linear mixed model of eGFR over time by group (statsmodels ``MixedLM``, REML).
+
+    With ``knot_years`` :math:`k`, time enters as a linear spline,
+    :math:`t_1 = \min(t, k)` and :math:`t_2 = \max(t - k, 0)`, and for patient
+    :math:`i` in group :math:`g`
+
+    .. math::
+
+        \text{eGFR}_{ij} = (\beta_{0g} + b_{0i}) + (\beta_{1g} + b_{1i})\, t_{1ij}
+            + (\beta_{2g} + b_{2i})\, t_{2ij} + \gamma^\top z_i + \varepsilon_{ij},
+        \quad b_i \sim N(0, G),\ \varepsilon_{ij} \sim N(0, \sigma^2)
+
+    with centred covariates :math:`z_i`. Reported per group:
+
+    .. math::
+
+        \text{acute change} = k\,\beta_{1g}, \qquad
+        \text{chronic slope} = \beta_{2g}, \qquad
+        \text{total slope}(T) = \frac{k\,\beta_{1g} + (T - k)\,\beta_{2g}}{T}
+
+    and each as a difference against the reference group; every quantity is a linear
+    contrast :math:`c^\top\beta`, so its standard error is
+    :math:`\sqrt{c^\top \hat V c}` (delta method, exact for linear contrasts), with Wald
+    95 % limits and a two-sided normal p value. Without a knot the model has one slope
+    :math:`\beta_{1g}` (quantity ``slope``) and random intercept and slope.
+
+    Parameters
+    ----------
+    knot_years : float or None, default 0.25
+        Knot of the two-slope model; ``None`` for the one-slope model.
+    horizons_years : sequence of float, default (2, 3)
+        Horizons of the total slope (two-slope model).
+    covariates : sequence of str
+        Patients columns adjusted for (text columns become indicators).
+    group_column, reference_group, equation, max_years, random_effects, confidence,
+    trajectory_step_years
+        As in :class:`SlopeModelSpec`.
+
+    Attributes
+    ----------
+    result_ : statsmodels MixedLMResults
+        The accepted fit.
+    random_effects_structure_ : str
+        Structure of the accepted fit (``unstructured`` unless a fallback was needed).
+    fit_messages_ : list of str
+        Convergence messages of every attempt, in order.
+    fixed_effects_ : polars.DataFrame
+        ``term, estimate, se, lower, upper, p``.
+    variance_components_ : polars.DataFrame
+        ``component, estimate`` (random-effects variances/covariances, residual variance).
+    trajectories_ : polars.DataFrame
+        ``group, years, mean, lower, upper``: model-based mean eGFR at mean covariates.
+    n_patients_, n_observations_ : int
+    excluded_ : polars.DataFrame
+        ``reason, n_rows, n_patients`` of eGFR rows not used (``egfr_missing``,
+        ``years_missing``, ``before_index``, ``after_max_years``, ``group_missing``,
+        ``missing_<covariate>``); ``excluded_rows_`` lists them row by row.
+
+    Raises
+    ------
+    ConvergenceError
+        When no structure of the fallback sequence converges; the message says what to try.
+
+    References
+    ----------
+    .. [1] Laird NM, Ware JH. Random-effects models for longitudinal data. Biometrics
+       1982;38:963-974. doi:10.2307/2529876
+    .. [2] Vonesh E, Tighiouart H, Ying J, et al. Mixed-effects models for slope-based
+       endpoints in clinical trials of chronic kidney disease. Stat Med 2019;38:4218-4239.
+       doi:10.1002/sim.8282
+    .. [3] Greene T, Ying J, Vonesh EF, et al. Performance of GFR slope as a surrogate end
+       point for kidney disease progression in clinical trials. J Am Soc Nephrol
+       2019;30:1756-1769. doi:10.1681/ASN.2019010009
+    """
+
+    def __init__(
+        self,
+        knot_years: float | None = 0.25,
+        *,
+        horizons_years: Sequence[float] = (2.0, 3.0),
+        covariates: Sequence[str] = (),
+        group_column: str = "group",
+        reference_group: str | None = None,
+        equation: str | None = None,
+        max_years: float | None = None,
+        random_effects: RandomEffects = "unstructured",
+        confidence: float = 0.95,
+        trajectory_step_years: float = 0.25,
+    ) -> None:
+        self.knot_years = knot_years
+        self.horizons_years = tuple(horizons_years)
+        self.covariates = tuple(covariates)
+        self.group_column = group_column
+        self.reference_group = reference_group
+        self.equation = equation
+        self.max_years = max_years
+        self.random_effects = random_effects
+        self.confidence = confidence
+        self.trajectory_step_years = trajectory_step_years
+
+    @classmethod
+    def from_spec(cls, spec: SlopeModelSpec) -> Self:
+        """Build the model from a :class:`SlopeModelSpec`."""
+        return cls(spec.knot_years, **spec.model_dump(exclude={"knot_years"}))
+
+    def _spec(self) -> SlopeModelSpec:
+        try:
+            return SlopeModelSpec(
+                knot_years=self.knot_years,
+                horizons_years=list(self.horizons_years),
+                covariates=list(self.covariates),
+                group_column=self.group_column,
+                reference_group=self.reference_group,
+                equation=self.equation,
+                max_years=self.max_years,
+                random_effects=self.random_effects,
+                confidence=self.confidence,
+                trajectory_step_years=self.trajectory_step_years,
+            )
+        except ValidationError as error:
+            first = error.errors()[0]
+            field = ".".join(str(p) for p in first["loc"]) or "SlopeModel"
+            raise ConfigError(
+                f"SlopeModel: {field}: {first['msg']} (got {first.get('input')!r})"
+            ) from None
+
+    # ---- data -------------------------------------------------------------------------
+
+    def _rows(
+        self, egfr: FrameLike, patients: FrameLike | None, spec: SlopeModelSpec
+    ) -> pl.DataFrame:
+        values = to_polars(egfr, "egfr")
+        require_columns(values, ("patient_id", "years_from_index", "egfr"), "egfr")
+        if "equation" in values.columns:
+            equations = sorted(values["equation"].drop_nulls().unique().to_list())
+            if spec.equation is not None:
+                if spec.equation not in equations:
+                    raise InputDataError(
+                        f"egfr: equation '{spec.equation}' is not in the table (equations: "
+                        f"{equations}){did_you_mean(spec.equation, equations)}"
+                    )
+                values = values.filter(pl.col("equation") == spec.equation)
+            elif len(equations) > 1:
+                raise InputDataError(
+                    f"egfr: the table holds {len(equations)} equations {equations}; pass "
+                    "equation=... to model one"
+                )
+        wanted = [spec.group_column, *spec.covariates]
+        if spec.group_column in values.columns and not spec.covariates:
+            rows = values
+        else:
+            if patients is None:
+                raise InputDataError(
+                    f"patients: needed for columns {wanted} but not given; pass the patients table"
+                )
+            people = to_polars(patients, "patients")
+            require_columns(people, ("patient_id", *wanted), "patients")
+            duplicated = people.filter(pl.col("patient_id").is_duplicated())
+            if duplicated.height:
+                raise InputDataError(
+                    f"patients: patient_id '{duplicated['patient_id'][0]}' appears more than "
+                    "once; give one row per patient"
+                )
+            rows = values.drop([c for c in wanted if c in values.columns]).join(
+                people.select(pl.col("patient_id").cast(values.schema["patient_id"]), *wanted),
+                on="patient_id",
+                how="left",
+            )
+        years = pl.col("years_from_index")
+        reason = (
+            pl.when(pl.col("egfr").is_null() | pl.col("egfr").is_nan())
+            .then(pl.lit("egfr_missing"))
+            .when(years.is_null() | years.is_nan())
+            .then(pl.lit("years_missing"))
+            .when(years < 0)
+            .then(pl.lit("before_index"))
+        )
+        if spec.max_years is not None:
+            reason = reason.when(years > spec.max_years).then(pl.lit("after_max_years"))
+        reason = reason.when(pl.col(spec.group_column).is_null()).then(pl.lit("group_missing"))
+        for name in spec.covariates:
+            missing = pl.col(name).is_null()
+            if rows.schema[name].is_float():
+                missing = missing | pl.col(name).is_nan()
+            reason = reason.when(missing).then(pl.lit(f"missing_{name}"))
+        rows = rows.with_columns(
+            pl.col("egfr").cast(pl.Float64),
+            years.cast(pl.Float64),
+            pl.col(spec.group_column).cast(pl.String).alias("_group"),
+        ).with_columns(reason.otherwise(None).alias("_reason"))
+        dropped = rows.filter(pl.col("_reason").is_not_null())
+        self.excluded_rows_ = dropped.select(
+            pl.col("patient_id").cast(pl.String),
+            "years_from_index",
+            pl.col("_reason").alias("reason"),
+        )
+        self.excluded_ = (
+            self.excluded_rows_.group_by("reason")
+            .agg(
+                pl.len().cast(pl.Int64).alias("n_rows"),
+                pl.col("patient_id").n_unique().cast(pl.Int64).alias("n_patients"),
+            )
+            .sort("reason")
+        )
+        if dropped.height:
+            logger.info(
+                "SlopeModel: %d eGFR rows not used (%s)",
+                dropped.height,
+                ", ".join(f"{r}: {n}" for r, n in self.excluded_.select("reason", "n_rows").rows()),
+            )
+        used = rows.filter(pl.col("_reason").is_null()).sort("patient_id", "years_from_index")
+        if used.height == 0:
+            raise InputDataError(
+                "egfr: no usable eGFR values left (see .excluded_ for the reasons)"
+            )
+        return used
+
+    # ---- fit --------------------------------------------------------------------------
+
+    def fit(self, egfr: FrameLike, patients: FrameLike | None = None) -> Self:
+        """Fit the model to ``egfr`` (``schemas.EGFR`` layout) with groups and covariates
+        from ``patients``; returns ``self``."""
+        spec = self._spec()
+        rows = self._rows(egfr, patients, spec)
+        groups = sorted(rows["_group"].unique().to_list())
+        reference = spec.reference_group if spec.reference_group is not None else groups[0]
+        if reference not in groups:
+            raise InputDataError(
+                f"reference_group: '{reference}' is not a value of '{spec.group_column}' "
+                f"(values: {groups}){did_you_mean(reference, groups)}"
+            )
+        self.groups_ = [reference, *[g for g in groups if g != reference]]
+        self.reference_group_ = reference
+
+        time = rows["years_from_index"].to_numpy()
+        pieces = self._time_pieces(time, spec.knot_years)
+        self.slope_terms_ = (
+            ["acute_slope", "chronic_slope"] if spec.knot_years is not None else ["slope"]
+        )
+        group_values = rows["_group"].to_numpy()
+        columns, names = [], []
+        for group in self.groups_:
+            indicator = (group_values == group).astype(float)
+            columns.append(indicator)
+            names.append(f"{group}: intercept")
+            for term, piece in zip(self.slope_terms_, pieces, strict=True):
+                columns.append(indicator * piece)
+                names.append(f"{group}: {term}")
+        patient_level = rows.unique("patient_id", keep="first", maintain_order=True)
+        encoded, covariate_names = encode_covariates(patient_level, spec.covariates, "patients")
+        if encoded.width:
+            means = encoded.mean()
+            encoded_rows, _ = encode_covariates(rows, spec.covariates, "patients")
+            for name in covariate_names:
+                columns.append(encoded_rows[name].to_numpy() - float(means[name][0]))
+                names.append(name)
+        exog = np.column_stack(columns)
+        self.fixed_effect_names_ = names
+        self.n_observations_ = rows.height
+        self.n_patients_ = patient_level.height
+        endog = rows["egfr"].to_numpy()
+        patient_codes = rows["patient_id"].cast(pl.String).to_numpy()
+
+        self.fit_messages_: list[str] = []
+        attempts = _FALLBACK[spec.random_effects]
+        for position, structure in enumerate(attempts):
+            result, messages = self._fit_structure(endog, exog, patient_codes, pieces, structure)
+            self.fit_messages_.extend(f"{structure}: {m}" for m in messages)
+            failed = (
+                result is None
+                or not result.converged
+                or any(word in m.lower() for m in messages for word in _FAILURE_WORDS)
+            )
+            if not failed:
+                break
+            if position + 1 < len(attempts):
+                warnings.warn(
+                    f"SlopeModel: the '{structure}' random-effects fit did not converge "
+                    f"({'; '.join(messages) or 'optimizer did not converge'}); refitting with "
+                    f"'{attempts[position + 1]}' random effects. To keep '{structure}', try more "
+                    "values per patient, max_years to trim sparse late follow-up, or fewer covariates",
+                    StatisticalWarning,
+                    stacklevel=2,
+                )
+        else:
+            raise ConvergenceError(
+                "SlopeModel: no random-effects structure converged "
+                f"({'; '.join(self.fit_messages_[-3:])}); check the eGFR values for outliers and "
+                "units, trim follow-up with max_years, or reduce covariates"
+            )
+        if any("boundary" in m.lower() or "singular" in m.lower() for m in messages):
+            warnings.warn(
+                f"SlopeModel: the '{structure}' fit has a random-effects variance at or near zero "
+                "(boundary of the parameter space); fixed effects are reported, but a simpler "
+                "random-effects structure may fit as well",
+                StatisticalWarning,
+                stacklevel=2,
+            )
+        self.result_ = result
+        self.random_effects_structure_ = structure
+        self.converged_ = True
+        self._collect(spec, time)
+        return self
+
+    @staticmethod
+    def _time_pieces(time: np.ndarray, knot: float | None) -> list[np.ndarray]:
+        if knot is None:
+            return [time]
+        return [np.minimum(time, knot), np.maximum(time - knot, 0.0)]
+
+    def _fit_structure(
+        self,
+        endog: np.ndarray,
+        exog: np.ndarray,
+        patient_codes: np.ndarray,
+        pieces: list[np.ndarray],
+        structure: str,
+    ) -> tuple[object | None, list[str]]:
+        ones = np.ones_like(endog)
+        if structure in ("unstructured", "diagonal"):
+            exog_re = np.column_stack([ones, *pieces])
+        elif structure == "intercept_and_slope":
+            # one random slope on time since index when the spline slopes cannot be separated
+            exog_re = np.column_stack([ones, np.sum(pieces, axis=0)])
+        else:
+            exog_re = ones[:, None]
+        model = MixedLM(endog, exog, groups=patient_codes, exog_re=exog_re)
+        free = None
+        if structure == "diagonal":
+            free = MixedLMParams.from_components(np.ones(exog.shape[1]), np.eye(exog_re.shape[1]))
+        result = None
+        with capture_warnings() as captured:
+            try:
+                with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                    result = model.fit(reml=True, free=free, method=_OPTIMIZERS)
+            except (np.linalg.LinAlgError, ValueError) as error:
+                result = None
+                failure = f"fit error: {error}"
+            else:
+                failure = None
+        messages = list(dict.fromkeys(captured.convergence))
+        if failure:
+            messages.append(failure)
+        return result, messages
+
+    # ---- results ----------------------------------------------------------------------
+
+    def _collect(self, spec: SlopeModelSpec, time: np.ndarray) -> None:
+        result = self.result_
+        k_fe = len(self.fixed_effect_names_)
+        beta = np.asarray(result.fe_params, dtype=float)
+        covariance = np.asarray(result.cov_params(), dtype=float)[:k_fe, :k_fe]
+        self._beta, self._covariance = beta, covariance
+        z = stats.norm.ppf(0.5 + spec.confidence / 2)
+        se = np.sqrt(np.diag(covariance))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p = 2 * stats.norm.sf(np.abs(beta / se))
+        self.fixed_effects_ = pl.DataFrame(
+            {
+                "term": self.fixed_effect_names_,
+                "estimate": beta,
+                "se": se,
+                "lower": beta - z * se,
+                "upper": beta + z * se,
+                "p": p,
+            }
+        )
+        re_names = {
+            "unstructured": ["intercept", *self.slope_terms_],
+            "diagonal": ["intercept", *self.slope_terms_],
+            "intercept_and_slope": ["intercept", "slope"],
+            "intercept": ["intercept"],
+        }[self.random_effects_structure_]
+        cov_re = np.asarray(result.cov_re, dtype=float)
+        components, estimates = [], []
+        for i, a in enumerate(re_names):
+            for j in range(i + 1):
+                b = re_names[j]
+                components.append(f"var({a})" if i == j else f"cov({b}, {a})")
+                estimates.append(cov_re[i, j])
+        components.append("var(residual)")
+        estimates.append(float(result.scale))
+        self.variance_components_ = pl.DataFrame({"component": components, "estimate": estimates})
+
+        self._contrasts = self._quantity_contrasts(spec)
+        self._summary = self._summarise(spec, z)
+        self.trajectories_ = self._trajectories(spec, time, z)
+
+    def _index(self, group: str, term: str) -> int:
+        return self.fixed_effect_names_.index(f"{group}: {term}")
+
+    def _quantity_contrasts(self, spec: SlopeModelSpec) -> dict[tuple[str, str], np.ndarray]:
+        k_fe = len(self.fixed_effect_names_)
+        contrasts: dict[tuple[str, str], np.ndarray] = {}
+        for group in self.groups_:
+
+            def vector(weights: dict[str, float], group: str = group) -> np.ndarray:
+                c = np.zeros(k_fe)
+                for term, weight in weights.items():
+                    c[self._index(group, term)] = weight
+                return c
+
+            if spec.knot_years is None:
+                contrasts[(group, "slope")] = vector({"slope": 1.0})
+            else:
+                knot = spec.knot_years
+                contrasts[(group, "acute_change")] = vector({"acute_slope": knot})
+                contrasts[(group, "chronic_slope")] = vector({"chronic_slope": 1.0})
+                for horizon in spec.horizons_years:
+                    contrasts[(group, f"total_slope_{_format_years(horizon)}y")] = vector(
+                        {"acute_slope": knot / horizon, "chronic_slope": (horizon - knot) / horizon}
+                    )
+        return contrasts
+
+    def _summarise(self, spec: SlopeModelSpec, z: float) -> pl.DataFrame:
+        labels, quantities, vectors = [], [], []
+        quantity_names = list(dict.fromkeys(q for _, q in self._contrasts))
+        for group in self.groups_:
+            for quantity in quantity_names:
+                labels.append(group)
+                quantities.append(quantity)
+                vectors.append(self._contrasts[(group, quantity)])
+        for group in self.groups_[1:]:
+            for quantity in quantity_names:
+                labels.append(f"{group} - {self.reference_group_}")
+                quantities.append(quantity)
+                vectors.append(
+                    self._contrasts[(group, quantity)]
+                    - self._contrasts[(self.reference_group_, quantity)]
+                )
+        matrix = np.vstack(vectors)
+        estimate = matrix @ self._beta
+        se = np.sqrt(np.einsum("ij,jk,ik->i", matrix, self._covariance, matrix))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p = 2 * stats.norm.sf(np.abs(estimate / se))
+        return pl.DataFrame(
+            {
+                "contrast": labels,
+                "quantity": quantities,
+                "estimate": estimate,
+                "se": se,
+                "lower": estimate - z * se,
+                "upper": estimate + z * se,
+                "p": p,
+            }
+        )
+
+    def _trajectories(self, spec: SlopeModelSpec, time: np.ndarray, z: float) -> pl.DataFrame:
+        end = (
+            max([float(np.max(time)), *spec.horizons_years])
+            if spec.knot_years
+            else float(np.max(time))
+        )
+        if spec.max_years is not None:
+            end = min(end, spec.max_years)
+        grid = np.arange(0.0, end + 1e-9, spec.trajectory_step_years)
+        if spec.knot_years is not None:
+            grid = np.unique(np.concatenate([grid, [spec.knot_years]]))
+        pieces = self._time_pieces(grid, spec.knot_years)
+        frames = []
+        k_fe = len(self.fixed_effect_names_)
+        for group in self.groups_:
+            design = np.zeros((grid.size, k_fe))
+            design[:, self._index(group, "intercept")] = 1.0
+            for term, piece in zip(self.slope_terms_, pieces, strict=True):
+                design[:, self._index(group, term)] = piece
+            mean = design @ self._beta
+            se = np.sqrt(np.einsum("ij,jk,ik->i", design, self._covariance, design))
+            frames.append(
+                pl.DataFrame(
+                    {
+                        "group": [group] * grid.size,
+                        "years": grid,
+                        "mean": mean,
+                        "lower": mean - z * se,
+                        "upper": mean + z * se,
+                    },
+                    schema_overrides={"group": pl.String},
+                )
+            )
+        return pl.concat(frames).select(TRAJECTORY_COLUMNS)
+
+    def summary(self) -> pl.DataFrame:
+        """One row per group (and per difference ``<group> - <reference>``) and quantity:
+        ``contrast, quantity, estimate, se, lower, upper, p``. Quantities are
+        ``acute_change`` (mL/min/1.73 m² from 0 to the knot), ``chronic_slope`` and
+        ``total_slope_<T>y`` (mL/min/1.73 m² per year), or ``slope`` without a knot."""
+        if not hasattr(self, "_summary"):
+            raise InputDataError("SlopeModel: call .fit(egfr, patients) first")
+        return self._summary
+
+
+def _format_years(value: float) -> str:
+    return f"{value:g}"
