@@ -371,7 +371,7 @@ def _clean_patients(
     sex_map = {**DEFAULT_SEX_CODES, **{fold_code(k): v for k, v in rules.sex_codes.items()}}
     exprs: list[pl.Expr] = [_text("patient_id").alias("patient_id")]
     notes: list[pl.Expr] = [pl.col("assumption")]
-    bad_number: list[tuple[pl.Expr, str]] = []
+    bad_number: list[str] = []
     if "sex" in names:
         folded = fold_code_expr(pl.col("sex"))
         mapped = folded.replace_strict(sex_map, default=None, return_dtype=pl.String)
@@ -386,7 +386,7 @@ def _clean_patients(
             number = (
                 _text(column).str.replace(",", ".", literal=True).cast(pl.Float64, strict=False)
             )
-            bad_number.append((number.is_null() & _text(column).is_not_null(), column))
+            bad_number.append(column)
             exprs.append(number.alias(column))
     if "black_race" in names and schema["black_race"] != pl.Boolean:
         flag = fold_code_expr(pl.col("black_race")).replace_strict(
@@ -399,8 +399,7 @@ def _clean_patients(
         )
         exprs.append(flag.alias("black_race"))
     exprs.append(pl.concat_str(notes, separator="; ", ignore_nulls=True).alias("_note"))
-    raw_numbers = [c for c, _ in bad_number]
-    frame = frame.with_columns(pl.col(c).alias(f"_raw_{c}") for c in raw_numbers)
+    frame = frame.with_columns(pl.col(c).alias(f"_raw_{c}") for c in bad_number)
     frame = frame.with_columns(exprs)
     frame = frame.with_columns(
         pl.when(pl.col("_note") != "").then(pl.col("_note")).alias("assumption")
@@ -425,16 +424,13 @@ def _clean_patients(
                     pl.format("{} '{}' does not parse", pl.lit(column), pl.col(as_read)),
                 )
             )
-    for condition, column in bad_number:
+    for column in bad_number:
+        raw = _text(f"_raw_{column}")
         checks.append(
             (
-                condition,
+                pl.col(column).is_null() & raw.is_not_null(),
                 "invalid_number",
-                pl.format(
-                    "{} '{}' is not a number",
-                    pl.lit(column),
-                    pl.col(f"_raw_{column}").cast(pl.String),
-                ),
+                pl.format("{} '{}' is not a number", pl.lit(column), raw),
             )
         )
     checks.append(
@@ -1078,7 +1074,7 @@ def harmonize(
     accounting_by_reason = pl.concat(reasons).sort("table", "outcome", "reason")
     assumptions = pl.concat(assumption_parts).sort("table", "source", "assumption")
     if assumptions.height:
-        logger.warning("harmonize: assumptions applied: %s", assumptions.head(50).to_dicts())
+        logger.info("harmonize: assumptions applied: %s", assumptions.head(50).to_dicts())
     logger.info("harmonize: %s", accounting.to_dicts())
     return HarmonizeResult(
         labs=labs_out,
