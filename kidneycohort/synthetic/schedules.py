@@ -78,7 +78,15 @@ def _visit_occasions(
     which = np.tile(np.arange(v), n)
     day0 = np.array([x.day for x in visits])[which]
     fixed = day0 <= 0
-    jitter = rng.integers(-sched.jitter_days, sched.jitter_days + 1, size=patient.size)
+    # a visit's window never reaches half-way to its neighbours, so visits keep their order
+    days = np.array([x.day for x in visits])
+    gaps = np.diff(days)
+    half_gap = np.minimum(
+        np.concatenate([[sched.jitter_days], (gaps - 1) // 2]),
+        np.concatenate([(gaps - 1) // 2, [sched.jitter_days]]),
+    )
+    window = np.minimum(sched.jitter_days, half_gap)[which]
+    jitter = np.floor(rng.uniform(size=patient.size) * (2 * window + 1)).astype(np.int64) - window
     day = np.where(day0 == 0, 0, day0 + jitter)
     if sched.jitter_days:
         # a jittered screening visit must stay before randomisation
