@@ -357,7 +357,7 @@ def test_harmonising_harmonised_labs_changes_nothing() -> None:
 
 def test_bad_rules_and_inputs() -> None:
     with pytest.raises(
-        ConfigError, match="unknown rule 'same_day_rul'.*did you mean 'same_day_rule'"
+        ConfigError, match=r"unknown rule 'same_day_rul'.*did you mean 'same_day_rule'"
     ):
         harmonize(lab(), ONE_PATIENT, same_day_rul="mean")
     with pytest.raises(ConfigError, match="same_day_rule"):
