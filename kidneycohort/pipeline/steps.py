@@ -380,7 +380,42 @@ def _empty_at_risk() -> pl.DataFrame:
     )
 
 
-_STAGES = (_add_harmonize, _add_baseline_and_slopes, _add_endpoints, _add_kdigo, _add_survival)
+def _add_slope_model(registry: StepRegistry) -> None:
+    from kidneycohort.models.mixed import SlopeModel, SlopeModelSpec
+
+    @registry.register(
+        "slope_model",
+        needs=["egfr", "cohort"],
+        makes=["models/trajectories", "models/slope_summary", "slope_model_fit"],
+        section="slope_model",
+        options=SlopeModelSpec,
+        description="Linear mixed model of eGFR (one slope or two slopes with a knot) by group.",
+    )
+    def slope_model_step(ctx: StepContext) -> dict[str, Any]:
+        """Mixed-model mean trajectories and slope contrasts (kidneycohort.models.mixed)."""
+        spec = ctx.options
+        assert isinstance(spec, SlopeModelSpec)
+        if spec.equation is None:
+            spec = spec.model_copy(update={"equation": primary_equation(ctx.sections, ctx.tables)})
+        model = SlopeModel.from_spec(spec).fit(ctx.tables["egfr"], ctx.tables["cohort"])
+        name = "two_slope" if spec.knot_years is not None else "one_slope"
+        return {
+            "models/trajectories": model.trajectories_.select(
+                pl.lit(name).alias("model"), pl.all()
+            ),
+            "models/slope_summary": model.summary().select(pl.lit(name).alias("model"), pl.all()),
+            "slope_model_fit": model,
+        }
+
+
+_STAGES = (
+    _add_harmonize,
+    _add_baseline_and_slopes,
+    _add_endpoints,
+    _add_kdigo,
+    _add_survival,
+    _add_slope_model,
+)
 
 
 def build_registry() -> StepRegistry:
