@@ -249,6 +249,28 @@ def run_pipeline(
     return RunResult(run_dir=target, tables=tables, manifest=final, warnings=warning_lines)
 
 
+# Per-patient files that carry the patient's group, so that figures and tables by arm
+# or exposure read one file; the in-memory stage results are left as the stage made them.
+GROUPED_FILES = ("baseline", "slopes", "endpoints")
+
+
+def _with_group(name: str, table: Any, tables: Mapping[str, Any]) -> Any:
+    cohort = tables.get("cohort")
+    if (
+        name not in GROUPED_FILES
+        or not isinstance(table, pl.DataFrame)
+        or "group" in table.columns
+        or not isinstance(cohort, pl.DataFrame)
+        or "group" not in cohort.columns
+        or "patient_id" not in table.columns
+    ):
+        return table
+    groups = cohort.select(
+        pl.col("patient_id").cast(table.schema["patient_id"]), pl.col("group").cast(pl.String)
+    ).unique("patient_id", keep="first", maintain_order=True)
+    return table.join(groups, on="patient_id", how="left", maintain_order="left")
+
+
 def _run_step(
     step: Step,
     config: StudyConfig,
@@ -283,7 +305,7 @@ def _run_step(
         )
     for name in step.makes:
         tables[name] = made[name]
-        run_folder.write_table(run_dir, name, made[name])
+        run_folder.write_table(run_dir, name, _with_group(name, made[name], tables))
     seconds = time.perf_counter() - started
     rows_out = _rows(made[step.makes[0]]) if step.makes else None
     logger.info("step %s: %s rows in %.2f s", step.name, rows_out, seconds)

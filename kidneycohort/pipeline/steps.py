@@ -408,6 +408,37 @@ def _add_slope_model(registry: StepRegistry) -> None:
         }
 
 
+class FiguresSection(BaseModel):
+    """Figure options (config key ``figures``): the parameters of ``write_figures``."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    formats: list[str] = Field(
+        default_factory=lambda: ["png", "svg"],
+        description="File formats of every figure (matplotlib names).",
+    )
+    dpi: int = Field(150, ge=50, le=1200, description="Resolution of raster formats.")
+
+
+def _add_figures(registry: StepRegistry) -> None:
+    from kidneycohort.plots import write_figures
+
+    @registry.register(
+        "figures",
+        makes=["figure_files"],
+        section="figures",
+        options=FiguresSection,
+        description="Every figure the run folder has data for, into figures/ (kidneycohort.plots).",
+    )
+    def figures_step(ctx: StepContext) -> dict[str, Any]:
+        """Draw the figures from the run folder as written so far."""
+        opts = ctx.options
+        assert isinstance(opts, FiguresSection)
+        files = write_figures(ctx.run_dir, formats=opts.formats, dpi=opts.dpi)
+        names = [p.relative_to(ctx.run_dir).as_posix() for p in files]
+        return {"figure_files": pl.DataFrame({"file": names}, schema={"file": pl.String})}
+
+
 _STAGES = (
     _add_harmonize,
     _add_baseline_and_slopes,
@@ -415,6 +446,7 @@ _STAGES = (
     _add_kdigo,
     _add_survival,
     _add_slope_model,
+    _add_figures,
 )
 
 
