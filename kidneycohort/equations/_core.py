@@ -169,7 +169,8 @@ def sex_codes(sex: ArrayLike) -> tuple[BoolArray, BoolArray, BoolArray]:
 
     ``"female"`` and ``"male"`` are recognised after trimming and lower-casing; a null,
     NaN or empty string is *missing*; anything else is *unknown* (neither known nor
-    missing). Scalars give 0-d arrays.
+    missing). Scalars give 0-d arrays. Exact spellings take a fast path; only the other
+    elements are folded.
     """
     if sex is None or isinstance(sex, str):
         text = "" if sex is None else sex.strip().lower()
@@ -177,27 +178,45 @@ def sex_codes(sex: ArrayLike) -> tuple[BoolArray, BoolArray, BoolArray]:
         return female, female | np.array(text == "male"), np.array(text == "")
     if isinstance(sex, float) and np.isnan(sex):
         return np.array(False), np.array(False), np.array(True)
-    series = _as_string_series(sex)
+    values: Any
+    if isinstance(sex, pl.Series):
+        values = sex if sex.dtype == pl.String else sex.cast(pl.String)
+        female = (values == "female").fill_null(False).to_numpy()
+        male = (values == "male").fill_null(False).to_numpy()
+    else:
+        if hasattr(sex, "to_numpy") and not isinstance(sex, np.ndarray):  # pandas
+            values = np.asarray(sex.to_numpy(dtype=object))
+        else:
+            values = np.asarray(sex)
+            if values.dtype.kind not in "USO":
+                values = values.astype(object)
+        female = np.asarray(values == "female", dtype=bool)
+        male = np.asarray(values == "male", dtype=bool)
+    known = female | male
+    missing = np.zeros(known.shape, dtype=bool)
+    other = ~known
+    if other.any():
+        rest = values.filter(pl.Series(other)) if isinstance(values, pl.Series) else values[other]
+        rest_female, rest_male, rest_missing = _fold_sex(rest)
+        female[other] = rest_female
+        known[other] = rest_female | rest_male
+        missing[other] = rest_missing
+    return female, known, missing
+
+
+def _fold_sex(values: Any) -> tuple[BoolArray, BoolArray, BoolArray]:
+    """Slow path for the elements that are not exactly ``"female"`` / ``"male"``."""
+    if isinstance(values, pl.Series):
+        series = values
+    else:
+        import pandas as pd
+
+        series = pl.from_pandas(pd.Series(np.ravel(values), dtype=object).astype("string"))
     folded = series.str.strip_chars().str.to_lowercase()
     female = (folded == "female").fill_null(False).to_numpy()
     male = (folded == "male").fill_null(False).to_numpy()
     missing = (folded.is_null() | (folded == "")).fill_null(True).to_numpy()
-    return female, female | male, missing
-
-
-def _as_string_series(sex: ArrayLike) -> pl.Series:
-    if isinstance(sex, pl.Series):
-        return sex.cast(pl.String)
-    if hasattr(sex, "dtype") and hasattr(sex, "astype") and not isinstance(sex, np.ndarray):
-        import pandas as pd
-
-        return pl.from_pandas(pd.Series(sex).astype("string"))
-    arr = np.asarray(sex)
-    if arr.dtype.kind in "US":
-        return pl.Series("sex", arr.ravel()).cast(pl.String)
-    import pandas as pd
-
-    return pl.from_pandas(pd.Series(arr.ravel(), dtype=object).astype("string"))
+    return female, male, missing
 
 
 def black_codes(black_race: ArrayLike) -> tuple[BoolArray, BoolArray]:
