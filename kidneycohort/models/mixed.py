@@ -162,6 +162,8 @@ class SlopeModel:
     trajectories_ : polars.DataFrame
         ``group, years, mean, lower, upper``: model-based mean eGFR at mean covariates.
     n_patients_, n_observations_ : int
+    group_sizes_ : polars.DataFrame
+        ``group, n_patients, n_observations`` of the values used.
     excluded_ : polars.DataFrame
         ``reason, n_rows, n_patients`` of eGFR rows not used (``egfr_missing``,
         ``years_missing``, ``before_index``, ``after_max_years``, ``group_missing``,
@@ -367,6 +369,15 @@ class SlopeModel:
                 names.append(name)
         exog = np.column_stack(columns)
         self.fixed_effect_names_ = names
+        self.group_sizes_ = (
+            rows.group_by("_group")
+            .agg(
+                pl.col("patient_id").n_unique().cast(pl.Int64).alias("n_patients"),
+                pl.len().cast(pl.Int64).alias("n_observations"),
+            )
+            .rename({"_group": "group"})
+            .sort(pl.col("group").replace_strict({g: i for i, g in enumerate(self.groups_)}))
+        )
         self.n_observations_ = rows.height
         self.n_patients_ = patient_level.height
         endog = rows["egfr"].to_numpy()
