@@ -215,12 +215,11 @@ def validate_cmd(config: Path, overrides: tuple[str, ...], no_data: bool) -> Non
     from kidneycohort.pipeline import check_inputs
 
     study = _load(config, overrides)
+    columns = {} if no_data else check_inputs(study)
     click.echo(f"config {config}: valid")
     click.echo(f"recipe {study.recipe.name}: {' -> '.join(s.name for s in study.steps)}")
-    if not no_data:
-        columns = check_inputs(study)
-        for table, names in columns.items():
-            click.echo(f"data.{table}: {len(names)} columns readable")
+    for table, names in columns.items():
+        click.echo(f"data.{table}: {len(names)} columns readable")
     click.echo(f"run folder: {study.output.dir}")
 
 
