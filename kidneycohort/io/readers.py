@@ -74,6 +74,12 @@ _DAY_MONTH_PAIRS: Final = (("%d/%m/%Y", "%m/%d/%Y"), ("%d/%m/%Y %H:%M", "%m/%d/%
 _INFER_SAMPLE: Final = 5000
 
 
+def suggest_column(name: str, choices: list[str]) -> str:
+    """``did_you_mean``, first trying a match that differs only in letter case."""
+    same = [c for c in choices if c.lower() == name.lower()]
+    return f" (did you mean '{same[0]}'?)" if same else did_you_mean(name, choices)
+
+
 def _parse_with(expr: pl.Expr, fmt: str) -> pl.Expr:
     text = expr.cast(pl.String).str.strip_chars()
     if fmt == ISO:
@@ -297,7 +303,7 @@ def read_source(
         if source_column not in have:
             raise InputDataError(
                 f"{name}: column map names '{source_column}', not in the file"
-                f"{did_you_mean(source_column, have)}"
+                f"{suggest_column(source_column, have)}"
             )
     frame = frame.rename(spec.columns)
     have = [spec.columns.get(c, c) for c in have]
@@ -305,7 +311,7 @@ def read_source(
         if column not in have and column not in spec.defaults:
             raise InputDataError(
                 f"{name}: missing required column '{column}'"
-                f"{did_you_mean(column, have)}; map it in columns"
+                f"{suggest_column(column, have)}; map it in columns"
             )
     target = SCHEMAS[kind]
     exprs: list[pl.Expr] = [pl.lit(spec.source_name(), pl.String).alias("source")]
