@@ -10,13 +10,13 @@ from typing import Any
 import numpy as np
 import polars as pl
 
-from kidneycohort import schemas
+from kidneycohort import schemas, units
 from kidneycohort._frames import conform
 from kidneycohort.synthetic.defects import DEFECTS_SCHEMA, defect_counts, inject_defects
 from kidneycohort.synthetic.events import EventTimes, draw_events
 from kidneycohort.synthetic.labs import measure
 from kidneycohort.synthetic.scenario import Scenario, load_scenario
-from kidneycohort.synthetic.schedules import draw_occasions
+from kidneycohort.synthetic.schedules import SETTINGS, draw_occasions, visit_names
 from kidneycohort.synthetic.trajectories import (
     FloatArray,
     Population,
@@ -92,10 +92,15 @@ def generate_cohort(
 
     ids = patient_ids(s.id_prefix, s.patients, s.dirty.orphan_patient if s.dirty else 0)
     patient_frame = _patients_table(s, pop, ev, ids)
-    samples = (
-        samples.with_columns(patient_id=ids.gather(samples["patient"]))
-        .sort(["patient_id", "sample_us", "analyte"])
-        .with_columns(sample_id=pl.int_range(1, pl.len() + 1, dtype=pl.Int64))
+    names = visit_names(s)
+    samples = samples.sort(
+        ["patient", "sample_us", "analyte"]
+    ).with_columns(  # ids sort as their numbers
+        patient_id=ids.gather(samples["patient"].sort()),
+        sample_id=pl.int_range(1, pl.len() + 1, dtype=pl.Int64),
+        analyte=_decode("analyte", units.ANALYTES),
+        setting=_decode("setting", SETTINGS),
+        visit=_decode("visit", names),
     )
     labs = samples.select(
         "patient_id",
@@ -125,6 +130,12 @@ def generate_cohort(
         events=_events_table(pop, ev, ids),
         truth=truth,
         defect_counts=defect_counts(defects),
+    )
+
+
+def _decode(column: str, names: tuple[str, ...]) -> pl.Expr:
+    return pl.col(column).replace_strict(
+        list(range(len(names))), list(names), return_dtype=pl.String
     )
 
 

@@ -62,14 +62,18 @@ def measure(
     ``non_gfr`` is each patient's persistent cystatin C factor (non-GFR determinants).
 
     Columns: ``patient``, ``sample_us`` (epoch microseconds), ``years``,
-    ``age_at_sample``, ``analyte``, ``setting``, ``visit``, ``admission``,
+    ``age_at_sample``, ``analyte`` (code into ``units.ANALYTES``), ``setting`` and
+    ``visit`` (codes, see :mod:`~kidneycohort.synthetic.schedules`), ``admission``,
     ``aki_multiplier``, ``true_gfr``, ``noise_free_value`` and ``measured_value`` (both
     in the analyte's standard unit), ``unit`` (as reported), ``exact_reported_value``
     (measured value in that unit, unrounded) and ``value`` (the reported text).
     """
     from kidneycohort import equations
 
-    parts = [occasions.filter(pl.col(a)).with_columns(analyte=pl.lit(a)) for a in units.ANALYTES]
+    parts = [
+        occasions.filter(pl.col(a)).with_columns(analyte=pl.lit(code, dtype=pl.Int8))
+        for code, a in enumerate(units.ANALYTES)
+    ]
     rows = pl.concat(parts).drop(list(units.ANALYTES))
     patient = rows["patient"].to_numpy()
     years = rows["years"].to_numpy()
@@ -79,17 +83,20 @@ def measure(
     age = (sample_us - pop.birth_day[patient] * MICROSECONDS_PER_DAY) / (
         365.25 * MICROSECONDS_PER_DAY
     )
-    sex = np.where(pop.female[patient], "female", "male")
     gfr = traj.gfr(patient, years)
-    analyte = rows["analyte"].to_numpy()
+    code = rows["analyte"].to_numpy()
     n = patient.size
     noise_free = np.full(n, np.nan)
     measured = np.full(n, np.nan)
 
-    is_cr = analyte == "creatinine"
+    is_cr = code == 0
     cr = s.labs.creatinine
     noise_free[is_cr] = equations.solve_creatinine(
-        cr.equation, gfr[is_cr], age=age[is_cr], sex=sex[is_cr], allow_outside_age=True
+        cr.equation,
+        gfr[is_cr],
+        age=age[is_cr],
+        sex=_sex_text(pop, patient[is_cr]),
+        allow_outside_age=True,
     )
     aki = rows["aki_multiplier"].to_numpy()
     cv_cr = float(np.hypot(cr.biological_cv, cr.analytical_cv))
@@ -97,14 +104,14 @@ def measure(
         noise_free[is_cr] * aki[is_cr] * lognormal_factor(rng, cv_cr, int(is_cr.sum()))
     )
 
-    is_cys = analyte == "cystatin_c"
+    is_cys = code == 1
     cys = s.labs.cystatin_c
     if cys is not None and is_cys.any():
         noise_free[is_cys] = equations.solve_cystatin_c(
             cys.equation,
             gfr[is_cys],
             age=age[is_cys],
-            sex=sex[is_cys],
+            sex=_sex_text(pop, patient[is_cys]),
             allow_outside_age=True,
         )
         cv_cys = float(np.hypot(cys.biological_cv, cys.analytical_cv))
@@ -114,7 +121,7 @@ def measure(
             * lognormal_factor(rng, cv_cys, int(is_cys.sum()))
         )
 
-    is_ua = analyte == "uacr"
+    is_ua = code == 2
     ua = s.labs.uacr
     if ua is not None and is_ua.any():
         p = patient[is_ua]
@@ -128,21 +135,20 @@ def measure(
         noise_free[is_ua] = np.exp(log_mean)
         measured[is_ua] = np.exp(log_mean + ua.within_person_log_sd * rng.standard_normal(p.size))
 
-    site_units = {
-        a: np.array([getattr(site, f"{a}_unit") for site in s.sites]) for a in units.ANALYTES
-    }
-    unit = np.empty(n, dtype=object)
-    factor = np.ones(n)
-    decimals = np.full(n, -1, dtype=np.int64)
-    for a in units.ANALYTES:  # three analytes x a few sites: a loop over settings, not rows
-        mask = analyte == a
-        unit[mask] = site_units[a][pop.site[patient[mask]]]
-        for u in np.unique(site_units[a]):
-            here = mask & (unit == u)
-            factor[here] = units.conversion_factor(a, str(u))
-            if not s.noise_off:
-                decimals[here] = REPORT_DECIMALS.get((a, units.normalize_unit(str(u))), 2)
-    exact = measured / factor
+    # one small (analyte, site) table gives each row its unit, factor and decimals
+    cells = [(a, getattr(site, f"{a}_unit")) for a in units.ANALYTES for site in s.sites]
+    cell_factor = np.array([units.conversion_factor(a, u) for a, u in cells])
+    cell_decimals = np.array(
+        [
+            -1 if s.noise_off else REPORT_DECIMALS.get((a, units.normalize_unit(u)), 2)
+            for a, u in cells
+        ]
+    )
+    cell = code.astype(np.int64) * len(s.sites) + pop.site[patient]
+    exact = measured / cell_factor[cell]
+    unit = pl.Series(cell).replace_strict(
+        list(range(len(cells))), [u for _, u in cells], return_dtype=pl.String
+    )
     return rows.select(
         "patient", "years", "analyte", "setting", "visit", "admission", "aki_multiplier"
     ).with_columns(
@@ -151,10 +157,17 @@ def measure(
         true_gfr=pl.Series(gfr),
         noise_free_value=pl.Series(noise_free),
         measured_value=pl.Series(measured),
-        unit=pl.Series(unit.astype(str), dtype=pl.String),
+        unit=unit,
         exact_reported_value=pl.Series(exact),
-        value=format_values(exact, decimals),
+        value=format_values(exact, cell_decimals[cell]),
     )
+
+
+def _sex_text(pop: Population, patient: np.ndarray) -> pl.Series:
+    female = pl.Series(pop.female).gather(patient)
+    return pl.select(
+        pl.when(pl.lit(female)).then(pl.lit("female")).otherwise(pl.lit("male"))
+    ).to_series()
 
 
 def format_values(values: FloatArray, decimals: np.ndarray) -> pl.Series:

@@ -31,12 +31,19 @@ OUTPATIENT_MINUTES = (7 * 60, 18 * 60)
 VISIT_MINUTES = (8 * 60, 12 * 60)
 WARD_ROUND_MINUTES = (5 * 60, 7 * 60)
 
+# settings and visits travel as small integer codes and become text only when the
+# tables are assembled (text columns of tens of millions of rows are slow to build)
+SETTINGS = ("outpatient", "inpatient", "emergency")
+OUTPATIENT, INPATIENT, EMERGENCY = 0, 1, 2
+INDEX_VISIT = "index"
+DAY_OFFSET = 1 << 15  # keeps (day + offset) positive in a packed sort key
+
 OCCASION_SCHEMA = {
     "patient": pl.Int64,
     "day": pl.Int64,
     "minute": pl.Int64,
-    "setting": pl.String,
-    "visit": pl.String,
+    "setting": pl.Int8,
+    "visit": pl.Int16,
     "admission": pl.Int64,
     "aki_multiplier": pl.Float64,
     "creatinine": pl.Boolean,
@@ -56,13 +63,20 @@ def draw_occasions(
     patient, day and minute, with ``years`` from index added."""
     if isinstance(s.schedule, VisitSchedule):
         occasions = _visit_occasions(rng, s, s.schedule, ev)
-    else:
+    else:  # already one row per patient and day, in patient and day order
         occasions = _care_occasions(rng, s, s.schedule, pop, traj, ev)
     occasions = _subset_analytes(rng, s, occasions)
-    return occasions.sort(["patient", "day", "minute"]).with_columns(
+    return occasions.with_columns(
         years=(pl.col("day") * MINUTES_PER_DAY + pl.col("minute"))
         / (MINUTES_PER_DAY * DAYS_PER_YEAR)
     )
+
+
+def visit_names(s: Scenario) -> tuple[str, ...]:
+    """Names behind the ``visit`` codes of :func:`draw_occasions`."""
+    if isinstance(s.schedule, VisitSchedule):
+        return tuple(v.name for v in s.schedule.visits)
+    return (INDEX_VISIT,)
 
 
 def _minutes(rng: np.random.Generator, window: tuple[int, int], size: int) -> np.ndarray:
@@ -95,7 +109,6 @@ def _visit_occasions(
     minute = _minutes(rng, VISIT_MINUTES, patient.size)
     years = (day * MINUTES_PER_DAY + minute) / (MINUTES_PER_DAY * DAYS_PER_YEAR)
     keep = attended & (fixed | (years <= ev.last_native_lab[patient]))
-    names = np.array([x.name for x in visits])[which]
     has = {
         a: np.array([a in x.analytes for x in visits])[which]
         for a in ("creatinine", "cystatin_c", "uacr")
@@ -105,15 +118,15 @@ def _visit_occasions(
             "patient": patient,
             "day": day,
             "minute": minute,
-            "setting": np.full(patient.size, "outpatient"),
-            "visit": names,
+            "setting": np.full(patient.size, OUTPATIENT, dtype=np.int8),
+            "visit": which.astype(np.int16),
             "admission": pl.Series([None] * patient.size, dtype=pl.Int64),
             "aki_multiplier": np.ones(patient.size),
             **has,
         },
         schema=OCCASION_SCHEMA,
     )
-    return frame.filter(pl.Series(keep))
+    return frame.filter(pl.Series(keep)).sort(["patient", "day"])
 
 
 def _care_occasions(
@@ -135,40 +148,49 @@ def _care_occasions(
 
     bound = base * np.maximum(ratio, 1.0) ** (np.maximum(60.0 - low, 0.0) / 10.0)
     who, when = thinned_poisson(rng, bound, start, stop, test_rate)
-    out_day = np.floor(when * DAYS_PER_YEAR).astype(np.int64)
     # the index test defines cohort entry: an outpatient creatinine on day 0
-    patient = np.concatenate([np.arange(n), who])
-    day = np.concatenate([np.zeros(n, dtype=np.int64), out_day])
-    priority = np.concatenate([np.zeros(n, dtype=np.int64), np.full(who.size, 2)])
-    frames = [
-        pl.DataFrame(
-            {
-                "patient": patient,
-                "day": day,
-                "minute": _minutes(rng, OUTPATIENT_MINUTES, patient.size),
-                "setting": np.full(patient.size, "outpatient"),
-                "visit": np.where(priority == 0, "index", None),
-                "admission": pl.Series([None] * patient.size, dtype=pl.Int64),
-                "aki_multiplier": np.ones(patient.size),
-                "creatinine": np.ones(patient.size, dtype=bool),
-                "cystatin_c": priority == 0,
-                "uacr": priority == 0,
-                "priority": priority,
-            },
-            schema={**OCCASION_SCHEMA, "priority": pl.Int64},
-        )
-    ]
+    index_day = np.zeros(n, dtype=np.int64)
+    cols: dict[str, np.ndarray] = {
+        "patient": np.concatenate([np.arange(n), who]),
+        "day": np.concatenate([index_day, np.floor(when * DAYS_PER_YEAR).astype(np.int64)]),
+        "priority": np.concatenate([index_day, np.full(who.size, 2)]),
+        "setting": np.full(n + who.size, OUTPATIENT, dtype=np.int8),
+        "admission": np.full(n + who.size, -1),
+        "aki_multiplier": np.ones(n + who.size),
+    }
+    cols["minute"] = _minutes(rng, OUTPATIENT_MINUTES, cols["patient"].size)
     if sched.inpatient is not None and sched.inpatient.admissions_per_year > 0:
-        frames.append(_inpatient_occasions(rng, sched.inpatient, pop, traj, start, stop, low))
-    both = pl.concat(frames)
-    years = (both["day"] * MINUTES_PER_DAY + both["minute"]) / (MINUTES_PER_DAY * DAYS_PER_YEAR)
-    in_time = years.to_numpy() <= stop[both["patient"].to_numpy()]
-    within = pl.Series(in_time | (both["priority"] == 0).to_numpy())
-    return (
-        both.filter(within)
-        .sort(["patient", "day", "priority", "minute"])
-        .unique(subset=["patient", "day"], keep="first", maintain_order=True)
-        .drop("priority")
+        ward = _inpatient_occasions(rng, sched.inpatient, pop, traj, start, stop, low)
+        cols = {k: np.concatenate([v, ward[k]]) for k, v in cols.items()}
+    years = (cols["day"] * MINUTES_PER_DAY + cols["minute"]) / (MINUTES_PER_DAY * DAYS_PER_YEAR)
+    keep = (years <= stop[cols["patient"]]) | (cols["priority"] == 0)
+    cols = {k: v[keep] for k, v in cols.items()}
+    # one occasion per patient and day: the index test, else the ward, else outpatient
+    patient_day = (cols["patient"] << 16) | (cols["day"] + DAY_OFFSET)
+    order = np.argsort((patient_day << 2) | cols["priority"], kind="stable")
+    patient_day = patient_day[order]
+    first = np.concatenate([[True], patient_day[1:] != patient_day[:-1]])
+    cols = {k: v[order[first]] for k, v in cols.items()}
+    m = cols["patient"].size
+    is_index = cols["priority"] == 0
+    return pl.DataFrame(
+        {
+            "patient": cols["patient"],
+            "day": cols["day"],
+            "minute": cols["minute"],
+            "setting": cols["setting"],
+            "visit": pl.Series(np.zeros(m, dtype=np.int16)).scatter(
+                np.flatnonzero(~is_index), None
+            ),
+            "admission": pl.Series(cols["admission"]).scatter(
+                np.flatnonzero(cols["admission"] < 0), None
+            ),
+            "aki_multiplier": cols["aki_multiplier"],
+            "creatinine": np.ones(m, dtype=bool),
+            "cystatin_c": is_index,
+            "uacr": is_index,
+        },
+        schema=OCCASION_SCHEMA,
     )
 
 
@@ -180,7 +202,7 @@ def _inpatient_occasions(
     start: FloatArray,
     stop: FloatArray,
     low: FloatArray,
-) -> pl.DataFrame:
+) -> dict[str, np.ndarray]:
     base = ip.admissions_per_year
     r_age, r_gfr = ip.admission_rate_ratio_per_10_years, ip.admission_rate_ratio_per_10_below_60
 
@@ -215,23 +237,15 @@ def _inpatient_occasions(
         rng.integers(0, MINUTES_PER_DAY, size=admission.size),
         _minutes(rng, WARD_ROUND_MINUTES, admission.size),
     )
-    rows = admission.size
-    return pl.DataFrame(
-        {
-            "patient": who[admission],
-            "day": first_day[admission] + day_in_stay,
-            "minute": minute,
-            "setting": np.where(day_in_stay == 0, "emergency", "inpatient"),
-            "visit": pl.Series([None] * rows, dtype=pl.String),
-            "admission": admission,
-            "aki_multiplier": multiplier,
-            "creatinine": np.ones(rows, dtype=bool),
-            "cystatin_c": np.zeros(rows, dtype=bool),
-            "uacr": np.zeros(rows, dtype=bool),
-            "priority": np.ones(rows, dtype=np.int64),
-        },
-        schema={**OCCASION_SCHEMA, "priority": pl.Int64},
-    )
+    return {
+        "patient": who[admission],
+        "day": first_day[admission] + day_in_stay,
+        "priority": np.ones(admission.size, dtype=np.int64),
+        "setting": np.where(day_in_stay == 0, EMERGENCY, INPATIENT).astype(np.int8),
+        "admission": admission.astype(np.int64),
+        "aki_multiplier": multiplier,
+        "minute": minute,
+    }
 
 
 def _subset_analytes(rng: np.random.Generator, s: Scenario, occ: pl.DataFrame) -> pl.DataFrame:
@@ -241,7 +255,8 @@ def _subset_analytes(rng: np.random.Generator, s: Scenario, occ: pl.DataFrame) -
     whenever the patient is in the subset, so that a baseline exists.
     """
     patient = occ["patient"].to_numpy()
-    is_index = (occ["day"] == 0).to_numpy() & occ["setting"].eq("outpatient").to_numpy()
+    outpatient = (occ["setting"] == OUTPATIENT).to_numpy()
+    is_index = (occ["day"] == 0).to_numpy() & outpatient
     updates = {}
     for name, spec in (("cystatin_c", s.labs.cystatin_c), ("uacr", s.labs.uacr)):
         wanted = occ[name].to_numpy()
@@ -253,6 +268,6 @@ def _subset_analytes(rng: np.random.Generator, s: Scenario, occ: pl.DataFrame) -
         if isinstance(s.schedule, VisitSchedule):
             offered = wanted
         else:
-            offered = occ["setting"].eq("outpatient").to_numpy()
+            offered = outpatient
         updates[name] = in_subset[patient] & offered & (drawn | is_index)
     return occ.with_columns(**{k: pl.Series(v) for k, v in updates.items()})
