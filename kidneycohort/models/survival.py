@@ -394,8 +394,11 @@ class CumulativeIncidence(_CurveModel):
 
     Ties between an endpoint event and a competing event at the same time are ordered
     endpoint first, then competing event, then censoring, by offsets of 1e-9 years
-    removed again from the output times. This reproduces the Aalen–Johansen estimate with
-    ties exactly (lifelines would otherwise move tied times at random).
+    removed again from the output times (all times move up by at least one offset, so
+    events at time zero are counted). This reproduces the Aalen–Johansen estimate with
+    ties exactly (lifelines would otherwise move tied times at random). All times move
+    up by at least one offset, because lifelines sets the incidence at its first time
+    point to zero, which would drop endpoint events recorded at time zero.
 
     Parameters and attributes are those of :class:`KaplanMeier` (``measure =
     "cumulative_incidence"``), without the log-rank test (Gray's test is not provided).
@@ -443,10 +446,10 @@ class CumulativeIncidence(_CurveModel):
             part = rows.filter(pl.col("group") == group)
             years = part["years"].to_numpy().astype(float)
             state = part["state"].to_numpy()
-            shifted = (
-                years
-                + np.where(state == 2, 1.0, np.where(state == 0, 2.0, 0.0)) * self._tie_offset_years
-            )
+            # every time moves up by 1-3 offsets: lifelines sets the incidence at its first
+            # time point to zero, which would drop endpoint events recorded at time zero
+            order = np.where(state == 1, 1.0, np.where(state == 2, 2.0, 3.0))
+            shifted = years + order * self._tie_offset_years
             fitter = AalenJohansenFitter(alpha=alpha, calculate_variance=True)
             with capture_warnings() as captured:
                 fitter.fit(shifted, state, event_of_interest=1, label="aj")
@@ -474,9 +477,12 @@ class CumulativeIncidence(_CurveModel):
                 .last()
                 .with_columns(pl.col("lower", "upper").fill_nan(None))
             )
-            # at time zero the incidence is 0 with no uncertainty
+            # before any event the incidence is 0 with no uncertainty
             curve = curve.with_columns(
-                pl.when(pl.col("years") == 0).then(0.0).otherwise(pl.col(c)).alias(c)
+                pl.when((pl.col("years") == 0) & (pl.col("estimate") == 0))
+                .then(0.0)
+                .otherwise(pl.col(c))
+                .alias(c)
                 for c in ("lower", "upper")
             )
             curves.append(curve.select(CURVE_COLUMNS))
