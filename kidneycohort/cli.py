@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import logging
+import shutil
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -84,7 +85,7 @@ def equations_cmd(fmt: str) -> None:
         out.add_column(column, overflow="fold")
     for row in table.iter_rows(named=True):
         out.add_row(row["id"], row["inputs"], row["ages"], row["unit"], row["reference"])
-    Console(width=max(120, click.get_terminal_size()[0])).print(out)
+    Console(width=max(120, shutil.get_terminal_size().columns)).print(out)
 
 
 @cli.command("synth")

@@ -326,10 +326,6 @@ def test_registry_table_columns() -> None:
     assert table.filter(pl.col("id") == "ckid_u25_cr")["ages"].item() == "1 to <25"
 
 
-# kidneycohort/cli.py calls click.get_terminal_size, which click 8.1 removed; the table
-# format fails until cli.py uses shutil.get_terminal_size (reported to the CLI owner).
-# strict: this starts failing as soon as the CLI is fixed, so the mark gets removed.
-@pytest.mark.xfail(strict=True, reason="cli.py uses click.get_terminal_size (removed in click 8.1)")
 def test_cli_lists_equations_as_table() -> None:
     result = CliRunner().invoke(cli, ["equations", "--format", "table"])
     assert result.exit_code == 0, result.output
