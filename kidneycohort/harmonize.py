@@ -263,17 +263,23 @@ def _with_row_identity(frame: pl.LazyFrame, table: str) -> pl.LazyFrame:
     return frame.with_columns(exprs)
 
 
-def _cascade(checks: list[tuple[pl.Expr, str, pl.Expr]]) -> tuple[pl.Expr, pl.Expr]:
-    """First failing check wins: (reason, detail) expressions."""
+Check = tuple[pl.Expr, str, pl.Expr]  # (failing condition, reason code, detail text)
+
+
+def _cascade(checks: list[Check]) -> pl.Expr:
+    """First failing check wins: the ``_reason`` expression (null when all pass)."""
     reason: Any = pl
-    detail: Any = pl
-    for condition, code, text in checks:
+    for condition, code, _ in checks:
         reason = reason.when(condition.fill_null(False)).then(pl.lit(code))
-        detail = detail.when(condition.fill_null(False)).then(text)
-    return (
-        reason.otherwise(pl.lit(None, pl.String)).alias("_reason"),
-        detail.otherwise(pl.lit(None, pl.String)).alias("_detail"),
-    )
+    return reason.otherwise(pl.lit(None, pl.String)).alias("_reason")
+
+
+def _detail(checks: list[Check]) -> pl.Expr:
+    """The readable detail of ``_reason``; evaluated on rejected rows only (cheap)."""
+    detail: Any = pl
+    for _, code, text in checks:
+        detail = detail.when(pl.col("_reason") == code).then(text)
+    return detail.otherwise(pl.lit(None, pl.String))
 
 
 def _date_text(expr: pl.Expr) -> pl.Expr:
@@ -298,14 +304,14 @@ def _merged_rows(
     )
 
 
-def _rejected_rows(frame: pl.DataFrame, table: str) -> pl.DataFrame:
-    return frame.select(
+def _rejected_rows(frame: pl.DataFrame, table: str, checks: list[Check]) -> pl.DataFrame:
+    return frame.filter(pl.col("_reason").is_not_null()).select(
         pl.lit(table).alias("table"),
         "source",
         "source_row",
         "patient_id",
         pl.col("_reason").alias("reason"),
-        pl.col("_detail").alias("detail"),
+        _detail(checks).alias("detail"),
     )
 
 
@@ -313,18 +319,26 @@ def _exact_duplicates(
     frame: pl.DataFrame, keys: list[str], table: str
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Split ``frame`` (sorted by source, source_row) into first copies and merged rows."""
-    frame = frame.with_columns(
-        pl.format("{}:{}", "source", "source_row").first().over(keys).alias("_kept_as")
-    )
     first = _first_distinct(frame, keys)
+    if first.all():
+        return frame, _merged_rows(frame, ~first, "exact_duplicate", table, pl.lit(""))
+    hashed = frame.select(pl.struct(keys).hash().alias("_h")).to_series()
+    kept_as = (
+        frame.filter(first)
+        .select(hashed.filter(first), pl.format("{}:{}", "source", "source_row").alias("_kept_as"))
+        .unique("_h", keep="first")
+    )
+    dupes = (
+        frame.filter(~first).with_columns(hashed.filter(~first)).join(kept_as, on="_h", how="left")
+    )
     merged = _merged_rows(
-        frame,
-        ~first,
+        dupes,
+        pl.repeat(True, dupes.height, eager=True),
         "exact_duplicate",
         table,
         pl.format("identical to row {}", pl.col("_kept_as")),
     )
-    return frame.filter(first).drop("_kept_as"), merged
+    return frame.filter(first), merged
 
 
 def _assumption_counts(frame: pl.DataFrame, table: str) -> pl.DataFrame:
@@ -411,7 +425,7 @@ def _clean_patients(
     content = [c for c in data.columns if c not in bookkeeping and not c.startswith("_raw_")]
     data, merged = _exact_duplicates(data, content, "patients")
     id_count = pl.len().over("patient_id")
-    checks: list[tuple[pl.Expr, str, pl.Expr]] = [
+    checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
     ]
     for column in _PATIENT_DATES:
@@ -452,8 +466,8 @@ def _clean_patients(
                 ),
             )
         )
-    data = data.with_columns(*_cascade(checks))
-    rejected = _rejected_rows(data.filter(pl.col("_reason").is_not_null()), "patients")
+    data = data.with_columns(_cascade(checks))
+    rejected = _rejected_rows(data, "patients", checks)
     used = data.filter(pl.col("_reason").is_null())
     lookup_cols = [c for c in ("birth_date", "death_date") if c in data.columns]
     status = (
@@ -525,7 +539,9 @@ def _parse_result(text: pl.Expr, rules: HarmonizeRules) -> tuple[pl.Expr, pl.Exp
     return number, qualifier
 
 
-def _prepare_labs(labs: Any, status: pl.DataFrame, rules: HarmonizeRules) -> pl.LazyFrame:
+def _prepare_labs(
+    labs: Any, status: pl.DataFrame, rules: HarmonizeRules
+) -> tuple[pl.LazyFrame, list[Check]]:
     frame = _lazy(labs, "labs")
     require_columns(frame, schemas.RAW_LABS_REQUIRED, "labs")
     names = frame.collect_schema().names()
@@ -619,7 +635,7 @@ def _prepare_labs(labs: Any, status: pl.DataFrame, rules: HarmonizeRules) -> pl.
     )
     frame = frame.join(status.lazy(), on="patient_id", how="left")
     std_unit = pl.col("_analyte").replace_strict(units.STANDARD_UNIT, default=None)
-    checks: list[tuple[pl.Expr, str, pl.Expr]] = [
+    checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
         (
             pl.col("_date_as_read").is_not_null(),
@@ -711,7 +727,7 @@ def _prepare_labs(labs: Any, status: pl.DataFrame, rules: HarmonizeRules) -> pl.
                 ),
             )
         )
-    return frame.with_columns(*_cascade(checks))
+    return frame.with_columns(_cascade(checks)), checks
 
 
 _LAB_CONTENT: Final = (
@@ -749,12 +765,6 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
     }[rule]
     valid = valid.with_columns(
         (position.cast(pl.Int64) == chosen).alias("_keep"),
-    ).with_columns(
-        pl.format("{}:{}", "source", "source_row")
-        .filter(pl.col("_keep"))
-        .first()
-        .over(key)
-        .alias("_kept_as"),
         pl.col("_n_in").sum().over(key).cast(pl.Int32).alias("_n"),
     )
     if rule == "mean":
@@ -773,14 +783,20 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
             .otherwise(pl.col("_qualifier"))
             .alias("_qualifier"),
         )
+    kept = valid.filter(pl.col("_keep"))
+    folded = valid.filter(~pl.col("_keep")).join(
+        kept.select(*key, pl.format("{}:{}", "source", "source_row").alias("_kept_as")),
+        on=key,
+        how="left",
+    )
     merged = _merged_rows(
-        valid,
-        ~valid["_keep"],
+        folded,
+        pl.repeat(True, folded.height, eager=True),
         "same_day_collapsed",
         "labs",
         pl.format("folded into row {} ({})", pl.col("_kept_as"), pl.lit(rule)),
     )
-    return valid.filter(pl.col("_keep")), merged
+    return kept, merged
 
 
 def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
@@ -837,7 +853,7 @@ def _clean_events(
     data, merged = _exact_duplicates(data, content, "events")
     data = data.join(status, on="patient_id", how="left")
     as_read = [c for c in names if c.endswith(AS_READ_SUFFIX)]
-    checks: list[tuple[pl.Expr, str, pl.Expr]] = [
+    checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
         *(
             (
@@ -896,8 +912,8 @@ def _clean_events(
                 ),
             )
         )
-    data = data.with_columns(*_cascade(checks))
-    rejected = _rejected_rows(data.filter(pl.col("_reason").is_not_null()), "events")
+    data = data.with_columns(_cascade(checks))
+    rejected = _rejected_rows(data, "events", checks)
     extras = [
         c
         for c in data.columns
@@ -1013,7 +1029,7 @@ def harmonize(
     resolved = resolve_rules(rules, rule_fields)
     used_patients, status, rejected_p, merged_p, n_patients = _clean_patients(patients, resolved)
 
-    frame = _prepare_labs(labs, status, resolved)
+    frame, lab_checks = _prepare_labs(labs, status, resolved)
     try:
         data = frame.sort("source", "source_row", "_rid").collect()
     except pl.exceptions.ComputeError as exc:
@@ -1021,7 +1037,7 @@ def harmonize(
     n_labs = data.height
     assumptions_l = _assumption_counts(data, "labs")
     data, merged_exact = _exact_duplicates(data, list(_LAB_CONTENT), "labs")
-    rejected_l = _rejected_rows(data.filter(pl.col("_reason").is_not_null()), "labs")
+    rejected_l = _rejected_rows(data, "labs", lab_checks)
     kept, merged_day = _collapse_same_day(
         data.filter(pl.col("_reason").is_null()), resolved.same_day_rule
     )
