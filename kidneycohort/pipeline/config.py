@@ -45,6 +45,11 @@ class StudySection(_Strict):
         description="Recipe to run: a name from `pipelines/` (e.g. `trial_endpoints`) or a "
         "path to a recipe YAML, relative to the config file."
     )
+    primary_equation: str | None = Field(
+        None,
+        description="The eGFR equation endpoints, models and tables use (one of "
+        "`egfr.equations`); default the first of them.",
+    )
     seed: int = Field(0, description="Seed for any resampling a step does; recorded.")
     description: str = Field("", description="Free text shown in the report header.")
 

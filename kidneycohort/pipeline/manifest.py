@@ -61,12 +61,17 @@ def build_manifest(
     seed: int,
     accounting: Sequence[Mapping[str, Any]],
     accounting_by_reason: Sequence[Mapping[str, Any]],
+    merged_by_reason: Sequence[Mapping[str, Any]] = (),
     steps: Sequence[Mapping[str, Any]],
     warnings: Sequence[str],
     study: Mapping[str, Any],
     created_utc: dt.datetime | None = None,
 ) -> dict[str, Any]:
-    """Assemble the manifest mapping in the run-folder contract's key order."""
+    """Assemble the manifest mapping in the run-folder contract's key order.
+
+    ``accounting_by_reason`` lists rejected rows only (they add up to ``rows_rejected``);
+    ``merged_by_reason`` lists rows merged into another (they add up to ``rows_merged``).
+    """
     created = created_utc or dt.datetime.now(dt.UTC)
     return {
         "schema_version": SCHEMA_VERSION,
@@ -79,6 +84,7 @@ def build_manifest(
         "seed": seed,
         "accounting": [dict(a) for a in accounting],
         "accounting_by_reason": [dict(a) for a in accounting_by_reason],
+        "merged_by_reason": [dict(a) for a in merged_by_reason],
         "steps": [dict(s) for s in steps],
         "warnings": list(warnings),
         "study": dict(study),

@@ -42,7 +42,10 @@ class StepContext:
     accounting : list of dict
         Row-accounting records a step adds for the manifest.
     accounting_by_reason : list of dict
-        Rejected-row counts by reason a step adds for the manifest.
+        Rejected-row counts by reason (``table, reason, rows``) for the manifest; they
+        add up to each table's ``rows_rejected``.
+    merged_by_reason : list of dict
+        Counts of rows merged into another row, by reason (``table, reason, rows``).
     """
 
     tables: dict[str, Any]
@@ -52,6 +55,7 @@ class StepContext:
     seed: int
     accounting: list[dict[str, Any]] = field(default_factory=list)
     accounting_by_reason: list[dict[str, Any]] = field(default_factory=list)
+    merged_by_reason: list[dict[str, Any]] = field(default_factory=list)
 
 
 StepFunction = Callable[[StepContext], Mapping[str, Any]]

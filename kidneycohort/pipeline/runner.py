@@ -93,15 +93,17 @@ def _format_warning(w: warnings.WarningMessage) -> str:
 
 
 def _study_summary(config: StudyConfig) -> dict[str, Any]:
-    egfr = config.sections.get("egfr")
-    equations = list(getattr(egfr, "equations", []) or [])
-    primary = getattr(egfr, "primary_equation", None) or (equations[0] if equations else None)
+    from kidneycohort.pipeline.steps import primary_equation, study_equations
+
+    equations = study_equations(config.sections)
     return {
         "name": config.study.name,
         "description": config.study.description,
         "recipe": config.recipe.name,
-        "primary_equation": primary,
-        "equations": [str(e) for e in equations],
+        "primary_equation": primary_equation(config.sections, study=config.study)
+        if equations or config.study.primary_equation
+        else None,
+        "equations": equations,
     }
 
 
@@ -159,6 +161,7 @@ def run_pipeline(
     step_records: list[dict[str, Any]] = []
     accounting: list[dict[str, Any]] = []
     by_reason: list[dict[str, Any]] = []
+    merged: list[dict[str, Any]] = []
     tables: dict[str, Any] = {}
     inputs: list[dict[str, Any]] = []
     ok = False
@@ -198,6 +201,7 @@ def run_pipeline(
                     seed=config.study.seed,
                     accounting=accounting,
                     accounting_by_reason=by_reason,
+                    merged_by_reason=merged,
                     steps=step_records,
                     warnings=[_format_warning(w) for w in caught],
                     study=_study_summary(config),
@@ -208,6 +212,7 @@ def run_pipeline(
                 step_records.append(record.pop("_record"))
                 accounting.extend(record["accounting"])
                 by_reason.extend(record["accounting_by_reason"])
+                merged.extend(record["merged_by_reason"])
                 # steps after this one (figures, report) read the folder as it stands
                 manifest_mod.write_manifest(tmp, manifest_now())
             if config.output.xlsx:
@@ -285,7 +290,7 @@ def _run_step(
     context = StepContext(
         tables=given,
         options=config.sections.get(step.section) if step.section else None,
-        sections=config.sections,
+        sections={"study": config.study, **config.sections},
         run_dir=run_dir,
         seed=config.study.seed,
     )
@@ -314,4 +319,5 @@ def _run_step(
         "_record": {"name": step.name, "seconds": round(seconds, 3), "rows_out": rows_out},
         "accounting": context.accounting,
         "accounting_by_reason": context.accounting_by_reason,
+        "merged_by_reason": context.merged_by_reason,
     }

@@ -23,7 +23,13 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from kidneycohort import schemas
 from kidneycohort.endpoints import EndpointDefinition, EndpointRules
-from kidneycohort.errors import ConfigError, ConvergenceError, InputDataError, StatisticalWarning
+from kidneycohort.errors import (
+    ConfigError,
+    ConvergenceError,
+    InputDataError,
+    StatisticalWarning,
+    did_you_mean,
+)
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 
 logger = logging.getLogger(__name__)
@@ -59,8 +65,12 @@ def _add_harmonize(registry: StepRegistry) -> None:
                 ("table", "rows_read", "rows_used", "rows_rejected", "rows_merged"),
             )
         )
+        by_reason = result.accounting_by_reason
         ctx.accounting_by_reason.extend(
-            _records(result.accounting_by_reason, ("table", "outcome", "reason", "rows"))
+            _records(by_reason.filter(pl.col("outcome") == "rejected"), ("table", "reason", "rows"))
+        )
+        ctx.merged_by_reason.extend(
+            _records(by_reason.filter(pl.col("outcome") == "merged"), ("table", "reason", "rows"))
         )
         # rejected_rows.csv lists every input row not used as it stands: rejected rows
         # and rows merged into another (duplicates, same-day results), by reason code
@@ -125,20 +135,65 @@ def _add_baseline_and_slopes(registry: StepRegistry) -> None:
         }
 
 
-def primary_equation(sections: Mapping[str, Any], tables: Mapping[str, Any] | None = None) -> str:
-    """The study's primary eGFR equation: ``egfr.primary_equation``, else its first one."""
+def study_equations(sections: Mapping[str, Any]) -> list[str]:
+    """Every equation the study's ``egfr`` section computes, in first-mention order."""
     egfr = sections.get("egfr")
-    primary = getattr(egfr, "primary_equation", None)
-    if primary:
-        return str(primary)
-    equations = list(getattr(egfr, "equations", None) or [])
+    if egfr is None:
+        return []
+    return list(egfr.all_equations())
+
+
+def primary_equation(
+    sections: Mapping[str, Any],
+    tables: Mapping[str, Any] | None = None,
+    *,
+    study: Any | None = None,
+) -> str:
+    """The study's primary eGFR equation: ``study.primary_equation``, else the first one.
+
+    The first equation of ``egfr.equations`` (or of the first age band) is the default;
+    without an ``egfr`` section the first equation in the ``egfr`` table is used.
+    """
+    study = study if study is not None else sections.get("study")
+    chosen = getattr(study, "primary_equation", None)
+    if chosen:
+        return str(chosen)
+    equations = study_equations(sections)
     if equations:
-        return str(equations[0])
+        return equations[0]
     if tables is not None and isinstance(tables.get("egfr"), pl.DataFrame):
         found = tables["egfr"]["equation"].drop_nulls().unique().sort().to_list()
         if found:
             return str(found[0])
-    raise ConfigError("egfr.primary_equation: no equation chosen; set egfr.equations")
+    raise ConfigError("study.primary_equation: no equation chosen; set egfr.equations")
+
+
+def _check_primary(config: Any) -> None:
+    equations = study_equations(config.sections)
+    chosen = config.study.primary_equation
+    if chosen is not None and chosen not in equations:
+        raise ConfigError(
+            f"study.primary_equation: '{chosen}' is not one of the equations computed "
+            f"(egfr.equations: {', '.join(equations)}){did_you_mean(chosen, equations)}; "
+            "add it to egfr.equations or choose one of them"
+        )
+
+
+def _add_egfr(registry: StepRegistry) -> None:
+    from kidneycohort.egfr import EgfrRules, compute_egfr
+
+    @registry.register(
+        "egfr",
+        needs=["labs", "cohort"],
+        makes=["egfr"],
+        section="egfr",
+        options=EgfrRules,
+        check=_check_primary,
+        description="eGFR by each chosen equation for every sample (kidneycohort.egfr).",
+    )
+    def egfr_step(ctx: StepContext) -> dict[str, Any]:
+        """eGFR by each chosen equation for every creatinine / cystatin C sample."""
+        return {"egfr": compute_egfr(ctx.tables["labs"], ctx.tables["cohort"], rules=ctx.options)}  # type: ignore[arg-type]
 
 
 class EndpointsSection(BaseModel):
@@ -441,6 +496,7 @@ def _add_figures(registry: StepRegistry) -> None:
 
 _STAGES = (
     _add_harmonize,
+    _add_egfr,
     _add_baseline_and_slopes,
     _add_endpoints,
     _add_kdigo,
