@@ -204,11 +204,23 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
         .agg(pl.col("_creat").max())
         .sort("patient_id", _TIME)
     )
-    rise_window = f"{round(rule.aki_rise_hours * 3600)}s"
-    ratio_window = f"{round(rule.aki_ratio_days * 86400)}s"
+    # One rolling pass over the whole table instead of one per patient: each patient's
+    # times (seconds) are shifted by patient_number * gap, with a gap wider than the
+    # data span plus the longest window, so that no window reaches another patient.
+    rise_s = round(rule.aki_rise_hours * 3600)
+    ratio_s = round(rule.aki_ratio_days * 86400)
+    recovery_s = round(rule.aki_recovery_days * 86400)
+    seconds = pl.col(_TIME).dt.epoch("s")
+    bounds = samples.select(lo=seconds.min(), hi=seconds.max())
+    lo = bounds["lo"][0] or 0
+    gap = (bounds["hi"][0] or 0) - lo + max(rise_s, ratio_s, recovery_s) + 1
+    new_patient = (pl.col("patient_id") != pl.col("patient_id").shift(1)).fill_null(True)
+    samples = samples.with_columns(
+        _start=new_patient.cast(pl.Int64).cum_sum() * gap,
+    ).with_columns(_key=pl.col("_start") + seconds - lo)
     creat = pl.col("_creat")
-    low_48h = creat.rolling_min_by(_TIME, window_size=rise_window, closed="left").over("patient_id")
-    low_7d = creat.rolling_min_by(_TIME, window_size=ratio_window, closed="left").over("patient_id")
+    low_48h = creat.rolling_min_by("_key", window_size=f"{rise_s}i", closed="left")
+    low_7d = creat.rolling_min_by("_key", window_size=f"{ratio_s}i", closed="left")
     # a tiny tolerance so that 1.0 -> 1.3 (a rise of 0.3 in binary floating point) counts
     eps = 1e-9
     rise = (creat - low_48h) >= rule.aki_rise_mg_dl - eps
@@ -221,16 +233,15 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
         .otherwise(pl.lit(None, dtype=pl.String))
         .alias("aki_criterion")
     ).with_columns(aki_flag=pl.col("aki_criterion").is_not_null())
-    last_aki = pl.when(pl.col("aki_flag")).then(pl.col(_TIME)).forward_fill().over("patient_id")
-    recovery = pl.duration(microseconds=round(rule.aki_recovery_days * 86400e6))
+    last_aki = pl.when(pl.col("aki_flag")).then(pl.col("_key")).forward_fill()
     samples = samples.with_columns(
         aki_recovery=(
             ~pl.col("aki_flag")
-            & last_aki.is_not_null()
-            & ((pl.col(_TIME) - last_aki) <= recovery)
-            & pl.lit(rule.aki_recovery_days > 0)
+            & (last_aki >= pl.col("_start")).fill_null(False)
+            & ((pl.col("_key") - last_aki) <= recovery_s)
+            & pl.lit(recovery_s > 0)
         )
-    ).drop("_creat")
+    ).drop("_creat", "_start", "_key")
     out = (
         df.with_columns(pl.col("patient_id").cast(pl.String), time.alias(_TIME))
         .join(samples, on=["patient_id", _TIME], how="left", maintain_order="left")

@@ -352,50 +352,67 @@ def _gfr_results(egfr: FrameLike, value_filter: ValueFilter | None) -> pl.DataFr
 
 
 def _confirm(results: pl.DataFrame, rule: SustainRule, level: str = "category") -> pl.DataFrame:
-    """Add ``used``, ``confirmed``, ``confirm_date``, ``confirm_years`` on the ``level`` column."""
-    df = results.with_columns(
-        _eq=pl.col("equation").fill_null(""),
-        _days=(pl.col("years_from_index") * schemas.DAYS_PER_YEAR).round(6),
-        used=pl.col(level).is_not_null()
-        & ~pl.col("excluded")
-        & pl.col("years_from_index").is_not_null(),
+    """Add ``used``, ``confirmed``, ``confirm_date``, ``confirm_years`` on the ``level`` column.
+
+    Returns the rows sorted by patient, equation, axis and time, with ``_row`` (input
+    position) and ``_gid`` (an integer id of the patient x equation x axis sequence) so
+    that later window expressions run over one integer key.
+    """
+    df = (
+        results.with_columns(
+            _eq=pl.col("equation").fill_null(""),
+            _days=(pl.col("years_from_index") * schemas.DAYS_PER_YEAR).round(6),
+            used=pl.col(level).is_not_null()
+            & ~pl.col("excluded")
+            & pl.col("years_from_index").is_not_null(),
+        )
+        .with_row_index("_row")
+        .sort([*_KEYS, "_days", "value"], nulls_last=True)
     )
+    change = pl.any_horizontal([pl.col(k) != pl.col(k).shift(1) for k in _KEYS])
+    df = df.with_columns(_gid=change.fill_null(True).cum_sum())
     # one confirming candidate per time point: ties at the same time use their mean value,
-    # so the answer does not depend on row order
-    right = (
-        df.filter("used")
-        .group_by([*_KEYS, "_days"])
-        .agg(
+    # so the answer does not depend on row order (the group-by runs only when ties exist)
+    candidates = df.filter("used")
+    tie = (pl.col("_gid") == pl.col("_gid").shift(1)) & (
+        pl.col("_days") == pl.col("_days").shift(1)
+    )
+    if candidates.select(tie.fill_null(False).any()).item():
+        right = candidates.group_by("_gid", "_days").agg(
             _c_value=pl.col("value").mean(),
-            _c_level=pl.col(level).sort().first() if level != "category" else pl.col(level).first(),
+            _c_level=pl.col(level).min(),
+            _c_level_max=pl.col(level).max(),
+            _c_axis=pl.col("axis").first(),
             _c_date=pl.col("sample_date").min(),
             _c_years=pl.col("years_from_index").min(),
-            _c_n_levels=pl.col(level).n_unique(),
         )
-    )
-    if level == "category":
-        axis_g = pl.col("axis") == "G"
-        right = right.with_columns(
-            _c_level=pl.when(pl.col("_c_n_levels") == 1)
-            .then(pl.col("_c_level"))
-            .when(axis_g)
-            .then(gfr_category_expr("_c_value"))
-            .otherwise(albuminuria_category_expr("_c_value"))
+        if level == "category":
+            right = right.with_columns(
+                _c_level=pl.when(pl.col("_c_level") == pl.col("_c_level_max"))
+                .then(pl.col("_c_level"))
+                .when(pl.col("_c_axis") == "G")
+                .then(gfr_category_expr("_c_value"))
+                .otherwise(albuminuria_category_expr("_c_value"))
+            )
+        right = right.drop("_c_value", "_c_level_max", "_c_axis").sort("_gid", "_days")
+    else:
+        right = candidates.select(
+            "_gid",
+            "_days",
+            pl.col(level).alias("_c_level"),
+            pl.col("sample_date").alias("_c_date"),
+            pl.col("years_from_index").alias("_c_years"),
         )
-    right = right.rename({"_days": "_c_days"}).sort("_c_days")
-    left = (
-        df.with_row_index("_row")
-        .with_columns(_target=pl.col("_days") + rule.confirm_after_days)
-        .sort("_target")
-    )
+    right = right.rename({"_days": "_c_days"})
+    left = df.with_columns(_target=pl.col("_days") + rule.confirm_after_days)
     joined = left.join_asof(
-        right.drop("_c_value", "_c_n_levels"),
+        right,
         left_on="_target",
         right_on="_c_days",
-        by=_KEYS,
+        by="_gid",
         strategy="forward",
         check_sortedness=False,
-    ).sort("_row")
+    )
     ok = pl.col("used") & (pl.col("_c_level") == pl.col(level)).fill_null(False)
     if rule.confirm_within_days is not None:
         ok = ok & ((pl.col("_c_days") - pl.col("_days")) <= rule.confirm_within_days)
@@ -403,7 +420,7 @@ def _confirm(results: pl.DataFrame, rule: SustainRule, level: str = "category") 
         confirmed=pl.when("used").then(ok),
         confirm_date=pl.when(ok).then(pl.col("_c_date")),
         confirm_years=pl.when(ok).then(pl.col("_c_years")),
-    ).drop("_row", "_target", "_c_days", "_c_level", "_c_date", "_c_years")
+    ).drop("_target", "_c_days", "_c_level", "_c_date", "_c_years")
 
 
 def _results(
@@ -455,7 +472,7 @@ def category_results(
         ``confirm_years``.
     """
     rule = rule or SustainRule()
-    out = _confirm(_results(egfr, labs, patients, rule, value_filter), rule)
+    out = _confirm(_results(egfr, labs, patients, rule, value_filter), rule).sort("_row")
     return out.select(
         "patient_id",
         "equation",
@@ -495,51 +512,56 @@ def sustained_stages(
 
 
 def _stages_from_results(results: pl.DataFrame) -> pl.DataFrame:
+    # rows arrive sorted by sequence (``_gid``) and time from _confirm; windows run over
+    # the integer ``_gid`` only
     used = results.filter("used").with_columns(
         _rank=pl.col("category").replace_strict(_RANK, return_dtype=pl.Int8)
     )
-    used = used.sort([*_KEYS, "_days", "_rank"])
+    used = used.sort("_gid", "_days", "_rank")
     # a new stage starts at every confirmed result whose category differs from the one
     # in force; unconfirmed results belong to the stage in force (or to stage 0)
     confirmed = pl.col("confirmed").fill_null(False)
-    in_force = pl.when(confirmed).then(pl.col("category")).forward_fill().over(_KEYS)
-    used = used.with_columns(_in_force=in_force)
-    changed = confirmed & (
-        pl.col("_in_force").shift(1).over(_KEYS).is_null()
-        | (pl.col("_in_force") != pl.col("_in_force").shift(1).over(_KEYS))
-    )
     used = used.with_columns(
-        stage_number=changed.cast(pl.Int32).cum_sum().over(_KEYS),
-        _last_years=pl.col("years_from_index").last().over(_KEYS),
-        _last_date=pl.col("sample_date").last().over(_KEYS),
+        _in_force=pl.when(confirmed).then(pl.col("category")).forward_fill().over("_gid")
+    )
+    previous = pl.col("_in_force").shift(1)
+    same_sequence = pl.col("_gid") == pl.col("_gid").shift(1)
+    changed = confirmed & (
+        ~same_sequence.fill_null(False) | previous.is_null() | (pl.col("_in_force") != previous)
+    )
+    used = used.with_columns(stage_number=changed.cast(pl.Int32).cum_sum().over("_gid"))
+    last = used.group_by("_gid").agg(
+        _last_years=pl.col("years_from_index").last(),
+        _last_date=pl.col("sample_date").last(),
+        _last_stage=pl.col("stage_number").last(),
     )
     stages = (
-        used.group_by([*_KEYS, "stage_number"])
+        used.group_by("_gid", "stage_number")
         .agg(
+            pl.col("patient_id").first(),
             pl.col("equation").first(),
+            pl.col("axis").first(),
             category=pl.col("_in_force").first(),
             start_date=pl.col("sample_date").first(),
             start_years=pl.col("years_from_index").first(),
             confirmed_date=pl.col("confirm_date").first(),
             n_results=pl.len().cast(pl.Int32),
-            _last_years=pl.col("_last_years").first(),
-            _last_date=pl.col("_last_date").first(),
         )
-        .sort([*_KEYS, "stage_number"])
+        .join(last, on="_gid")
+        .sort("_gid", "stage_number")
     )
-    is_last = pl.col("stage_number") == pl.col("stage_number").max().over(_KEYS)
+    is_last = pl.col("stage_number") == pl.col("_last_stage")
+    stage_zero = pl.col("stage_number") == 0
     stages = stages.with_columns(
         end_date=pl.when(is_last)
         .then(pl.col("_last_date"))
-        .otherwise(pl.col("start_date").shift(-1).over(_KEYS)),
+        .otherwise(pl.col("start_date").shift(-1)),
         end_years=pl.when(is_last)
         .then(pl.col("_last_years"))
-        .otherwise(pl.col("start_years").shift(-1).over(_KEYS)),
+        .otherwise(pl.col("start_years").shift(-1)),
         is_last=is_last,
-        category=pl.when(pl.col("stage_number") == 0).then(None).otherwise(pl.col("category")),
-        confirmed_date=pl.when(pl.col("stage_number") == 0)
-        .then(None)
-        .otherwise(pl.col("confirmed_date")),
+        category=pl.when(stage_zero).then(None).otherwise(pl.col("category")),
+        confirmed_date=pl.when(stage_zero).then(None).otherwise(pl.col("confirmed_date")),
     )
     return conform(stages, STAGES)
 

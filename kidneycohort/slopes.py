@@ -2,13 +2,14 @@
 
 For each patient x equation the usable values (see :mod:`kidneycohort.aki`) inside the
 rule's time window are regressed on years from index. The fit is the closed form of
-simple linear regression from centred sums, computed in one polars group-by, so it is
-the same on any partition of patients and needs no loop:
+simple linear regression from the sums :math:`n, \\sum x, \\sum y, \\sum x^2,
+\\sum xy, \\sum y^2` of one polars group-by, so it is the same on any partition of
+patients and needs no loop:
 
 .. math::
 
     \\bar x = \\tfrac1n\\sum x_i,\\quad \\bar y = \\tfrac1n\\sum y_i,\\quad
-    S_{xx} = \\sum (x_i-\\bar x)^2,\\quad S_{xy} = \\sum (x_i-\\bar x)(y_i-\\bar y),
+    S_{xx} = \\sum x_i^2 - n\\bar x^2,\\quad S_{xy} = \\sum x_i y_i - n\\bar x\\bar y,
 
     \\hat\\beta = S_{xy}/S_{xx},\\quad \\hat\\alpha = \\bar y - \\hat\\beta \\bar x,\\quad
     \\operatorname{se}(\\hat\\beta) = \\sqrt{\\frac{S_{yy} - S_{xy}^2/S_{xx}}{(n-2)\\,S_{xx}}}.
@@ -92,15 +93,25 @@ class SlopeRule(RuleModel):
 
 
 def _ols_aggs(x: pl.Expr, y: pl.Expr, prefix: str) -> list[pl.Expr]:
-    """Group-context expressions: n, means and centred sums of squares and products."""
-    dx = x - x.mean()
-    dy = y - y.mean()
+    """Group-context sums: the sufficient statistics of a simple linear regression."""
     return [
-        x.mean().alias(f"{prefix}mx"),
-        y.mean().alias(f"{prefix}my"),
-        (dx * dx).sum().alias(f"{prefix}sxx"),
-        (dx * dy).sum().alias(f"{prefix}sxy"),
-        (dy * dy).sum().alias(f"{prefix}syy"),
+        x.sum().alias(f"{prefix}sx"),
+        y.sum().alias(f"{prefix}sy"),
+        (x * x).sum().alias(f"{prefix}sxx"),
+        (x * y).sum().alias(f"{prefix}sxy"),
+        (y * y).sum().alias(f"{prefix}syy"),
+    ]
+
+
+def _centred(prefix: str, n: pl.Expr) -> list[pl.Expr]:
+    """Means and centred sums of squares and products from the raw sums."""
+    sx, sy = pl.col(f"{prefix}sx"), pl.col(f"{prefix}sy")
+    return [
+        (sx / n).alias(f"{prefix}mx"),
+        (sy / n).alias(f"{prefix}my"),
+        (pl.col(f"{prefix}sxx") - sx * sx / n).alias(f"{prefix}sxx"),
+        (pl.col(f"{prefix}sxy") - sx * sy / n).alias(f"{prefix}sxy"),
+        (pl.col(f"{prefix}syy") - sy * sy / n).alias(f"{prefix}syy"),
     ]
 
 
@@ -148,7 +159,9 @@ def egfr_slopes(
     used = df.filter(use)
     y = pl.col("egfr")
     positive = (y > 0).all()
-    ly = pl.when(positive).then(y.log())
+    # a patient with a non-positive value gets no log slope (_positive); 0.0 only keeps
+    # the sums finite
+    ly = pl.when(y > 0).then(y.log()).otherwise(0.0)
     fits = used.group_by("patient_id", "equation").agg(
         pl.len().cast(pl.Int32).alias("n_values"),
         (x.max() - x.min()).alias("span_years"),
@@ -156,9 +169,11 @@ def egfr_slopes(
         *_ols_aggs(x, y, "_"),
         *_ols_aggs(x, ly, "_l"),
     )
-    sxx = pl.col("_sxx")
     n = pl.col("n_values")
-    has_slope = (n >= 2) & (sxx > 0)
+    fits = fits.with_columns(*_centred("_", n), *_centred("_l", n))
+    sxx = pl.col("_sxx")
+    # distinct times (span > 0) rather than S_xx > 0: raw sums leave S_xx ~1e-15 otherwise
+    has_slope = (n >= 2) & (pl.col("span_years") > 0)
     slope = pl.when(has_slope).then(pl.col("_sxy") / sxx)
     rss = pl.max_horizontal(pl.col("_syy") - pl.col("_sxy") ** 2 / sxx, pl.lit(0.0))
     log_slope = pl.when(has_slope & pl.col("_positive")).then(pl.col("_lsxy") / pl.col("_lsxx"))
