@@ -653,16 +653,9 @@ def _prepare_egfr(egfr: FrameLike, equation: str, needed: bool) -> pl.DataFrame:
     ).height
     if unusable:
         logger.info("egfr: %d rows without a computed eGFR or a date are not assessments", unusable)
-    # Several values on one day (repeat draws) are one assessment: their mean (common practice).
-    return (
-        df.filter(
-            pl.col("egfr").is_not_null()
-            & pl.col("egfr").is_not_nan()
-            & pl.col("date").is_not_null()
-        )
-        .group_by("patient_id", "date")
-        .agg(pl.col("egfr").mean())
-    )
+    return df.filter(
+        pl.col("egfr").is_not_null() & pl.col("egfr").is_not_nan() & pl.col("date").is_not_null()
+    ).select("patient_id", "date", "egfr")
 
 
 # -------------------------------------------------------------------- patient frame
@@ -733,20 +726,27 @@ def _kidney_failure_onset(
     )
     onset = (
         dialysis.filter("chronic")
-        .group_by("patient_id")
+        .group_by("pcode")
         .agg(pl.col("event_date").min().alias("dialysis_date"))
     )
     acute = dialysis.filter(~pl.col("chronic")).select(
         "pcode", pl.col("event_date").alias("start"), pl.col("end_date").alias("end")
     )
     kf = (
-        p.select("patient_id", "transplant_date", "kfrt_date")
-        .join(onset, on="patient_id", how="left")
+        p.select("pcode", "transplant_date", "kfrt_date")
+        .join(onset, on="pcode", how="left", maintain_order="left")
         .with_columns(
             pl.min_horizontal("dialysis_date", "transplant_date", "kfrt_date").alias("kf_date")
         )
     )
     return kf, acute
+
+
+def _key_expr() -> pl.Expr:
+    """Sort key of (patient, day): pcode in the high bits, day number in the low bits."""
+    return pl.col("pcode").cast(pl.Int64) * int(_DAY_SLOTS) + (
+        pl.col("date").cast(pl.Int32).cast(pl.Int64) + int(_DAY_OFFSET)
+    )
 
 
 def _keys(pcode: pl.Series, date: pl.Series) -> np.ndarray:
@@ -764,7 +764,7 @@ def _inside_acute_episode(values: pl.DataFrame, acute: pl.DataFrame) -> np.ndarr
         pl.col("end").cum_max().over("pcode").alias("end")
     )
     ekey = _keys(ep["pcode"], ep["start"])
-    vkey = _keys(values["pcode"], values["date"])
+    vkey = values["key"].to_numpy()
     j = np.searchsorted(ekey, vkey, side="right") - 1
     jj = np.clip(j, 0, None)
     same = (j >= 0) & (ep["pcode"].to_numpy()[jj] == values["pcode"].to_numpy())
@@ -783,7 +783,7 @@ def _with_next_value(values: pl.DataFrame, after_days: int) -> pl.DataFrame:
             pl.lit(None, dtype=pl.Date).alias("next_date"),
             pl.lit(None, dtype=pl.Float64).alias("next_egfr"),
         )
-    key = _keys(values["pcode"], values["date"])
+    key = values["key"].to_numpy()
     idx = np.minimum(np.searchsorted(key, key + np.int64(after_days), side="left"), n)
     pcode = values["pcode"].to_numpy()
     idx_c = np.minimum(idx, n - 1)
@@ -806,7 +806,11 @@ def _with_next_value(values: pl.DataFrame, after_days: int) -> pl.DataFrame:
 
 # ------------------------------------------------------------------ the derivation
 class _Context:
-    """Inputs prepared once and the per-rules caches of eligible values."""
+    """Inputs prepared once and the per-rules caches of eligible values.
+
+    Internally a patient is its integer ``pcode`` (row number in ``patient_id`` order),
+    so per-value lookups of patient columns are gathers rather than string joins.
+    """
 
     def __init__(
         self,
@@ -815,12 +819,13 @@ class _Context:
         egfr: pl.DataFrame,
         baseline: pl.DataFrame,
     ) -> None:
-        self.p = p
+        self.p = p.join(baseline, on="patient_id", how="left", maintain_order="left")
         self.events = events
         self.egfr = egfr
-        self.baseline = baseline
+        self._coded: pl.DataFrame | None = None
         self._kf: dict[int, tuple[pl.DataFrame, pl.DataFrame]] = {}
-        self._values: dict[int, pl.DataFrame] = {}
+        self._base: dict[int, pl.DataFrame] = {}
+        self._values: dict[int, tuple[pl.DataFrame, pl.DataFrame]] = {}
         self._next: dict[tuple[int, int], pl.DataFrame] = {}
 
     def kidney_failure(self, min_days: int) -> tuple[pl.DataFrame, pl.DataFrame]:
@@ -829,67 +834,99 @@ class _Context:
         return self._kf[min_days]
 
     def patient_base(self, min_days: int) -> pl.DataFrame:
-        """Patients with kidney-failure onset and the not-evaluable reason of each."""
-        kf, _ = self.kidney_failure(min_days)
-        return self.p.join(
-            kf.select("patient_id", "dialysis_date", "kf_date"), on="patient_id", how="left"
-        ).with_columns(
-            pl.when(pl.col("index_date").is_null())
-            .then(pl.lit("no_index_date"))
-            .when(pl.col("fu_end") < pl.col("index_date"))
-            .then(
-                pl.when(pl.col("fu_end_reason") == "data_cut")
-                .then(pl.lit("index_after_data_cut"))
-                .otherwise(pl.lit("end_of_followup_before_index"))
+        """Patients (in pcode order) with kidney-failure onset and not-evaluable reasons."""
+        if min_days not in self._base:
+            kf, _ = self.kidney_failure(min_days)
+            self._base[min_days] = self.p.join(
+                kf.select("pcode", "dialysis_date", "kf_date"),
+                on="pcode",
+                how="left",
+                maintain_order="left",
+            ).with_columns(
+                pl.when(pl.col("index_date").is_null())
+                .then(pl.lit("no_index_date"))
+                .when(pl.col("fu_end") < pl.col("index_date"))
+                .then(
+                    pl.when(pl.col("fu_end_reason") == "data_cut")
+                    .then(pl.lit("index_after_data_cut"))
+                    .otherwise(pl.lit("end_of_followup_before_index"))
+                )
+                .when(pl.col("death_date") < pl.col("index_date"))
+                .then(pl.lit("death_before_index"))
+                .alias("not_evaluable"),
+                pl.when(pl.col("kf_date") < pl.col("index_date"))
+                .then(pl.lit("kidney_failure_before_index"))
+                .alias("prevalent_kf"),
             )
-            .when(pl.col("death_date") < pl.col("index_date"))
-            .then(pl.lit("death_before_index"))
-            .alias("not_evaluable"),
-            pl.when(pl.col("kf_date") < pl.col("index_date"))
-            .then(pl.lit("kidney_failure_before_index"))
-            .alias("prevalent_kf"),
-        )
+        return self._base[min_days]
 
-    def values(self, min_days: int) -> pl.DataFrame:
-        """Eligible eGFR assessments: after index, within follow-up, native kidney."""
-        if min_days not in self._values:
-            base = self.patient_base(min_days)
-            _, acute = self.kidney_failure(min_days)
-            joined = self.egfr.join(
-                base.select("patient_id", "pcode", "index_date", "fu_end", "death_date", "kf_date"),
-                on="patient_id",
-                how="inner",
+    def coded_egfr(self) -> pl.DataFrame:
+        """eGFR as (pcode, date, egfr), sorted, one assessment per patient and day."""
+        if self._coded is None:
+            coded = (
+                self.egfr.join(self.p.select("patient_id", "pcode"), on="patient_id", how="inner")
+                .select(_key_expr().alias("key"), "pcode", "date", "egfr")
+                .sort("key")
             )
-            orphans = self.egfr.height - joined.height
+            orphans = self.egfr.height - coded.height
             if orphans:
                 logger.warning(
                     "egfr: %d assessments of patients not in the patients table; not used", orphans
                 )
+            repeat = (pl.col("pcode") == pl.col("pcode").shift(1)) & (
+                pl.col("date") == pl.col("date").shift(1)
+            )
+            if coded.select(repeat.any()).item():
+                # Several values on one day (repeat draws) are one assessment: their mean
+                # (common practice).
+                coded = (
+                    coded.group_by("key", "pcode", "date")
+                    .agg(pl.col("egfr").mean())
+                    .sort("key")
+                    .select("key", "pcode", "date", "egfr")
+                )
+            self._coded = coded
+        return self._coded
+
+    def values(self, min_days: int) -> tuple[pl.DataFrame, pl.DataFrame]:
+        """Eligible eGFR assessments (after index, within follow-up, native kidney) with
+        their patient's columns, and each patient's last eligible assessment date."""
+        if min_days not in self._values:
+            base = self.patient_base(min_days)
+            _, acute = self.kidney_failure(min_days)
+            coded = self.coded_egfr()
+            pcode = coded["pcode"]
+            joined = coded.with_columns(
+                base[c].gather(pcode)
+                for c in ("index_date", "fu_end", "death_date", "kf_date", "baseline_egfr")
+            )
             in_window = joined.filter(
                 (pl.col("date") > pl.col("index_date"))
                 & (pl.col("date") <= pl.col("fu_end"))
                 & (pl.col("death_date").is_null() | (pl.col("date") <= pl.col("death_date")))
             )
-            after_kf = in_window.filter(pl.col("date") >= pl.col("kf_date")).height
             native = in_window.filter(
                 pl.col("kf_date").is_null() | (pl.col("date") < pl.col("kf_date"))
             )
-            native = native.select("pcode", "patient_id", "date", "egfr").sort("pcode", "date")
             acute_mask = _inside_acute_episode(native, acute)
             logger.info(
                 "endpoints: %d eligible eGFR assessments; set aside %d after kidney failure and "
                 "%d inside acute dialysis episodes",
                 native.height - int(acute_mask.sum()),
-                after_kf,
+                in_window.height - native.height,
                 int(acute_mask.sum()),
             )
-            self._values[min_days] = native.filter(pl.Series(~acute_mask))
+            native = native.filter(pl.Series(~acute_mask))
+            last = native.filter(
+                pl.col("pcode") != pl.col("pcode").shift(-1, fill_value=-1)
+            ).select("pcode", pl.col("date").alias("last_date"))
+            self._values[min_days] = (native, last)
         return self._values[min_days]
 
     def values_with_next(self, min_days: int, after_days: int) -> pl.DataFrame:
         key = (min_days, after_days)
         if key not in self._next:
-            self._next[key] = _with_next_value(self.values(min_days), after_days)
+            self._next[key] = _with_next_value(self.values(min_days)[0], after_days)
         return self._next[key]
 
 
@@ -900,6 +937,7 @@ def _days(expr: pl.Expr) -> pl.Expr:
 def _finish(frame: pl.DataFrame, name: str) -> pl.DataFrame:
     """Common output columns from start_date/end_date/event/competing/reason."""
     return frame.select(
+        "pcode",
         "patient_id",
         pl.lit(name).alias("endpoint"),
         pl.col("index_date").alias("start_date"),
@@ -939,19 +977,15 @@ def _criterion(defn: EgfrDecline | EgfrBelow, value: pl.Expr) -> pl.Expr:
 def _lab_endpoint(
     ctx: _Context, defn: EgfrDecline | EgfrBelow, rules: EndpointRules
 ) -> pl.DataFrame:
-    base = ctx.patient_base(rules.min_dialysis_days).join(ctx.baseline, on="patient_id", how="left")
-    values = ctx.values_with_next(rules.min_dialysis_days, rules.confirm_after_days)
-    v = values.join(
-        base.select("patient_id", "index_date", "fu_end", "death_date", "kf_date", "baseline_egfr"),
-        on="patient_id",
-        how="inner",
-    )
+    base = ctx.patient_base(rules.min_dialysis_days)
+    v = ctx.values_with_next(rules.min_dialysis_days, rules.confirm_after_days)
+    _, last = ctx.values(rules.min_dialysis_days)
     needs_baseline = _needs_baseline(defn)
     if needs_baseline:
         v = v.filter(pl.col("baseline_egfr").is_not_null())
     qualifies = _criterion(defn, pl.col("egfr"))
     v = v.with_columns(qualifies.alias("q")).with_columns(
-        pl.col("date").filter(~pl.col("q")).max().over("patient_id").alias("last_nonqualifying"),
+        pl.col("date").filter(~pl.col("q")).max().over("pcode").alias("last_nonqualifying"),
     )
     after_grace = pl.col("date") > pl.col("index_date") + pl.duration(days=rules.grace_period_days)
     trigger = pl.col("q") & after_grace
@@ -1006,13 +1040,14 @@ def _lab_endpoint(
             .otherwise(late_reason)
             .alias("event_reason"),
         )
-        .sort("patient_id", "event_date", "date")
-        .group_by("patient_id", maintain_order=True)
+        .sort("pcode", "event_date", "date")
+        .group_by("pcode", maintain_order=True)
         .first()
-        .select("patient_id", "event_date", "event_reason")
+        .select("pcode", "event_date", "event_reason")
     )
-    last = values.group_by("patient_id").agg(pl.col("date").max().alias("last_date"))
-    out = base.join(counted, on="patient_id", how="left").join(last, on="patient_id", how="left")
+    out = base.join(counted, on="pcode", how="left", maintain_order="left").join(
+        last, on="pcode", how="left", maintain_order="left"
+    )
 
     death_competes = (pl.col("death_date") <= fu_end) & (
         pl.col("kf_date").is_null() | (pl.col("death_date") <= pl.col("kf_date"))
@@ -1132,35 +1167,41 @@ def _death_endpoint(ctx: _Context, defn: Death | KidneyDeath, rules: EndpointRul
 
 
 def _composite(defn: Composite, parts: list[pl.DataFrame]) -> pl.DataFrame:
-    stacked = pl.concat(
-        [
-            part.with_columns(pl.lit(k, dtype=pl.Int32).alias("_order"))
-            for k, part in enumerate(parts)
-        ]
-    )
-    is_event = pl.col("event") == 1
-    event_date = pl.col("end_date").filter(is_event).min()
-    any_end = pl.col("end_date").min()
-    agg = (
-        stacked.sort("patient_id", "_order")
-        .group_by("patient_id", maintain_order=True)
-        .agg(
-            pl.col("start_date").first(),
-            pl.col("reason").filter(pl.col("event").is_null()).first().alias("why_not"),
-            event_date.alias("event_date"),
-            pl.col("endpoint")
-            .filter(is_event & (pl.col("end_date") == event_date))
-            .str.join("+")
-            .alias("event_reason"),
-            any_end.alias("censor_date"),
-            pl.col("reason").filter(pl.col("end_date") == any_end).first().alias("censor_reason"),
-            (pl.col("competing").filter(pl.col("end_date") == any_end) == 1)
-            .any()
-            .alias("censor_competing"),
+    """Combine component rows column-wise (every part is one row per patient, pcode order)."""
+    frame = parts[0].select("pcode", "patient_id", pl.col("start_date").alias("index_date"))
+    for k, part in enumerate(parts):
+        frame = frame.with_columns(
+            part["end_date"].alias(f"end_{k}"),
+            pl.when(part["event"] == 1).then(part["end_date"]).alias(f"ev_{k}"),
+            part["reason"].alias(f"reason_{k}"),
+            (part["competing"] == 1).alias(f"comp_{k}"),
+            pl.when(part["event"].is_null()).then(part["reason"]).alias(f"na_{k}"),
         )
+    ks = range(len(parts))
+    event_date = pl.min_horizontal([pl.col(f"ev_{k}") for k in ks])
+    censor_date = pl.min_horizontal([pl.col(f"end_{k}") for k in ks])
+    names = [defn.components[k] for k in ks]
+    out = frame.with_columns(
+        event_date.alias("event_date"),
+        pl.concat_str(
+            [pl.when(pl.col(f"ev_{k}") == event_date).then(pl.lit(names[k])) for k in ks],
+            separator="+",
+            ignore_nulls=True,
+        ).alias("event_reason"),
+        censor_date.alias("censor_date"),
+        pl.coalesce(
+            [pl.when(pl.col(f"end_{k}") == censor_date).then(pl.col(f"reason_{k}")) for k in ks]
+        ).alias("censor_reason"),
+        pl.any_horizontal(
+            [
+                ((pl.col(f"end_{k}") == censor_date) & pl.col(f"comp_{k}")).fill_null(False)
+                for k in ks
+            ]
+        ).alias("censor_competing"),
+        pl.coalesce([pl.col(f"na_{k}") for k in ks]).alias("why_not"),
     )
     has_event = pl.col("event_date").is_not_null()
-    out = agg.with_columns(
+    out = out.with_columns(
         pl.when(has_event)
         .then(pl.col("event_date"))
         .otherwise(pl.col("censor_date"))
@@ -1171,7 +1212,6 @@ def _composite(defn: Composite, parts: list[pl.DataFrame]) -> pl.DataFrame:
         .then(pl.col("event_reason"))
         .otherwise(pl.col("censor_reason"))
         .alias("reason"),
-        pl.col("start_date").alias("index_date"),
     ).with_columns(_not_evaluable("why_not"))
     return _finish(out, defn.name)
 
@@ -1331,7 +1371,7 @@ def derive_endpoints(
                 out = _kidney_failure_endpoint(ctx, d, r)
             else:
                 out = _death_endpoint(ctx, d, r)
-        results[d.name] = conform(out.sort("patient_id"), schemas.ENDPOINTS)
+        results[d.name] = out.sort("pcode")
         logger.info(
             "endpoint %s: %d events, %d competing, %d not evaluable",
             d.name,
@@ -1341,4 +1381,4 @@ def derive_endpoints(
         )
         return results[d.name]
 
-    return pl.concat([evaluate(d) for d in defs])
+    return conform(pl.concat([evaluate(d) for d in defs]), schemas.ENDPOINTS)
