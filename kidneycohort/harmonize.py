@@ -33,6 +33,7 @@ import logging
 from dataclasses import dataclass, field
 from typing import Any, Final, Literal
 
+import numpy as np
 import polars as pl
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
@@ -318,19 +319,28 @@ def _rejected_rows(frame: pl.DataFrame, table: str, checks: list[Check]) -> pl.D
 def _exact_duplicates(
     frame: pl.DataFrame, keys: list[str], table: str
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Split ``frame`` (sorted by source, source_row) into first copies and merged rows."""
-    first = _first_distinct(frame, keys)
-    if first.all():
-        return frame, _merged_rows(frame, ~first, "exact_duplicate", table, pl.lit(""))
+    """Split ``frame`` (sorted by source, source_row) into first copies and merged rows.
+
+    Rows are compared exactly on ``keys``; a hash of the keys only narrows the search to
+    candidate groups first, so the exact comparison runs on few rows.
+    """
     hashed = frame.select(pl.struct(keys).hash().alias("_h")).to_series()
-    kept_as = (
-        frame.filter(first)
-        .select(hashed.filter(first), pl.format("{}:{}", "source", "source_row").alias("_kept_as"))
-        .unique("_h", keep="first")
+    candidate = hashed.is_duplicated()
+    if not candidate.any():
+        empty = _merged_rows(
+            frame.head(0), pl.Series([], dtype=pl.Boolean), "exact_duplicate", table, pl.lit("")
+        )
+        return frame, empty
+    positions = np.flatnonzero(candidate.to_numpy())
+    subset = frame[positions]
+    subset_first = _first_distinct(subset, keys).to_numpy()
+    first_np = np.ones(frame.height, dtype=bool)
+    first_np[positions[~subset_first]] = False
+    first = pl.Series(first_np)
+    kept_as = subset.filter(pl.Series(subset_first)).select(
+        *keys, pl.format("{}:{}", "source", "source_row").alias("_kept_as")
     )
-    dupes = (
-        frame.filter(~first).with_columns(hashed.filter(~first)).join(kept_as, on="_h", how="left")
-    )
+    dupes = frame.filter(~first).join(kept_as, on=keys, how="left", nulls_equal=True)
     merged = _merged_rows(
         dupes,
         pl.repeat(True, dupes.height, eager=True),
@@ -567,18 +577,15 @@ def _prepare_labs(
     }
     raw_analyte = _text("analyte")
     analyte = pl.coalesce(
-        raw_analyte.replace_strict(LOINC_TO_ANALYTE, default=None, return_dtype=pl.String),
-        fold_code_expr(raw_analyte).replace_strict(
+        pl.col("_analyte_raw").replace_strict(
+            LOINC_TO_ANALYTE, default=None, return_dtype=pl.String
+        ),
+        fold_code_expr(pl.col("_analyte_raw")).replace_strict(
             analyte_map, default=None, return_dtype=pl.String
         ),
     )
     value_text = _text("value")
-    number, parsed_qualifier = _parse_result(value_text, rules)
-    qualifier = (
-        pl.coalesce(parsed_qualifier, _text("qualifier"))
-        if "qualifier" in names
-        else parsed_qualifier
-    )
+    number, parsed_qualifier = _parse_result(pl.col("_value_text"), rules)
     factors = units.unit_factor_table()
     factor_map = dict(
         zip(
@@ -589,7 +596,7 @@ def _prepare_labs(
     )
     unit_text = _text("unit")
     factor = pl.concat_str(
-        [pl.col("_analyte"), units.fold_unit_expr(unit_text)], separator="|"
+        [pl.col("_analyte"), units.fold_unit_expr(pl.col("_unit_text"))], separator="|"
     ).replace_strict(factor_map, default=None, return_dtype=pl.Float64)
     ranges = {a: r.in_standard_unit(a) for a, r in rules.plausible_ranges.items()}
     low = pl.col("_analyte").replace_strict(
@@ -599,36 +606,69 @@ def _prepare_labs(
         {a: r[1] for a, r in ranges.items()}, default=None, return_dtype=pl.Float64
     )
 
+    base = frame.with_columns(
+        _text("patient_id").alias("patient_id"),
+        when_taken.cast(pl.Datetime("us")).alias("_when"),
+        date_as_read.alias("_date_as_read"),
+        raw_analyte.alias("_analyte_raw"),
+        value_text.alias("_value_text"),
+        (_text("qualifier") if "qualifier" in names else pl.lit(None, pl.String)).alias(
+            "_qualifier_in"
+        ),
+        unit_text.alias("_unit_text"),
+        (_text("setting") if "setting" in names else pl.lit(None, pl.String)).alias("setting"),
+        (_text("reported_value") if "reported_value" in names else pl.lit(None, pl.String)).alias(
+            "_reported_value_in"
+        ),
+        (_text("reported_unit") if "reported_unit" in names else pl.lit(None, pl.String)).alias(
+            "_reported_unit_in"
+        ),
+        (
+            pl.col("n_collapsed").cast(pl.Int32).fill_null(1)
+            if "n_collapsed" in names
+            else pl.lit(1, pl.Int32)
+        ).alias("_n_in"),
+    ).select(
+        "_rid",
+        "source",
+        "source_row",
+        "assumption",
+        "patient_id",
+        "_when",
+        "_date_as_read",
+        "_analyte_raw",
+        "_value_text",
+        "_qualifier_in",
+        "_unit_text",
+        "setting",
+        "_reported_value_in",
+        "_reported_unit_in",
+        "_n_in",
+    )
+    try:
+        base_data = base.collect()  # the source is read here, once
+    except pl.exceptions.ComputeError as exc:
+        raise InputDataError(f"labs: could not be read ({str(exc).splitlines()[0]})") from None
+    # Text rules run once per distinct spelling (a few thousand), then join back: the
+    # regular expressions never touch the millions of rows.
+    result_lookup = (
+        base_data.select("_value_text")
+        .unique()
+        .drop_nulls()
+        .with_columns(number.alias("_number"), parsed_qualifier.alias("_parsed_qualifier"))
+    )
+    code_lookup = (
+        base_data.select("_analyte_raw", "_unit_text")
+        .unique()
+        .with_columns(analyte.alias("_analyte"))
+        .with_columns(factor.alias("_factor"), low.alias("_low"), high.alias("_high"))
+    )
     frame = (
-        frame.with_columns(
-            _text("patient_id").alias("patient_id"),
-            when_taken.cast(pl.Datetime("us")).alias("_when"),
-            date_as_read.alias("_date_as_read"),
-            raw_analyte.alias("_analyte_raw"),
-            analyte.alias("_analyte"),
-            value_text.alias("_value_text"),
-            number.alias("_number"),
-            qualifier.alias("_qualifier"),
-            unit_text.alias("_unit_text"),
-            (_text("setting") if "setting" in names else pl.lit(None, pl.String)).alias("setting"),
-            (
-                _text("reported_value") if "reported_value" in names else pl.lit(None, pl.String)
-            ).alias("_reported_value_in"),
-            (_text("reported_unit") if "reported_unit" in names else pl.lit(None, pl.String)).alias(
-                "_reported_unit_in"
-            ),
-            (
-                pl.col("n_collapsed").cast(pl.Int32).fill_null(1)
-                if "n_collapsed" in names
-                else pl.lit(1, pl.Int32)
-            ).alias("_n_in"),
-        )
+        base_data.lazy()
+        .join(result_lookup.lazy(), on="_value_text", how="left")
+        .join(code_lookup.lazy(), on=["_analyte_raw", "_unit_text"], how="left", nulls_equal=True)
         .with_columns(
-            factor.alias("_factor"),
-            low.alias("_low"),
-            high.alias("_high"),
-        )
-        .with_columns(
+            pl.coalesce("_parsed_qualifier", "_qualifier_in").alias("_qualifier"),
             (pl.col("_number") * pl.col("_factor")).alias("_standard"),
             pl.col("_when").dt.date().alias("_day"),
         )
@@ -755,6 +795,10 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
             pl.lit(""),
         )
         return valid.with_columns(pl.col("_n_in").alias("_n")), no_merge
+    # only groups with repeats need window work; most patient-days have one result
+    repeated = valid.select(pl.struct(key).is_duplicated()).to_series()
+    single = valid.filter(~repeated).with_columns(pl.col("_n_in").alias("_n"))
+    valid = valid.filter(repeated)
     position = pl.int_range(pl.len()).over(key)
     chosen = {
         "first": pl.lit(0, pl.Int64),
@@ -796,7 +840,7 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
         "labs",
         pl.format("folded into row {} ({})", pl.col("_kept_as"), pl.lit(rule)),
     )
-    return kept, merged
+    return pl.concat([single, kept.drop("_keep")], how="vertical"), merged
 
 
 def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
@@ -1030,10 +1074,7 @@ def harmonize(
     used_patients, status, rejected_p, merged_p, n_patients = _clean_patients(patients, resolved)
 
     frame, lab_checks = _prepare_labs(labs, status, resolved)
-    try:
-        data = frame.sort("source", "source_row", "_rid").collect()
-    except pl.exceptions.ComputeError as exc:
-        raise InputDataError(f"labs: could not be read ({str(exc).splitlines()[0]})") from None
+    data = frame.sort("source", "source_row", "_rid").collect()
     n_labs = data.height
     assumptions_l = _assumption_counts(data, "labs")
     data, merged_exact = _exact_duplicates(data, list(_LAB_CONTENT), "labs")
