@@ -9,6 +9,7 @@ among the copies shipped inside the package (``kidneycohort/pipeline/configs``,
 from __future__ import annotations
 
 import logging
+from collections.abc import Sequence
 from pathlib import Path
 
 from kidneycohort.errors import ConfigError
@@ -57,6 +58,7 @@ def run_demo(
     patients: int | None = None,
     force: bool = False,
     progress: ProgressObserver | None = None,
+    overrides: Sequence[str] = (),
 ) -> tuple[RunResult, Path]:
     """Generate the synthetic trial and run the demo trial config on it.
 
@@ -71,6 +73,8 @@ def run_demo(
         Replace an existing run folder and inputs folder.
     progress : ProgressObserver, optional
         Progress display.
+    overrides : sequence of str
+        Further ``key.path=value`` overrides of the demo config.
 
     Returns
     -------
@@ -100,6 +104,7 @@ def run_demo(
         f"data.patients.path={(inputs / 'patients.parquet').as_posix()}",
         f"data.labs.path={(inputs / 'labs.parquet').as_posix()}",
         f"data.events.path={(inputs / 'events.parquet').as_posix()}",
+        *overrides,
     ]
     config = load_config(demo_config_path(), overrides=overrides)
     result = run_pipeline(config, out_dir=out, force=force, progress=progress)

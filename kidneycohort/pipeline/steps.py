@@ -26,7 +26,6 @@ from kidneycohort.endpoints import EndpointDefinition, EndpointRules
 from kidneycohort.errors import (
     ConfigError,
     ConvergenceError,
-    InputDataError,
     StatisticalWarning,
     did_you_mean,
 )
@@ -298,7 +297,7 @@ def _fit_each_endpoint(endpoints: pl.DataFrame, fit: Any, what: str) -> list[tup
     for name in names:
         try:
             out.append((name, fit(name)))
-        except (ConvergenceError, InputDataError) as exc:
+        except ConvergenceError as exc:  # e.g. no events: reported, not fatal
             warnings.warn(
                 f"{what} of endpoint '{name}' not estimated: {exc}",
                 StatisticalWarning,
