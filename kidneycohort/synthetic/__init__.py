@@ -40,12 +40,14 @@ Files written (``.parquet``, or ``.csv`` with ``--format csv``)
     ``setting``, ``visit`` (trial visit name, ``index`` for the EHR entry test),
     ``admission`` (inpatient episode number), ``years_from_index``, ``age_at_sample``
     (years from birth date), ``true_gfr``, ``aki_creatinine_multiplier`` (1 outside
-    AKI), ``noise_free_value`` (equation inverse at the true GFR, standard unit; for
-    UACR the true median), ``measured_value`` (standard unit), ``standard_unit``,
-    ``reported_unit``, ``exact_reported_value`` (unrounded, in the reported unit),
-    ``reported_value`` (the text before any defect).
+    AKI), ``noise_free_value`` (equation inverse at the true GFR; for UACR the true
+    median) and ``measured_value`` (with variation and AKI), both in the analyte's
+    standard unit (``units.STANDARD_UNIT``); the reported text and unit are in ``labs``
+    (and, for rows a defect changed, in ``truth/defects``). ``age_at_sample`` equals
+    ``age_at_index + years_from_index``.
 ``truth/events``
-    ``patient_id``, ``index_date``, ``kfrt_threshold_gfr``, ``threshold_reached_date``,
+    ``patient_id``, ``index_date``, ``kfrt_threshold_gfr``, ``threshold_reached_date``, ``threshold_reached_years``
+    (when the true path first reaches that threshold, even after follow-up),
     ``kfrt_date``, ``kfrt_years``, ``kfrt_modality``, ``death_date``, ``death_years``,
     ``loss_to_followup_date``, ``end_of_study_date``, ``end_of_followup``,
     ``end_of_followup_years``, ``end_reason`` (``death`` / ``loss_to_followup`` /
@@ -55,7 +57,8 @@ Files written (``.parquet``, or ``.csv`` with ``--format csv``)
     native-kidney sample time (kidney failure or end of follow-up).
 ``truth/defects``
     One row per injected defect: ``defect``, ``table``, ``patient_id`` (the true one),
-    ``sample_id``, ``written`` (what was written instead).
+    ``sample_id``, ``column`` (the column changed), ``original`` (its clean value, as
+    text) and ``written`` (what was written instead).
 ``truth/defect_counts.json``, ``truth/scenario.yaml``
     Exact count of each defect kind; the scenario as resolved (overrides applied).
 

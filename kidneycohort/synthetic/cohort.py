@@ -25,7 +25,6 @@ from kidneycohort.synthetic.trajectories import (
     draw_trajectories,
     first_crossing,
 )
-from kidneycohort.units import STANDARD_UNIT
 
 logger = logging.getLogger(__name__)
 
@@ -253,10 +252,6 @@ def _truth_samples(samples: pl.DataFrame) -> pl.DataFrame:
         pl.col("aki_multiplier").alias("aki_creatinine_multiplier"),
         "noise_free_value",
         "measured_value",
-        pl.col("analyte").replace_strict(dict(STANDARD_UNIT)).alias("standard_unit"),
-        pl.col("unit").alias("reported_unit"),
-        "exact_reported_value",
-        pl.col("value").alias("reported_value"),
     )
 
 
@@ -279,6 +274,7 @@ def _truth_events(
             "index_date": _day_series(pop.index_day),
             "kfrt_threshold_gfr": ev.kfrt_threshold,
             "threshold_reached_date": _date(pop.index_day, reached),
+            "threshold_reached_years": _years_or_null(ev.threshold_reached),
             "kfrt_date": _date(pop.index_day, ev.kfrt),
             "kfrt_years": _years_or_null(ev.kfrt),
             "kfrt_modality": pl.Series(

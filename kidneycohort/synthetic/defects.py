@@ -42,6 +42,8 @@ DEFECTS_SCHEMA: Final = {
     "table": pl.String,
     "patient_id": pl.String,
     "sample_id": pl.Int64,
+    "column": pl.String,
+    "original": pl.String,
     "written": pl.String,
 }
 
@@ -146,22 +148,28 @@ def inject_defects(
         .otherwise(pl.col("sex"))
     )
 
-    def record(defect: str, at: np.ndarray, written: pl.Series) -> pl.DataFrame:
+    def record(defect: str, column: str | None, at: np.ndarray, written: pl.Series) -> pl.DataFrame:
+        before = original[column].gather(at) if column else pl.Series([None] * at.size)
         return pl.DataFrame(
             {
                 "defect": [defect] * at.size,
                 "table": ["labs"] * at.size,
                 "patient_id": original["patient_id"].gather(at),
                 "sample_id": original["sample_id"].gather(at),
+                "column": [column] * at.size,
+                "original": before.cast(pl.String),
                 "written": written.cast(pl.String),
             },
             schema=DEFECTS_SCHEMA,
         )
 
-    records = [record(defect, rows[defect], new) for (_, defect), new in updates.items()]
+    records = [
+        record(defect, column, rows[defect], new) for (column, defect), new in updates.items()
+    ]
     records.append(
         record(
             "duplicate_export",
+            None,
             rows["duplicate_export"],
             pl.Series(["copy"] * rows["duplicate_export"].size),
         )
@@ -173,6 +181,8 @@ def inject_defects(
                 "table": ["patients"] * sexless.size,
                 "patient_id": sexless_ids,
                 "sample_id": pl.Series([None] * sexless.size, dtype=pl.Int64),
+                "column": ["sex"] * sexless.size,
+                "original": patients["sex"].gather(sexless),
                 "written": pl.Series([None] * sexless.size, dtype=pl.String),
             },
             schema=DEFECTS_SCHEMA,
