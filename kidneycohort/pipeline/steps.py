@@ -493,6 +493,87 @@ def _add_figures(registry: StepRegistry) -> None:
         return {"figure_files": pl.DataFrame({"file": names}, schema={"file": pl.String})}
 
 
+def _add_tables(registry: StepRegistry) -> None:
+    from kidneycohort import tables as tb
+    from kidneycohort.models.rates import incidence_rates
+    from kidneycohort.models.survival import SurvivalSpec
+
+    def common(ctx: StepContext) -> dict[str, pl.DataFrame]:
+        spec = ctx.options
+        assert isinstance(spec, tb.TableSpec)
+        survival = ctx.sections.get("survival")
+        survival = survival if isinstance(survival, SurvivalSpec) else SurvivalSpec()
+        endpoints = _evaluable(ctx.tables["endpoints"])
+        cohort = ctx.tables["cohort"]
+        return {
+            "tables/endpoint_table": tb.endpoint_table(
+                endpoints,
+                cohort,
+                group_column=survival.group_column,
+                reference_group=survival.reference_group,
+                covariates=survival.covariates,
+                strata=survival.strata,
+                spec=spec,
+            ),
+            "tables/baseline_characteristics": tb.baseline_characteristics(
+                cohort,
+                ctx.tables["baseline"],
+                group_column=survival.group_column,
+                equation=primary_equation(ctx.sections, ctx.tables),
+                spec=spec,
+            ),
+            "tables/incidence_rates": incidence_rates(
+                endpoints,
+                cohort,
+                group_column=survival.group_column,
+                confidence=survival.confidence,
+            ),
+        }
+
+    @registry.register(
+        "trial_tables",
+        needs=["endpoints", "cohort", "baseline", "slope_model_fit"],
+        makes=[
+            "tables/endpoint_table",
+            "tables/baseline_characteristics",
+            "tables/incidence_rates",
+            "tables/slope_table",
+        ],
+        section="tables",
+        options=tb.TableSpec,
+        description="Endpoint, baseline, incidence-rate and slope tables (kidneycohort.tables).",
+    )
+    def trial_tables_step(ctx: StepContext) -> dict[str, Any]:
+        """The trial's endpoint, baseline, incidence and slope tables."""
+        out = common(ctx)
+        out["tables/slope_table"] = tb.slope_table(ctx.tables["slope_model_fit"], spec=ctx.options)  # type: ignore[arg-type]
+        return out
+
+    @registry.register(
+        "cohort_tables",
+        needs=["endpoints", "cohort", "baseline", "transitions"],
+        makes=[
+            "tables/endpoint_table",
+            "tables/baseline_characteristics",
+            "tables/incidence_rates",
+            "tables/transition_matrix",
+        ],
+        section="tables",
+        options=tb.TableSpec,
+        description="Endpoint, baseline, incidence-rate and G-transition tables (kidneycohort.tables).",
+    )
+    def cohort_tables_step(ctx: StepContext) -> dict[str, Any]:
+        """The cohort's endpoint, baseline, incidence and transition tables."""
+        out = common(ctx)
+        out["tables/transition_matrix"] = tb.transition_matrix(
+            ctx.tables["transitions"],
+            axis="G",
+            equation=primary_equation(ctx.sections, ctx.tables),
+            spec=ctx.options,  # type: ignore[arg-type]
+        )
+        return out
+
+
 _STAGES = (
     _add_harmonize,
     _add_egfr,
@@ -501,6 +582,7 @@ _STAGES = (
     _add_kdigo,
     _add_survival,
     _add_slope_model,
+    _add_tables,
     _add_figures,
 )
 
