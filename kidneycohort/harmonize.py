@@ -351,6 +351,14 @@ def _exact_duplicates(
     return frame.filter(first), merged
 
 
+def _in_source_order(frame: pl.DataFrame) -> pl.DataFrame:
+    """Sort by (source, source_row, _rid) unless the rows already are in that order."""
+    one_source = frame["source"].n_unique() <= 1
+    if one_source and frame["source_row"].is_sorted() and frame["_rid"].is_sorted():
+        return frame
+    return frame.sort("source", "source_row", "_rid")
+
+
 def _assumption_counts(frame: pl.DataFrame, table: str) -> pl.DataFrame:
     return (
         frame.filter(pl.col("assumption").is_not_null())
@@ -428,7 +436,7 @@ def _clean_patients(
     frame = frame.with_columns(
         pl.when(pl.col("_note") != "").then(pl.col("_note")).alias("assumption")
     ).drop("_note")
-    data = frame.sort("source", "source_row", "_rid").collect()
+    data = _in_source_order(frame.collect())
     n_read = data.height
 
     bookkeeping = {"_rid", "source", "source_row", "assumption"}
@@ -665,15 +673,21 @@ def _prepare_labs(
     )
     frame = (
         base_data.lazy()
-        .join(result_lookup.lazy(), on="_value_text", how="left")
-        .join(code_lookup.lazy(), on=["_analyte_raw", "_unit_text"], how="left", nulls_equal=True)
+        .join(result_lookup.lazy(), on="_value_text", how="left", maintain_order="left")
+        .join(
+            code_lookup.lazy(),
+            on=["_analyte_raw", "_unit_text"],
+            how="left",
+            nulls_equal=True,
+            maintain_order="left",
+        )
         .with_columns(
             pl.coalesce("_parsed_qualifier", "_qualifier_in").alias("_qualifier"),
             (pl.col("_number") * pl.col("_factor")).alias("_standard"),
             pl.col("_when").dt.date().alias("_day"),
         )
     )
-    frame = frame.join(status.lazy(), on="patient_id", how="left")
+    frame = frame.join(status.lazy(), on="patient_id", how="left", maintain_order="left")
     std_unit = pl.col("_analyte").replace_strict(units.STANDARD_UNIT, default=None)
     checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
@@ -785,7 +799,6 @@ _LAB_CONTENT: Final = (
 def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Fold usable results of one patient, analyte and day; return (kept, merged)."""
     key = ["patient_id", "_analyte", "_day"]
-    valid = valid.sort([*key, "_when", "source", "source_row"])
     if rule == "none":
         no_merge = _merged_rows(
             valid,
@@ -796,9 +809,10 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
         )
         return valid.with_columns(pl.col("_n_in").alias("_n")), no_merge
     # only groups with repeats need window work; most patient-days have one result
-    repeated = valid.select(pl.struct(key).is_duplicated()).to_series()
+    # (a hash collision only moves a single result into the exact window work below)
+    repeated = valid.select(pl.struct(key).hash().is_duplicated()).to_series()
     single = valid.filter(~repeated).with_columns(pl.col("_n_in").alias("_n"))
-    valid = valid.filter(repeated)
+    valid = valid.filter(repeated).sort([*key, "_when", "source", "source_row"])
     position = pl.int_range(pl.len()).over(key)
     chosen = {
         "first": pl.lit(0, pl.Int64),
@@ -890,12 +904,12 @@ def _clean_events(
         .replace_strict(codes, default=None, return_dtype=pl.String)
         .alias("event"),
     )
-    data = frame.sort("source", "source_row", "_rid").collect()
+    data = _in_source_order(frame.collect())
     n_read = data.height
     assumptions = _assumption_counts(data, "events")
     content = [c for c in data.columns if c not in ("_rid", "source", "source_row", "assumption")]
     data, merged = _exact_duplicates(data, content, "events")
-    data = data.join(status, on="patient_id", how="left")
+    data = data.join(status, on="patient_id", how="left", maintain_order="left")
     as_read = [c for c in names if c.endswith(AS_READ_SUFFIX)]
     checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
@@ -1074,7 +1088,7 @@ def harmonize(
     used_patients, status, rejected_p, merged_p, n_patients = _clean_patients(patients, resolved)
 
     frame, lab_checks = _prepare_labs(labs, status, resolved)
-    data = frame.sort("source", "source_row", "_rid").collect()
+    data = _in_source_order(frame.collect())
     n_labs = data.height
     assumptions_l = _assumption_counts(data, "labs")
     data, merged_exact = _exact_duplicates(data, list(_LAB_CONTENT), "labs")
