@@ -205,7 +205,7 @@ def test_endpoint_table_by_hand() -> None:
 
 @pytest.fixture(scope="module")
 def slope_model() -> SlopeModel:
-    egfr, patients, _ = simulate_two_slope_trial(40, seed=3)
+    egfr, patients, _ = simulate_two_slope_trial(20, seed=3)
     return SlopeModel(0.25, reference_group="placebo", horizons_years=[2]).fit(egfr, patients)
 
 
@@ -216,7 +216,7 @@ def test_slope_table_layout(slope_model: SlopeModel) -> None:
     assert table.height == summary.height
     first = summary.row(0, named=True)
     assert table["estimate"][0] == f"{first['estimate']:.2f}"
-    assert table.filter(pl.col("contrast") == "active - placebo")["n_patients"][0] == "40 vs 40"
+    assert table.filter(pl.col("contrast") == "active - placebo")["n_patients"][0] == "20 vs 20"
     assert set(table["quantity"].to_list()) == {"acute_change", "chronic_slope", "total_slope_2y"}
 
 
