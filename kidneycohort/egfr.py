@@ -312,7 +312,11 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rules: EgfrRules) -> pl.Dat
         if specific is not pl
         else pl.lit("missing_input")
     )
-    library_reason = pl.Series("_lib", reasons, dtype=pl.String)
+    # numpy string arrays convert slowly; convert the few distinct codes and gather
+    codes, inverse = np.unique(reasons, return_inverse=True)
+    library_reason = pl.Series("_lib", codes.tolist(), dtype=pl.String).gather(
+        pl.Series(inverse.ravel(), dtype=pl.UInt32)
+    )
     return (
         frame.with_columns(
             pl.lit(equation_id).alias("equation"),
@@ -472,7 +476,7 @@ def compute_egfr(
                 continue
             out.append(conform(_evaluate(rows, equation_id, resolved), schemas.EGFR))
     result = (pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)).sort(
-        "patient_id", "sample_datetime", "equation", "creatinine_mg_dl", "cystatin_c_mg_l"
+        "patient_id", "sample_datetime", "equation", maintain_order=True
     )
     logger.info(
         "egfr: %d rows, %d computed, equations %s",
