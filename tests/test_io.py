@@ -137,7 +137,7 @@ def test_unusable_sources_give_one_line_errors(tmp_path: Path) -> None:
     ):
         read_labs(bad_dates)
     write(tmp_path / "labs.xlsx", "not a table")
-    with pytest.raises(ConfigError, match="cannot tell the format from suffix '.xlsx'"):
+    with pytest.raises(ConfigError, match=r"cannot tell the format from suffix '\.xlsx'"):
         read_labs(tmp_path / "labs.xlsx")
 
 
