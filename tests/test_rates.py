@@ -136,3 +136,9 @@ def test_bad_event_code_is_refused() -> None:
 def test_no_person_time_is_refused() -> None:
     with pytest.raises(InputDataError, match="person_years"):
         exact_poisson_interval(1, 0.0)
+
+
+def test_pandas_input_gives_the_same_table() -> None:
+    expected = incidence_rates(_endpoints(), _patients())
+    result = incidence_rates(_endpoints().to_pandas(), _patients().to_pandas())
+    assert_frame_equal(result, expected)
