@@ -10,6 +10,7 @@ prints wall times, rows and the process's peak resident memory. Target on a 2-co
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import sys
 import tempfile
@@ -27,14 +28,23 @@ def peak_rss_gib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024**2
 
 
+def cpu_seconds() -> float:
+    """User + system CPU time of this process so far."""
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime + usage.ru_stime
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--patients", type=int, default=1_000_000)
     parser.add_argument("--seed", type=int, default=None)
-    parser.add_argument("--scenario", type=Path, default=HERE.parent / "synthetic" / "ehr_cohort.yaml")
+    parser.add_argument(
+        "--scenario", type=Path, default=HERE.parent / "synthetic" / "ehr_cohort.yaml"
+    )
     parser.add_argument("--keep", type=Path, default=None, help="write here instead of a temp dir")
     args = parser.parse_args()
 
+    load_before = os.getloadavg()[0]
     start = time.perf_counter()
     cohort = generate_cohort(args.scenario, patients=args.patients, seed=args.seed)
     generated = time.perf_counter()
@@ -54,7 +64,11 @@ def main() -> int:
     print(f"total (s)          {written - start:.1f}")
     print(f"lab rows per s     {cohort.labs.height / (written - start):,.0f}")
     print(f"files / MB         {len(files)} / {size / 1e6:.0f}")
+    print(f"CPU user+sys (s)   {cpu_seconds():.1f}")
     print(f"peak RSS (GiB)     {peak_rss_gib():.2f}")
+    print(
+        f"load avg start/end {load_before:.1f} / {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores"
+    )
     return 0
 
 
