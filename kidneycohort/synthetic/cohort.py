@@ -74,6 +74,32 @@ def generate_cohort(
     ------
     ConfigError
         A scenario that fails validation, or ``dirty`` counts the cohort cannot hold.
+
+    Notes
+    -----
+    True GFR follows (see :mod:`kidneycohort.synthetic.trajectories`)
+
+    .. math::
+
+        g_i(t) = \\max\\{f,\\; b_{0i} + b_{1i} t + a_i t_+^2 - D_i \\min(t_+ / r_i, 1)\\}
+
+    and measured creatinine / cystatin C are the inverse of the scenario's equation at
+    :math:`g_i(t)` times mean-one log-normal variation.
+
+    References
+    ----------
+    .. [1] Inker LA et al. New creatinine- and cystatin C-based equations to estimate
+       GFR without race. N Engl J Med 2021;385:1737-49. doi:10.1056/NEJMoa2102953
+    .. [2] Inker LA et al. Estimating glomerular filtration rate from serum creatinine
+       and cystatin C. N Engl J Med 2012;367:20-9. doi:10.1056/NEJMoa1114248
+    .. [3] Lewis PAW, Shedler GS. Simulation of nonhomogeneous Poisson processes by
+       thinning. Naval Res Logist Q 1979;26:403-13. doi:10.1002/nav.3800260304
+
+    Examples
+    --------
+    >>> cohort = generate_cohort({"patients": 5, "seed": 1, "labs": {"cystatin_c": None}})
+    >>> cohort.patients.height, sorted(cohort.truth)
+    (5, ['defects', 'events', 'patients', 'samples'])
     """
     s = load_scenario(scenario).resolved(patients=patients, seed=seed)
     streams = dict(zip(_STREAMS, np.random.SeedSequence(s.seed).spawn(len(_STREAMS)), strict=True))

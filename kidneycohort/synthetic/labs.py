@@ -65,8 +65,8 @@ def measure(
     ``age_at_sample``, ``analyte`` (code into ``units.ANALYTES``), ``setting`` and
     ``visit`` (codes, see :mod:`~kidneycohort.synthetic.schedules`), ``admission``,
     ``aki_multiplier``, ``true_gfr``, ``noise_free_value`` and ``measured_value`` (both
-    in the analyte's standard unit), ``unit`` (as reported) and ``value`` (the reported text of the measured value in
-    that unit).
+    in the analyte's standard unit), ``unit`` (as reported) and ``value`` (the
+    reported text of the measured value in that unit).
     """
     from kidneycohort import equations
 

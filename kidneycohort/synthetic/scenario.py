@@ -384,6 +384,9 @@ def _without_noise(s: Scenario) -> Scenario:
 def load_scenario(source: str | Path | dict[str, Any] | Scenario) -> Scenario:
     """Read and validate a scenario from a YAML path, a mapping or a :class:`Scenario`.
 
+    A file may start from another with ``extends: other.yaml`` (a path relative to the
+    file); its own keys then replace the other's, nested mappings key by key.
+
     Raises
     ------
     ConfigError
