@@ -80,7 +80,7 @@ rules_strategy = st.builds(
     lab_censoring=st.sampled_from(["last_assessment", "end_of_followup"]),
     min_dialysis_days=st.sampled_from([0, 90]),
 )
-SETTINGS = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+SETTINGS = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
 def _derive(tables: dict[str, pl.DataFrame], rules: EndpointRules) -> pl.DataFrame:
