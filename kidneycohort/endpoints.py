@@ -693,6 +693,13 @@ def _patient_frame(patients: pl.DataFrame, events: pl.DataFrame, data_cut: dt.da
             .alias("fu_end_reason"),
         )
     )
+    beyond = (
+        events.join(p.select("patient_id", "fu_end"), on="patient_id")
+        .filter(pl.col("event_date") > pl.col("fu_end"))
+        .height
+    )
+    if beyond:
+        logger.info("events: %d rows dated after the end of follow-up are not used", beyond)
     disagree = p.filter(pl.col("_kdeath_ev") != pl.col("death_date")).height
     if disagree:
         logger.warning(
