@@ -57,8 +57,6 @@ KNOWN_SETTINGS: Final = ("outpatient", "inpatient", "emergency")
 
 EGFR_REQUIRED: Final = ("patient_id", "equation", "years_from_index", "egfr")
 
-_TIME: Final = "_sample_time"
-
 
 class RuleModel(BaseModel):
     """Base of the derivation rules: frozen, no unknown keys, errors as ConfigError.
@@ -152,8 +150,9 @@ def sample_time_expr(columns: list[str]) -> pl.Expr:
 def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
     """Add ``aki_flag``, ``aki_criterion`` and ``aki_recovery`` to an eGFR (or labs) table.
 
-    The criteria are applied to the creatinine of each distinct sample of a patient
-    (the ``egfr`` table repeats a sample once per equation), then joined back.
+    The criteria are applied row by row; rows of the same patient at the same time (the
+    ``egfr`` table repeats a sample once per equation) never serve as each other's
+    reference. Rows without creatinine or time get null flags.
 
     .. math::
 
@@ -192,17 +191,16 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
             "AKI flags; add it or set exclude_aki: false"
         )
     time = sample_time_expr(df.columns)
-    samples = (
+    # integer patient codes and times: sorting and windows on integers, not strings
+    work = (
         df.select(
-            pl.col("patient_id").cast(pl.String),
-            time.alias(_TIME),
-            pl.col("creatinine_mg_dl").cast(pl.Float64).alias("_creat"),
+            _pid=pl.col("patient_id").cast(pl.String).cast(pl.Categorical).to_physical(),
+            _s=time.dt.epoch("s"),
+            _creat=pl.col("creatinine_mg_dl").cast(pl.Float64),
         )
-        .filter(pl.col("_creat").is_not_null() & pl.col(_TIME).is_not_null())
-        # one creatinine per patient and time: the highest, so a spike is never hidden
-        .group_by("patient_id", _TIME)
-        .agg(pl.col("_creat").max())
-        .sort("patient_id", _TIME)
+        .with_row_index("_row")
+        .filter(pl.col("_creat").is_not_null() & pl.col("_s").is_not_null())
+        .sort("_pid", "_s")
     )
     # One rolling pass over the whole table instead of one per patient: each patient's
     # times (seconds) are shifted by patient_number * gap, with a gap wider than the
@@ -210,22 +208,22 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
     rise_s = round(rule.aki_rise_hours * 3600)
     ratio_s = round(rule.aki_ratio_days * 86400)
     recovery_s = round(rule.aki_recovery_days * 86400)
-    seconds = pl.col(_TIME).dt.epoch("s")
-    bounds = samples.select(lo=seconds.min(), hi=seconds.max())
-    lo = bounds["lo"][0] or 0
-    gap = (bounds["hi"][0] or 0) - lo + max(rise_s, ratio_s, recovery_s) + 1
-    new_patient = (pl.col("patient_id") != pl.col("patient_id").shift(1)).fill_null(True)
-    samples = samples.with_columns(
-        _start=new_patient.cast(pl.Int64).cum_sum() * gap,
-    ).with_columns(_key=pl.col("_start") + seconds - lo)
+    lo = work["_s"].min() or 0
+    gap = (work["_s"].max() or 0) - lo + max(rise_s, ratio_s, recovery_s) + 1
+    new_patient = (pl.col("_pid") != pl.col("_pid").shift(1)).fill_null(True)
+    work = work.with_columns(_start=new_patient.cast(pl.Int64).cum_sum() * gap).with_columns(
+        _key=pl.col("_start") + pl.col("_s") - lo
+    )
     creat = pl.col("_creat")
+    # closed="left": the window [t - w, t) leaves out the sample itself and any row at the
+    # same time (the same sample repeated under another equation)
     low_48h = creat.rolling_min_by("_key", window_size=f"{rise_s}i", closed="left")
     low_7d = creat.rolling_min_by("_key", window_size=f"{ratio_s}i", closed="left")
     # a tiny tolerance so that 1.0 -> 1.3 (a rise of 0.3 in binary floating point) counts
     eps = 1e-9
     rise = (creat - low_48h) >= rule.aki_rise_mg_dl - eps
     ratio = creat >= rule.aki_ratio * low_7d - eps
-    samples = samples.with_columns(
+    work = work.with_columns(
         pl.when(rise)
         .then(pl.lit(AKI_CRITERIA[0]))
         .when(ratio)
@@ -234,23 +232,27 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
         .alias("aki_criterion")
     ).with_columns(aki_flag=pl.col("aki_criterion").is_not_null())
     last_aki = pl.when(pl.col("aki_flag")).then(pl.col("_key")).forward_fill()
-    samples = samples.with_columns(
+    work = work.with_columns(
         aki_recovery=(
             ~pl.col("aki_flag")
             & (last_aki >= pl.col("_start")).fill_null(False)
             & ((pl.col("_key") - last_aki) <= recovery_s)
             & pl.lit(recovery_s > 0)
         )
-    ).drop("_creat", "_start", "_key")
-    out = (
-        df.with_columns(pl.col("patient_id").cast(pl.String), time.alias(_TIME))
-        .join(samples, on=["patient_id", _TIME], how="left", maintain_order="left")
-        .drop(_TIME)
     )
+    flags = work.select("_row", "aki_criterion", "aki_flag", "aki_recovery").sort("_row")
+    if flags.height == df.height:
+        out = df.with_columns(flags.drop("_row"))
+    else:
+        out = (
+            df.with_row_index("_row")
+            .join(flags, on="_row", how="left", maintain_order="left")
+            .drop("_row")
+        )
     logger.info(
-        "AKI flags: %d samples flagged, %d in recovery windows",
-        int(samples["aki_flag"].sum()),
-        int(samples["aki_recovery"].sum()),
+        "AKI flags: %d rows flagged, %d in recovery windows",
+        int(flags["aki_flag"].sum()),
+        int(flags["aki_recovery"].sum()),
     )
     return out
 

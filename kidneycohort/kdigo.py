@@ -156,6 +156,14 @@ _RANK: Final[dict[str, int]] = {
     **{c: i for i, c in enumerate(A_CATEGORIES, start=1)},
 }
 _KEYS: Final = ["patient_id", "_eq", "axis"]
+# integer codes of per-result levels (categories, and the CKD "yes"/"no" levels)
+_LEVEL_CODES: Final[dict[str, int]] = {**_RANK, "no": 0, "yes": 1}
+
+
+def _code(level: pl.Expr) -> pl.Expr:
+    return level.replace_strict(_LEVEL_CODES, default=None, return_dtype=pl.Int8)
+
+
 _NOISE_DECIMALS: Final = 9
 
 
@@ -365,12 +373,22 @@ def _confirm(results: pl.DataFrame, rule: SustainRule, level: str = "category") 
             used=pl.col(level).is_not_null()
             & ~pl.col("excluded")
             & pl.col("years_from_index").is_not_null(),
+            # integer code of the level: integer comparisons and reductions are cheap
+            _lv=_code(pl.col(level)),
         )
         .with_row_index("_row")
-        .sort([*_KEYS, "_days", "value"], nulls_last=True)
+        .with_columns(
+            # integer codes of the sequence keys: sorting integers is much cheaper than
+            # strings, and the codes only group (their order carries no meaning)
+            _pc=pl.col("patient_id").cast(pl.Categorical).to_physical(),
+            _ec=pl.col("_eq").cast(pl.Categorical).to_physical(),
+            _ac=pl.col("axis") == "G",
+        )
+        .sort(["_pc", "_ec", "_ac", "_days"], nulls_last=True)
     )
-    change = pl.any_horizontal([pl.col(k) != pl.col(k).shift(1) for k in _KEYS])
-    df = df.with_columns(_gid=change.fill_null(True).cum_sum())
+    codes = ("_pc", "_ec", "_ac")
+    change = pl.any_horizontal([pl.col(k) != pl.col(k).shift(1) for k in codes])
+    df = df.with_columns(_gid=change.fill_null(True).cum_sum()).drop(codes)
     # one confirming candidate per time point: ties at the same time use their mean value,
     # so the answer does not depend on row order (the group-by runs only when ties exist)
     candidates = df.filter("used")
@@ -378,28 +396,36 @@ def _confirm(results: pl.DataFrame, rule: SustainRule, level: str = "category") 
         pl.col("_days") == pl.col("_days").shift(1)
     )
     if candidates.select(tie.fill_null(False).any()).item():
-        right = candidates.group_by("_gid", "_days").agg(
-            _c_value=pl.col("value").mean(),
-            _c_level=pl.col(level).min(),
-            _c_level_max=pl.col(level).max(),
-            _c_axis=pl.col("axis").first(),
-            _c_date=pl.col("sample_date").min(),
-            _c_years=pl.col("years_from_index").min(),
+        # tied rows are contiguous after the sort: number the time points and reduce
+        # over that one integer key
+        right = (
+            candidates.with_columns(_tg=(~tie).fill_null(True).cum_sum())
+            .group_by("_tg", maintain_order=True)
+            .agg(
+                pl.col("_gid").first(),
+                pl.col("_days").first(),
+                _c_value=pl.col("value").mean(),
+                _c_level=pl.col("_lv").min(),
+                _c_level_max=pl.col("_lv").max(),
+                _c_axis=pl.col("axis").first(),
+                _c_date=pl.col("sample_date").min(),
+                _c_years=pl.col("years_from_index").min(),
+            )
         )
         if level == "category":
             right = right.with_columns(
                 _c_level=pl.when(pl.col("_c_level") == pl.col("_c_level_max"))
                 .then(pl.col("_c_level"))
                 .when(pl.col("_c_axis") == "G")
-                .then(gfr_category_expr("_c_value"))
-                .otherwise(albuminuria_category_expr("_c_value"))
+                .then(_code(gfr_category_expr("_c_value")))
+                .otherwise(_code(albuminuria_category_expr("_c_value")))
             )
-        right = right.drop("_c_value", "_c_level_max", "_c_axis").sort("_gid", "_days")
+        right = right.drop("_tg", "_c_value", "_c_level_max", "_c_axis")
     else:
         right = candidates.select(
             "_gid",
             "_days",
-            pl.col(level).alias("_c_level"),
+            pl.col("_lv").alias("_c_level"),
             pl.col("sample_date").alias("_c_date"),
             pl.col("years_from_index").alias("_c_years"),
         )
@@ -413,14 +439,14 @@ def _confirm(results: pl.DataFrame, rule: SustainRule, level: str = "category") 
         strategy="forward",
         check_sortedness=False,
     )
-    ok = pl.col("used") & (pl.col("_c_level") == pl.col(level)).fill_null(False)
+    ok = pl.col("used") & (pl.col("_c_level") == pl.col("_lv")).fill_null(False)
     if rule.confirm_within_days is not None:
         ok = ok & ((pl.col("_c_days") - pl.col("_days")) <= rule.confirm_within_days)
     return joined.with_columns(
         confirmed=pl.when("used").then(ok),
         confirm_date=pl.when(ok).then(pl.col("_c_date")),
         confirm_years=pl.when(ok).then(pl.col("_c_years")),
-    ).drop("_target", "_c_days", "_c_level", "_c_date", "_c_years")
+    ).drop("_target", "_c_days", "_c_level", "_c_date", "_c_years", "_lv")
 
 
 def _results(
@@ -519,17 +545,31 @@ def _stages_from_results(results: pl.DataFrame) -> pl.DataFrame:
     )
     used = used.sort("_gid", "_days", "_rank")
     # a new stage starts at every confirmed result whose category differs from the one
-    # in force; unconfirmed results belong to the stage in force (or to stage 0)
+    # in force; unconfirmed results belong to the stage in force (or to stage 0). Global
+    # forward fills and cumulative sums, reset at each sequence start, stand in for
+    # window expressions over ``_gid`` (much cheaper on millions of rows).
     confirmed = pl.col("confirmed").fill_null(False)
+    row = pl.int_range(pl.len(), dtype=pl.Int64)
+    first_row = (pl.col("_gid") != pl.col("_gid").shift(1)).fill_null(True)
     used = used.with_columns(
-        _in_force=pl.when(confirmed).then(pl.col("category")).forward_fill().over("_gid")
+        _first=first_row,
+        _seq_start=pl.when(first_row).then(row).forward_fill(),
+        _last_confirmed=pl.when(confirmed).then(row).forward_fill(),
+        _ff=pl.when(confirmed).then(pl.col("category")).forward_fill(),
+    ).with_columns(
+        _in_force=pl.when(pl.col("_last_confirmed") >= pl.col("_seq_start")).then(pl.col("_ff"))
     )
     previous = pl.col("_in_force").shift(1)
-    same_sequence = pl.col("_gid") == pl.col("_gid").shift(1)
     changed = confirmed & (
-        ~same_sequence.fill_null(False) | previous.is_null() | (pl.col("_in_force") != previous)
+        pl.col("_first") | previous.is_null() | (pl.col("_in_force") != previous)
     )
-    used = used.with_columns(stage_number=changed.cast(pl.Int32).cum_sum().over("_gid"))
+    used = used.with_columns(_changed=changed.cast(pl.Int32)).with_columns(
+        _cs=pl.col("_changed").cum_sum()
+    )
+    used = used.with_columns(
+        stage_number=pl.col("_cs")
+        - pl.when("_first").then(pl.col("_cs") - pl.col("_changed")).forward_fill()
+    )
     last = used.group_by("_gid").agg(
         _last_years=pl.col("years_from_index").last(),
         _last_date=pl.col("sample_date").last(),
