@@ -44,10 +44,21 @@ def require_columns(df: pl.DataFrame | pl.LazyFrame, columns: Iterable[str], nam
 
 
 def conform(df: pl.DataFrame, schema: Mapping[str, pl.DataType]) -> pl.DataFrame:
-    """Select ``schema``'s columns in order, adding missing ones as nulls, casting types."""
-    return df.select(
-        [
-            (pl.col(c) if c in df.columns else pl.lit(None)).cast(t).alias(c)
-            for c, t in schema.items()
-        ]
-    )
+    """Select ``schema``'s columns in order, adding missing ones as nulls, casting types.
+
+    ISO-8601 text in a date or datetime column is parsed (polars 2 no longer casts text
+    to dates); other casts are polars' ordinary strict casts.
+    """
+    return df.select([_cast_column(df, c, t).alias(c) for c, t in schema.items()])
+
+
+def _cast_column(df: pl.DataFrame, column: str, dtype: pl.DataType) -> pl.Expr:
+    if column not in df.columns:
+        return pl.lit(None).cast(dtype)
+    expr = pl.col(column)
+    if df.schema[column] == pl.String:
+        if dtype == pl.Date:
+            return expr.str.to_date(strict=True)
+        if isinstance(dtype, pl.Datetime):
+            return expr.str.to_datetime(time_unit=dtype.time_unit, strict=True)
+    return expr.cast(dtype)
