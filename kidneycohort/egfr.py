@@ -214,9 +214,10 @@ def _pair(cr: pl.DataFrame, cys: pl.DataFrame, window: int) -> pl.DataFrame:
         pl.col("_day").alias("_cys_day"),
         pl.col("sample_datetime").alias("_cys_datetime"),
         "cystatin_c_mg_l",
-    ).sort("_day", "patient_id", "_cys_datetime", "cystatin_c_mg_l")
+    ).sort("_day", maintain_order=True)
     paired = (
-        cr.sort("_day", "patient_id", "sample_datetime", "creatinine_mg_dl")
+        cr.with_row_index("_order")
+        .sort("_day", maintain_order=True)
         .join_asof(
             right,
             on="_day",
@@ -230,6 +231,8 @@ def _pair(cr: pl.DataFrame, cys: pl.DataFrame, window: int) -> pl.DataFrame:
             .then(pl.lit("no_cystatin_c_in_window"))
             .alias("_pair_reason")
         )
+        .sort("_order")
+        .drop("_order")
     )
     used = paired.filter(pl.col("_cys_day").is_not_null()).select(
         "patient_id",
@@ -243,7 +246,20 @@ def _pair(cr: pl.DataFrame, cys: pl.DataFrame, window: int) -> pl.DataFrame:
         pl.lit(None, pl.Float64).alias("creatinine_mg_dl"),
         pl.lit("no_creatinine_in_window").alias("_pair_reason"),
     )
-    return pl.concat([paired.drop("_cys_day", "_cys_datetime"), alone], how="diagonal_relaxed")
+    both = pl.concat([paired.drop("_cys_day", "_cys_datetime"), alone], how="diagonal_relaxed")
+    return _by_patient_and_time(both)
+
+
+def _by_patient_and_time(frame: pl.DataFrame) -> pl.DataFrame:
+    """``frame`` in (patient_id, sample_datetime) order; no sort when already so."""
+    previous_id = pl.col("patient_id").shift()
+    in_order = (pl.col("patient_id") > previous_id) | (
+        (pl.col("patient_id") == previous_id)
+        & (pl.col("sample_datetime") >= pl.col("sample_datetime").shift())
+    )
+    if frame.height < 2 or frame.select(in_order.slice(1).all()).item():
+        return frame
+    return frame.sort("patient_id", "sample_datetime", maintain_order=True)
 
 
 def _attach_measurements(
@@ -262,9 +278,9 @@ def _attach_measurements(
                 _day_number("measurement_date").alias("_day"),
                 pl.col(column).cast(pl.Float64).alias(f"_measured_{column}"),
             )
-            .sort("_day", "patient_id", f"_measured_{column}")
+            .sort("_day", maintain_order=True)
         )
-        samples = samples.sort("_day", "patient_id", "_order").join_asof(
+        samples = samples.sort("_day", maintain_order=True).join_asof(
             right,
             on="_day",
             by="patient_id",
@@ -372,7 +388,8 @@ def compute_egfr(
     -------
     polars.DataFrame
         The long ``egfr`` table (``schemas.EGFR``), one row per sample x equation,
-        sorted by patient, sample time and equation; ``egfr`` null where not
+        in blocks per equation (in the order of the rules), each sorted by patient and
+        sample time; ``egfr`` null where not
         computable, with ``egfr_reason`` from :data:`EGFR_REASON_CODES`.
 
     Raises
@@ -414,8 +431,8 @@ def compute_egfr(
 
     specs = {e: eq.get_equation(e) for e in resolved.all_equations()}
     kinds = {s.kind for s in specs.values()}
-    cr = _samples(table, "creatinine", "creatinine_mg_dl")
-    cys = _samples(table, "cystatin_c", "cystatin_c_mg_l")
+    cr = _by_patient_and_time(_samples(table, "creatinine", "creatinine_mg_dl"))
+    cys = _by_patient_and_time(_samples(table, "cystatin_c", "cystatin_c_mg_l"))
     frames: dict[str, pl.DataFrame] = {}
     if kinds & {"creatinine", "clearance"}:
         frames["creatinine"] = cr.with_columns(pl.lit(None, pl.Float64).alias("cystatin_c_mg_l"))
@@ -434,7 +451,9 @@ def compute_egfr(
             continue
         if "_pair_reason" not in samples.columns:
             samples = samples.with_columns(pl.lit(None, pl.String).alias("_pair_reason"))
-        enriched = samples.join(people, on="patient_id", how="left").with_columns(
+        enriched = samples.join(
+            people, on="patient_id", how="left", maintain_order="left"
+        ).with_columns(
             pl.coalesce(
                 (pl.col("sample_date") - pl.col("birth_date")).dt.total_days()
                 / schemas.DAYS_PER_YEAR,
@@ -475,9 +494,8 @@ def compute_egfr(
             if rows.height == 0:
                 continue
             out.append(conform(_evaluate(rows, equation_id, resolved), schemas.EGFR))
-    result = (pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)).sort(
-        "patient_id", "sample_datetime", "equation", maintain_order=True
-    )
+    # blocks per equation (rules order), each in patient and sample-time order
+    result = pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)
     logger.info(
         "egfr: %d rows, %d computed, equations %s",
         result.height,

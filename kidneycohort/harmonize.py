@@ -796,6 +796,19 @@ _LAB_CONTENT: Final = (
 )
 
 
+_GOOD_COLUMNS: Final = (
+    *_LAB_CONTENT,
+    "source",
+    "source_row",
+    "_analyte",
+    "_standard",
+    "_day",
+    "_reported_value_in",
+    "_reported_unit_in",
+    "_n_in",
+)
+
+
 def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Fold usable results of one patient, analyte and day; return (kept, merged)."""
     key = ["patient_id", "_analyte", "_day"]
@@ -1089,13 +1102,22 @@ def harmonize(
 
     frame, lab_checks = _prepare_labs(labs, status, resolved)
     data = _in_source_order(frame.collect())
+    del frame  # drops the plan's reference to the pre-join copy
     n_labs = data.height
     assumptions_l = _assumption_counts(data, "labs")
-    data, merged_exact = _exact_duplicates(data, list(_LAB_CONTENT), "labs")
-    rejected_l = _rejected_rows(data, "labs", lab_checks)
-    kept, merged_day = _collapse_same_day(
-        data.filter(pl.col("_reason").is_null()), resolved.same_day_rule
-    )
+    # Identical rows always get the same reason, so duplicates can be looked for on the
+    # rejected and the usable side separately; the usable side keeps only what it needs.
+    is_bad = data["_reason"].is_not_null()
+    bad = data.filter(is_bad)
+    good = data.filter(~is_bad).select(_GOOD_COLUMNS)
+    del data
+    bad, merged_bad = _exact_duplicates(bad, list(_LAB_CONTENT), "labs")
+    good, merged_good = _exact_duplicates(good, list(_LAB_CONTENT), "labs")
+    merged_exact = pl.concat([merged_bad, merged_good])
+    rejected_l = _rejected_rows(bad, "labs", lab_checks)
+    del bad
+    kept, merged_day = _collapse_same_day(good, resolved.same_day_rule)
+    del good
     labs_out = _finish_labs(kept)
 
     patients_assumptions = (
