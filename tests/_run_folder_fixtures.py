@@ -24,7 +24,7 @@ from kidneycohort._frames import conform
 from kidneycohort.schemas import BASELINE, EGFR, ENDPOINTS, LABS, REJECTED, SLOPES, TRANSITIONS
 
 PRIMARY = "ckd_epi_2021_cr"
-SECONDARY = "ckd_epi_2021_cr_cys"
+SECONDARY = "ckd_epi_2021_crcys"
 GROUPS = ("placebo", "active")
 VISITS = (0.0, 0.25, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0)
 KNOT = 0.25
