@@ -246,20 +246,7 @@ def _pair(cr: pl.DataFrame, cys: pl.DataFrame, window: int) -> pl.DataFrame:
         pl.lit(None, pl.Float64).alias("creatinine_mg_dl"),
         pl.lit("no_creatinine_in_window").alias("_pair_reason"),
     )
-    both = pl.concat([paired.drop("_cys_day", "_cys_datetime"), alone], how="diagonal_relaxed")
-    return _by_patient_and_time(both)
-
-
-def _by_patient_and_time(frame: pl.DataFrame) -> pl.DataFrame:
-    """``frame`` in (patient_id, sample_datetime) order; no sort when already so."""
-    previous_id = pl.col("patient_id").shift()
-    in_order = (pl.col("patient_id") > previous_id) | (
-        (pl.col("patient_id") == previous_id)
-        & (pl.col("sample_datetime") >= pl.col("sample_datetime").shift())
-    )
-    if frame.height < 2 or frame.select(in_order.slice(1).all()).item():
-        return frame
-    return frame.sort("patient_id", "sample_datetime", maintain_order=True)
+    return pl.concat([paired.drop("_cys_day", "_cys_datetime"), alone], how="diagonal_relaxed")
 
 
 def _attach_measurements(
@@ -388,8 +375,8 @@ def compute_egfr(
     -------
     polars.DataFrame
         The long ``egfr`` table (``schemas.EGFR``), one row per sample x equation,
-        in blocks per equation (in the order of the rules), each sorted by patient and
-        sample time; ``egfr`` null where not
+        in blocks per equation (in the order of the rules), each in the order of
+        ``labs`` (combined equations: creatinine rows, then unpaired cystatin C rows); ``egfr`` null where not
         computable, with ``egfr_reason`` from :data:`EGFR_REASON_CODES`.
 
     Raises
@@ -431,8 +418,8 @@ def compute_egfr(
 
     specs = {e: eq.get_equation(e) for e in resolved.all_equations()}
     kinds = {s.kind for s in specs.values()}
-    cr = _by_patient_and_time(_samples(table, "creatinine", "creatinine_mg_dl"))
-    cys = _by_patient_and_time(_samples(table, "cystatin_c", "cystatin_c_mg_l"))
+    cr = _samples(table, "creatinine", "creatinine_mg_dl")
+    cys = _samples(table, "cystatin_c", "cystatin_c_mg_l")
     frames: dict[str, pl.DataFrame] = {}
     if kinds & {"creatinine", "clearance"}:
         frames["creatinine"] = cr.with_columns(pl.lit(None, pl.Float64).alias("cystatin_c_mg_l"))
@@ -494,7 +481,7 @@ def compute_egfr(
             if rows.height == 0:
                 continue
             out.append(conform(_evaluate(rows, equation_id, resolved), schemas.EGFR))
-    # blocks per equation (rules order), each in patient and sample-time order
+    # blocks per equation (rules order), each in labs order: no sort of millions of rows
     result = pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)
     logger.info(
         "egfr: %d rows, %d computed, equations %s",

@@ -193,7 +193,8 @@ class HarmonizeResult:
     Attributes
     ----------
     labs
-        Usable results in standard units, ``schemas.LABS`` columns.
+        Usable results in standard units, ``schemas.LABS`` columns, in source order
+        (``source``, ``source_row``).
     rejected
         Rejected rows of every input table, ``schemas.REJECTED`` columns.
     merged
@@ -824,8 +825,13 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
     # only groups with repeats need window work; most patient-days have one result
     # (a hash collision only moves a single result into the exact window work below)
     repeated = valid.select(pl.struct(key).hash().is_duplicated()).to_series()
-    single = valid.filter(~repeated).with_columns(pl.col("_n_in").alias("_n"))
-    valid = valid.filter(repeated).sort([*key, "_when", "source", "source_row"])
+    everything = valid.with_columns(pl.col("_n_in").alias("_n"))
+    positions = np.flatnonzero(repeated.to_numpy())
+    valid = (
+        everything[positions]
+        .with_columns(pl.Series("_pos", positions))
+        .sort([*key, "_when", "source", "source_row"])
+    )
     position = pl.int_range(pl.len()).over(key)
     chosen = {
         "first": pl.lit(0, pl.Int64),
@@ -867,7 +873,14 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
         "labs",
         pl.format("folded into row {} ({})", pl.col("_kept_as"), pl.lit(rule)),
     )
-    return pl.concat([single, kept.drop("_keep")], how="vertical"), merged
+    # write the repeated groups' results back in place: the output keeps source order
+    keep = np.ones(everything.height, dtype=bool)
+    where = valid["_pos"].to_numpy()
+    keep[where] = valid["_keep"].to_numpy()
+    updated = {
+        c: everything[c].clone().scatter(where, valid[c]) for c in ("_standard", "_qualifier", "_n")
+    }
+    return everything.with_columns(**updated).filter(pl.Series(keep)), merged
 
 
 def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
@@ -886,9 +899,9 @@ def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
         "source_row",
         pl.col("_n").alias("n_collapsed"),
     )
-    return conform(out, schemas.LABS).sort(
-        "patient_id", "sample_datetime", "analyte", "source", "source_row"
-    )
+    # rows stay in source order (source, source_row): deterministic whatever the input
+    # order, and no sort of millions of rows by patient
+    return conform(out, schemas.LABS)
 
 
 # --------------------------------------------------------------------------------------

@@ -153,10 +153,11 @@ def test_pairing_window_and_no_fabrication() -> None:
     ]
     same_day = compute_egfr(labs_of(rows), ADULT, ["ckd_epi_2021_crcys"])
     assert same_day["egfr"].null_count() == 3
+    # creatinine rows in labs order, then the cystatin C result nothing was paired with
     assert same_day["egfr_reason"].to_list() == [
         "no_cystatin_c_in_window",
-        "no_creatinine_in_window",
         "no_cystatin_c_in_window",
+        "no_creatinine_in_window",
     ]
     windowed = compute_egfr(labs_of(rows), ADULT, ["ckd_epi_2021_crcys"], pairing_window_days=2)
     assert windowed.height == 2
