@@ -287,23 +287,37 @@ def _in_band(age: pl.Expr, band: AgeBand) -> pl.Expr:
 
 def _evaluate(frame: pl.DataFrame, equation_id: str, rules: EgfrRules) -> pl.DataFrame:
     spec = eq.get_equation(equation_id)
+    # rows already without a pair or outside the window are not evaluated at all
+    eligible = (frame["_pair_reason"].is_null() & frame["_window_reason"].is_null()).to_numpy()
+    where = np.flatnonzero(eligible)
+    subset = frame[where]
     inputs: dict[str, Any] = {}
     for name in spec.inputs:
         column = {"age": "age_years"}.get(name, name)
         if name == "sex":
-            inputs[name] = frame["sex"]
+            inputs[name] = subset["sex"]
         else:
-            inputs[name] = frame[column].cast(pl.Float64).to_numpy()
+            inputs[name] = subset[column].cast(pl.Float64).to_numpy()
     if spec.race_coefficient and rules.apply_race_coefficient:
-        inputs["black_race"] = frame["black_race"].cast(pl.Float64).to_numpy()
+        inputs["black_race"] = subset["black_race"].cast(pl.Float64).to_numpy()
     result = eq.evaluate_with_reason(
         equation_id,
         **inputs,
         allow_outside_age=rules.allow_outside_age,
         apply_race_coefficient=rules.apply_race_coefficient,
     )
-    values = np.asarray(result.values, dtype=np.float64).reshape(frame.height)
-    reasons = np.asarray(result.reasons).reshape(frame.height)
+    values = np.full(frame.height, np.nan)
+    values[where] = np.asarray(result.values, dtype=np.float64).reshape(subset.height)
+    reasons = np.asarray(result.reasons).reshape(subset.height)
+    # numpy string arrays convert slowly: name the few distinct codes of the rows that
+    # failed, and gather (code index len(codes) = no library reason)
+    failed = reasons != eq.OK
+    codes, inverse = np.unique(reasons[failed], return_inverse=True)
+    index = np.full(frame.height, len(codes), dtype=np.uint32)
+    index[where[failed]] = inverse.ravel()
+    library_reason = pl.Series("_lib", [*codes.tolist(), None], dtype=pl.String).gather(
+        pl.Series(index, dtype=pl.UInt32)
+    )
     # name the missing input instead of the library's generic missing_input
     specific: Any = pl
     for name in spec.inputs:
@@ -314,11 +328,6 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rules: EgfrRules) -> pl.Dat
         specific.otherwise(pl.lit("missing_input"))
         if specific is not pl
         else pl.lit("missing_input")
-    )
-    # numpy string arrays convert slowly; convert the few distinct codes and gather
-    codes, inverse = np.unique(reasons, return_inverse=True)
-    library_reason = pl.Series("_lib", codes.tolist(), dtype=pl.String).gather(
-        pl.Series(inverse.ravel(), dtype=pl.UInt32)
     )
     return (
         frame.with_columns(
@@ -333,8 +342,7 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rules: EgfrRules) -> pl.Dat
                 pl.col("_window_reason"),
                 pl.when(pl.col("_lib") == eq.MISSING_INPUT)
                 .then(specific_expr)
-                .when(pl.col("_lib") != "")
-                .then(pl.col("_lib")),
+                .otherwise(pl.col("_lib")),
             ).alias("egfr_reason")
         )
         .with_columns(pl.when(pl.col("egfr_reason").is_null()).then(pl.col("egfr")).alias("egfr"))
