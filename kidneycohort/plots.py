@@ -180,10 +180,11 @@ def small_cell_text(counts: pl.Expr, threshold: int = DEFAULT_SMALL_CELL_THRESHO
 
     Zero stays ``"0"`` (an empty cell discloses nobody); nulls stay null.
     """
+    # the count comes first so that the result keeps the count's column name
     return (
-        pl.when(counts.is_between(1, threshold))
-        .then(pl.lit(f"<{threshold + 1}"))
-        .otherwise(counts.cast(pl.Int64).cast(pl.String))
+        pl.when(counts.is_null() | ~counts.is_between(1, threshold))
+        .then(counts.cast(pl.Int64).cast(pl.String))
+        .otherwise(pl.lit(f"<{threshold + 1}"))
     )
 
 
@@ -956,6 +957,15 @@ def forest_figure(hazard_ratios: FrameLike) -> ggplot:
             aes(x="hr_lower", xend="hr_upper", yend="label"), colour=OKABE_ITO["blue"], size=0.8
         )
         plot += geom_point(aes(x="hr"), colour=OKABE_ITO["blue"], shape="s", size=2.6)
+    missing = rows.filter(~pl.col("estimable"))
+    if missing.height:
+        # placed on the line of no effect so the row keeps its place on the axis
+        plot += geom_text(
+            missing.with_columns(x=pl.lit(1.0), text=pl.lit("no estimate")).to_pandas(),
+            aes(x="x", y="label", label="text"),
+            size=8,
+            colour="#555555",
+        )
     plot += scale_y_discrete(limits=order)
     plot += scale_x_log10()
     plot += theme(figure_size=(_FIG_SIZE[0], max(2.2, 1.2 + 0.38 * max(rows.height, 1))))
@@ -1231,8 +1241,8 @@ def attrition_boxes(
             f"used+rejected+merged={row['rows_used'] + row['rows_rejected'] + row['rows_merged']}; "
             "the run folder's manifest is inconsistent"
         )
-    if accounting_by_reason is not None:
-        reasons = _records(accounting_by_reason, "accounting_by_reason")
+    reasons = _records(accounting_by_reason, "accounting_by_reason")
+    if accounting_by_reason is not None and reasons.width:
         require_columns(reasons, ("table", "reason", "rows"), "accounting_by_reason")
     else:
         reasons = pl.DataFrame(schema={"table": pl.String, "reason": pl.String, "rows": pl.Int64})
@@ -1333,6 +1343,8 @@ _INCH_PER_Y: Final = 1.15
 
 
 def _records(data: Any, name: str) -> pl.DataFrame:
+    if data is None:
+        return pl.DataFrame()
     if isinstance(data, list | tuple):
         if not data:
             return pl.DataFrame()
