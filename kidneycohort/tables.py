@@ -614,9 +614,11 @@ def _category_block(
 ) -> pl.DataFrame:
     """n (%) per level and group with primary and secondary small-cell suppression."""
     present = joined["value"].unique().to_list()
-    known = (
-        list(levels) if levels is not None else sorted(v for v in present if v != _MISSING_LEVEL)
-    )
+    known = [
+        v
+        for v in (levels if levels is not None else sorted(present))
+        if v != _MISSING_LEVEL  # the missing level always goes last, once
+    ]
     unexpected = sorted(v for v in present if v not in known and v != _MISSING_LEVEL)
     ordered = [*known, *unexpected] + ([_MISSING_LEVEL] if _MISSING_LEVEL in present else [])
     grid = sizes.select("_group").join(
