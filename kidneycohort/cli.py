@@ -274,21 +274,40 @@ def run_cmd(
     help="Run folder to write.",
 )
 @click.option(
-    "--patients", type=int, default=None, help="Trial size (default: the demo config's, about 500)."
+    "--study",
+    type=click.Choice(["trial", "cohort"]),
+    default="trial",
+    show_default=True,
+    help="trial: two-arm trial (configs/demo_trial.yaml); cohort: health-record cohort "
+    "(configs/demo_cohort.yaml).",
+)
+@click.option(
+    "--patients",
+    type=int,
+    default=None,
+    help="Study size (default: 500 for the trial, 3000 for the cohort).",
 )
 @click.option("--force", is_flag=True, help="Replace an existing demo run folder.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress display or log lines.")
 @_guarded_run
-def demo_cmd(out_dir: Path, patients: int | None, force: bool, quiet: bool) -> None:
-    """Generate the synthetic two-arm trial and run configs/demo_trial.yaml on it.
+def demo_cmd(out_dir: Path, study: str, patients: int | None, force: bool, quiet: bool) -> None:
+    """Generate a synthetic study and run its demo config on it.
 
+    --study trial (default) runs configs/demo_trial.yaml on an invented two-arm trial;
+    --study cohort runs configs/demo_cohort.yaml on an invented health-record cohort.
     The synthetic input tables go to OUT_inputs/ beside the run folder; the run folder
-    holds the tables, figures and report.html. Takes about a minute.
+    holds the tables, figures and report.html. Takes about half a minute.
     """
     from kidneycohort.pipeline.demo import run_demo
 
     progress = _setup_output(quiet, False)
-    result, inputs = run_demo(out_dir, patients=patients, force=force, progress=progress)
+    result, inputs = run_demo(
+        out_dir,
+        study=study,  # type: ignore[arg-type]
+        patients=patients,
+        force=force,
+        progress=progress,
+    )
     if not quiet:
         click.echo(f"synthetic inputs: {inputs}")
         click.echo(f"run folder: {result.run_dir}")

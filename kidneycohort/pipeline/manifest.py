@@ -71,6 +71,8 @@ def build_manifest(
 
     ``accounting_by_reason`` lists rejected rows only (they add up to ``rows_rejected``);
     ``merged_by_reason`` lists rows merged into another (they add up to ``rows_merged``).
+    ``outputs`` is left empty here; the runner fills it from :func:`output_records` once
+    every file is written.
     """
     created = created_utc or dt.datetime.now(dt.UTC)
     return {
@@ -88,7 +90,38 @@ def build_manifest(
         "steps": [dict(s) for s in steps],
         "warnings": list(warnings),
         "study": dict(study),
+        "outputs": [],
     }
+
+
+# Files of a run folder that are not outputs: the manifest itself and the log.
+_NOT_OUTPUTS = ("manifest.json", "run.log")
+
+
+def output_records(run_dir: Path) -> list[dict[str, Any]]:
+    """Manifest ``outputs``: every file of the run folder, with rows and SHA-256 of data.
+
+    Parquet and CSV files (the data, byte-identical for the same inputs) get ``rows``
+    and ``sha256``; figures, the report and the workbook are listed by name and size.
+    """
+    import polars as pl
+
+    run = Path(run_dir)
+    records: list[dict[str, Any]] = []
+    for path in sorted(p for p in run.rglob("*") if p.is_file()):
+        rel = path.relative_to(run).as_posix()
+        if rel in _NOT_OUTPUTS or path.name.startswith("."):
+            continue
+        record: dict[str, Any] = {"file": rel, "bytes": path.stat().st_size}
+        if path.suffix == ".parquet":
+            record["rows"] = int(pl.scan_parquet(path).select(pl.len()).collect().item())
+            record["sha256"] = sha256_of(path)
+        elif path.suffix == ".csv":
+            scan = pl.scan_csv(path, infer_schema=False)
+            record["rows"] = int(scan.select(pl.len()).collect().item())
+            record["sha256"] = sha256_of(path)
+        records.append(record)
+    return records
 
 
 def write_manifest(run_dir: Path, manifest: Mapping[str, Any]) -> Path:

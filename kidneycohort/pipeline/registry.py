@@ -91,6 +91,9 @@ class Step:
         ``check(study_config)`` run at validation time for rules that span sections
         (e.g. the primary equation is one of the equations computed); raises
         :class:`~kidneycohort.errors.ConfigError`.
+    reads_folder : bool
+        The step reads the finished table files (e.g. the report): the runner writes
+        ``tables/tables.xlsx`` and applies the output options before it runs.
     """
 
     name: str
@@ -103,6 +106,7 @@ class Step:
     description: str = ""
     extra_sections: Mapping[str, type[BaseModel]] = field(default_factory=dict)
     check: Callable[[Any], None] | None = None
+    reads_folder: bool = False
 
     def section_models(self) -> dict[str, type[BaseModel] | None]:
         """Every config section this step reads -> the model validating it."""
@@ -150,6 +154,7 @@ class StepRegistry:
         description: str = "",
         extra_sections: Mapping[str, type[BaseModel]] | None = None,
         check: Callable[[Any], None] | None = None,
+        reads_folder: bool = False,
     ) -> Callable[[StepFunction], StepFunction]:
         """Decorator form of :meth:`add`."""
 
@@ -166,6 +171,7 @@ class StepRegistry:
                     description=description or (func.__doc__ or "").strip().split("\n")[0],
                     extra_sections=dict(extra_sections or {}),
                     check=check,
+                    reads_folder=reads_folder,
                 )
             )
             return func

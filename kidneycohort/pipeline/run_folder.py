@@ -3,8 +3,9 @@
 Table names map to files as the run-folder contract of DESIGN.md says:
 
 * ``labs``, ``egfr``, ``baseline``, ``slopes``, ``stages``, ``transitions``,
-  ``endpoints`` -> ``<name>.parquet``
+  ``endpoints``, ``baseline_categories``, ``kfre`` -> ``<name>.parquet``
 * ``rejected_rows`` -> ``rejected_rows.csv``
+* ``adam_tte`` -> ``adam_tte.csv`` and ``adam_tte.parquet`` (CDISC ADaM time-to-event)
 * ``tables/<name>`` -> ``tables/<name>.csv`` and ``tables/<name>.md`` (and one sheet of
   ``tables/tables.xlsx``)
 * ``models/<name>`` -> ``models/<name>.parquet``
@@ -27,8 +28,21 @@ import polars as pl
 
 from kidneycohort.errors import ConfigError
 
-TOP_LEVEL_PARQUET = ("labs", "egfr", "baseline", "slopes", "stages", "transitions", "endpoints")
+TOP_LEVEL_PARQUET = (
+    "labs",
+    "egfr",
+    "baseline",
+    "slopes",
+    "stages",
+    "transitions",
+    "endpoints",
+    "baseline_categories",
+    "kfre",
+)
 REJECTED_ROWS = "rejected_rows"
+# analysis datasets in a standard layout: CSV for exchange and Parquet, in the
+# dataset's own row order (ADaM: parameter, then subject)
+ANALYSIS_DATASETS = ("adam_tte",)
 # A fixed workbook date keeps tables.xlsx identical between runs of the same inputs.
 _XLSX_DATE = dt.datetime(2000, 1, 1, tzinfo=dt.UTC)
 
@@ -39,6 +53,8 @@ def file_for(name: str) -> list[str]:
         return [f"{name}.parquet"]
     if name == REJECTED_ROWS:
         return [f"{name}.csv"]
+    if name in ANALYSIS_DATASETS:
+        return [f"{name}.csv", f"{name}.parquet"]
     if name.startswith("tables/") and name.count("/") == 1:
         return [f"{name}.csv", f"{name}.md"]
     if name.startswith("models/") and name.count("/") == 1:
@@ -96,6 +112,9 @@ def write_table(run_dir: Path, name: str, table: Any) -> list[str]:
         canonical_order(table).write_parquet(run_dir / files[0], statistics=False)
     elif name == REJECTED_ROWS:
         canonical_order(table).write_csv(run_dir / files[0])
+    elif name in ANALYSIS_DATASETS:
+        table.write_csv(run_dir / files[0])
+        table.write_parquet(run_dir / files[1], statistics=False)
     elif name.startswith("models/"):
         table.write_parquet(run_dir / files[0], statistics=False)
     else:  # tables/: the builder's row order is the reading order; keep it

@@ -208,6 +208,8 @@ def run_pipeline(
                 )
 
             for step in config.steps:
+                if step.reads_folder:
+                    _finish_tables(tmp, tables, config)
                 record = _run_step(step, config, tables, tmp, progress)
                 step_records.append(record.pop("_record"))
                 accounting.extend(record["accounting"])
@@ -215,11 +217,7 @@ def run_pipeline(
                 merged.extend(record["merged_by_reason"])
                 # steps after this one (figures, report) read the folder as it stands
                 manifest_mod.write_manifest(tmp, manifest_now())
-            if config.output.xlsx:
-                run_folder.write_workbook(tmp, tables)
-            if not config.output.markdown:
-                for md in (tmp / "tables").glob("*.md"):
-                    md.unlink()
+            _finish_tables(tmp, tables, config)
             captured = list(caught)
             for w in captured:
                 logger.warning("%s", _format_warning(w))
@@ -228,6 +226,7 @@ def run_pipeline(
         (tmp / "warnings.txt").write_text(
             "".join(line + "\n" for line in warning_lines), encoding="utf-8"
         )
+        final["outputs"] = manifest_mod.output_records(tmp)
         manifest_mod.write_manifest(tmp, final)
         logger.info("run complete: %s", target)
         ok = True
@@ -256,7 +255,20 @@ def run_pipeline(
 
 # Per-patient files that carry the patient's group, so that figures and tables by arm
 # or exposure read one file; the in-memory stage results are left as the stage made them.
-GROUPED_FILES = ("baseline", "slopes", "endpoints")
+GROUPED_FILES = ("baseline", "slopes", "endpoints", "baseline_categories", "kfre")
+
+
+def _finish_tables(run_dir: Path, tables: Mapping[str, Any], config: StudyConfig) -> None:
+    """Apply the output options to ``tables/``: the workbook, and Markdown kept or not.
+
+    Run before a step that reads the finished folder (the report) and again at the end
+    (the workbook is byte-identical for the same tables).
+    """
+    if config.output.xlsx:
+        run_folder.write_workbook(run_dir, tables)
+    if not config.output.markdown:
+        for md in (run_dir / "tables").glob("*.md"):
+            md.unlink()
 
 
 def _with_group(name: str, table: Any, tables: Mapping[str, Any]) -> Any:

@@ -16,12 +16,13 @@ import datetime as dt
 import logging
 import warnings
 from collections.abc import Mapping
-from typing import Any
+from typing import Any, Literal
 
 import polars as pl
 from pydantic import BaseModel, ConfigDict, Field
 
 from kidneycohort import schemas
+from kidneycohort.baseline import BaselineRule
 from kidneycohort.endpoints import EndpointDefinition, EndpointRules
 from kidneycohort.errors import (
     ConfigError,
@@ -288,6 +289,197 @@ def _add_kdigo(registry: StepRegistry) -> None:
             "transition_matrix": matrix,
             "models/transition_counts": counts,
         }
+
+
+class KdigoGridSection(BaseModel):
+    """Baseline KDIGO grid options (config key ``kdigo_grid``).
+
+    The G category comes from the baseline eGFR of the primary equation (the
+    ``baseline`` section's rule); the A category from a baseline UACR chosen by
+    ``uacr_baseline`` (:func:`kidneycohort.baseline.baseline_uacr`).
+    """
+
+    model_config = ConfigDict(extra="forbid")
+
+    uacr_baseline: BaselineRule = Field(
+        default_factory=lambda: BaselineRule(method="mean_in_window", mean_type="geometric"),
+        description="How the baseline UACR is chosen; default the geometric mean of the "
+        "values in the year before index (UACR is right-skewed and varies day to day).",
+    )
+
+
+def _add_kdigo_grid(registry: StepRegistry) -> None:
+    from kidneycohort import tables as tb
+    from kidneycohort.aki import ValueFilter
+    from kidneycohort.baseline import baseline_uacr
+    from kidneycohort.kdigo import baseline_categories
+    from kidneycohort.pipeline.summaries import kdigo_grid_counts
+
+    @registry.register(
+        "kdigo_grid",
+        needs=["baseline", "labs", "cohort"],
+        makes=["baseline_categories", "models/kdigo_grid", "tables/kdigo_grid"],
+        section="kdigo_grid",
+        options=KdigoGridSection,
+        extra_sections={"value_filter": ValueFilter, "tables": tb.TableSpec},
+        description="Baseline KDIGO G x A category per patient and the prognosis grid counts.",
+    )
+    def kdigo_grid_step(ctx: StepContext) -> dict[str, Any]:
+        """Baseline G and A categories per patient; patients per KDIGO grid cell."""
+        opts = ctx.options
+        assert isinstance(opts, KdigoGridSection)
+        value_filter = ctx.sections.get("value_filter")
+        uacr = baseline_uacr(
+            ctx.tables["labs"],
+            ctx.tables["cohort"],
+            rule=opts.uacr_baseline,
+            value_filter=value_filter,  # type: ignore[arg-type]
+        )
+        categories = baseline_categories(
+            ctx.tables["baseline"], uacr, equation=primary_equation(ctx.sections, ctx.tables)
+        )
+        spec = ctx.sections.get("tables")
+        return {
+            "baseline_categories": categories,
+            "models/kdigo_grid": kdigo_grid_counts(categories),
+            "tables/kdigo_grid": tb.kdigo_count_grid(
+                categories,
+                spec=spec if isinstance(spec, tb.TableSpec) else None,
+            ),
+        }
+
+
+class KfreSection(BaseModel):
+    """Kidney Failure Risk Equation at baseline (config key ``kfre``)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    region: Literal["north_american", "non_north_american"] = Field(
+        "north_american",
+        description="Baseline-survival set of the 2016 KFRE recalibration (Tangri 2016).",
+    )
+    lookback_days: float = Field(
+        365.0,
+        gt=0,
+        description="How far before the index date the eGFR and UACR used may lie (days).",
+    )
+    thresholds_2y: list[float] = Field(
+        default_factory=lambda: [0.10, 0.40],
+        description="2-year risk thresholds counted in the summary table (fractions).",
+    )
+    thresholds_5y: list[float] = Field(
+        default_factory=lambda: [0.03, 0.05],
+        description="5-year risk thresholds counted in the summary table (fractions).",
+    )
+
+
+def _add_kfre(registry: StepRegistry) -> None:
+    from kidneycohort import tables as tb
+    from kidneycohort.aki import ValueFilter
+    from kidneycohort.models.survival import SurvivalSpec
+    from kidneycohort.pipeline.summaries import kfre_at_baseline, kfre_summary
+
+    @registry.register(
+        "kfre",
+        needs=["egfr", "labs", "cohort"],
+        makes=["kfre", "tables/kfre_summary"],
+        section="kfre",
+        options=KfreSection,
+        extra_sections={"value_filter": ValueFilter, "tables": tb.TableSpec},
+        description="2- and 5-year KFRE risk per patient at baseline, with applicability.",
+    )
+    def kfre_step(ctx: StepContext) -> dict[str, Any]:
+        """KFRE risk at the index date and its distribution by group."""
+        opts = ctx.options
+        assert isinstance(opts, KfreSection)
+        survival = ctx.sections.get("survival")
+        group = survival.group_column if isinstance(survival, SurvivalSpec) else "group"
+        rows = kfre_at_baseline(
+            ctx.tables["egfr"],
+            ctx.tables["labs"],
+            ctx.tables["cohort"],
+            equation=primary_equation(ctx.sections, ctx.tables),
+            region=opts.region,
+            lookback_days=opts.lookback_days,
+            value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
+            group_column=group,
+        )
+        spec = ctx.sections.get("tables")
+        summary = kfre_summary(
+            rows,
+            group_column=group,
+            thresholds_2y=opts.thresholds_2y,
+            thresholds_5y=opts.thresholds_5y,
+            spec=spec if isinstance(spec, tb.TableSpec) else None,
+        )
+        return {"kfre": rows, "tables/kfre_summary": summary}
+
+
+class AdamSection(BaseModel):
+    """ADaM time-to-event export (config key ``adam``): the parameters of ``to_adam_tte``."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    study_id: str | None = Field(None, description="STUDYID of every row; default `study.name`.")
+    time_unit: Literal["days", "years"] = Field("days", description="Unit of AVAL.")
+    count_start_day: bool = Field(
+        True, description="In days, count the origin date as day 1 (AVAL = ADT - STARTDT + 1)."
+    )
+
+
+def _add_adam(registry: StepRegistry) -> None:
+    from kidneycohort.adam import to_adam_tte
+
+    @registry.register(
+        "adam_export",
+        needs=["endpoints"],
+        makes=["adam_tte"],
+        section="adam",
+        options=AdamSection,
+        description="The endpoints as a CDISC ADaM time-to-event dataset (adam_tte.csv/.parquet).",
+    )
+    def adam_step(ctx: StepContext) -> dict[str, Any]:
+        """ADaM BDS-TTE rows of every evaluable endpoint row (kidneycohort.adam)."""
+        opts = ctx.options
+        assert isinstance(opts, AdamSection)
+        endpoints = ctx.sections.get("endpoints")
+        if not isinstance(endpoints, EndpointsSection):
+            raise ConfigError("adam: the ADaM export needs the 'endpoints' section; add it")
+        study = ctx.sections.get("study")
+        study_id = opts.study_id if opts.study_id is not None else getattr(study, "name", "")
+        table = ctx.tables["endpoints"]
+        skipped = table.filter(pl.col("event").is_null())
+        if skipped.height:
+            # not-evaluable rows stay in endpoints.parquet with their reason
+            by_reason = skipped.group_by("reason").len().sort("reason")
+            logger.info(
+                "ADaM export: not-evaluable rows by reason, kept in endpoints.parquet: %s",
+                ", ".join(f"{r}: {n}" for r, n in by_reason.rows()),
+            )
+        return {
+            "adam_tte": to_adam_tte(
+                table,
+                endpoints.definitions,
+                study_id=str(study_id),
+                time_unit=opts.time_unit,
+                count_start_day=opts.count_start_day,
+            )
+        }
+
+
+def _add_report(registry: StepRegistry) -> None:
+    from kidneycohort.report import write_report
+
+    @registry.register(
+        "report",
+        makes=["report_file"],
+        reads_folder=True,
+        description="report.html from the run folder as written so far (kidneycohort.report).",
+    )
+    def report_step(ctx: StepContext) -> dict[str, Any]:
+        """Render the self-contained report of the run folder."""
+        path = write_report(ctx.run_dir)
+        return {"report_file": pl.DataFrame({"file": [path.name]}, schema={"file": pl.String})}
 
 
 def _fit_each_endpoint(endpoints: pl.DataFrame, fit: Any, what: str) -> list[tuple[str, Any]]:
@@ -580,10 +772,14 @@ _STAGES = (
     _add_baseline_and_slopes,
     _add_endpoints,
     _add_kdigo,
+    _add_kdigo_grid,
+    _add_kfre,
+    _add_adam,
     _add_survival,
     _add_slope_model,
     _add_tables,
     _add_figures,
+    _add_report,
 )
 
 
