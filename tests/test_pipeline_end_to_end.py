@@ -66,6 +66,17 @@ def test_demo_writes_every_file_of_the_trial_recipe(demo) -> None:
         "figures/attrition.png",
         "figures/model_trajectories.png",
         "figures/forest_hazard_ratios.png",
+        "figures/kdigo_grid.png",
+        "baseline_categories.parquet",
+        "models/kdigo_grid.parquet",
+        "tables/kdigo_grid.csv",
+        "tables/endpoint_table.csv",
+        "tables/slope_table.csv",
+        "tables/baseline_characteristics.csv",
+        "tables/tables.xlsx",
+        "adam_tte.csv",
+        "adam_tte.parquet",
+        "report.html",
     ]
     missing = [rel for rel in expected if not (run / rel).is_file()]
     assert not missing
@@ -130,7 +141,10 @@ def test_same_inputs_give_byte_identical_tables(demo, tmp_path: Path) -> None:
     b = json.loads((runs[1] / "manifest.json").read_text())
     for key in ("created_utc", "steps"):  # timestamps and timings
         a.pop(key), b.pop(key)
-    assert a == b
+    # the report carries its creation time; data outputs carry rows and hashes
+    for m in (a, b):
+        m["outputs"] = [o for o in m["outputs"] if "sha256" in o]
+    assert a["outputs"] and a == b
 
 
 def test_tables_equal_the_stage_functions_called_directly(demo) -> None:
@@ -180,3 +194,115 @@ def test_interrupted_run_leaves_no_complete_looking_folder(demo, tmp_path: Path)
     failed = tmp_path / "run.failed"
     assert (failed / "run.log").is_file() and not (failed / "manifest.json").exists()
     assert info.value.log_path.endswith("run.log")  # type: ignore[attr-defined]
+
+
+def test_manifest_lists_every_output_with_rows_and_hashes(demo) -> None:
+    import hashlib
+
+    run, _, _ = demo
+    manifest = json.loads((run / "manifest.json").read_text())
+    listed = {o["file"]: o for o in manifest["outputs"]}
+    on_disk = {
+        p.relative_to(run).as_posix()
+        for p in run.rglob("*")
+        if p.is_file() and p.name not in ("manifest.json", "run.log")
+    }
+    assert set(listed) == on_disk
+    for rel in ("egfr.parquet", "adam_tte.csv", "tables/kdigo_grid.csv"):
+        # hashes and row counts re-computed here with hashlib and polars
+        assert listed[rel]["sha256"] == hashlib.sha256((run / rel).read_bytes()).hexdigest()
+        read = pl.read_parquet if rel.endswith(".parquet") else pl.read_csv
+        assert listed[rel]["rows"] == read(run / rel).height
+    assert "sha256" not in listed["report.html"] and listed["report.html"]["bytes"] > 0
+    assert [s["name"] for s in manifest["steps"]][-2:] == ["figures", "report"]
+    assert manifest["config"]["recipe_steps"][-1] == "report"
+
+
+def test_report_is_self_contained_and_shows_the_kdigo_grid(demo) -> None:
+    run, _, _ = demo
+    html = (run / "report.html").read_text(encoding="utf-8")
+    assert html.lstrip().lower().startswith("<!doctype html")
+    assert "Harbour Kidney Outcomes Trial" in html
+    assert "KDIGO GFR x albuminuria grid" in html
+    assert "data:image/png;base64," in html  # figures embedded, nothing fetched
+    assert 'src="http' not in html and 'figures/attrition.png"' not in html
+    assert "tables/tables.xlsx" in html  # the workbook exists before the report step
+    assert (run / "tables" / "tables.xlsx").is_file()
+
+
+def test_kdigo_grid_counts_patients_by_baseline_categories(demo) -> None:
+    import numpy as np
+    import pandas as pd
+
+    run, _, tables = demo
+    cfg = json.loads((run / "manifest.json").read_text())["config"]
+    categories = pl.read_parquet(run / "baseline_categories.parquet")
+    base = pl.read_parquet(run / "baseline.parquet").filter(pl.col("equation") == "ckd_epi_2021_cr")
+    # one row per patient; every patient of the baseline table is there
+    assert categories["patient_id"].is_unique().all()
+    assert set(base["patient_id"].to_list()) <= set(categories["patient_id"].to_list())
+
+    # G from the primary equation's baseline eGFR on the KDIGO 2012 cut points
+    # (Table 5), recomputed here with numpy.digitize
+    joined = categories.join(base.select("patient_id", "baseline_egfr"), on="patient_id")
+    values = joined["baseline_egfr_right"].to_numpy()
+    known = ~np.isnan(values)
+    g_labels = np.array(["G5", "G4", "G3b", "G3a", "G2", "G1"], dtype=object)
+    expected_g = g_labels[np.digitize(values[known], [15, 30, 45, 60, 90])]
+    assert joined["g_category"].to_numpy()[known].tolist() == expected_g.tolist()
+
+    # baseline UACR: geometric mean of the outpatient UACR results (mg/g) in days
+    # -42..0 from index (the recipe's rule), recomputed here with pandas and numpy
+    assert cfg["kdigo_grid"]["uacr_baseline"]["window_start_days"] == -42
+    labs = pl.read_parquet(run / "labs.parquet").to_pandas()
+    index = tables["cohort"].select("patient_id", "index_date").to_pandas()
+    uacr = labs[(labs["analyte"] == "uacr") & ~labs["setting"].isin(["inpatient", "emergency"])]
+    uacr = uacr.merge(index, on="patient_id")
+    days = (pd.to_datetime(uacr["sample_date"]) - pd.to_datetime(uacr["index_date"])).dt.days
+    window = uacr[(days >= -42) & (days <= 0) & (uacr["value"] > 0)]
+    geo = window.groupby("patient_id")["value"].apply(lambda v: float(np.exp(np.log(v).mean())))
+    got = categories.drop_nulls("baseline_uacr_mg_g").to_pandas().set_index("patient_id")
+    assert len(geo) == len(got) > 0
+    np.testing.assert_allclose(got.loc[geo.index, "baseline_uacr_mg_g"], geo.values, rtol=1e-9)
+    # A on the KDIGO 2012 mg/g thresholds (Table 6): < 30, 30-300, > 300
+    u = got["baseline_uacr_mg_g"].to_numpy()
+    expected_a = np.where(u < 30, "A1", np.where(u <= 300, "A2", "A3"))
+    assert got["a_category"].tolist() == expected_a.tolist()
+
+    # the grid model: 18 cells, counts equal a pandas crosstab of the categories
+    grid = pl.read_parquet(run / "models/kdigo_grid.parquet")
+    assert grid.height == 18
+    both = categories.drop_nulls(["g_category", "a_category"]).to_pandas()
+    crosstab = pd.crosstab(both["g_category"], both["a_category"])
+    for g, a, n in grid.select("g_category", "a_category", "n").rows():
+        want = int(crosstab.loc[g, a]) if g in crosstab.index and a in crosstab.columns else 0
+        assert n == want, (g, a)
+    assert int(grid["n"].sum()) == len(both)
+    # the printed table hides 1-10 and counts the patients with a missing category
+    table = pl.read_csv(run / "tables/kdigo_grid.csv", infer_schema=False)
+    shown = table.filter(pl.col("n").is_not_null())["n"].cast(pl.Int64)
+    assert not shown.is_between(1, 10).any()
+    assert table.filter(pl.col("n_display") == "<11").height == table["n"].null_count()
+
+
+def test_adam_dataset_equals_the_export_of_the_endpoints(demo) -> None:
+    from kidneycohort.adam import to_adam_tte
+    from kidneycohort.pipeline.steps import EndpointsSection
+
+    run, _, _ = demo
+    cfg = json.loads((run / "manifest.json").read_text())["config"]
+    endpoints = pl.read_parquet(run / "endpoints.parquet").drop("group")
+    definitions = EndpointsSection(**cfg["endpoints"]).definitions
+    want = to_adam_tte(endpoints, definitions, study_id=cfg["study"]["name"])
+    got = pl.read_parquet(run / "adam_tte.parquet")
+    assert_frame_equal(got.sort("PARAMCD", "USUBJID"), want.sort("PARAMCD", "USUBJID"))
+    csv = pl.read_csv(run / "adam_tte.csv", try_parse_dates=True)
+    assert csv.height == got.height and csv.columns == got.columns
+    # one row per evaluable patient-endpoint; CNSR is 0 for an event (ADaM BDS-TTE)
+    evaluable = endpoints.filter(pl.col("event").is_not_null())
+    assert got.height == evaluable.height
+    assert int((got["CNSR"] == 0).sum()) == int(evaluable["event"].sum())
+    assert got["STUDYID"].unique().to_list() == ["Harbour Kidney Outcomes Trial (synthetic demo)"]
+    # AVAL in days counts the origin day: ADT - STARTDT + 1
+    days = (got["ADT"] - got["STARTDT"]).dt.total_days() + 1
+    assert (got["AVAL"] == days.cast(pl.Float64)).all()
