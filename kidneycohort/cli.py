@@ -287,16 +287,25 @@ def run_cmd(
     default=None,
     help="Study size (default: 500 for the trial, 3000 for the cohort).",
 )
+@click.option("--set", "overrides", multiple=True, metavar="KEY=VALUE", help=_SET_HELP)
 @click.option("--force", is_flag=True, help="Replace an existing demo run folder.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress display or log lines.")
 @_guarded_run
-def demo_cmd(out_dir: Path, study: str, patients: int | None, force: bool, quiet: bool) -> None:
+def demo_cmd(
+    out_dir: Path,
+    study: str,
+    patients: int | None,
+    overrides: tuple[str, ...],
+    force: bool,
+    quiet: bool,
+) -> None:
     """Generate a synthetic study and run its demo config on it.
 
     --study trial (default) runs configs/demo_trial.yaml on an invented two-arm trial;
     --study cohort runs configs/demo_cohort.yaml on an invented health-record cohort.
     The synthetic input tables go to OUT_inputs/ beside the run folder; the run folder
-    holds the tables, figures and report.html. Takes about half a minute.
+    holds the tables, figures and report.html. --set overrides the demo config as for
+    `run` (e.g. --set figures.formats=[png]). Takes about half a minute.
     """
     from kidneycohort.pipeline.demo import run_demo
 
@@ -307,6 +316,7 @@ def demo_cmd(out_dir: Path, study: str, patients: int | None, force: bool, quiet
         patients=patients,
         force=force,
         progress=progress,
+        overrides=overrides,
     )
     if not quiet:
         click.echo(f"synthetic inputs: {inputs}")

@@ -1,0 +1,225 @@
+"""End to end on a small synthetic health-record cohort: the cohort recipe's run folder,
+row accounting, KDIGO stages and grid, KFRE at baseline and its summary, the report."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+import pytest
+from click.testing import CliRunner
+
+from kidneycohort.cli import cli
+from kidneycohort.pipeline.demo import demo_config_path, demo_scenario_path
+from kidneycohort.synthetic import write_cohort
+
+PATIENTS = 2000
+PRIMARY = "ckd_epi_2021_cr"
+
+
+@pytest.fixture(scope="module")
+def cohort_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
+    base = tmp_path_factory.mktemp("cohort")
+    inputs = base / "inputs"
+    write_cohort(demo_scenario_path("cohort"), inputs, patients=PATIENTS, fmt="parquet")
+    args = ["run", str(demo_config_path("cohort")), "--out", str(base / "run"), "-q"]
+    for item in (
+        f"data.patients.path={(inputs / 'patients.parquet').as_posix()}",
+        f"data.labs.path={(inputs / 'labs.parquet').as_posix()}",
+        f"data.events.path={(inputs / 'events.parquet').as_posix()}",
+        # PNG only at low resolution keeps the figures step short
+        "figures.formats=[png]",
+        "figures.dpi=50",
+    ):
+        args += ["--set", item]
+    result = CliRunner().invoke(cli, args, catch_exceptions=False)
+    assert result.exit_code == 0, result.output
+    return base / "run", inputs
+
+
+COHORT_FILES = [
+    "labs.parquet",
+    "rejected_rows.csv",
+    "egfr.parquet",
+    "baseline.parquet",
+    "slopes.parquet",
+    "stages.parquet",
+    "transitions.parquet",
+    "baseline_categories.parquet",
+    "kfre.parquet",
+    "endpoints.parquet",
+    "models/survival_curves.parquet",
+    "models/at_risk.parquet",
+    "models/hazard_ratios.parquet",
+    "models/transition_counts.parquet",
+    "models/kdigo_grid.parquet",
+    *[
+        f"tables/{name}.{ext}"
+        for name in (
+            "endpoint_table",
+            "baseline_characteristics",
+            "incidence_rates",
+            "transition_matrix",
+            "kdigo_grid",
+            "kfre_summary",
+        )
+        for ext in ("csv", "md")
+    ],
+    "tables/tables.xlsx",
+    "figures/attrition.png",
+    "figures/kdigo_grid.png",
+    "figures/transition_matrix.png",
+    "figures/survival_kidney_progression.png",
+    "report.html",
+    "manifest.json",
+    "run.log",
+    "warnings.txt",
+]
+
+
+def test_every_file_of_the_cohort_recipe(cohort_run) -> None:
+    run, _ = cohort_run
+    missing = [rel for rel in COHORT_FILES if not (run / rel).is_file()]
+    assert not missing
+    # trial-only outputs are absent
+    assert not (run / "adam_tte.csv").exists()
+    assert not (run / "models/trajectories.parquet").exists()
+    manifest = json.loads((run / "manifest.json").read_text())
+    assert manifest["study"]["recipe"] == "cohort_progression"
+    assert [s["name"] for s in manifest["steps"]][1:] == manifest["config"]["recipe_steps"]
+
+
+def test_accounting_adds_up(cohort_run) -> None:
+    run, inputs = cohort_run
+    manifest = json.loads((run / "manifest.json").read_text())
+    read = {r["table"]: r for r in manifest["accounting"]}
+    assert set(read) == {"labs", "patients", "events"}
+    for row in read.values():
+        assert row["rows_read"] == row["rows_used"] + row["rows_rejected"] + row["rows_merged"]
+    for table in ("patients", "labs", "events"):
+        assert read[table]["rows_read"] == pl.read_parquet(inputs / f"{table}.parquet").height
+    assert read["patients"]["rows_read"] == PATIENTS
+    labs = read["labs"]
+    rejected = sum(r["rows"] for r in manifest["accounting_by_reason"] if r["table"] == "labs")
+    merged = sum(r["rows"] for r in manifest["merged_by_reason"] if r["table"] == "labs")
+    assert (rejected, merged) == (labs["rows_rejected"], labs["rows_merged"])
+    assert pl.read_parquet(run / "labs.parquet").height == labs["rows_used"]
+    unused = pl.read_csv(run / "rejected_rows.csv").filter(pl.col("table") == "labs")
+    assert unused.height == labs["rows_rejected"] + labs["rows_merged"]
+    # each input's hash and rows are recorded
+    assert {i["table"] for i in manifest["inputs"]} == {"patients", "labs", "events"}
+    assert all(len(i["sha256"]) == 64 and i["rows"] is not None for i in manifest["inputs"])
+
+
+def test_every_patient_reaches_the_per_patient_tables(cohort_run) -> None:
+    run, inputs = cohort_run
+    ids = set(pl.read_parquet(inputs / "patients.parquet")["patient_id"].to_list())
+    for name in ("baseline_categories", "kfre"):
+        table = pl.read_parquet(run / f"{name}.parquet")
+        assert table["patient_id"].is_unique().all()
+        assert set(table["patient_id"].to_list()) == ids, name
+    endpoints = pl.read_parquet(run / "endpoints.parquet")
+    per_endpoint = endpoints.group_by("endpoint").agg(pl.col("patient_id").n_unique())
+    assert (per_endpoint["patient_id"] == PATIENTS).all()
+
+
+def test_transition_counts_match_the_transitions(cohort_run) -> None:
+    run, _ = cohort_run
+    transitions = pl.read_parquet(run / "transitions.parquet")
+    counts = pl.read_parquet(run / "models/transition_counts.parquet")
+    g = transitions.filter((pl.col("axis") == "G") & (pl.col("equation") == PRIMARY))
+    assert int(counts.filter(pl.col("axis") == "G")["n"].sum()) == g.height > 0
+    a = transitions.filter(pl.col("axis") == "A")
+    assert int(counts.filter(pl.col("axis") == "A")["n"].sum()) == a.height
+    stages = pl.read_parquet(run / "stages.parquet")
+    assert set(stages["axis"].unique().to_list()) == {"G", "A"}
+
+
+# Tangri et al. JAMA 2011 4-variable KFRE, re-typed here from the published equation
+# (from memory; Tangri 2016 North American baseline survivals 0.9750 at 2 and 0.9240 at
+# 5 years, also from memory).
+def _kfre_by_hand(age: np.ndarray, male: np.ndarray, egfr: np.ndarray, acr: np.ndarray):
+    eta = (
+        -0.2201 * (age / 10 - 7.036)
+        + 0.2467 * (male - 0.5642)
+        - 0.5567 * (egfr / 5 - 7.222)
+        + 0.4510 * (np.log(acr) - 5.137)
+    )
+    return 1 - 0.9750 ** np.exp(eta), 1 - 0.9240 ** np.exp(eta)
+
+
+def test_kfre_at_baseline_applicability_and_values(cohort_run) -> None:
+    run, _ = cohort_run
+    kfre = pl.read_parquet(run / "kfre.parquet")
+    assert (kfre["kfre_applicable"] == kfre["kfre_reason"].is_null()).all()
+    assert (kfre["equation"] == PRIMARY).all() and (kfre["kfre_region"] == "north_american").all()
+    ok = kfre.filter(pl.col("kfre_applicable"))
+    assert ok.height > 20
+    # the population the equation is for: adults with eGFR < 60 and a UACR
+    assert (ok["egfr"] < 60).all() and (ok["age_years"] >= 18).all() and (ok["uacr_mg_g"] > 0).all()
+    # inputs from the look-back year before index
+    assert ok["egfr_years"].is_between(-365 / 365.25 - 1e-9, 1e-9).all()
+    assert ok["uacr_years"].is_between(-365 / 365.25 - 1e-9, 1e-9).all()
+    two, five = _kfre_by_hand(
+        ok["age_years"].to_numpy(),
+        (ok["sex"] == "male").cast(pl.Float64).to_numpy(),
+        ok["egfr"].to_numpy(),
+        ok["uacr_mg_g"].to_numpy(),
+    )
+    np.testing.assert_allclose(ok["kfre_2y"].to_numpy(), two, rtol=1e-12)
+    np.testing.assert_allclose(ok["kfre_5y"].to_numpy(), five, rtol=1e-12)
+    no = kfre.filter(~pl.col("kfre_applicable"))
+    assert no["kfre_2y"].is_null().all() and no["kfre_5y"].is_null().all()
+    high = no.filter(pl.col("egfr") >= 60)
+    assert high.height > 0 and (
+        high["kfre_reason"].is_in(["egfr_not_below_60", "missing_input"]).all()
+    )
+    assert (no.filter(pl.col("uacr_mg_g").is_null())["kfre_reason"] == "missing_input").all()
+
+
+def test_kfre_summary_counts_and_small_cells(cohort_run) -> None:
+    run, inputs = cohort_run
+    table = pl.read_csv(run / "tables/kfre_summary.csv", infer_schema=False)
+    kfre = pl.read_parquet(run / "kfre.parquet")
+    groups = pl.read_parquet(inputs / "patients.parquet")["group"].value_counts()
+    assert table.columns == [
+        "characteristic",
+        "statistic",
+        "level",
+        *sorted(groups["group"]),
+        "Overall",
+    ]
+    n_row = table.filter(pl.col("characteristic") == "N").row(0, named=True)
+    for group, n in groups.rows():
+        assert int(n_row[group]) == n
+    assert int(n_row["Overall"]) == PATIENTS
+    applicable = table.filter(pl.col("characteristic") == "KFRE applicable").row(0, named=True)
+    n_ok = int(kfre["kfre_applicable"].sum())
+    assert applicable["Overall"] == f"{n_ok} ({100 * n_ok / PATIENTS:.1f}%)"
+    # median of the applicable patients' 2-year risk, in %, against numpy.median
+    median = table.filter(pl.col("characteristic") == "2-year kidney failure risk, %")
+    want = np.median(kfre.filter(pl.col("kfre_applicable"))["kfre_2y"].to_numpy()) * 100
+    assert median["Overall"][0].startswith(f"{want:.1f} [")
+    # no count from 1 to 10 is printed anywhere
+    counts = table.filter(pl.col("statistic") != "median [Q1, Q3]")
+    for column in counts.columns[3:]:
+        numbers = counts[column].str.extract(r"^(\d+)", 1).cast(pl.Int64).drop_nulls()
+        assert not numbers.is_between(1, 10).any(), column
+    # applicable plus every reason make up N in the overall column
+    block = table.filter(pl.col("characteristic").is_in(["KFRE applicable", "KFRE not applicable"]))
+    visible = block["Overall"].str.extract(r"^(\d+)", 1).cast(pl.Int64)
+    if visible.null_count() == 0:
+        assert int(visible.sum()) == PATIENTS
+
+
+def test_report_holds_the_cohort_sections(cohort_run) -> None:
+    run, _ = cohort_run
+    html = (run / "report.html").read_text(encoding="utf-8")
+    assert "Lakeshore-Granite kidney cohort" in html
+    for text in ("KDIGO GFR x albuminuria grid", "KDIGO category transitions", "data:image/png"):
+        assert text in html
+    manifest = json.loads((run / "manifest.json").read_text())
+    listed = {o["file"] for o in manifest["outputs"]}
+    assert {"report.html", "kfre.parquet", "tables/kfre_summary.csv"} <= listed
