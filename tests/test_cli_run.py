@@ -132,3 +132,49 @@ def test_bad_data_in_a_step_exits_2_and_points_to_the_log(tmp_path: Path) -> Non
     assert "data.labs" in result.output and "log:" in result.output
     assert (tmp_path / "run.failed" / "run.log").is_file()
     assert not (tmp_path / "run").exists()
+
+
+def test_demo_study_cohort_runs_the_cohort_config(tmp_path: Path) -> None:
+    out = tmp_path / "demo"
+    result = _invoke(
+        "demo",
+        "--study",
+        "cohort",
+        "--patients",
+        "300",
+        "--out",
+        str(out),
+        "--set",
+        "figures.formats=[png]",
+        "--set",
+        "figures.dpi=50",
+    )
+    assert result.exit_code == 0, result.output
+    assert "report:" in result.output and (out / "report.html").is_file()
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["study"]["recipe"] == "cohort_progression"
+    assert "figures.dpi=50" in manifest["overrides"]
+    patients = next(r for r in manifest["accounting"] if r["table"] == "patients")
+    assert patients["rows_read"] == 300
+    for rel in (
+        "stages.parquet",
+        "kfre.parquet",
+        "tables/kdigo_grid.csv",
+        "tables/kfre_summary.csv",
+    ):
+        assert (out / rel).is_file(), rel
+    assert (tmp_path / "demo_inputs" / "patients.parquet").is_file()
+
+
+def test_demo_unknown_study_exits_2() -> None:
+    result = _invoke("demo", "--study", "cohrt")
+    assert result.exit_code == 2
+    assert "cohrt" in result.output and "cohort" in result.output
+
+
+def test_run_demo_unknown_study_is_a_config_error(tmp_path: Path) -> None:
+    from kidneycohort.errors import ConfigError
+    from kidneycohort.pipeline.demo import run_demo
+
+    with pytest.raises(ConfigError, match="unknown demo 'cohrt' \\(did you mean 'cohort'\\?\\)"):
+        run_demo(tmp_path / "x", study="cohrt")  # type: ignore[arg-type]

@@ -18,7 +18,7 @@ PAIRS = [
     *[(p, SHIPPED / "configs" / p.name) for p in sorted((ROOT / "configs").glob("demo_*.yaml"))],
     *[
         (ROOT / "synthetic" / n, SHIPPED / "scenarios" / n)
-        for n in ("trial_two_arm.yaml", "trial_two_arm_dirty.yaml")
+        for n in ("trial_two_arm.yaml", "trial_two_arm_dirty.yaml", "ehr_cohort.yaml")
     ],
 ]
 
@@ -42,3 +42,14 @@ def test_demo_configs_validate(name: str) -> None:
         config = load_config(folder / name)
         assert config.study.primary_equation == "ckd_epi_2021_cr"
         assert [s.name for s in config.steps][:2] == ["harmonize", "egfr"]
+
+
+def test_each_demo_finds_its_config_and_scenario() -> None:
+    from kidneycohort.pipeline.demo import DEMOS, demo_config_path, demo_scenario_path
+
+    assert set(DEMOS) == {"trial", "cohort"}
+    for study, spec in DEMOS.items():
+        assert demo_config_path(study).name == spec.config  # type: ignore[arg-type]
+        assert demo_scenario_path(study).name == spec.scenario  # type: ignore[arg-type]
+    recipes = {s: load_config(demo_config_path(s)).recipe.name for s in DEMOS}  # type: ignore[arg-type]
+    assert recipes == {"trial": "trial_endpoints", "cohort": "cohort_progression"}
