@@ -297,3 +297,29 @@ def test_unknown_key_inside_a_tagged_union_item() -> None:
         match=r"endpoints\.definitions\[1\]: unknown key 'percnt' \(did you mean 'percent'\?\)",
     ):
         check_keys(data, Section, "endpoints")
+
+
+def test_a_step_reading_the_folder_sees_the_finished_tables(tmp_path: Path) -> None:
+    # a registry of its own: the test steps plus one that lists the folder it finds
+    from kidneycohort.pipeline import StepContext
+
+    registry = build_test_registry()
+    seen: dict[str, list[str]] = {}
+
+    @registry.register("look", makes=["looked"], reads_folder=True)
+    def look(ctx: StepContext) -> dict[str, pl.DataFrame]:
+        """Record the run folder's files (as the report step reads them)."""
+        seen["files"] = sorted(
+            p.relative_to(ctx.run_dir).as_posix() for p in ctx.run_dir.rglob("*")
+        )
+        return {"looked": pl.DataFrame({"n": [len(seen["files"])]})}
+
+    config = write_study(tmp_path, ["scale", "count", "look"], extra="  markdown: false\n")
+    study = load_config(config, registry=registry)
+    assert study.output.markdown is False
+    run_pipeline(study)
+    # the workbook is written, and the Markdown copies removed, before the step runs
+    assert "tables/tables.xlsx" in seen["files"]
+    assert "tables/lab_counts.csv" in seen["files"]
+    assert not any(f.endswith(".md") for f in seen["files"])
+    assert "manifest.json" in seen["files"]  # the manifest so far, for the report
