@@ -359,94 +359,200 @@ def _gfr_results(egfr: FrameLike, value_filter: ValueFilter | None) -> pl.DataFr
     )
 
 
-def _confirm(results: pl.DataFrame, rule: SustainRule, level: str = "category") -> pl.DataFrame:
+# Packed integer sort keys stay below 2**62, inside a signed 64-bit integer.
+_PACKED_KEY_BITS: Final = 62
+# Times are compared in whole microdays: ``_days`` is already rounded to 6 decimals.
+_MICRODAYS: Final = 1_000_000
+# Sort code of a missing level (the level codes run from 0 to 6).
+_NO_LEVEL: Final = 7
+
+
+def _bits(n: int) -> int:
+    """Number of bits that hold every integer from 0 to ``n``."""
+    return max(int(n), 0).bit_length()
+
+
+def _sort_sequences(df: pl.DataFrame) -> pl.DataFrame:
+    """Sort by patient, equation, axis, time and level code; add ``_gid`` and ``_t``.
+
+    ``df`` holds the integer keys ``_pc`` and ``_ec`` (lexical ranks of patient and
+    equation), ``_ac`` (axis G) and ``_days``. ``_gid`` numbers the patient x equation x
+    axis sequences; ``_t`` is the time in microdays from the earliest result (missing
+    times last). The five keys are packed into one 64-bit integer when they fit: sorting
+    one integer column is several times faster than sorting strings or several columns.
+    Otherwise the integer columns are sorted as they are (same order).
+    """
+    df = df.with_columns(
+        _t=(pl.col("_days") * _MICRODAYS).round().cast(pl.Int64),
+        _lc=pl.col("_lv").cast(pl.Int64).fill_null(_NO_LEVEL),
+    )
+    pc_max, ec_max, t_min, t_max = df.select(
+        pl.col("_pc").max(),
+        pl.col("_ec").max(),
+        pl.col("_t").min().alias("_t_min"),
+        pl.col("_t").max().alias("_t_max"),
+    ).row(0)
+    ec_span = (ec_max or 0) + 1
+    t_min = t_min or 0
+    t_missing = (t_max or 0) - t_min + 1
+    df = df.with_columns(
+        _seq=(pl.col("_pc") * ec_span + pl.col("_ec")) * 2 + pl.col("_ac").cast(pl.Int64),
+        _t=(pl.col("_t") - t_min).fill_null(t_missing),
+    )
+    seq_bits = _bits(((pc_max or 0) + 1) * ec_span * 2)
+    t_bits = _bits(t_missing)
+    if seq_bits + t_bits + 3 <= _PACKED_KEY_BITS:
+        packed = (pl.col("_seq") * (1 << t_bits) + pl.col("_t")) * 8 + pl.col("_lc")
+        df = df.sort(packed)
+    else:
+        df = df.sort("_seq", "_t", "_lc")
+    new_sequence = (pl.col("_seq") != pl.col("_seq").shift(1)).fill_null(True)
+    return df.with_columns(_gid=new_sequence.cast(pl.Int64).cum_sum()).drop(
+        "_pc", "_ec", "_lc", "_seq"
+    )
+
+
+def _merge_ties(candidates: pl.DataFrame, right: pl.DataFrame, level: str) -> pl.DataFrame:
+    """Give each tied time point of ``right`` the combined level, date and years of its rows.
+
+    ``right`` holds the first row of every time point of ``candidates`` in order, so the
+    time point numbered ``k`` is row ``k`` of ``right``; only tied rows are grouped.
+    """
+    tie = pl.col("_tie")
+    tied = candidates.with_columns(_tp=(~tie).cast(pl.Int64).cum_sum() - 1).filter(
+        tie | tie.shift(-1).fill_null(False)
+    )
+    merged = tied.group_by("_tp").agg(
+        _value=pl.col("value").mean(),
+        _lo=pl.col("_lv").min(),
+        _hi=pl.col("_lv").max(),
+        _g_axis=pl.col("_ac").first(),
+        _date=pl.col("sample_date").min(),
+        _years=pl.col("years_from_index").min(),
+    )
+    combined = pl.col("_lo")
+    if level == "category":
+        # tied values in different categories: the category of their mean value
+        combined = (
+            pl.when(pl.col("_lo") == pl.col("_hi"))
+            .then(pl.col("_lo"))
+            .when("_g_axis")
+            .then(_code(gfr_category_expr("_value")))
+            .otherwise(_code(albuminuria_category_expr("_value")))
+        )
+    merged = merged.with_columns(_level=combined.cast(pl.Int8))
+    at = merged["_tp"]
+    columns = []
+    for column, source in (
+        ("_lv", "_level"),
+        ("sample_date", "_date"),
+        ("years_from_index", "_years"),
+    ):
+        values = right[column].clone()
+        values.scatter(at, merged[source].cast(values.dtype))
+        columns.append(values)
+    return right.with_columns(columns)
+
+
+_LABELS: Final = ("patient_id", "equation", "axis", "category")
+
+
+def _confirm(
+    results: pl.DataFrame, rule: SustainRule, level: str = "category", labels: bool = True
+) -> pl.DataFrame:
     """Add ``used``, ``confirmed``, ``confirm_date``, ``confirm_years`` on the ``level`` column.
 
-    Returns the rows sorted by patient, equation, axis and time, with ``_row`` (input
-    position) and ``_gid`` (an integer id of the patient x equation x axis sequence) so
-    that later window expressions run over one integer key.
+    Returns the rows sorted by patient, equation, axis, time and level (lexical order of
+    the keys), with ``_row`` (input position), ``_gid`` (an integer id of the patient x
+    equation x axis sequence), ``_t`` (time in microdays) and ``_lv`` (level code) so
+    that later steps run over integer keys. Only numbers are sorted; the text columns
+    (:data:`_LABELS`, ``_eq`` and the ``level`` column) are attached afterwards, or left
+    out with ``labels=False`` for callers that fetch them by ``_row`` for a few rows.
     """
-    df = (
-        results.with_columns(
-            _eq=pl.col("equation").fill_null(""),
-            _days=(pl.col("years_from_index") * schemas.DAYS_PER_YEAR).round(6),
-            used=pl.col(level).is_not_null()
-            & ~pl.col("excluded")
-            & pl.col("years_from_index").is_not_null(),
-            # integer code of the level: integer comparisons and reductions are cheap
-            _lv=_code(pl.col(level)),
-        )
-        .with_row_index("_row")
-        .with_columns(
-            # integer codes of the sequence keys: sorting integers is much cheaper than
-            # strings, and the codes only group (their order carries no meaning)
-            _pc=pl.col("patient_id").cast(pl.Categorical).to_physical(),
-            _ec=pl.col("_eq").cast(pl.Categorical).to_physical(),
-            _ac=pl.col("axis") == "G",
-        )
-        .sort(["_pc", "_ec", "_ac", "_days"], nulls_last=True)
-    )
-    codes = ("_pc", "_ec", "_ac")
-    change = pl.any_horizontal([pl.col(k) != pl.col(k).shift(1) for k in codes])
-    df = df.with_columns(_gid=change.fill_null(True).cum_sum()).drop(codes)
+    keyed = results.select(
+        # lexical ranks of the sequence keys, integer code of the level: integer sorts,
+        # comparisons and reductions are cheap
+        _pc=pl.col("patient_id").rank("dense").fill_null(0).cast(pl.Int64),
+        _ec=pl.col("equation").fill_null("").rank("dense").cast(pl.Int64),
+        _ac=pl.col("axis") == "G",
+        _days=(pl.col("years_from_index") * schemas.DAYS_PER_YEAR).round(6),
+        used=pl.col(level).is_not_null()
+        & ~pl.col("excluded")
+        & pl.col("years_from_index").is_not_null(),
+        _lv=_code(pl.col(level)),
+        value=pl.col("value"),
+        sample_date=pl.col("sample_date"),
+        years_from_index=pl.col("years_from_index"),
+    ).with_row_index("_row")
+    df = _sort_sequences(keyed)
     # one confirming candidate per time point: ties at the same time use their mean value,
-    # so the answer does not depend on row order (the group-by runs only when ties exist)
-    candidates = df.filter("used")
-    tie = (pl.col("_gid") == pl.col("_gid").shift(1)) & (
-        pl.col("_days") == pl.col("_days").shift(1)
+    # so the answer does not depend on row order (only the tied rows are grouped)
+    tie = (pl.col("_gid") == pl.col("_gid").shift(1)) & (pl.col("_t") == pl.col("_t").shift(1))
+    candidates = (
+        df.filter("used")
+        .select("_gid", "_t", "_lv", "value", "_ac", "sample_date", "years_from_index")
+        .with_columns(_tie=tie.fill_null(False))
     )
-    if candidates.select(tie.fill_null(False).any()).item():
-        # tied rows are contiguous after the sort: number the time points and reduce
-        # over that one integer key
-        right = (
-            candidates.with_columns(_tg=(~tie).fill_null(True).cum_sum())
-            .group_by("_tg", maintain_order=True)
-            .agg(
-                pl.col("_gid").first(),
-                pl.col("_days").first(),
-                _c_value=pl.col("value").mean(),
-                _c_level=pl.col("_lv").min(),
-                _c_level_max=pl.col("_lv").max(),
-                _c_axis=pl.col("axis").first(),
-                _c_date=pl.col("sample_date").min(),
-                _c_years=pl.col("years_from_index").min(),
-            )
+    right = candidates.filter(~pl.col("_tie"))
+    if right.height < candidates.height:
+        right = _merge_ties(candidates, right, level)
+    right = right.select(
+        pl.col("_gid").alias("_c_gid"),
+        pl.col("_t").alias("_c_t"),
+        pl.col("_lv").alias("_c_level"),
+        pl.col("sample_date").alias("_c_date"),
+        pl.col("years_from_index").alias("_c_years"),
+    )
+    after = round(rule.confirm_after_days * _MICRODAYS)
+    left = df.with_columns(_target=pl.col("_t") + after)
+    # the first candidate at or after the target time of the same sequence: with the
+    # sequence and the time packed into one sorted integer the as-of join needs no
+    # grouping, and a match in a later sequence is discarded below
+    span = _bits(int(df["_t"].max() or 0) + after + 1)
+    if _bits(int(df["_gid"].max() or 0)) + span <= _PACKED_KEY_BITS:
+        scale = 1 << span
+        joined = left.with_columns(
+            _key=(pl.col("_gid") * scale + pl.col("_target")).set_sorted()
+        ).join_asof(
+            right.with_columns(_key=(pl.col("_c_gid") * scale + pl.col("_c_t")).set_sorted()),
+            on="_key",
+            strategy="forward",
+            check_sortedness=False,
         )
-        if level == "category":
-            right = right.with_columns(
-                _c_level=pl.when(pl.col("_c_level") == pl.col("_c_level_max"))
-                .then(pl.col("_c_level"))
-                .when(pl.col("_c_axis") == "G")
-                .then(_code(gfr_category_expr("_c_value")))
-                .otherwise(_code(albuminuria_category_expr("_c_value")))
-            )
-        right = right.drop("_tg", "_c_value", "_c_level_max", "_c_axis")
     else:
-        right = candidates.select(
-            "_gid",
-            "_days",
-            pl.col("_lv").alias("_c_level"),
-            pl.col("sample_date").alias("_c_date"),
-            pl.col("years_from_index").alias("_c_years"),
+        joined = left.join_asof(
+            right.with_columns(_gid=pl.col("_c_gid")),
+            left_on="_target",
+            right_on="_c_t",
+            by="_gid",
+            strategy="forward",
+            check_sortedness=False,
         )
-    right = right.rename({"_days": "_c_days"})
-    left = df.with_columns(_target=pl.col("_days") + rule.confirm_after_days)
-    joined = left.join_asof(
-        right,
-        left_on="_target",
-        right_on="_c_days",
-        by="_gid",
-        strategy="forward",
-        check_sortedness=False,
+    ok = (
+        pl.col("used")
+        & (pl.col("_c_gid") == pl.col("_gid")).fill_null(False)
+        & (pl.col("_c_level") == pl.col("_lv")).fill_null(False)
     )
-    ok = pl.col("used") & (pl.col("_c_level") == pl.col("_lv")).fill_null(False)
     if rule.confirm_within_days is not None:
-        ok = ok & ((pl.col("_c_days") - pl.col("_days")) <= rule.confirm_within_days)
-    return joined.with_columns(
+        ok = ok & ((pl.col("_c_t") - pl.col("_t")) <= round(rule.confirm_within_days * _MICRODAYS))
+    out = joined.with_columns(
         confirmed=pl.when("used").then(ok),
         confirm_date=pl.when(ok).then(pl.col("_c_date")),
         confirm_years=pl.when(ok).then(pl.col("_c_years")),
-    ).drop("_target", "_c_days", "_c_level", "_c_date", "_c_years", "_lv")
+    ).drop(
+        "_target", "_c_gid", "_c_t", "_c_level", "_c_date", "_c_years", "_key", "_ac", strict=False
+    )
+    if not labels:
+        return out
+    return out.with_columns(_labels(results, out["_row"], level))
+
+
+def _labels(results: pl.DataFrame, rows: pl.Series, level: str = "category") -> pl.DataFrame:
+    """The text columns of ``results`` at positions ``rows``, with ``_eq``."""
+    names = list(dict.fromkeys([*_LABELS, level]))
+    return results.select(pl.col(names).gather(rows)).with_columns(
+        _eq=pl.col("equation").fill_null("")
+    )
 
 
 def _results(
@@ -498,8 +604,10 @@ def category_results(
         ``confirm_years``.
     """
     rule = rule or SustainRule()
-    out = _confirm(_results(egfr, labs, patients, rule, value_filter), rule).sort("_row")
-    return out.select(
+    results = _results(egfr, labs, patients, rule, value_filter)
+    # back in input order, where the text columns of ``results`` already are
+    out = _confirm(results, rule, labels=False).sort("_row")
+    return out.with_columns(results.select(_LABELS)).select(
         "patient_id",
         "equation",
         "axis",
@@ -533,29 +641,29 @@ def sustained_stages(
         equation (x axis) with at least one usable result has at least one row.
     """
     rule = rule or SustainRule()
-    results = _confirm(_results(egfr, labs, patients, rule, value_filter), rule)
-    return _stages_from_results(results)
+    results = _results(egfr, labs, patients, rule, value_filter)
+    return _stages_from_results(_confirm(results, rule, labels=False), results)
 
 
-def _stages_from_results(results: pl.DataFrame) -> pl.DataFrame:
-    # rows arrive sorted by sequence (``_gid``) and time from _confirm; windows run over
-    # the integer ``_gid`` only
-    used = results.filter("used").with_columns(
-        _rank=pl.col("category").replace_strict(_RANK, return_dtype=pl.Int8)
-    )
-    used = used.sort("_gid", "_days", "_rank")
-    # a new stage starts at every confirmed result whose category differs from the one
-    # in force; unconfirmed results belong to the stage in force (or to stage 0). Global
+def _stages_from_results(confirmed_results: pl.DataFrame, results: pl.DataFrame) -> pl.DataFrame:
+    # rows arrive sorted by sequence (``_gid``), time and category rank from _confirm. A
+    # new stage starts at every confirmed result whose category differs from the one in
+    # force; unconfirmed results belong to the stage in force (or to stage 0). Global
     # forward fills and cumulative sums, reset at each sequence start, stand in for
-    # window expressions over ``_gid`` (much cheaper on millions of rows).
+    # window expressions, and the stages are the rows where one starts (no group-by).
+    used = confirmed_results.filter("used")
     confirmed = pl.col("confirmed").fill_null(False)
     row = pl.int_range(pl.len(), dtype=pl.Int64)
-    first_row = (pl.col("_gid") != pl.col("_gid").shift(1)).fill_null(True)
+    gid = pl.col("_gid")
+    first_row = (gid != gid.shift(1)).fill_null(True)
+    last_row = (gid != gid.shift(-1)).fill_null(True)
     used = used.with_columns(
+        _r=row,
         _first=first_row,
         _seq_start=pl.when(first_row).then(row).forward_fill(),
+        _seq_end=pl.when(last_row).then(row).backward_fill(),
         _last_confirmed=pl.when(confirmed).then(row).forward_fill(),
-        _ff=pl.when(confirmed).then(pl.col("category")).forward_fill(),
+        _ff=pl.when(confirmed).then(pl.col("_lv")).forward_fill(),
     ).with_columns(
         _in_force=pl.when(pl.col("_last_confirmed") >= pl.col("_seq_start")).then(pl.col("_ff"))
     )
@@ -570,57 +678,71 @@ def _stages_from_results(results: pl.DataFrame) -> pl.DataFrame:
         stage_number=pl.col("_cs")
         - pl.when("_first").then(pl.col("_cs") - pl.col("_changed")).forward_fill()
     )
-    last = used.group_by("_gid").agg(
-        _last_years=pl.col("years_from_index").last(),
-        _last_date=pl.col("sample_date").last(),
-        _last_stage=pl.col("stage_number").last(),
+    stages = used.filter(pl.col("_first") | (pl.col("_changed") == 1))
+    # the last usable result of each sequence closes its last stage
+    ends = stages["_seq_end"]
+    stages = stages.with_columns(
+        _labels(results, stages["_row"]),
+        _last_date=used["sample_date"].gather(ends),
+        _last_years=used["years_from_index"].gather(ends),
     )
-    stages = (
-        used.group_by("_gid", "stage_number")
-        .agg(
-            pl.col("patient_id").first(),
-            pl.col("equation").first(),
-            pl.col("axis").first(),
-            category=pl.col("_in_force").first(),
-            start_date=pl.col("sample_date").first(),
-            start_years=pl.col("years_from_index").first(),
-            confirmed_date=pl.col("confirm_date").first(),
-            n_results=pl.len().cast(pl.Int32),
-        )
-        .join(last, on="_gid")
-        .sort("_gid", "stage_number")
-    )
-    is_last = pl.col("stage_number") == pl.col("_last_stage")
+    is_last = (gid.shift(-1) != gid).fill_null(True)
     stage_zero = pl.col("stage_number") == 0
     stages = stages.with_columns(
+        start_date=pl.col("sample_date"),
+        start_years=pl.col("years_from_index"),
+        n_results=pl.when(is_last).then(pl.col("_seq_end") + 1).otherwise(pl.col("_r").shift(-1))
+        - pl.col("_r"),
         end_date=pl.when(is_last)
         .then(pl.col("_last_date"))
-        .otherwise(pl.col("start_date").shift(-1)),
+        .otherwise(pl.col("sample_date").shift(-1)),
         end_years=pl.when(is_last)
         .then(pl.col("_last_years"))
-        .otherwise(pl.col("start_years").shift(-1)),
+        .otherwise(pl.col("years_from_index").shift(-1)),
         is_last=is_last,
         category=pl.when(stage_zero).then(None).otherwise(pl.col("category")),
-        confirmed_date=pl.when(stage_zero).then(None).otherwise(pl.col("confirmed_date")),
+        confirmed_date=pl.when(stage_zero).then(None).otherwise(pl.col("confirm_date")),
     )
     return conform(stages, STAGES)
 
 
+def _in_sequence_order(df: pl.DataFrame, columns: list[str]) -> bool:
+    """True when ``df`` is already sorted by ``columns`` (no missing keys)."""
+    if any(df[c].null_count() for c in columns):
+        return False
+    ok = pl.lit(True)
+    for column in reversed(columns):
+        current, previous = pl.col(column), pl.col(column).shift(1)
+        ok = (current > previous) | ((current == previous) & ok)
+    return bool(df.select(ok.fill_null(True).all()).item())
+
+
 def _with_keys(stages: FrameLike) -> pl.DataFrame:
+    """Stages in patient, equation, axis and stage order, with an integer sequence ``_gid``.
+
+    :func:`sustained_stages` already returns that order, so the sort runs only for
+    tables that arrive in another order.
+    """
     df = to_polars(stages, "stages")
     require_columns(df, ("patient_id", "axis", "stage_number", "category", "start_years"), "stages")
     if "equation" not in df.columns:
         df = df.with_columns(equation=pl.lit(None, dtype=pl.String))
-    return df.with_columns(_eq=pl.col("equation").fill_null("")).sort([*_KEYS, "stage_number"])
+    df = df.with_columns(_eq=pl.col("equation").fill_null(""))
+    order = [*_KEYS, "stage_number"]
+    if not _in_sequence_order(df, order):
+        df = df.sort(order)
+    same = pl.all_horizontal([pl.col(k).eq_missing(pl.col(k).shift(1)) for k in _KEYS])
+    return df.with_columns(_gid=(~same).cast(pl.Int64).cum_sum())
 
 
 def _ranked_transitions(stages: pl.DataFrame) -> pl.DataFrame:
     df = stages.filter(pl.col("category").is_not_null()).with_columns(
         _rank=pl.col("category").replace_strict(_RANK, return_dtype=pl.Int8)
     )
+    same = pl.col("_gid") == pl.col("_gid").shift(1)
     df = df.with_columns(
-        from_category=pl.col("category").shift(1).over(_KEYS),
-        _from_rank=pl.col("_rank").shift(1).over(_KEYS),
+        from_category=pl.when(same).then(pl.col("category").shift(1)),
+        _from_rank=pl.when(same).then(pl.col("_rank").shift(1)),
     )
     return df.filter(pl.col("from_category").is_not_null()).with_columns(
         to_category=pl.col("category"),
@@ -731,26 +853,26 @@ def time_to_first_worsening(stages: FrameLike) -> pl.DataFrame:
         ``"censored_at_last_value"`` or ``"no_values_after_index"``).
     """
     df = _with_keys(stages)
-    keys = df.group_by(_KEYS, maintain_order=True).agg(
-        pl.col("equation").first(), _last_years=pl.col("end_years").max()
+    keys = df.group_by("_gid", maintain_order=True).agg(
+        pl.col("patient_id", "equation", "axis").first(), _last_years=pl.col("end_years").max()
     )
     at_index = (
         df.filter(pl.col("start_years") <= 0)
-        .group_by(_KEYS)
+        .group_by("_gid")
         .agg(category_at_index=pl.col("category").last())
     )
     worse = (
         _ranked_transitions(df)
         .filter((pl.col("direction") == "worsening") & (pl.col("start_years") > 0))
-        .group_by(_KEYS)
+        .group_by("_gid")
         .agg(
             _event_years=pl.col("start_years").first(),
             event_date=pl.col("transition_date").first(),
             to_category=pl.col("to_category").first(),
         )
     )
-    out = keys.join(at_index, on=_KEYS, how="left", maintain_order="left").join(
-        worse, on=_KEYS, how="left", maintain_order="left"
+    out = keys.join(at_index, on="_gid", how="left", maintain_order="left").join(
+        worse, on="_gid", how="left", maintain_order="left"
     )
     has_event = pl.col("_event_years").is_not_null()
     out = out.with_columns(
