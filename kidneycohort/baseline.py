@@ -32,7 +32,7 @@ from pydantic import Field, model_validator
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
-from kidneycohort.aki import RuleModel, ValueFilter, apply_value_filter, egfr_keys, usable_egfr
+from kidneycohort.aki import RuleModel, ValueFilter, apply_value_filter, usable_egfr
 from kidneycohort.errors import ConfigError, InputDataError
 
 logger = logging.getLogger(__name__)
@@ -101,25 +101,27 @@ class BaselineRule(RuleModel):
 
 
 def _baseline_core(
-    df: pl.DataFrame, keys: pl.DataFrame, key_cols: list[str], rule: BaselineRule
+    df: pl.DataFrame, keys: pl.DataFrame | None, key_cols: list[str], rule: BaselineRule
 ) -> pl.DataFrame:
     """Baseline per key from a frame with ``_days``, ``_value``, ``_finite``, ``excluded``.
 
     Returns ``key_cols`` + ``_baseline``, ``baseline_date``, ``baseline_n_values``,
-    ``baseline_reason`` for every row of ``keys``.
+    ``baseline_reason`` for every row of ``keys``, or with ``keys=None`` for every key of
+    ``df`` in first-seen order. One group-by over all rows: values that are not eligible
+    are masked to null, and the small per-key sorts of the masked values put the
+    eligible ones last in time (ties by value, highest last).
     """
     in_window = pl.col("_days").is_between(rule.window_start_days, rule.window_end_days)
-    status = df.group_by(key_cols).agg(
-        _any_finite=pl.col("_finite").any(),
-        _any_in_window=(pl.col("_finite") & in_window).any(),
-        _n_used=(pl.col("_finite") & in_window & ~pl.col("excluded")).sum(),
+    eligible = pl.col("_finite") & in_window & ~pl.col("excluded")
+    df = df.with_columns(
+        _when=pl.when(eligible).then(pl.col("_days")),
+        _eligible=pl.when(eligible).then(pl.col("_value")),
     )
-    used = df.filter(pl.col("_finite") & in_window & ~pl.col("excluded")).sort(
-        [*key_cols, "_days", "_value"]
-    )
-    if rule.method == "mean_last_n":
-        used = used.group_by(key_cols, maintain_order=True).tail(rule.n)
-    value = pl.col("_value")
+    order = [pl.col("_when"), pl.col("_eligible")]
+    value = pl.col("_eligible")
+    if rule.method in ("last_in_window", "mean_last_n"):
+        # nulls (not eligible) sort first, so the last values are the latest eligible ones
+        value = value.sort_by(order).tail(1 if rule.method == "last_in_window" else rule.n)
     geometric = rule.mean_type == "geometric" and rule.method in ("mean_in_window", "mean_last_n")
     if rule.method == "last_in_window":
         agg = value.last()
@@ -129,9 +131,14 @@ def _baseline_core(
         agg = pl.when((value > 0).all()).then(value.log().mean().exp())
     else:
         agg = value.mean()
-    n_used = pl.len() if rule.method != "last_in_window" else pl.lit(1)
-    date = pl.col("sample_date").last() if "sample_date" in df.columns else pl.lit(None)
-    found = used.group_by(key_cols).agg(
+    n_used = value.count() if rule.method != "last_in_window" else pl.lit(1)
+    date = (
+        pl.col("sample_date").sort_by(order).last() if "sample_date" in df.columns else pl.lit(None)
+    )
+    found = df.group_by(key_cols, maintain_order=keys is None).agg(
+        _any_finite=pl.col("_finite").any(),
+        _any_in_window=(pl.col("_finite") & in_window).any(),
+        _n_used=eligible.sum(),
         _baseline=agg,
         baseline_date=date.cast(pl.Date),
         baseline_n_values=n_used.cast(pl.Int32),
@@ -152,10 +159,9 @@ def _baseline_core(
         .then(pl.lit("nonpositive_value_for_geometric_mean"))
     )
     out = (
-        keys.join(status, on=key_cols, how="left", maintain_order="left")
-        .join(found, on=key_cols, how="left", maintain_order="left")
-        .with_columns(baseline_reason=reason)
+        found if keys is None else keys.join(found, on=key_cols, how="left", maintain_order="left")
     )
+    out = out.with_columns(baseline_reason=reason)
     no_value = pl.col("baseline_reason").is_not_null()
     return out.with_columns(
         _baseline=pl.when(no_value).then(None).otherwise(pl.col("_baseline")),
@@ -209,8 +215,7 @@ def baseline(
     """
     rule = rule or BaselineRule()
     df = usable_egfr(egfr, value_filter).rename({"egfr": "_value"})
-    keys = egfr_keys(df)
-    out = _baseline_core(df, keys, ["patient_id", "equation"], rule)
+    out = _baseline_core(df, None, ["patient_id", "equation"], rule)
     out = out.with_columns(
         baseline_egfr=pl.col("_baseline"), baseline_method=pl.lit(rule.describe())
     )

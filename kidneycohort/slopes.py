@@ -44,7 +44,7 @@ from pydantic import Field, model_validator
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform
-from kidneycohort.aki import RuleModel, ValueFilter, egfr_keys, usable_egfr
+from kidneycohort.aki import RuleModel, ValueFilter, usable_egfr
 from kidneycohort.errors import ConfigError
 
 logger = logging.getLogger(__name__)
@@ -149,21 +149,23 @@ def egfr_slopes(
     """
     rule = rule or SlopeRule()
     df = usable_egfr(egfr, value_filter)
-    keys = egfr_keys(df)
-    x = pl.col("years_from_index")
-    use = df["_finite"] & ~df["excluded"]
+    use = pl.col("_finite") & ~pl.col("excluded")
     if rule.from_years is not None:
-        use = use & (df["years_from_index"] >= rule.from_years)
+        use = use & (pl.col("years_from_index") >= rule.from_years)
     if rule.to_years is not None:
-        use = use & (df["years_from_index"] <= rule.to_years)
-    used = df.filter(use)
-    y = pl.col("egfr")
+        use = use & (pl.col("years_from_index") <= rule.to_years)
+    # values not used are masked to null (sums and extremes skip them), so one group-by
+    # over every row gives each patient x equation of the input in first-seen order
+    df = df.with_columns(
+        _x=pl.when(use).then(pl.col("years_from_index")), _y=pl.when(use).then(pl.col("egfr"))
+    )
+    x, y = pl.col("_x"), pl.col("_y")
     positive = (y > 0).all()
     # a patient with a non-positive value gets no log slope (_positive); 0.0 only keeps
     # the sums finite
-    ly = pl.when(y > 0).then(y.log()).otherwise(0.0)
-    fits = used.group_by("patient_id", "equation").agg(
-        pl.len().cast(pl.Int32).alias("n_values"),
+    ly = pl.when(y > 0).then(y.log()).when(y.is_not_null()).then(0.0)
+    fits = df.group_by("patient_id", "equation", maintain_order=True).agg(
+        y.count().cast(pl.Int32).alias("n_values"),
         (x.max() - x.min()).alias("span_years"),
         positive.alias("_positive"),
         *_ols_aggs(x, y, "_"),
@@ -183,8 +185,6 @@ def egfr_slopes(
         slope_se=pl.when(has_slope & (n >= 3)).then((rss / ((n - 2) * sxx)).sqrt()),
         log_slope_pct_per_year=(log_slope.exp() - 1.0) * 100.0,
     )
-    out = keys.join(fits, on=["patient_id", "equation"], how="left", maintain_order="left")
-    n = pl.col("n_values").fill_null(0)
     # a span a hair under the threshold from the years round trip still counts
     reason = (
         pl.when(n == 0)
@@ -194,7 +194,7 @@ def egfr_slopes(
         .when(pl.col("span_years") < rule.min_span_years - 1e-9)
         .then(pl.lit("span_below_min_years"))
     )
-    out = out.with_columns(n_values=n.cast(pl.Int32), ineligible_reason=reason).with_columns(
+    out = fits.with_columns(ineligible_reason=reason).with_columns(
         eligible=pl.col("ineligible_reason").is_null()
     )
     out = out.with_columns(
