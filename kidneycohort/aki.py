@@ -194,26 +194,33 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
     # integer patient codes and times: sorting and windows on integers, not strings
     work = (
         df.select(
-            _pid=pl.col("patient_id").cast(pl.String).cast(pl.Categorical).to_physical(),
+            _pid=pl.col("patient_id").cast(pl.String).rank("dense").fill_null(0).cast(pl.Int64),
             _s=time.dt.epoch("s"),
             _creat=pl.col("creatinine_mg_dl").cast(pl.Float64),
         )
         .with_row_index("_row")
         .filter(pl.col("_creat").is_not_null() & pl.col("_s").is_not_null())
-        .sort("_pid", "_s")
     )
     # One rolling pass over the whole table instead of one per patient: each patient's
-    # times (seconds) are shifted by patient_number * gap, with a gap wider than the
-    # data span plus the longest window, so that no window reaches another patient.
+    # times (seconds) are shifted by patient_code * gap, with a gap wider than the data
+    # span plus the longest window, so that no window reaches another patient. The
+    # shifted time is then also the one integer the rows are sorted on.
     rise_s = round(rule.aki_rise_hours * 3600)
     ratio_s = round(rule.aki_ratio_days * 86400)
     recovery_s = round(rule.aki_recovery_days * 86400)
     lo = work["_s"].min() or 0
     gap = (work["_s"].max() or 0) - lo + max(rise_s, ratio_s, recovery_s) + 1
-    new_patient = (pl.col("_pid") != pl.col("_pid").shift(1)).fill_null(True)
-    work = work.with_columns(_start=new_patient.cast(pl.Int64).cum_sum() * gap).with_columns(
-        _key=pl.col("_start") + pl.col("_s") - lo
-    )
+    if ((work["_pid"].max() or 0) + 1).bit_length() + gap.bit_length() <= 62:
+        work = work.with_columns(
+            _start=pl.col("_pid") * gap, _key=pl.col("_pid") * gap + pl.col("_s") - lo
+        ).sort("_key")
+    else:  # too wide for one integer: number the patients in sorted order instead
+        new_patient = (pl.col("_pid") != pl.col("_pid").shift(1)).fill_null(True)
+        work = (
+            work.sort("_pid", "_s")
+            .with_columns(_start=new_patient.cast(pl.Int64).cum_sum() * gap)
+            .with_columns(_key=pl.col("_start") + pl.col("_s") - lo)
+        )
     creat = pl.col("_creat")
     # closed="left": the window [t - w, t) leaves out the sample itself and any row at the
     # same time (the same sample repeated under another equation)
@@ -296,15 +303,28 @@ def apply_value_filter(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.D
                 "egfr: missing column 'setting' needed by value_filter.exclude_settings="
                 f"{list(rule.exclude_settings)}; add it or set exclude_settings: []"
             )
-        setting = pl.col("setting").cast(pl.String).str.strip_chars().str.to_lowercase()
+        # spellings are normalised once per distinct value, not once per row
+        spellings = df.select(pl.col("setting").cast(pl.String).unique().drop_nulls().alias("raw"))
+        spellings = spellings.with_columns(
+            setting=pl.col("raw").str.strip_chars().str.to_lowercase()
+        ).filter(pl.col("setting").is_in(list(rule.exclude_settings)))
         reasons.append(
-            pl.when(setting.is_in(list(rule.exclude_settings))).then(pl.lit("setting_") + setting)
+            pl.col("setting")
+            .cast(pl.String)
+            .replace_strict(
+                spellings["raw"],
+                "setting_" + spellings["setting"],
+                default=None,
+                return_dtype=pl.String,
+            )
         )
     if rule.exclude_aki:
         df = flag_aki(df, rule)
-        reasons.append(pl.when(pl.col("aki_flag").fill_null(False)).then(pl.lit("aki")))
         reasons.append(
-            pl.when(pl.col("aki_recovery").fill_null(False)).then(pl.lit("aki_recovery"))
+            pl.when(pl.col("aki_flag").fill_null(False))
+            .then(pl.lit("aki"))
+            .when(pl.col("aki_recovery").fill_null(False))
+            .then(pl.lit("aki_recovery"))
         )
     reason = pl.coalesce(reasons) if reasons else pl.lit(None, dtype=pl.String)
     df = df.with_columns(exclusion_reason=reason.cast(pl.String)).with_columns(
