@@ -267,10 +267,10 @@ def test_confidence_intervals_cover_the_trial_truth_across_seeds() -> None:
     """20 seeds of the noisy scenario, 300 patients each, knot at the end of the dip.
     The 95 % CI of the active - placebo acute change, chronic slope and 3-year total
     slope covers the truth from ``.truth`` in at least 16 of 20 runs. With true 95 %
-    coverage, fewer than 16 of 20 has binomial probability 0.016 (scipy.stats.binom).
+    coverage, fewer than 16 of 20 has binomial probability 0.0026 (scipy.stats.binom).
     The CIs of the acute change and chronic slope must also cover the scenario's
     population values (mean dip and slope difference 1.0) in at least 16 of 20."""
-    assert stats.binom.cdf(15, 20, 0.95) == pytest.approx(0.016, abs=0.001)
+    assert stats.binom.cdf(15, 20, 0.95) == pytest.approx(0.0026, abs=0.0001)
     mean_dip = 3.0 + stats.norm.pdf(3.0) - 3.0 * stats.norm.sf(3.0)
     sample_cover = dict.fromkeys(("acute_change", "chronic_slope", "total_slope_3y"), 0)
     population_cover = dict.fromkeys(("acute_change", "chronic_slope"), 0)
