@@ -18,6 +18,7 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
+from kidneycohort.baseline import baseline
 from kidneycohort.cautions import CAUTIONS
 from kidneycohort.errors import (
     AccountingError,
@@ -32,6 +33,13 @@ from kidneycohort.errors import (
     UnknownEquationError,
     UnknownUnitError,
 )
+from kidneycohort.harmonize import harmonize
+from kidneycohort.kfre import kfre
+
+# baseline, harmonize and kfre share their names with the modules that define them, so
+# they are imported eagerly above: the import system sets ``kidneycohort.<module>`` to
+# the module object when a submodule is first imported, which would otherwise shadow
+# the function of the same name.
 
 __version__ = "0.1.0"
 
@@ -70,14 +78,13 @@ _PUBLIC: dict[str, str] = {
     },
     **{
         name: "kidneycohort.harmonize"
-        for name in ("harmonize", "HarmonizeRules", "HarmonizeResult", "PlausibleRange")
+        for name in ("HarmonizeRules", "HarmonizeResult", "PlausibleRange")
     },
     **{name: "kidneycohort.egfr" for name in ("compute_egfr", "egfr_wide", "EgfrRules", "AgeBand")},
     # per-patient derivations
     **{name: "kidneycohort.aki" for name in ("ValueFilter", "flag_aki", "apply_value_filter")},
     **{
-        name: "kidneycohort.baseline"
-        for name in ("baseline", "baseline_uacr", "uacr_timeline", "BaselineRule")
+        name: "kidneycohort.baseline" for name in ("baseline_uacr", "uacr_timeline", "BaselineRule")
     },
     **{name: "kidneycohort.slopes" for name in ("egfr_slopes", "SlopeRule")},
     **{
@@ -94,9 +101,10 @@ _PUBLIC: dict[str, str] = {
             "time_to_first_worsening",
             "ckd_status",
             "kdigo_progression",
+            "baseline_categories",
         )
     },
-    **{name: "kidneycohort.kfre" for name in ("kfre", "kfre_risk", "kfre_inputs")},
+    **{name: "kidneycohort.kfre" for name in ("kfre_risk", "kfre_inputs")},
     # endpoints
     **{
         name: "kidneycohort.endpoints"
@@ -114,6 +122,10 @@ _PUBLIC: dict[str, str] = {
         )
     },
     "to_adam_tte": "kidneycohort.adam",
+    **{
+        name: "kidneycohort.pipeline.summaries"
+        for name in ("kfre_at_baseline", "kfre_summary", "kdigo_grid_counts")
+    },
     # models and tables
     **{
         name: "kidneycohort.models"
@@ -171,14 +183,11 @@ _PUBLIC: dict[str, str] = {
 _SUBMODULES = (
     "adam",
     "aki",
-    "baseline",
     "egfr",
     "endpoints",
     "equations",
-    "harmonize",
     "io",
     "kdigo",
-    "kfre",
     "models",
     "pipeline",
     "plots",
@@ -204,6 +213,9 @@ __all__ = [
     "UnknownEquationError",
     "UnknownUnitError",
     "__version__",
+    "baseline",
+    "harmonize",
+    "kfre",
     *_PUBLIC,
     *_SUBMODULES,
 ]

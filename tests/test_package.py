@@ -45,3 +45,17 @@ def test_version_is_exposed() -> None:
     result = CliRunner().invoke(cli, ["--version"])
     assert result.exit_code == 0
     assert kc.__version__ in result.output
+
+
+def test_public_names_resolve_after_submodules_are_imported() -> None:
+    # importing a submodule must not shadow a public function of the same name
+    import importlib
+
+    for module in ("baseline", "harmonize", "kfre"):
+        importlib.import_module(f"kidneycohort.{module}")
+        assert callable(getattr(kc, module)) and not isinstance(
+            getattr(kc, module), type(importlib)
+        )
+    assert sorted(set(kc.__all__)) == sorted(kc.__all__)
+    missing = [name for name in kc.__all__ if not hasattr(kc, name)]
+    assert missing == []
