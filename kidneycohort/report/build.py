@@ -57,6 +57,7 @@ KNOWN_TABLES: Final = (
     "transition_matrix",
     "endpoint_table",
     "incidence_rates",
+    "kfre_summary",
 )
 TABLE_TITLES: Final[dict[str, str]] = {
     "baseline_characteristics": "Baseline characteristics",
@@ -65,6 +66,7 @@ TABLE_TITLES: Final[dict[str, str]] = {
     "transition_matrix": "KDIGO category transitions",
     "endpoint_table": "Endpoints",
     "incidence_rates": "Incidence rates",
+    "kfre_summary": "Kidney Failure Risk Equation at baseline (2- and 5-year risk)",
 }
 # a table with one of these columns is individual-level and is never printed
 IDENTIFIER_COLUMNS: Final = frozenset(
@@ -519,6 +521,7 @@ def build_report_context(run_dir: str | Path) -> dict[str, Any]:
         "transition_matrix": "kdigo",
         "endpoint_table": "endpoints",
         "incidence_rates": "endpoints",
+        "kfre_summary": "endpoints",
     }
     table_dir = run / "tables"
     present = sorted(p.stem for p in table_dir.glob("*.csv")) if table_dir.is_dir() else []
