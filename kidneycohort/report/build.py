@@ -224,7 +224,9 @@ _PHRASES: Final[dict[str, Callable[[Any], str]]] = {
         "years: the acute slope before the knot, the chronic slope after it."
     ),
     "rapid_decline_per_year": lambda v: (
-        f"Rapid decline: an eGFR slope below {_readable_value(v)} mL/min/1.73 m² per year."
+        # the rule's threshold is a rate of fall (slopes.SlopeRule); accept either sign
+        f"Rapid decline: an eGFR fall faster than {_readable_value(abs(float(v)))} "
+        f"mL/min/1.73 m² per year (slope below -{_readable_value(abs(float(v)))})."
     ),
     "small_cell_threshold": lambda v: (
         f"Counts from 1 to {v} are shown as <{int(v) + 1} in tables and figures."
@@ -234,7 +236,8 @@ _PHRASES: Final[dict[str, Callable[[Any], str]]] = {
     ),
     "min_values": lambda v: f"A per-patient slope needs at least {v} eGFR values.",
     "min_span_years": lambda v: (
-        f"A per-patient slope needs values spanning at least {_readable_value(v)} years."
+        f"A per-patient slope needs values spanning at least {_readable_value(v)} "
+        f"{'year' if float(v) == 1 else 'years'}."
     ),
     "window_days": lambda v: f"Window: {v} days.",
     "decline_pct": lambda v: f"Decline of at least {_readable_value(v)} % from baseline.",
@@ -426,12 +429,21 @@ def _summary(
             )
     summary = _read(run, "models/slope_summary.parquet")
     if summary is not None and {"contrast", "quantity", "estimate"} <= set(summary.columns):
-        for row in summary.head(6).to_dicts():
+        # the between-group differences are the key results of a trial; per-group
+        # estimates are in the slope table
+        differences = summary.filter(pl.col("contrast").cast(pl.String).str.contains(" - "))
+        shown = differences if differences.height else summary.head(6)
+        for row in shown.to_dicts():
             ci = ""
             if row.get("lower") is not None and row.get("upper") is not None:
                 ci = f" (95% CI {row['lower']:.2f} to {row['upper']:.2f})"
+            p_value = row.get("p")
+            p_text = ""
+            if p_value is not None:
+                p_text = "; p < 0.001" if p_value < 0.001 else f"; p = {p_value:.3f}"
             lines.append(
-                f"{_readable_key(str(row['quantity']))}, {row['contrast']}: {row['estimate']:.2f}{ci}."
+                f"{_readable_key(str(row['quantity']))}, {row['contrast']}: "
+                f"{row['estimate']:.2f}{ci}{p_text}."
             )
     endpoints = _read(run, "endpoints.parquet")
     if endpoints is not None and {"endpoint", "event"} <= set(endpoints.columns):
