@@ -1592,6 +1592,19 @@ def _save(plot: Any, figures: Path, stem: str, formats: Sequence[str], dpi: int)
     return written
 
 
+def rapid_decline_threshold(config: Mapping[str, Any]) -> float:
+    """The slope (mL/min/1.73 m2 per year, negative) below which decline is rapid.
+
+    The config's ``rapid_decline_per_year`` (``slopes.SlopeRule``) states a rate of fall,
+    5 by default (KDIGO 2012: a sustained fall of more than 5 per year); the figures mark
+    the slope ``-5``. Either sign in the config gives the same line.
+    """
+    rapid = find_setting(config, "rapid_decline_per_year")
+    if isinstance(rapid, int | float) and not isinstance(rapid, bool):
+        return -abs(float(rapid))
+    return RAPID_DECLINE_PER_YEAR
+
+
 def write_figures(
     run_dir: str | Path, *, formats: Sequence[str] = ("png", "svg"), dpi: int = 150
 ) -> list[Path]:
@@ -1678,14 +1691,11 @@ def write_figures(
         written += _save(plot, figures, "model_trajectories", formats, dpi)
     if (run / "slopes.parquet").is_file():
         slopes = pl.read_parquet(run / "slopes.parquet")
-        rapid = find_setting(manifest.get("config") or {}, "rapid_decline_per_year")
         plot = slope_distribution_figure(
             slopes,
             groups,
             equation=pick_equation(slopes),
-            rapid_decline_threshold=float(rapid)
-            if isinstance(rapid, int | float)
-            else RAPID_DECLINE_PER_YEAR,
+            rapid_decline_threshold=rapid_decline_threshold(manifest.get("config") or {}),
             small_cell_threshold=threshold,
             palette=palette,
         )
