@@ -107,21 +107,24 @@ def _baseline_core(
 
     Returns ``key_cols`` + ``_baseline``, ``baseline_date``, ``baseline_n_values``,
     ``baseline_reason`` for every row of ``keys``, or with ``keys=None`` for every key of
-    ``df`` in first-seen order. One group-by over all rows: values that are not eligible
-    are masked to null, and the small per-key sorts of the masked values put the
-    eligible ones last in time (ties by value, highest last).
+    ``df`` in first-seen order. Only the columns the rule reads are sorted.
     """
     in_window = pl.col("_days").is_between(rule.window_start_days, rule.window_end_days)
     eligible = pl.col("_finite") & in_window & ~pl.col("excluded")
-    df = df.with_columns(
-        _when=pl.when(eligible).then(pl.col("_days")),
-        _eligible=pl.when(eligible).then(pl.col("_value")),
+    status = df.group_by(key_cols, maintain_order=keys is None).agg(
+        _any_finite=pl.col("_finite").any(),
+        _any_in_window=(pl.col("_finite") & in_window).any(),
+        _n_used=eligible.sum(),
     )
-    order = [pl.col("_when"), pl.col("_eligible")]
-    value = pl.col("_eligible")
-    if rule.method in ("last_in_window", "mean_last_n"):
-        # nulls (not eligible) sort first, so the last values are the latest eligible ones
-        value = value.sort_by(order).tail(1 if rule.method == "last_in_window" else rule.n)
+    dated = "sample_date" in df.columns
+    used = (
+        df.filter(eligible)
+        .select(*key_cols, "_days", "_value", *(["sample_date"] if dated else []))
+        .sort([*key_cols, "_days", "_value"])
+    )
+    if rule.method == "mean_last_n":
+        used = used.group_by(key_cols, maintain_order=True).tail(rule.n)
+    value = pl.col("_value")
     geometric = rule.mean_type == "geometric" and rule.method in ("mean_in_window", "mean_last_n")
     if rule.method == "last_in_window":
         agg = value.last()
@@ -131,14 +134,9 @@ def _baseline_core(
         agg = pl.when((value > 0).all()).then(value.log().mean().exp())
     else:
         agg = value.mean()
-    n_used = value.count() if rule.method != "last_in_window" else pl.lit(1)
-    date = (
-        pl.col("sample_date").sort_by(order).last() if "sample_date" in df.columns else pl.lit(None)
-    )
-    found = df.group_by(key_cols, maintain_order=keys is None).agg(
-        _any_finite=pl.col("_finite").any(),
-        _any_in_window=(pl.col("_finite") & in_window).any(),
-        _n_used=eligible.sum(),
+    n_used = pl.len() if rule.method != "last_in_window" else pl.lit(1)
+    date = pl.col("sample_date").last() if dated else pl.lit(None)
+    found = used.group_by(key_cols).agg(
         _baseline=agg,
         baseline_date=date.cast(pl.Date),
         baseline_n_values=n_used.cast(pl.Int32),
@@ -158,9 +156,9 @@ def _baseline_core(
         .when(pl.lit(geometric) & pl.col("_nonpositive"))
         .then(pl.lit("nonpositive_value_for_geometric_mean"))
     )
-    out = (
-        found if keys is None else keys.join(found, on=key_cols, how="left", maintain_order="left")
-    )
+    if keys is not None:
+        status = keys.join(status, on=key_cols, how="left", maintain_order="left")
+    out = status.join(found, on=key_cols, how="left", maintain_order="left")
     out = out.with_columns(baseline_reason=reason)
     no_value = pl.col("baseline_reason").is_not_null()
     return out.with_columns(
