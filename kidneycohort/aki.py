@@ -39,14 +39,16 @@ on any partition of patients (DESIGN.md, partition rule).
 from __future__ import annotations
 
 import logging
-from typing import Any, Final
+from typing import Final
 
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import Field
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, require_columns, to_polars
-from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
+from kidneycohort._rules import RuleModel
+from kidneycohort._rules import rule_error_message as rule_error_message
+from kidneycohort.errors import InputDataError, did_you_mean
 
 logger = logging.getLogger(__name__)
 
@@ -56,36 +58,6 @@ AKI_CRITERIA: Final = ("rise_0.3_mg_dl_48h", "ratio_1.5_7d")
 KNOWN_SETTINGS: Final = ("outpatient", "inpatient", "emergency")
 
 EGFR_REQUIRED: Final = ("patient_id", "equation", "years_from_index", "egfr")
-
-
-class RuleModel(BaseModel):
-    """Base of the derivation rules: frozen, no unknown keys, errors as ConfigError.
-
-    Building a rule in Python with a bad value raises :class:`ConfigError` with a
-    one-line message naming the field, the value got and the fix.
-    """
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-    def __init__(self, **data: Any) -> None:
-        try:
-            super().__init__(**data)
-        except ValidationError as exc:
-            raise ConfigError(rule_error_message(type(self), exc)) from None
-
-
-def rule_error_message(model: type[BaseModel], exc: ValidationError) -> str:
-    """One line from the first pydantic error: ``Rule.field: problem, got value``."""
-    first = exc.errors()[0]
-    loc = ".".join(str(p) for p in first.get("loc", ()))
-    where = f"{model.__name__}.{loc}" if loc else model.__name__
-    hint = ""
-    if first.get("type") == "extra_forbidden":
-        hint = did_you_mean(loc, model.model_fields) or (
-            "; known: " + ", ".join(model.model_fields)
-        )
-        return f"{where}: unknown field{hint}"
-    return f"{where}: {first.get('msg', 'invalid value')}, got {first.get('input')!r}"
 
 
 class ValueFilter(RuleModel):

@@ -32,7 +32,8 @@ from pydantic import Field, model_validator
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
-from kidneycohort.aki import RuleModel, ValueFilter, apply_value_filter, usable_egfr
+from kidneycohort._rules import RuleModel
+from kidneycohort.aki import ValueFilter, apply_value_filter, usable_egfr
 from kidneycohort.errors import ConfigError, InputDataError
 
 logger = logging.getLogger(__name__)

@@ -34,12 +34,13 @@ from typing import Any, Final
 
 import numpy as np
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import ConfigDict, Field, field_validator
 
 from kidneycohort import equations as eq
 from kidneycohort import schemas, units
 from kidneycohort._frames import conform, require_columns, to_polars
-from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
+from kidneycohort._rules import RuleModel, resolve_rules
+from kidneycohort.errors import InputDataError, did_you_mean
 
 logger = logging.getLogger(__name__)
 
@@ -80,10 +81,10 @@ def _check_ids(value: list[str]) -> list[str]:
     return value
 
 
-class AgeBand(BaseModel):
+class AgeBand(RuleModel):
     """Equations used for samples taken at ages in ``[min_age, max_age)``."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(frozen=False)
 
     min_age: float = Field(default=0.0, description="Lowest age of the band (inclusive).")
     max_age: float | None = Field(
@@ -97,7 +98,7 @@ class AgeBand(BaseModel):
         return _check_ids(value)
 
 
-class EgfrRules(BaseModel):
+class EgfrRules(RuleModel):
     """Rules of the eGFR stage; field names are the config keys under ``egfr``.
 
     Examples
@@ -109,7 +110,7 @@ class EgfrRules(BaseModel):
     ['ckid_u25_cr', 'ckd_epi_2021_cr']
     """
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(frozen=False)
 
     equations: list[str] = Field(
         default_factory=lambda: ["ckd_epi_2021_cr"],
@@ -164,19 +165,7 @@ class EgfrRules(BaseModel):
 
 def resolve_egfr_rules(rules: EgfrRules | None, overrides: dict[str, Any]) -> EgfrRules:
     """Return ``rules`` (or the defaults) updated by keyword ``overrides``, validated."""
-    base = (rules or EgfrRules()).model_dump()
-    for key in overrides:
-        if key not in EgfrRules.model_fields:
-            raise ConfigError(
-                f"egfr: unknown rule '{key}'{did_you_mean(key, EgfrRules.model_fields)}"
-            )
-    try:
-        resolved = EgfrRules.model_validate({**base, **overrides})
-    except ValidationError as exc:
-        first = exc.errors()[0]
-        where = ".".join(str(p) for p in first["loc"])
-        raise ConfigError(f"egfr: rule '{where}': {first['msg']}") from None
-    return resolved
+    return resolve_rules(EgfrRules, rules, overrides, "egfr")
 
 
 # --------------------------------------------------------------------------------------

@@ -26,7 +26,6 @@ References
 
 from __future__ import annotations
 
-import contextvars
 import datetime as dt
 import logging
 from collections.abc import Iterable, Mapping, Sequence
@@ -34,10 +33,11 @@ from typing import Annotated, Any, Final, Literal
 
 import numpy as np
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, ValidationError, model_validator
+from pydantic import BaseModel, Field, TypeAdapter, ValidationError, model_validator
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
+from kidneycohort._rules import RuleModel, first_error, rule_error_message, validate_config
 from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
 
 logger = logging.getLogger(__name__)
@@ -75,28 +75,12 @@ NOT_EVALUABLE_REASONS: Final = {
 
 
 # ---------------------------------------------------------------------------- models
-# Set while a model or a config list is being validated, so that only the outermost call
-# turns pydantic's report into one ConfigError (pydantic calls a custom __init__ for
-# nested models too).
-_VALIDATING: contextvars.ContextVar[bool] = contextvars.ContextVar("_validating", default=False)
-
-
-class _ConfigModel(BaseModel):
+class _ConfigModel(RuleModel):
     """Frozen, typo-proof config model whose bad values raise :class:`ConfigError`."""
 
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
-    def __init__(self, **data: Any) -> None:
-        if _VALIDATING.get():  # nested inside another model or a config parse
-            super().__init__(**data)
-            return
-        token = _VALIDATING.set(True)
-        try:
-            super().__init__(**data)
-        except ValidationError as exc:
-            raise ConfigError(_one_line(exc, type(self).__name__)) from None
-        finally:
-            _VALIDATING.reset(token)
+    @classmethod
+    def _error_message(cls, exc: ValidationError) -> str:
+        return _one_line(exc, cls.__name__)
 
 
 class EndpointRules(_ConfigModel):
@@ -416,28 +400,21 @@ _DEFINITIONS_ADAPTER: Final = TypeAdapter(list[EndpointDefinition])
 _ALL_KINDS: Final = (EgfrDecline, EgfrBelow, KidneyFailure, Death, KidneyDeath, Composite)
 
 
-def _one_line(exc: ValidationError, where: str, items: Sequence[Any] | None = None) -> str:
-    errors = exc.errors()
-    # A misspelt key also makes the intended field "missing": report the misspelling.
-    err = next((e for e in errors if e["type"] == "extra_forbidden"), errors[0])
-    loc = ".".join(str(x) for x in err["loc"])
-    got = err.get("input")
-    hint = ""
-    if err["type"] == "extra_forbidden":
-        field = str(err["loc"][-1])
-        fields: set[str] = set(EndpointRules.model_fields)
-        for model in _ALL_KINDS:
-            fields |= set(model.model_fields)
-        hint = did_you_mean(field, sorted(fields))
-    elif err["type"] in ("union_tag_invalid", "union_tag_not_found"):
+def _one_line(exc: ValidationError, where: str) -> str:
+    err = first_error(exc)
+    if err["type"] in ("union_tag_invalid", "union_tag_not_found"):
+        loc = ".".join(str(x) for x in err["loc"])
         kinds = [m.model_fields["kind"].default for m in _ALL_KINDS]
         tag = err.get("ctx", {}).get("tag")
         return (
             f"{where}.{loc}.kind: unknown or missing endpoint kind {tag!r}"
             f"{did_you_mean(str(tag), kinds)}; kind must be one of {', '.join(kinds)}"
         )
-    place = f"{where}.{loc}" if loc else where
-    return f"{place}: {err['msg']} (got {got!r}){hint}"
+    # a list of definitions has no single model: suggest among every kind's fields
+    fields: set[str] = set(EndpointRules.model_fields)
+    for model in _ALL_KINDS:
+        fields |= set(model.model_fields)
+    return rule_error_message(where, exc, fields=sorted(fields))
 
 
 def parse_endpoint_definitions(
@@ -467,13 +444,7 @@ def parse_endpoint_definitions(
 
 
 def _validate(validator: Any, raw: Any, where: str) -> Any:
-    token = _VALIDATING.set(True)
-    try:
-        return validator(raw)
-    except ValidationError as exc:
-        raise ConfigError(_one_line(exc, where)) from None
-    finally:
-        _VALIDATING.reset(token)
+    return validate_config(validator, raw, where, message=_one_line)
 
 
 def usual_kidney_composite(

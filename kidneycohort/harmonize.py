@@ -35,11 +35,12 @@ from typing import Any, Final, Literal
 
 import numpy as np
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import ConfigDict, Field
 
-from kidneycohort import schemas, units
+from kidneycohort import _rules, schemas, units
 from kidneycohort._frames import conform, require_columns
-from kidneycohort.errors import AccountingError, ConfigError, InputDataError, did_you_mean
+from kidneycohort._rules import RuleModel
+from kidneycohort.errors import AccountingError, InputDataError
 from kidneycohort.io.loinc import LOINC_TO_ANALYTE
 from kidneycohort.io.maps import (
     DEFAULT_ANALYTE_NAMES,
@@ -87,10 +88,10 @@ REASON_CODES: Final[dict[str, str]] = {
 MERGE_REASONS: Final = ("exact_duplicate", "same_day_collapsed")
 
 
-class PlausibleRange(BaseModel):
+class PlausibleRange(RuleModel):
     """Closed range ``[low, high]`` of plausible results of one analyte, in ``unit``."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(frozen=False)
 
     low: float = Field(description="Lowest plausible result (inclusive).")
     high: float = Field(description="Highest plausible result (inclusive).")
@@ -114,7 +115,7 @@ DEFAULT_PLAUSIBLE_RANGES: Final[dict[str, PlausibleRange]] = {
 }
 
 
-class HarmonizeRules(BaseModel):
+class HarmonizeRules(RuleModel):
     """Rules of the harmonise stage; field names are the config keys under ``harmonize``.
 
     Examples
@@ -123,7 +124,7 @@ class HarmonizeRules(BaseModel):
     'first'
     """
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(frozen=False)
 
     qualified_values: Literal["keep", "reject"] = Field(
         default="keep",
@@ -170,20 +171,7 @@ class HarmonizeRules(BaseModel):
 
 def resolve_rules(rules: HarmonizeRules | None, overrides: dict[str, Any]) -> HarmonizeRules:
     """Return ``rules`` (or the defaults) updated by keyword ``overrides``, validated."""
-    base = (rules or HarmonizeRules()).model_dump()
-    for key in overrides:
-        if key not in HarmonizeRules.model_fields:
-            raise ConfigError(
-                f"harmonize: unknown rule '{key}'{did_you_mean(key, HarmonizeRules.model_fields)}"
-            )
-    try:
-        return HarmonizeRules.model_validate({**base, **overrides})
-    except ValidationError as exc:
-        first = exc.errors()[0]
-        where = ".".join(str(p) for p in first["loc"])
-        raise ConfigError(
-            f"harmonize: rule '{where}' {first['msg']} (got {first.get('input')!r})"
-        ) from None
+    return _rules.resolve_rules(HarmonizeRules, rules, overrides, "harmonize")
 
 
 @dataclass

@@ -84,7 +84,8 @@ from pydantic import Field
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
-from kidneycohort.aki import RuleModel, ValueFilter, apply_value_filter, usable_egfr
+from kidneycohort._rules import RuleModel
+from kidneycohort.aki import ValueFilter, apply_value_filter, usable_egfr
 from kidneycohort.baseline import uacr_timeline
 from kidneycohort.errors import InputDataError, UnknownUnitError, did_you_mean
 from kidneycohort.units import UACR_MG_G_PER_MG_MMOL, normalize_unit

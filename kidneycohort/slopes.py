@@ -44,7 +44,8 @@ from pydantic import Field, model_validator
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform
-from kidneycohort.aki import RuleModel, ValueFilter, usable_egfr
+from kidneycohort._rules import RuleModel
+from kidneycohort.aki import ValueFilter, usable_egfr
 from kidneycohort.errors import ConfigError
 
 logger = logging.getLogger(__name__)

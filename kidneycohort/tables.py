@@ -26,9 +26,10 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import ConfigDict, Field
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConvergenceError, InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
 from kidneycohort.models.mixed import SlopeModel
@@ -56,10 +57,10 @@ _MISSING_LEVEL = "missing"
 _COMPLEMENTARY_LABEL = "*"  # hidden so that a suppressed cell cannot be recovered
 
 
-class TableSpec(BaseModel):
+class TableSpec(RuleModel):
     """Options of the output tables (config key ``tables``)."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(frozen=False)
 
     small_cell_threshold: int = Field(
         10,
@@ -928,3 +929,109 @@ def to_markdown(table: FrameLike, *, notes: Sequence[str] = (), float_decimals: 
         lines.append("")
         lines.extend(f"{note}" for note in notes)
     return "\n".join(lines) + "\n"
+
+
+# ---- incidence-rate comparison table ---------------------------------------------------
+
+
+def rate_comparison_table(
+    endpoints: FrameLike,
+    patients: FrameLike | None = None,
+    *,
+    group_column: str = "group",
+    reference_group: str | None = None,
+    confidence: float = 0.95,
+    spec: TableSpec | None = None,
+) -> pl.DataFrame:
+    r"""Incidence rates per 100 person-years with rate ratios and differences, for sharing.
+
+    Per endpoint and group: events, person-years, rate (exact Poisson CI), and against
+    ``reference_group`` the rate ratio (exact conditional CI) and the rate difference per
+    100 person-years (Wald CI), from :func:`kidneycohort.models.rates.incidence_rates`,
+    :func:`~kidneycohort.models.rates.rate_ratio` and
+    :func:`~kidneycohort.models.rates.rate_difference`:
+
+    .. math::
+
+        \text{rate} = 100\,d/PY, \qquad RR = \frac{d_1/PY_1}{d_0/PY_0}, \qquad
+        RD = 100\left(\frac{d_1}{PY_1} - \frac{d_0}{PY_0}\right)
+
+    Small-cell protection: an event count from 1 to the threshold is shown as the
+    suppression label, and so is every figure that would reveal it given the printed
+    person-years — the group's rate, and the ratio and difference of any comparison
+    that involves a suppressed count (in either group).
+
+    Returns
+    -------
+    polars.DataFrame
+        ``endpoint, group, events, person_years, rate_per_100py, rate_ratio,
+        rate_difference_per_100py`` as text.
+    """
+    from kidneycohort.models.rates import incidence_rates, rate_difference, rate_ratio
+
+    spec = spec or TableSpec()
+    rates = incidence_rates(endpoints, patients, group_column=group_column, confidence=confidence)
+    groups = sorted(rates["group"].drop_nulls().unique().to_list())
+    reference = reference_group if reference_group is not None else (groups[0] if groups else None)
+    if reference is not None and reference not in groups:
+        raise InputDataError(
+            f"rate table: reference_group '{reference}' is not a group of '{group_column}'"
+            f"{did_you_mean(reference, groups)}"
+        )
+    key = ["endpoint", "group"]
+    table = rates
+    if reference is not None and len(groups) > 1:
+        ratio = rate_ratio(rates, reference_group=reference, confidence=confidence).select(
+            *key,
+            pl.col("rate_ratio"),
+            pl.col("lower").alias("rr_lower"),
+            pl.col("upper").alias("rr_upper"),
+        )
+        diff = rate_difference(rates, reference_group=reference, confidence=confidence).select(
+            *key,
+            pl.col("rate_difference_per_100py").alias("rd"),
+            pl.col("lower").alias("rd_lower"),
+            pl.col("upper").alias("rd_upper"),
+        )
+        table = table.join(ratio, on=key, how="left").join(diff, on=key, how="left")
+    else:
+        table = table.with_columns(
+            pl.lit(None, dtype=pl.Float64).alias(c)
+            for c in ("rate_ratio", "rr_lower", "rr_upper", "rd", "rd_lower", "rd_upper")
+        )
+    small = _is_small(pl.col("events"), spec)
+    reference_small = (
+        (small & (pl.col("group") == reference)).any().over("endpoint")
+        if reference is not None
+        else pl.lit(False)
+    )
+    label = pl.lit(suppression_label(spec))
+    d = spec.estimate_decimals
+    is_reference = pl.col("group") == reference
+    comparison_hidden = small | reference_small
+    return table.sort(key).select(
+        "endpoint",
+        "group",
+        _count_text(pl.col("events"), spec).alias("events"),
+        _format_fixed(pl.col("person_years"), spec.decimals).alias("person_years"),
+        pl.when(small)
+        .then(label)
+        .otherwise(_interval(pl.col("rate_per_100py"), pl.col("lower"), pl.col("upper"), d))
+        .alias("rate_per_100py"),
+        pl.when(is_reference)
+        .then(pl.lit("reference"))
+        .when(comparison_hidden)
+        .then(label)
+        .when(pl.col("rate_ratio").is_null() | pl.col("rate_ratio").is_nan())
+        .then(pl.lit(_DASH))
+        .otherwise(_interval(pl.col("rate_ratio"), pl.col("rr_lower"), pl.col("rr_upper"), d))
+        .alias("rate_ratio"),
+        pl.when(is_reference)
+        .then(pl.lit("reference"))
+        .when(comparison_hidden)
+        .then(label)
+        .when(pl.col("rd").is_null() | pl.col("rd").is_nan())
+        .then(pl.lit(_DASH))
+        .otherwise(_interval(pl.col("rd"), pl.col("rd_lower"), pl.col("rd_upper"), d))
+        .alias("rate_difference_per_100py"),
+    )

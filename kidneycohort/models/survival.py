@@ -26,9 +26,10 @@ from lifelines import AalenJohansenFitter, CoxPHFitter, KaplanMeierFitter
 from lifelines.exceptions import ConvergenceError as LifelinesConvergenceError
 from lifelines.statistics import multivariate_logrank_test, proportional_hazard_test
 from lifelines.utils import median_survival_times
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import ConfigDict, Field
 
 from kidneycohort._frames import FrameLike, to_polars
+from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConvergenceError, InputDataError, StatisticalWarning, did_you_mean
 from kidneycohort.models._design import capture_warnings, encode_covariates, split_complete_cases
 from kidneycohort.models.rates import _with_group
@@ -47,10 +48,10 @@ CURVE_COLUMNS = ("group", "years", "estimate", "lower", "upper", "measure")
 AT_RISK_COLUMNS = ("group", "years", "n_at_risk")
 
 
-class SurvivalSpec(BaseModel):
+class SurvivalSpec(RuleModel):
     """Options of the survival analyses of one study (config key ``survival``)."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(frozen=False)
 
     group_column: str = Field(
         "group", description="Patients column naming the arm or exposure group."

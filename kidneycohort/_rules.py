@@ -1,0 +1,189 @@
+"""The base of the typed rules and options, and one-line messages from pydantic errors.
+
+A rule a study can choose (a value filter, a baseline rule, an endpoint definition, table
+options...) is a pydantic model that the stage function takes and that the YAML config
+fills under the same keys (DESIGN.md, "one vocabulary"). Built in Python with a bad
+value, a :class:`RuleModel` raises :class:`~kidneycohort.errors.ConfigError` with one
+line naming the field, the value got and, for a misspelt key, the closest field name,
+instead of pydantic's multi-line report.
+"""
+
+from __future__ import annotations
+
+import contextvars
+import typing
+from collections.abc import Callable, Iterable, Mapping
+from typing import Any, TypeVar
+
+from pydantic import BaseModel, ConfigDict, ValidationError
+from pydantic_core import ErrorDetails
+
+from kidneycohort.errors import ConfigError, did_you_mean
+
+# Set while a model or a config section is being validated, so that only the outermost
+# call turns pydantic's report into one ConfigError: pydantic calls a model's own
+# ``__init__`` for nested models too, and the outer message keeps the full field path.
+_VALIDATING: contextvars.ContextVar[bool] = contextvars.ContextVar("_validating", default=False)
+
+Validated = TypeVar("Validated")
+Model = TypeVar("Model", bound=BaseModel)
+
+
+def first_error(exc: ValidationError) -> ErrorDetails:
+    """The error to report: a misspelt key first (it also makes the intended field
+    "missing"), else pydantic's first."""
+    errors = exc.errors()
+    return next((e for e in errors if e["type"] == "extra_forbidden"), errors[0])
+
+
+def rule_error_message(
+    model: type[BaseModel] | str, exc: ValidationError, fields: Iterable[str] | None = None
+) -> str:
+    """One line from a pydantic error: ``Rule.field: problem (got value)``.
+
+    Parameters
+    ----------
+    model
+        The model validated (its name starts the message, its fields give the "did you
+        mean" for a misspelt key), or the config location as text.
+    exc
+        The pydantic error.
+    fields
+        Known field names for the suggestion; by default those of the (sub-)model the
+        misspelt key sits in.
+
+    Examples
+    --------
+    >>> from pydantic import BaseModel, ConfigDict, ValidationError
+    >>> class Window(BaseModel):
+    ...     model_config = ConfigDict(extra="forbid")
+    ...     days: int = 90
+    >>> try:
+    ...     Window(dayz=30)
+    ... except ValidationError as exc:
+    ...     print(rule_error_message(Window, exc))
+    Window.dayz: Extra inputs are not permitted (got 30) (did you mean 'days'?)
+    """
+    err = first_error(exc)
+    loc = tuple(err.get("loc", ()))
+    where = model if isinstance(model, str) else model.__name__
+    place = ".".join([where, *(str(p) for p in loc)])
+    # a ValueError raised in a validator already carries our own message
+    message = str(err.get("msg", "invalid value")).removeprefix("Value error, ")
+    got = err.get("input")
+    shown = "" if err["type"] == "missing" or isinstance(got, Mapping) else f" (got {got!r})"
+    hint = ""
+    if err["type"] == "extra_forbidden" and loc:
+        if fields is None:
+            fields = [] if isinstance(model, str) else _fields_at(model, loc[:-1])
+        known = list(fields)
+        hint = did_you_mean(str(loc[-1]), known) or (
+            f"; known: {', '.join(known)}" if known else ""
+        )
+    return f"{place}: {message}{shown}{hint}"
+
+
+def _fields_at(model: type[BaseModel], path: tuple[Any, ...]) -> list[str]:
+    """Field names of the sub-model(s) that ``path`` leads to (list indexes skipped)."""
+    current: list[type[BaseModel]] = [model]
+    for part in path:
+        if not isinstance(part, str):
+            continue
+        following: list[type[BaseModel]] = []
+        for m in current:
+            info = m.model_fields.get(part)
+            if info is not None:
+                following.extend(_models_in(info.annotation))
+        if not following:
+            break
+        current = following
+    return list(dict.fromkeys(f for m in current for f in m.model_fields))
+
+
+def _models_in(annotation: Any) -> list[type[BaseModel]]:
+    """The pydantic models inside an annotation (through Optional, list, dict, unions)."""
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return [annotation]
+    args = typing.get_args(annotation)
+    if typing.get_origin(annotation) is typing.Annotated:
+        args = args[:1]
+    return [m for a in args for m in _models_in(a)]
+
+
+def validate_config(
+    validator: Callable[[Any], Validated],
+    raw: Any,
+    where: str,
+    message: Callable[[ValidationError, str], str] | None = None,
+) -> Validated:
+    """Run a pydantic ``validator`` on config data; failures become one-line ConfigErrors.
+
+    ``message(exc, where)`` words the error (default: :func:`rule_error_message`).
+    """
+    token = _VALIDATING.set(True)
+    try:
+        return validator(raw)
+    except ValidationError as exc:
+        text = message(exc, where) if message else rule_error_message(where, exc)
+        raise ConfigError(text) from None
+    finally:
+        _VALIDATING.reset(token)
+
+
+class RuleModel(BaseModel):
+    """Base of the rules and options: frozen, no unknown keys, errors as ConfigError.
+
+    Building one in Python with a bad value raises :class:`ConfigError` with one line
+    naming the field, the value got and the fix (see :func:`rule_error_message`).
+    ``model_validate`` keeps pydantic's :class:`ValidationError`, for callers that
+    gather a whole config's errors themselves. Subclasses may set ``frozen=False``.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    def __init__(self, **data: Any) -> None:
+        if _VALIDATING.get():  # nested inside another model or a config section
+            super().__init__(**data)
+            return
+        token = _VALIDATING.set(True)
+        try:
+            super().__init__(**data)
+        except ValidationError as exc:
+            raise ConfigError(type(self)._error_message(exc)) from None
+        finally:
+            _VALIDATING.reset(token)
+
+    @classmethod
+    def model_validate(cls, obj: Any, **kwargs: Any) -> typing.Self:
+        """Pydantic's ``model_validate``; nested rules leave the errors to the caller."""
+        token = _VALIDATING.set(True)
+        try:
+            return super().model_validate(obj, **kwargs)
+        finally:
+            _VALIDATING.reset(token)
+
+    @classmethod
+    def _error_message(cls, exc: ValidationError) -> str:
+        return rule_error_message(cls, exc)
+
+
+def resolve_rules(
+    model: type[Model], rules: Model | None, overrides: Mapping[str, Any], where: str
+) -> Model:
+    """``rules`` (or the model's defaults) updated by keyword ``overrides``, validated.
+
+    Raises
+    ------
+    ConfigError
+        For an override that is not a field (with the closest name) or a bad value.
+    """
+    for key in overrides:
+        if key not in model.model_fields:
+            raise ConfigError(
+                f"{where}: unknown rule '{key}'{did_you_mean(key, model.model_fields)}"
+            )
+    base = (rules or model()).model_dump()
+    try:
+        return model.model_validate({**base, **overrides})
+    except ValidationError as exc:
+        raise ConfigError(rule_error_message(where, exc, fields=model.model_fields)) from None
