@@ -81,6 +81,7 @@ from scipy import stats
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
+from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES, RISK_GRID, RISK_LEVELS
 
 logger = logging.getLogger(__name__)
 
@@ -110,7 +111,8 @@ GROUP_COLOURS: Final = (
     OKABE_ITO["yellow"],
 )
 
-KDIGO_RISK_LEVELS: Final = ("low", "moderately_increased", "high", "very_high")
+# the prognosis levels of kidneycohort.kdigo, spelt as identifiers
+KDIGO_RISK_LEVELS: Final = tuple(level.replace(" ", "_") for level in RISK_LEVELS)
 KDIGO_RISK_LABELS: Final[dict[str, str]] = {
     "low": "Low",
     "moderately_increased": "Moderately increased",
@@ -124,8 +126,6 @@ KDIGO_RISK_COLOURS: Final[dict[str, str]] = {
     "high": OKABE_ITO["orange"],
     "very_high": OKABE_ITO["vermillion"],
 }
-G_CATEGORIES: Final = ("G1", "G2", "G3a", "G3b", "G4", "G5")
-A_CATEGORIES: Final = ("A1", "A2", "A3")
 G_RANGES: Final[dict[str, str]] = {
     "G1": "≥90",
     "G2": "60–89",
@@ -136,13 +136,11 @@ G_RANGES: Final[dict[str, str]] = {
 }
 A_RANGES: Final[dict[str, str]] = {"A1": "<30 mg/g", "A2": "30–300 mg/g", "A3": ">300 mg/g"}
 
-# KDIGO 2012 prognosis of CKD by GFR and albuminuria category (guideline Figure 9);
-# used to colour cells that the run's grid leaves out (no patients).
+# KDIGO 2012 prognosis of CKD by GFR and albuminuria category (kidneycohort.kdigo's
+# RISK_GRID, column by column); used to colour cells that the run's grid leaves out.
 KDIGO_RISK: Final[dict[tuple[str, str], str]] = {
-    **{(g, "A1"): r for g, r in zip(G_CATEGORIES, ("low", "low", "moderately_increased", "high", "very_high", "very_high"), strict=True)},
-    **{(g, "A2"): r for g, r in zip(G_CATEGORIES, ("moderately_increased", "moderately_increased", "high", "very_high", "very_high", "very_high"), strict=True)},
-    **{(g, "A3"): r for g, r in zip(G_CATEGORIES, ("high", "high", "very_high", "very_high", "very_high", "very_high"), strict=True)},
-}  # fmt: skip
+    (g, a): RISK_GRID[(g, a)].replace(" ", "_") for a in A_CATEGORIES for g in G_CATEGORIES
+}
 
 EGFR_UNIT_LABEL: Final = "mL/min/1.73 m²"
 SLOPE_UNIT_LABEL: Final = "mL/min/1.73 m²/year"
@@ -1004,6 +1002,8 @@ def kdigo_grid_cells(
                 f"one of {list(allowed)}){did_you_mean(unknown[0], allowed)}"
             )
     if "risk" in df.columns:
+        # kidneycohort.kdigo writes "moderately increased"; both spellings are accepted
+        df = df.with_columns(pl.col("risk").cast(pl.String).str.replace_all(" ", "_"))
         unknown = sorted(set(df["risk"].drop_nulls().to_list()) - set(KDIGO_RISK_LEVELS))
         if unknown:
             raise InputDataError(
