@@ -21,9 +21,7 @@ def test_readme_python_example_runs(monkeypatch: pytest.MonkeyPatch, capsys) -> 
     # the accounting identity printed by the example holds for every table
     clean = namespace["clean"]
     acc = clean.accounting  # type: ignore[attr-defined]
-    assert (
-        acc["rows_read"] == acc["rows_used"] + acc["rows_rejected"] + acc["rows_merged"]
-    ).all()
+    assert (acc["rows_read"] == acc["rows_used"] + acc["rows_rejected"] + acc["rows_merged"]).all()
     assert "rows_read" in out and "group=active" in out
     cox = namespace["cox"]
     hr = cox.summary()["hr"].item()  # type: ignore[attr-defined]

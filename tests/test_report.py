@@ -157,7 +157,10 @@ def test_methods_and_cautions_in_plain_language(full: dict) -> None:
     html = full["html"]
     assert "linear spline with a knot at 0.25 years" in html
     assert "repeat value at least 28 days later confirms it" in html
-    assert "Rapid decline: an eGFR fall faster than 5 mL/min/1.73 m² per year (slope below -5)." in html
+    assert (
+        "Rapid decline: an eGFR fall faster than 5 mL/min/1.73 m² per year (slope below -5)."
+        in html
+    )
     for caution in CAUTIONS:
         assert caution in html
 
