@@ -639,7 +639,9 @@ def sustained_stages(
     -------
     polars.DataFrame
         :data:`STAGES` layout, described in the module docstring. Every patient x
-        equation (x axis) with at least one usable result has at least one row.
+        equation (x axis) with at least one usable result has at least one row. Rows
+        are in patient, equation (albuminuria rows, with no equation, first), axis and
+        stage order.
     """
     rule = rule or SustainRule()
     results = _results(egfr, labs, patients, rule, value_filter)
