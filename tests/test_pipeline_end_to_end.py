@@ -306,3 +306,22 @@ def test_adam_dataset_equals_the_export_of_the_endpoints(demo) -> None:
     # AVAL in days counts the origin day: ADT - STARTDT + 1
     days = (got["ADT"] - got["STARTDT"]).dt.total_days() + 1
     assert (got["AVAL"] == days.cast(pl.Float64)).all()
+
+
+def test_shared_tables_print_no_small_counts(demo) -> None:
+    # every aggregate table under tables/ follows the small-cell rule (counts 1..10 are
+    # shown as <11 - common practice in data-use agreements); exact rates stay in models/
+    run = demo[0]
+    rates = pl.read_csv(run / "tables" / "incidence_rates.csv", infer_schema=False)
+    assert {"rate_ratio", "rate_difference_per_100py"} <= set(rates.columns)
+    small = rates.filter(pl.col("events").str.contains(r"^(?:[1-9]|10)$"))
+    assert small.is_empty()
+    exact = pl.read_parquet(run / "models" / "incidence_rates.parquet")
+    shown = rates.filter(pl.col("events") != "<11")
+    joined = shown.join(
+        exact.select("endpoint", "group", pl.col("events").cast(pl.String).alias("exact")),
+        on=["endpoint", "group"],
+    )
+    assert joined.height == shown.height
+    assert (joined["events"] == joined["exact"]).all()
+    assert (rates["events"] == "<11").any()  # the demo has rare endpoints

@@ -685,6 +685,15 @@ def _add_figures(registry: StepRegistry) -> None:
         return {"figure_files": pl.DataFrame({"file": names}, schema={"file": pl.String})}
 
 
+def _categories_for_table(categories: pl.DataFrame | None) -> pl.DataFrame | None:
+    """Baseline categories in the layout ``tables.baseline_characteristics`` reads."""
+    if categories is None or categories.is_empty():
+        return None
+    if "baseline_uacr_mg_g" in categories.columns:
+        categories = categories.rename({"baseline_uacr_mg_g": "uacr_mg_g"})
+    return categories
+
+
 def _add_tables(registry: StepRegistry) -> None:
     from kidneycohort import tables as tb
     from kidneycohort.models.rates import incidence_rates
@@ -710,11 +719,22 @@ def _add_tables(registry: StepRegistry) -> None:
             "tables/baseline_characteristics": tb.baseline_characteristics(
                 cohort,
                 ctx.tables["baseline"],
+                # KDIGO G and A categories and UACR at baseline, when the recipe made them
+                _categories_for_table(ctx.tables.get("baseline_categories")),
                 group_column=survival.group_column,
                 equation=primary_equation(ctx.sections, ctx.tables),
                 spec=spec,
             ),
-            "tables/incidence_rates": incidence_rates(
+            # the shared table suppresses small cells; the exact rates stay in models/
+            "tables/incidence_rates": tb.rate_comparison_table(
+                endpoints,
+                cohort,
+                group_column=survival.group_column,
+                reference_group=survival.reference_group,
+                confidence=survival.confidence,
+                spec=spec,
+            ),
+            "models/incidence_rates": incidence_rates(
                 endpoints,
                 cohort,
                 group_column=survival.group_column,
@@ -724,11 +744,13 @@ def _add_tables(registry: StepRegistry) -> None:
 
     @registry.register(
         "trial_tables",
+        optional_needs=["baseline_categories"],
         needs=["endpoints", "cohort", "baseline", "slope_model_fit"],
         makes=[
             "tables/endpoint_table",
             "tables/baseline_characteristics",
             "tables/incidence_rates",
+            "models/incidence_rates",
             "tables/slope_table",
         ],
         section="tables",
@@ -743,11 +765,13 @@ def _add_tables(registry: StepRegistry) -> None:
 
     @registry.register(
         "cohort_tables",
+        optional_needs=["baseline_categories"],
         needs=["endpoints", "cohort", "baseline", "transitions"],
         makes=[
             "tables/endpoint_table",
             "tables/baseline_characteristics",
             "tables/incidence_rates",
+            "models/incidence_rates",
             "tables/transition_matrix",
         ],
         section="tables",
