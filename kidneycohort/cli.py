@@ -90,15 +90,26 @@ def equations_cmd(fmt: str) -> None:
 
 @cli.command("synth")
 @click.argument("scenario", type=click.Path(path_type=Path))
-@click.option("--out", "out_dir", type=click.Path(path_type=Path), required=True,
-              help="Folder to write patients, labs, events and truth/ into.")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(path_type=Path),
+    required=True,
+    help="Folder to write patients, labs, events and truth/ into.",
+)
 @click.option("--patients", type=int, default=None, help="Override the scenario's size.")
 @click.option("--seed", type=int, default=None, help="Override the scenario's seed.")
-@click.option("--format", "fmt", type=click.Choice(["parquet", "csv", "duckdb"]),
-              default="parquet", show_default=True)
+@click.option(
+    "--format",
+    "fmt",
+    type=click.Choice(["parquet", "csv", "duckdb"]),
+    default="parquet",
+    show_default=True,
+)
 @_guarded
-def synth_cmd(scenario: Path, out_dir: Path, patients: int | None, seed: int | None,
-              fmt: str) -> None:
+def synth_cmd(
+    scenario: Path, out_dir: Path, patients: int | None, seed: int | None, fmt: str
+) -> None:
     """Generate a synthetic cohort with known truth from a SCENARIO file."""
     from kidneycohort.synthetic import write_cohort
 
