@@ -75,6 +75,11 @@ class SurvivalSpec(RuleModel):
         description="Times (years) of the numbers-at-risk table under the curves.",
     )
     confidence: float = Field(0.95, gt=0, lt=1, description="Confidence level of intervals.")
+    subgroups: list[str] = Field(
+        default_factory=list,
+        description="Patients columns whose levels each get their own Cox hazard ratios "
+        "(subgroup analysis shown in the forest plot); the overall estimate is always kept.",
+    )
 
 
 # ---- shared preparation ----------------------------------------------------------------

@@ -570,29 +570,62 @@ def _add_survival(registry: StepRegistry) -> None:
             lambda name: CoxModel.from_spec(spec, endpoint=name).fit(rows, ctx.tables["cohort"]),
             "Cox model",
         )
-        parts = []
-        for name, fit in fits:
-            ph = fit.ph_test_.select("term", pl.col("p").alias("ph_p"))
-            parts.append(
-                fit.summary()
-                .join(ph, on="term", how="left", maintain_order="left")
-                .select(
-                    pl.lit(name).alias("endpoint"),
-                    "term",
-                    "hr",
-                    "hr_lower",
-                    "hr_upper",
-                    "p",
-                    "ph_p",
+        parts = [_hazard_rows(name, fit, None) for name, fit in fits]
+        cohort = ctx.tables["cohort"]
+        for column in spec.subgroups:
+            if column not in cohort.columns:
+                raise ConfigError(
+                    f"survival.subgroups: '{column}' is not a patients column"
+                    f"{did_you_mean(column, cohort.columns)}"
                 )
+            # the subgroup column cannot also be adjusted for or stratified on within a level
+            sub_spec = spec.model_copy(
+                update={
+                    "covariates": [c for c in spec.covariates if c != column],
+                    "strata": [c for c in spec.strata if c != column],
+                }
             )
+            # one fit per level: a handful of levels, each a vectorised lifelines fit
+            for level in sorted(cohort[column].drop_nulls().cast(pl.String).unique().to_list()):
+                members = cohort.filter(pl.col(column).cast(pl.String) == level)
+                level_rows = rows.join(members.select("patient_id"), on="patient_id", how="semi")
+                level_fits = _fit_each_endpoint(
+                    level_rows,
+                    lambda name, r=level_rows, m=members, s=sub_spec: CoxModel.from_spec(
+                        s, endpoint=name
+                    ).fit(r, m),
+                    f"Cox model in subgroup {column}={level}",
+                )
+                parts.extend(
+                    _hazard_rows(name, fit, f"{column}={level}") for name, fit in level_fits
+                )
         empty = pl.DataFrame(schema=HAZARD_RATIOS)
         return {"models/hazard_ratios": pl.concat(parts) if parts else empty}
+
+
+def _hazard_rows(name: str, fit: Any, subgroup: str | None) -> pl.DataFrame:
+    """One endpoint's hazard ratios with the proportional-hazards p, in HAZARD_RATIOS."""
+    ph = fit.ph_test_.select("term", pl.col("p").alias("ph_p"))
+    return (
+        fit.summary()
+        .join(ph, on="term", how="left", maintain_order="left")
+        .select(
+            pl.lit(name).alias("endpoint"),
+            "term",
+            pl.lit(subgroup, dtype=pl.String).alias("subgroup"),
+            "hr",
+            "hr_lower",
+            "hr_upper",
+            "p",
+            "ph_p",
+        )
+    )
 
 
 HAZARD_RATIOS = {
     "endpoint": pl.String(),
     "term": pl.String(),
+    "subgroup": pl.String(),  # null for the whole cohort; "column=level" otherwise
     "hr": pl.Float64(),
     "hr_lower": pl.Float64(),
     "hr_upper": pl.Float64(),
