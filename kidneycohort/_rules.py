@@ -13,6 +13,7 @@ from __future__ import annotations
 import contextvars
 import typing
 from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass
 from typing import Any, TypeVar
 
 from pydantic import BaseModel, ConfigDict, ValidationError
@@ -34,6 +35,72 @@ def first_error(exc: ValidationError) -> ErrorDetails:
     "missing"), else pydantic's first."""
     errors = exc.errors()
     return next((e for e in errors if e["type"] == "extra_forbidden"), errors[0])
+
+
+@dataclass(frozen=True)
+class ErrorFacts:
+    """What a pydantic error says, ready to be worded in one line.
+
+    Attributes
+    ----------
+    loc
+        Location of the reported error inside the validated data.
+    kind
+        Pydantic's error type (``"extra_forbidden"``, ``"missing"``, ...).
+    message
+        Pydantic's message, without the ``"Value error, "`` of our own validators.
+    got
+        The value that failed.
+    known
+        For a misspelt key, the field names it may have meant; else empty.
+    count
+        How many errors pydantic found in all.
+    """
+
+    loc: tuple[Any, ...]
+    kind: str
+    message: str
+    got: Any
+    known: tuple[str, ...]
+    count: int
+
+    @property
+    def path(self) -> str:
+        """The location as dotted text (``"windows.0.days"``; empty at the top level)."""
+        return ".".join(str(p) for p in self.loc)
+
+    @property
+    def suggestion(self) -> str:
+        """``" (did you mean 'x'?)"`` for a misspelt key close to a known field, else ``""``."""
+        if self.kind != "extra_forbidden" or not self.loc:
+            return ""
+        return did_you_mean(str(self.loc[-1]), self.known)
+
+
+def error_facts(
+    model: type[BaseModel] | None, exc: ValidationError, fields: Iterable[str] | None = None
+) -> ErrorFacts:
+    """The facts of the error to report (see :func:`first_error`), for callers that word
+    their own line; ``model`` (or None) and ``fields`` give the known names for a misspelt
+    key as in :func:`rule_error_message`.
+    """
+    err = first_error(exc)
+    loc = tuple(err.get("loc", ()))
+    known: list[str] = []
+    if err["type"] == "extra_forbidden" and loc:
+        if fields is not None:
+            known = list(fields)
+        elif model is not None:
+            known = _fields_at(model, loc[:-1])
+    return ErrorFacts(
+        loc=loc,
+        kind=err["type"],
+        # a ValueError raised in a validator already carries our own message
+        message=str(err.get("msg", "invalid value")).removeprefix("Value error, "),
+        got=err.get("input"),
+        known=tuple(known),
+        count=exc.error_count(),
+    )
 
 
 def rule_error_message(
@@ -64,30 +131,30 @@ def rule_error_message(
     ...     print(rule_error_message(Window, exc))
     Window.dayz: Extra inputs are not permitted (got 30) (did you mean 'days'?)
     """
-    err = first_error(exc)
-    loc = tuple(err.get("loc", ()))
+    facts = error_facts(None if isinstance(model, str) else model, exc, fields)
     where = model if isinstance(model, str) else model.__name__
-    place = ".".join([where, *(str(p) for p in loc)])
-    # a ValueError raised in a validator already carries our own message
-    message = str(err.get("msg", "invalid value")).removeprefix("Value error, ")
-    got = err.get("input")
-    shown = "" if err["type"] == "missing" or isinstance(got, Mapping) else f" (got {got!r})"
+    place = ".".join([where, *(str(p) for p in facts.loc)])
+    got = facts.got
+    shown = "" if facts.kind == "missing" or isinstance(got, Mapping) else f" (got {got!r})"
     hint = ""
-    if err["type"] == "extra_forbidden" and loc:
-        if fields is None:
-            fields = [] if isinstance(model, str) else _fields_at(model, loc[:-1])
-        known = list(fields)
-        hint = did_you_mean(str(loc[-1]), known) or (
-            f"; known: {', '.join(known)}" if known else ""
-        )
-    return f"{place}: {message}{shown}{hint}"
+    if facts.kind == "extra_forbidden" and facts.loc:
+        hint = facts.suggestion or (f"; known: {', '.join(facts.known)}" if facts.known else "")
+    return f"{place}: {facts.message}{shown}{hint}"
 
 
 def _fields_at(model: type[BaseModel], path: tuple[Any, ...]) -> list[str]:
-    """Field names of the sub-model(s) that ``path`` leads to (list indexes skipped)."""
+    """Field names of the sub-model(s) that ``path`` leads to (list indexes skipped).
+
+    Inside a union of models, pydantic's location names the member tried: a
+    discriminated union by its tag value, a plain union by the model's class name.
+    """
     current: list[type[BaseModel]] = [model]
     for part in path:
         if not isinstance(part, str):
+            continue
+        member = [m for m in current if m.__name__ == part or part in _tags(m)]
+        if len(current) > 1 and member:
+            current = member
             continue
         following: list[type[BaseModel]] = []
         for m in current:
@@ -98,6 +165,16 @@ def _fields_at(model: type[BaseModel], path: tuple[Any, ...]) -> list[str]:
             break
         current = following
     return list(dict.fromkeys(f for m in current for f in m.model_fields))
+
+
+def _tags(model: type[BaseModel]) -> set[Any]:
+    """Values of the model's ``Literal`` fields (the tags of a discriminated union)."""
+    return {
+        value
+        for info in model.model_fields.values()
+        if typing.get_origin(info.annotation) is typing.Literal
+        for value in typing.get_args(info.annotation)
+    }
 
 
 def _models_in(annotation: Any) -> list[type[BaseModel]]:

@@ -2,10 +2,18 @@
 
 from __future__ import annotations
 
-import pytest
-from pydantic import Field, ValidationError
+from typing import Annotated, Literal
 
-from kidneycohort._rules import RuleModel, resolve_rules, rule_error_message, validate_config
+import pytest
+from pydantic import BaseModel, Field, ValidationError, model_validator
+
+from kidneycohort._rules import (
+    RuleModel,
+    error_facts,
+    resolve_rules,
+    rule_error_message,
+    validate_config,
+)
 from kidneycohort.egfr import AgeBand, EgfrRules
 from kidneycohort.errors import ConfigError
 from kidneycohort.harmonize import HarmonizeRules
@@ -92,3 +100,80 @@ def test_message_from_text_location_has_no_suggestion_list():
     assert rule_error_message("cfg", info.value) == (
         "cfg.other: Extra inputs are not permitted (got 1)"
     )
+
+
+class Visits(RuleModel):
+    kind: Literal["visits"] = "visits"
+    visits: list[Window] = Field(default_factory=list)
+    every_days: int = 30
+
+
+class Care(RuleModel):
+    kind: Literal["care"] = "care"
+    tests_per_year: float = 1.0
+
+
+class Tagged(RuleModel):
+    schedule: Annotated[Visits | Care, Field(discriminator="kind")] = Visits()
+
+
+class Untagged(RuleModel):
+    schedule: Visits | Care = Visits()
+
+
+def test_misspelt_key_in_a_tagged_union_suggests_the_chosen_members_fields():
+    # pydantic puts the tag in the location ('schedule', 'visits', key); here the tag
+    # 'visits' is also a field name of Visits, which must not be followed into Window
+    with pytest.raises(ValidationError) as info:
+        Tagged.model_validate({"schedule": {"kind": "visits", "evry_days": 7}})
+    assert info.value.errors()[0]["loc"] == ("schedule", "visits", "evry_days")
+    facts = error_facts(Tagged, info.value)
+    assert facts.known == ("kind", "visits", "every_days")
+    assert facts.suggestion == " (did you mean 'every_days'?)"
+    with pytest.raises(ConfigError, match=r"^Tagged\.schedule\.care\.tests_per_yer: .*"):
+        Tagged(schedule={"kind": "care", "tests_per_yer": 2})
+
+
+def test_plain_union_location_names_the_member_class():
+    with pytest.raises(ValidationError) as info:
+        Untagged.model_validate({"schedule": {"kind": "care", "tests_per_yr": 2}})
+    # pydantic reports one error per member tried, each under the member's class name
+    care = [e for e in info.value.errors() if e["loc"][1] == "Care"]
+    assert care and care[0]["loc"] == ("schedule", "Care", "tests_per_yr")
+    facts = error_facts(Untagged, info.value)
+    assert facts.kind == "extra_forbidden"
+    # the known names are those of the member the reported error sits in, not both
+    member = {"Visits": Visits, "Care": Care}[facts.loc[1]]
+    assert facts.known == tuple(member.model_fields)
+
+
+def test_error_facts_report_the_misspelt_key_before_the_missing_field_it_causes():
+    class Needs(BaseModel):
+        model_config = {"extra": "forbid"}
+        name: str
+
+    with pytest.raises(ValidationError) as info:
+        Needs.model_validate({"nmae": "x"})
+    # pydantic lists 'missing' first; the misspelling is the useful one to report
+    assert info.value.errors()[0]["type"] == "missing"
+    facts = error_facts(Needs, info.value)
+    assert (facts.kind, facts.path, facts.got, facts.count) == ("extra_forbidden", "nmae", "x", 2)
+    assert facts.suggestion == " (did you mean 'name'?)"
+
+
+def test_error_facts_drop_the_value_error_prefix_of_own_validators():
+    class Checked(RuleModel):
+        low: int = 0
+        high: int = 1
+
+        @model_validator(mode="after")
+        def _ordered(self) -> Checked:
+            if self.low > self.high:
+                raise ValueError("low must not exceed high")
+            return self
+
+    with pytest.raises(ValidationError) as info:
+        Checked.model_validate({"low": 3})
+    facts = error_facts(Checked, info.value)
+    assert (facts.path, facts.message, facts.suggestion) == ("", "low must not exceed high", "")
+    assert "Value error" in info.value.errors()[0]["msg"]

@@ -29,6 +29,7 @@ from scipy import stats
 from statsmodels.regression.mixed_linear_model import MixedLM, MixedLMParams
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._rules import rule_error_message
 from kidneycohort.errors import (
     ConfigError,
     ConvergenceError,
@@ -260,11 +261,7 @@ class SlopeModel:
                 trajectory_step_years=self.trajectory_step_years,
             )
         except ValidationError as error:
-            first = error.errors()[0]
-            field = ".".join(str(p) for p in first["loc"]) or "SlopeModel"
-            raise ConfigError(
-                f"SlopeModel: {field}: {first['msg']} (got {first.get('input')!r})"
-            ) from None
+            raise ConfigError(rule_error_message("SlopeModel", error)) from None
 
     # ---- data -------------------------------------------------------------------------
 

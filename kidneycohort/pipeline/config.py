@@ -25,6 +25,7 @@ from typing import Any, Literal
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from kidneycohort._rules import error_facts, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
 from kidneycohort.io.maps import SourceSpec
 from kidneycohort.pipeline.registry import Step, StepRegistry, default_registry
@@ -315,21 +316,18 @@ def validate_section(model: type[BaseModel], data: Any, where: str) -> BaseModel
     if not isinstance(data, Mapping):
         raise ConfigError(f"{where}: expected a section (mapping), got {_short(data)}")
     check_keys(data, model, where)
-    try:
-        return model.model_validate(dict(data))
-    except ValidationError as exc:
-        first = exc.errors()[0]
-        loc = ".".join(str(p) for p in first.get("loc", ()))
-        field_name = f"{where}.{loc}" if loc else where
-        got = ""
-        if first.get("type") != "missing":
-            got = f", got {_short(first.get('input'))}"
-        more = exc.error_count() - 1
-        tail = f" (+{more} more)" if more > 0 else ""
-        message = first.get("msg", "invalid value")
-        if first.get("type") == "missing":
-            message = "required key missing; add it"
-        raise ConfigError(f"{field_name}: {message}{got}{tail}") from None
+    return validate_config(model.model_validate, dict(data), where, message=_section_error)
+
+
+def _section_error(exc: ValidationError, where: str) -> str:
+    """``where.field: problem, got value (+n more)``; a missing key says to add it."""
+    facts = error_facts(None, exc)
+    field_name = f"{where}.{facts.path}" if facts.loc else where
+    missing = facts.kind == "missing"
+    message = "required key missing; add it" if missing else facts.message
+    got = "" if missing else f", got {_short(facts.got)}"
+    tail = f" (+{facts.count - 1} more)" if facts.count > 1 else ""
+    return f"{field_name}: {message}{got}{tail}"
 
 
 # ---- recipes ----------------------------------------------------------------------------

@@ -10,8 +10,6 @@ with a "did you mean" for misspelt keys.
 from __future__ import annotations
 
 import datetime as dt
-import types
-import typing
 from pathlib import Path
 from typing import Any, Literal
 
@@ -19,7 +17,8 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from kidneycohort import units
-from kidneycohort.errors import ConfigError, UnknownUnitError, did_you_mean
+from kidneycohort._rules import error_facts, validate_config
+from kidneycohort.errors import ConfigError, UnknownUnitError
 
 
 class _Strict(BaseModel):
@@ -403,10 +402,7 @@ def load_scenario(source: str | Path | dict[str, Any] | Scenario) -> Scenario:
         raise ConfigError(
             f"{where}: expected a mapping of scenario keys, got {type(data).__name__}"
         )
-    try:
-        return Scenario.model_validate(data)
-    except ValidationError as exc:
-        raise ConfigError(f"{where}: {_first_error(exc)}") from None
+    return validate_config(Scenario.model_validate, data, where, message=_one_line)
 
 
 def _read_yaml(path: Path) -> Any:
@@ -450,55 +446,11 @@ def _merge(base: dict[str, Any], top: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
-def _first_error(exc: ValidationError) -> str:
-    err = exc.errors()[0]
-    loc = tuple(err["loc"])
-    field = ".".join(str(p) for p in loc) or "(top level)"
-    if err["type"] == "extra_forbidden":
-        known = _fields_at(Scenario, loc[:-1])
-        return f"unknown key '{field}'{did_you_mean(str(loc[-1]), known)}"
-    got = err.get("input")
-    got_text = "" if isinstance(got, dict) else f", got {got!r}"
-    message = err["msg"].removeprefix("Value error, ")
-    return f"field '{field}': {message}{got_text}"
-
-
-def _fields_at(model: type[BaseModel], path: tuple[Any, ...]) -> list[str]:
-    """Field names of the sub-model reached by ``path`` (list indexes and union tags skipped)."""
-    current: Any = model
-    for part in path:
-        current = _strip(current)
-        if isinstance(part, int):
-            args = typing.get_args(current)
-            current = args[0] if args else current
-            continue
-        if isinstance(current, type) and issubclass(current, BaseModel):
-            if part in current.model_fields:
-                current = current.model_fields[part].annotation
-            else:  # a discriminated-union tag such as 'visits' / 'care'
-                continue
-        else:
-            options = [a for a in typing.get_args(current) if isinstance(a, type)]
-            tagged = [
-                a
-                for a in options
-                if issubclass(a, BaseModel)
-                and a.model_fields.get("kind") is not None
-                and a.model_fields["kind"].default == part
-            ]
-            current = tagged[0] if tagged else current
-    current = _strip(current)
-    if isinstance(current, type) and issubclass(current, BaseModel):
-        return list(current.model_fields)
-    return []
-
-
-def _strip(annotation: Any) -> Any:
-    """Drop ``None`` from an optional annotation; pick the model of a 1-model union."""
-    origin = typing.get_origin(annotation)
-    if origin in (typing.Union, types.UnionType):
-        args = [a for a in typing.get_args(annotation) if a is not type(None)]
-        return args[0] if len(args) == 1 else annotation
-    if origin is tuple:
-        return typing.get_args(annotation)[0]
-    return annotation
+def _one_line(exc: ValidationError, where: str) -> str:
+    """``where: unknown key 'a.b' (did you mean ...)`` or ``where: field 'a.b': problem, got x``."""
+    facts = error_facts(Scenario, exc)
+    field = facts.path or "(top level)"
+    if facts.kind == "extra_forbidden":
+        return f"{where}: unknown key '{field}'{facts.suggestion}"
+    got_text = "" if isinstance(facts.got, dict) else f", got {facts.got!r}"
+    return f"{where}: field '{field}': {facts.message}{got_text}"
