@@ -18,11 +18,11 @@ import time
 import numpy as np
 import polars as pl
 
-from kidneycohort.aki import ValueFilter, apply_value_filter
-from kidneycohort.baseline import BaselineRule, baseline
+from kidneycohort.baseline import BaselineRule, egfr_baseline
 from kidneycohort.kdigo import sustained_stages, transition_matrix, transitions
 from kidneycohort.schemas import DAYS_PER_YEAR
 from kidneycohort.slopes import egfr_slopes
+from kidneycohort.value_filter import ValueFilterRule, apply_value_filter
 
 
 def make_egfr(n_patients: int, per_patient: int, seed: int = 20240611) -> pl.DataFrame:
@@ -80,10 +80,13 @@ def main() -> None:
         return out
 
     filtered = run(
-        "value filter (setting + AKI flags)", lambda: apply_value_filter(egfr, ValueFilter())
+        "value filter (setting + AKI flags)", lambda: apply_value_filter(egfr, ValueFilterRule())
     )
-    run("baseline (last in window)", lambda: baseline(filtered))
-    run("baseline (mean of last 2)", lambda: baseline(filtered, BaselineRule(method="mean_last_n")))
+    run("baseline (last in window)", lambda: egfr_baseline(filtered))
+    run(
+        "baseline (mean of last 2)",
+        lambda: egfr_baseline(filtered, BaselineRule(method="mean_last_n")),
+    )
     run("slopes", lambda: egfr_slopes(filtered))
     stages = run("sustained stages", lambda: sustained_stages(filtered))
     run("transitions", lambda: transitions(stages))

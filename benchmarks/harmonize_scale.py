@@ -117,7 +117,7 @@ def peak_gib() -> float:
 
 def measure(folder: Path) -> None:
     from kidneycohort.egfr import compute_egfr
-    from kidneycohort.harmonize import harmonize
+    from kidneycohort.harmonize import harmonize_tables
     from kidneycohort.io import read_labs, read_patients
 
     t0 = time.perf_counter()
@@ -125,7 +125,7 @@ def measure(folder: Path) -> None:
     patients = read_patients(folder / "patients.parquet").collect()
     t1 = time.perf_counter()
     print(f"read (lazy scan + patients): {t1 - t0:6.1f} s   peak {peak_gib():.2f} GiB")
-    result = harmonize(labs, patients)
+    result = harmonize_tables(labs, patients)
     t2 = time.perf_counter()
     print(f"harmonise:                   {t2 - t1:6.1f} s   peak {peak_gib():.2f} GiB")
     print(result.accounting)

@@ -18,7 +18,6 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-from kidneycohort.baseline import baseline
 from kidneycohort.cautions import CAUTIONS
 from kidneycohort.errors import (
     AccountingError,
@@ -33,13 +32,6 @@ from kidneycohort.errors import (
     UnknownEquationError,
     UnknownUnitError,
 )
-from kidneycohort.harmonize import harmonize
-from kidneycohort.kfre import kfre
-
-# baseline, harmonize and kfre share their names with the modules that define them, so
-# they are imported eagerly above: the import system sets ``kidneycohort.<module>`` to
-# the module object when a submodule is first imported, which would otherwise shadow
-# the function of the same name.
 
 __version__ = "0.1.0"
 
@@ -68,7 +60,7 @@ _PUBLIC: dict[str, str] = {
     **{
         name: "kidneycohort.io"
         for name in (
-            "SourceSpec",
+            "FileSource",
             "read_source",
             "read_labs",
             "read_patients",
@@ -78,14 +70,18 @@ _PUBLIC: dict[str, str] = {
     },
     **{
         name: "kidneycohort.harmonize"
-        for name in ("HarmonizeRules", "HarmonizeResult", "PlausibleRange")
+        for name in ("HarmonizeRule", "HarmonizeResult", "PlausibleRange", "harmonize_tables")
     },
-    **{name: "kidneycohort.egfr" for name in ("compute_egfr", "egfr_wide", "EgfrRules", "AgeBand")},
+    **{name: "kidneycohort.egfr" for name in ("compute_egfr", "egfr_wide", "EgfrRule", "AgeBand")},
     # per-patient derivations
-    **{name: "kidneycohort.aki" for name in ("ValueFilter", "flag_aki", "apply_value_filter")},
     **{
-        name: "kidneycohort.baseline" for name in ("baseline_uacr", "uacr_timeline", "BaselineRule")
+        name: "kidneycohort.value_filter"
+        for name in ("ValueFilterRule", "flag_aki", "apply_value_filter")
     },
+    **{
+        name: "kidneycohort.baseline" for name in ("uacr_baseline", "egfr_baseline", "BaselineRule")
+    },
+    **{name: "kidneycohort.uacr" for name in ("uacr_timeline",)},
     **{name: "kidneycohort.slopes" for name in ("egfr_slopes", "SlopeRule")},
     **{
         name: "kidneycohort.kdigo"
@@ -104,13 +100,13 @@ _PUBLIC: dict[str, str] = {
             "baseline_categories",
         )
     },
-    **{name: "kidneycohort.kfre" for name in ("kfre_risk", "kfre_inputs")},
+    **{name: "kidneycohort.kfre" for name in ("kfre_risk", "kfre_inputs", "add_kfre_risk")},
     # endpoints
     **{
         name: "kidneycohort.endpoints"
         for name in (
             "derive_endpoints",
-            "EndpointRules",
+            "EndpointRule",
             "EgfrDecline",
             "EgfrBelow",
             "KidneyFailure",
@@ -131,11 +127,11 @@ _PUBLIC: dict[str, str] = {
         name: "kidneycohort.models"
         for name in (
             "SlopeModel",
-            "SlopeModelSpec",
+            "SlopeModelRule",
             "KaplanMeier",
             "CumulativeIncidence",
             "CoxModel",
-            "SurvivalSpec",
+            "SurvivalRule",
             "incidence_rates",
             "exact_poisson_interval",
             "rate_difference",
@@ -146,7 +142,7 @@ _PUBLIC: dict[str, str] = {
     **{
         name: "kidneycohort.tables"
         for name in (
-            "TableSpec",
+            "TableRule",
             "endpoint_table",
             "slope_table",
             "baseline_characteristics",
@@ -182,7 +178,7 @@ _PUBLIC: dict[str, str] = {
 
 _SUBMODULES = (
     "adam",
-    "aki",
+    "value_filter",
     "egfr",
     "endpoints",
     "equations",
@@ -213,9 +209,6 @@ __all__ = [
     "UnknownEquationError",
     "UnknownUnitError",
     "__version__",
-    "baseline",
-    "harmonize",
-    "kfre",
     *_PUBLIC,
     *_SUBMODULES,
 ]

@@ -245,7 +245,7 @@ class RuleModel(BaseModel):
 
 
 def resolve_rules(
-    model: type[Model], rules: Model | None, overrides: Mapping[str, Any], where: str
+    model: type[Model], rule: Model | None, overrides: Mapping[str, Any], where: str
 ) -> Model:
     """``rules`` (or the model's defaults) updated by keyword ``overrides``, validated.
 
@@ -259,7 +259,7 @@ def resolve_rules(
             raise ConfigError(
                 f"{where}: unknown rule '{key}'{did_you_mean(key, model.model_fields)}"
             )
-    base = (rules or model()).model_dump()
+    base = (rule or model()).model_dump()
     try:
         return model.model_validate({**base, **overrides})
     except ValidationError as exc:

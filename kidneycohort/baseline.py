@@ -31,10 +31,11 @@ import polars as pl
 from pydantic import Field, model_validator
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
+from kidneycohort._frames import FrameLike, conform, to_polars
 from kidneycohort._rules import RuleModel
-from kidneycohort.aki import ValueFilter, apply_value_filter, usable_egfr
-from kidneycohort.errors import ConfigError, InputDataError
+from kidneycohort.errors import ConfigError
+from kidneycohort.uacr import uacr_timeline
+from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, usable_egfr
 
 logger = logging.getLogger(__name__)
 
@@ -56,7 +57,7 @@ UACR_BASELINE: Final[dict[str, pl.DataType]] = {
     "baseline_method": pl.String(),
     "baseline_reason": pl.String(),
 }
-"""Layout of :func:`baseline_uacr` output (UACR in mg/g)."""
+"""Layout of :func:`uacr_baseline` output (UACR in mg/g)."""
 
 
 class BaselineRule(RuleModel):
@@ -171,10 +172,10 @@ def _baseline_core(
     )
 
 
-def baseline(
+def egfr_baseline(
     egfr: FrameLike,
     rule: BaselineRule | None = None,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
 ) -> pl.DataFrame:
     """Baseline eGFR per patient and equation.
 
@@ -197,7 +198,7 @@ def baseline(
         ``years_from_index``, ``egfr``; ``sample_date`` gives ``baseline_date``).
     rule : BaselineRule, optional
         Defaults to the last value from 365 days before index to index.
-    value_filter : ValueFilter, optional
+    value_filter : ValueFilterRule, optional
         When given, results it excludes are not eligible (an ``excluded`` column already
         in ``egfr`` is honoured either way).
 
@@ -226,85 +227,15 @@ def baseline(
     return conform(out, schemas.BASELINE)
 
 
-def uacr_timeline(labs: FrameLike, patients: FrameLike | None = None) -> pl.DataFrame:
-    """UACR results (mg/g) placed in time relative to each patient's index date.
-
-    Parameters
-    ----------
-    labs : polars or pandas DataFrame
-        Harmonised ``schemas.LABS`` rows; those with ``analyte == "uacr"`` are kept
-        (``value`` already in mg/g). A ``years_from_index`` column, when present, is
-        used; otherwise ``patients`` must give ``index_date``.
-    patients : polars or pandas DataFrame, optional
-        ``patient_id`` and ``index_date``.
-
-    Returns
-    -------
-    polars.DataFrame
-        ``patient_id``, ``sample_date``, ``years_from_index``
-        (:math:`\\text{days}/365.25`), ``uacr_mg_g``, ``reported_unit``, ``setting``,
-        ``index_date`` (null when the patient has none), one row per UACR result.
-
-    Raises
-    ------
-    InputDataError
-        When a needed column is missing.
-    """
-    df = to_polars(labs, "labs")
-    require_columns(df, ("patient_id", "analyte", "value"), "labs")
-    df = df.filter(pl.col("analyte").cast(pl.String) == "uacr").with_columns(
-        pl.col("patient_id").cast(pl.String), pl.col("value").cast(pl.Float64)
-    )
-    if "years_from_index" in df.columns:
-        df = df.with_columns(
-            pl.col("years_from_index").cast(pl.Float64), index_date=pl.lit(None, pl.Date)
-        )
-    else:
-        pts = None if patients is None else to_polars(patients, "patients")
-        if pts is None or "index_date" not in pts.columns:
-            raise InputDataError(
-                "labs: no 'years_from_index' column, and no patients table with "
-                "'index_date' to place UACR results in time; pass patients=..."
-            )
-        require_columns(df, ("sample_date",), "labs")
-        require_columns(pts, ("patient_id",), "patients")
-        df = df.join(
-            pts.select(pl.col("patient_id").cast(pl.String), pl.col("index_date").cast(pl.Date)),
-            on="patient_id",
-            how="left",
-            maintain_order="left",
-        ).with_columns(
-            years_from_index=(pl.col("sample_date").cast(pl.Date) - pl.col("index_date"))
-            .dt.total_days()
-            .cast(pl.Float64)
-            / schemas.DAYS_PER_YEAR
-        )
-    return df.select(
-        "patient_id",
-        (pl.col("sample_date") if "sample_date" in df.columns else pl.lit(None))
-        .cast(pl.Date)
-        .alias("sample_date"),
-        "years_from_index",
-        pl.col("value").alias("uacr_mg_g"),
-        (pl.col("reported_unit") if "reported_unit" in df.columns else pl.lit(None))
-        .cast(pl.String)
-        .alias("reported_unit"),
-        (pl.col("setting") if "setting" in df.columns else pl.lit(None))
-        .cast(pl.String)
-        .alias("setting"),
-        "index_date",
-    )
-
-
-def baseline_uacr(
+def uacr_baseline(
     labs: FrameLike,
     patients: FrameLike | None = None,
     rule: BaselineRule | None = None,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
 ) -> pl.DataFrame:
     """Baseline urine albumin/creatinine ratio (mg/g) per patient.
 
-    Same rules as :func:`baseline`; the default is the geometric mean of the values in
+    Same rules as :func:`egfr_baseline`; the default is the geometric mean of the values in
     the year before index, because UACR varies widely from day to day and is
     right-skewed (KDIGO 2012 recommends confirming albuminuria on repeat samples).
 
@@ -318,7 +249,7 @@ def baseline_uacr(
         ``patient_id`` and ``index_date``; every patient listed appears in the output.
     rule : BaselineRule, optional
         Defaults to ``BaselineRule(method="mean_in_window", mean_type="geometric")``.
-    value_filter : ValueFilter, optional
+    value_filter : ValueFilterRule, optional
         Only ``exclude_settings`` applies to UACR (AKI flags concern creatinine).
 
     Returns

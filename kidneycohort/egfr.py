@@ -98,15 +98,15 @@ class AgeBand(RuleModel):
         return _check_ids(value)
 
 
-class EgfrRules(RuleModel):
+class EgfrRule(RuleModel):
     """Rules of the eGFR stage; field names are the config keys under ``egfr``.
 
     Examples
     --------
-    >>> rules = EgfrRules(by_age=[
+    >>> rule = EgfrRule(by_age=[
     ...     AgeBand(max_age=18, equations=["ckid_u25_cr"]),
     ...     AgeBand(min_age=18, equations=["ckd_epi_2021_cr"])])
-    >>> rules.all_equations()
+    >>> rule.all_equations()
     ['ckid_u25_cr', 'ckd_epi_2021_cr']
     """
 
@@ -163,9 +163,9 @@ class EgfrRules(RuleModel):
         return list(dict.fromkeys(e for band in self.by_age for e in band.equations))
 
 
-def resolve_egfr_rules(rules: EgfrRules | None, overrides: dict[str, Any]) -> EgfrRules:
+def resolve_egfr_rule(rule: EgfrRule | None, overrides: dict[str, Any]) -> EgfrRule:
     """Return ``rules`` (or the defaults) updated by keyword ``overrides``, validated."""
-    return resolve_rules(EgfrRules, rules, overrides, "egfr")
+    return resolve_rules(EgfrRule, rule, overrides, "egfr")
 
 
 # --------------------------------------------------------------------------------------
@@ -274,7 +274,7 @@ def _in_band(age: pl.Expr, band: AgeBand) -> pl.Expr:
     return condition
 
 
-def _evaluate(frame: pl.DataFrame, equation_id: str, rules: EgfrRules) -> pl.DataFrame:
+def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataFrame:
     spec = eq.get_equation(equation_id)
     # rows already without a pair or outside the window are not evaluated at all
     eligible = (frame["_pair_reason"].is_null() & frame["_window_reason"].is_null()).to_numpy()
@@ -287,13 +287,13 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rules: EgfrRules) -> pl.Dat
             inputs[name] = subset["sex"]
         else:
             inputs[name] = subset[column].cast(pl.Float64).to_numpy()
-    if spec.race_coefficient and rules.apply_race_coefficient:
+    if spec.race_coefficient and rule.apply_race_coefficient:
         inputs["black_race"] = subset["black_race"].cast(pl.Float64).to_numpy()
     result = eq.evaluate_with_reason(
         equation_id,
         **inputs,
-        allow_outside_age=rules.allow_outside_age,
-        apply_race_coefficient=rules.apply_race_coefficient,
+        allow_outside_age=rule.allow_outside_age,
+        apply_race_coefficient=rule.apply_race_coefficient,
     )
     values = np.full(frame.height, np.nan)
     values[where] = np.asarray(result.values, dtype=np.float64).reshape(subset.height)
@@ -343,7 +343,7 @@ def compute_egfr(
     patients: Any,
     equations: list[str] | None = None,
     *,
-    rules: EgfrRules | None = None,
+    rule: EgfrRule | None = None,
     measurements: Any | None = None,
     wide: bool = False,
     **rule_fields: Any,
@@ -354,14 +354,14 @@ def compute_egfr(
     ----------
     labs
         Harmonised labs (``schemas.LABS``: standard units; see
-        :func:`kidneycohort.harmonize.harmonize`), polars or pandas.
+        :func:`kidneycohort.harmonize.harmonize_tables`), polars or pandas.
     patients
         Patients (``schemas.PATIENTS``): ``sex``, ``birth_date`` or ``age_at_index``
         with ``index_date``, optional ``height_cm``, ``weight_kg``, ``black_race``.
     equations
-        Equation ids (shortcut for ``rules.equations``).
-    rules
-        :class:`EgfrRules`; keyword ``rule_fields`` override its fields.
+        Equation ids (shortcut for ``rule.equations``).
+    rule
+        :class:`EgfrRule`; keyword ``rule_fields`` override its fields.
     measurements
         Optional time-varying body size: ``patient_id``, ``measurement_date``,
         ``height_cm`` and/or ``weight_kg``.
@@ -372,7 +372,7 @@ def compute_egfr(
     -------
     polars.DataFrame
         The long ``egfr`` table (``schemas.EGFR``), one row per sample x equation,
-        in blocks per equation (in the order of the rules), each in the order of
+        in blocks per equation (in the order of the rule), each in the order of
         ``labs`` (combined equations: creatinine rows, then unpaired cystatin C rows); ``egfr`` null where not
         computable, with ``egfr_reason`` from :data:`EGFR_REASON_CODES`.
 
@@ -401,7 +401,7 @@ def compute_egfr(
     overrides = dict(rule_fields)
     if equations is not None:
         overrides["equations"] = list(equations)
-    resolved = resolve_egfr_rules(rules, overrides)
+    resolved = resolve_egfr_rule(rule, overrides)
     table = to_polars(labs, "labs")
     require_columns(table, ("patient_id", "sample_date", "analyte", "value"), "labs")
     table = conform(table, schemas.LABS)

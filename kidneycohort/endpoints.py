@@ -3,7 +3,7 @@ death, kidney death and composites, as one time-to-event row per patient per end
 
 Every endpoint is a typed definition (a pydantic model with a ``kind`` field) that a
 study config fills under the same key names; the confirmation and timing rules are
-their own model, :class:`EndpointRules`, with stated defaults. One call,
+their own model, :class:`EndpointRule`, with stated defaults. One call,
 :func:`derive_endpoints`, turns a list of definitions into the ``endpoints`` table of
 :data:`kidneycohort.schemas.ENDPOINTS`.
 
@@ -48,7 +48,7 @@ __all__ = [
     "EgfrBelow",
     "EgfrDecline",
     "EndpointDefinition",
-    "EndpointRules",
+    "EndpointRule",
     "KidneyDeath",
     "KidneyFailure",
     "derive_endpoints",
@@ -83,7 +83,7 @@ class _ConfigModel(RuleModel):
         return _one_line(exc, cls.__name__)
 
 
-class EndpointRules(_ConfigModel):
+class EndpointRule(_ConfigModel):
     """Confirmation and timing rules of lab-based endpoints (and what counts as dialysis).
 
     Defaults are the common practice of kidney trials' analysis plans; each one is a
@@ -175,7 +175,7 @@ class EndpointRules(_ConfigModel):
     )
 
     @model_validator(mode="after")
-    def _window_after_minimum(self) -> EndpointRules:
+    def _window_after_minimum(self) -> EndpointRule:
         if self.confirm_within_days is not None and (
             self.confirm_within_days < self.confirm_after_days
         ):
@@ -243,7 +243,7 @@ def _number_text(value: Any) -> str:
 
 
 class _LabEndpoint(_Endpoint):
-    rules: EndpointRules | None = Field(
+    rule: EndpointRule | None = Field(
         None,
         description="Rules for this endpoint only; null uses the rules given to derive_endpoints.",
     )
@@ -257,7 +257,7 @@ class EgfrDecline(_LabEndpoint):
     .. math:: 100 \cdot \frac{\mathrm{eGFR}_{baseline} - \mathrm{eGFR}}
               {\mathrm{eGFR}_{baseline}} \ge P ,
 
-    and counts once confirmed under :class:`EndpointRules`. 30, 40 and 50 % are the
+    and counts once confirmed under :class:`EndpointRule`. 30, 40 and 50 % are the
     usual surrogate thresholds and 57 % approximates a doubling of serum creatinine [1]_.
 
     References
@@ -325,7 +325,7 @@ class KidneyFailure(_Endpoint):
     """Kidney failure: chronic dialysis or kidney transplant (KFRT).
 
     Sources: ``events`` rows ``dialysis`` (an episode with a recorded ``end_date`` must
-    last ``rules.min_dialysis_days``, or end by death or transplant) and ``transplant``,
+    last ``rule.min_dialysis_days``, or end by death or transplant) and ``transplant``,
     and the patients' ``kfrt_date``. The event date is the earliest enabled source.
     """
 
@@ -337,9 +337,9 @@ class KidneyFailure(_Endpoint):
     patient_kfrt_date: bool = Field(
         True, description="Count the patients table's kfrt_date column."
     )
-    rules: EndpointRules | None = Field(
+    rule: EndpointRule | None = Field(
         None,
-        description="Rules for this endpoint (min_dialysis_days); null uses the call's rules.",
+        description="Rules for this endpoint (min_dialysis_days); null uses the call's rule.",
     )
 
     @classmethod
@@ -411,7 +411,7 @@ def _one_line(exc: ValidationError, where: str) -> str:
             f"{did_you_mean(str(tag), kinds)}; kind must be one of {', '.join(kinds)}"
         )
     # a list of definitions has no single model: suggest among every kind's fields
-    fields: set[str] = set(EndpointRules.model_fields)
+    fields: set[str] = set(EndpointRule.model_fields)
     for model in _ALL_KINDS:
         fields |= set(model.model_fields)
     return rule_error_message(where, exc, fields=sorted(fields))
@@ -952,12 +952,10 @@ def _criterion(defn: EgfrDecline | EgfrBelow, value: pl.Expr) -> pl.Expr:
     return crit
 
 
-def _lab_endpoint(
-    ctx: _Context, defn: EgfrDecline | EgfrBelow, rules: EndpointRules
-) -> pl.DataFrame:
-    base = ctx.patient_base(rules.min_dialysis_days)
-    v = ctx.values_with_next(rules.min_dialysis_days, rules.confirm_after_days)
-    _, last = ctx.values(rules.min_dialysis_days)
+def _lab_endpoint(ctx: _Context, defn: EgfrDecline | EgfrBelow, rule: EndpointRule) -> pl.DataFrame:
+    base = ctx.patient_base(rule.min_dialysis_days)
+    v = ctx.values_with_next(rule.min_dialysis_days, rule.confirm_after_days)
+    _, last = ctx.values(rule.min_dialysis_days)
     needs_baseline = _needs_baseline(defn)
     if needs_baseline:
         v = v.filter(pl.col("baseline_egfr").is_not_null())
@@ -965,15 +963,15 @@ def _lab_endpoint(
     v = v.with_columns(qualifies.alias("q")).with_columns(
         pl.col("date").filter(~pl.col("q")).max().over("pcode").alias("last_nonqualifying"),
     )
-    after_grace = pl.col("date") > pl.col("index_date") + pl.duration(days=rules.grace_period_days)
+    after_grace = pl.col("date") > pl.col("index_date") + pl.duration(days=rule.grace_period_days)
     trigger = pl.col("q") & after_grace
     stays = pl.col("last_nonqualifying").is_null() | (pl.col("date") > pl.col("last_nonqualifying"))
     has_next = pl.col("next_date").is_not_null()
-    if rules.confirmation == "next_value":
+    if rule.confirmation == "next_value":
         confirmed = trigger & has_next & _criterion(defn, pl.col("next_egfr")).fill_null(False)
-        if rules.confirm_within_days is not None:
+        if rule.confirm_within_days is not None:
             confirmed = confirmed & (
-                _days(pl.col("next_date") - pl.col("date")) <= rules.confirm_within_days
+                _days(pl.col("next_date") - pl.col("date")) <= rule.confirm_within_days
             )
         confirmed_reason = "confirmed"
     else:
@@ -991,17 +989,17 @@ def _lab_endpoint(
         .otherwise(pl.lit("unconfirmed_then_kidney_failure"))
     )
     followed = follow.is_not_null() & (
-        _days(follow - pl.col("date")) <= rules.death_or_failure_within_days
+        _days(follow - pl.col("date")) <= rule.death_or_failure_within_days
     )
-    first = rules.event_date == "first_qualifying"
+    first = rule.event_date == "first_qualifying"
     confirmed_date = pl.col("date") if first else pl.col("next_date")
-    if rules.unconfirmed_last_value == "event":
+    if rule.unconfirmed_last_value == "event":
         late_ok, late_date, late_reason = (
             pl.lit(True),
             pl.col("date"),
             pl.lit("unconfirmed_last_value"),
         )
-    elif rules.unconfirmed_last_value == "event_if_death_or_failure":
+    elif rule.unconfirmed_last_value == "event_if_death_or_failure":
         late_ok, late_date, late_reason = (
             followed,
             (pl.col("date") if first else follow),
@@ -1031,7 +1029,7 @@ def _lab_endpoint(
         pl.col("kf_date").is_null() | (pl.col("death_date") <= pl.col("kf_date"))
     )
     kf_ends = pl.col("kf_date") <= fu_end
-    if rules.lab_censoring == "last_assessment":
+    if rule.lab_censoring == "last_assessment":
         last_or_start = pl.coalesce("last_date", "index_date")
         kf_end, plain_end = last_or_start, last_or_start
         plain_reason = (
@@ -1103,9 +1101,9 @@ def _simple_event(
 
 
 def _kidney_failure_endpoint(
-    ctx: _Context, defn: KidneyFailure, rules: EndpointRules
+    ctx: _Context, defn: KidneyFailure, rule: EndpointRule
 ) -> pl.DataFrame:
-    base = ctx.patient_base(rules.min_dialysis_days)
+    base = ctx.patient_base(rule.min_dialysis_days)
     sources = [
         (defn.dialysis, "dialysis_date", "dialysis"),
         (defn.transplant, "transplant_date", "transplant"),
@@ -1126,8 +1124,8 @@ def _kidney_failure_endpoint(
     return _finish(out, defn.name)
 
 
-def _death_endpoint(ctx: _Context, defn: Death | KidneyDeath, rules: EndpointRules) -> pl.DataFrame:
-    base = ctx.patient_base(rules.min_dialysis_days)
+def _death_endpoint(ctx: _Context, defn: Death | KidneyDeath, rule: EndpointRule) -> pl.DataFrame:
+    base = ctx.patient_base(rule.min_dialysis_days)
     if isinstance(defn, Death):
         out = _simple_event(
             base, defn.name, pl.col("death_date"), pl.lit("death"), death_competes=False
@@ -1250,7 +1248,7 @@ def derive_endpoints(
     *,
     equation: str,
     data_cut: dt.date | str,
-    rules: EndpointRules | Mapping[str, Any] | None = None,
+    rule: EndpointRule | Mapping[str, Any] | None = None,
 ) -> pl.DataFrame:
     r"""Derive time-to-event rows, one per patient per endpoint definition.
 
@@ -1273,8 +1271,8 @@ def derive_endpoints(
         The study's primary eGFR equation id.
     data_cut
         Data-cut date: nothing after it is used and every endpoint is censored at it.
-    rules
-        Default :class:`EndpointRules` (definitions may carry their own).
+    rule
+        Default :class:`EndpointRule` (definitions may carry their own).
 
     Returns
     -------
@@ -1310,10 +1308,10 @@ def derive_endpoints(
     .. [1] Levey AS et al. GFR decline as an end point for clinical trials in CKD.
        Am J Kidney Dis. 2014;64(6):821-835. doi:10.1053/j.ajkd.2014.07.030
     """
-    if isinstance(rules, EndpointRules) or rules is None:
-        default_rules = rules or EndpointRules()
+    if isinstance(rule, EndpointRule) or rule is None:
+        default_rules = rule or EndpointRule()
     else:
-        default_rules = _validate(EndpointRules.model_validate, dict(rules), "rules")
+        default_rules = _validate(EndpointRule.model_validate, dict(rule), "rule")
     defs = parse_endpoint_definitions(list(definitions))
     if not defs:
         raise ConfigError("endpoints: no endpoint definitions given; pass definitions=[...]")
@@ -1342,7 +1340,7 @@ def derive_endpoints(
         if isinstance(d, Composite):
             out = _composite(d, [evaluate(by_name[c]) for c in d.components])
         else:
-            r = getattr(d, "rules", None) or default_rules
+            r = getattr(d, "rule", None) or default_rules
             if isinstance(d, _LAB_KINDS):
                 out = _lab_endpoint(ctx, d, r)
             elif isinstance(d, KidneyFailure):

@@ -1,6 +1,6 @@
 """Harmonise raw lab, patient and event tables: every row used, rejected or merged.
 
-``harmonize(labs, patients, events=None, rules=None, **rules)`` turns raw tables (as read
+``harmonize_tables(labs, patients, events=None, rule=None, **rule)`` turns raw tables (as read
 by :mod:`kidneycohort.io`, or any polars/pandas frame with the canonical columns of
 ``schemas.RAW_LABS`` / ``PATIENTS`` / ``EVENTS``) into
 
@@ -17,7 +17,7 @@ by :mod:`kidneycohort.io`, or any polars/pandas frame with the canonical columns
 
 Each lab row gets the *first* failing check of this order (so every row has exactly
 one reason): missing patient id, missing or unparseable date, unknown analyte, missing
-value, not a result, qualified value (when rejected by the rules), missing or unknown
+value, not a result, qualified value (when rejected by the rule), missing or unknown
 unit, implausible value, unknown or rejected patient, before birth, after death, after
 the data cut. Exact duplicates are merged before the checks; same-day repeats of usable
 results are folded after them.
@@ -115,12 +115,12 @@ DEFAULT_PLAUSIBLE_RANGES: Final[dict[str, PlausibleRange]] = {
 }
 
 
-class HarmonizeRules(RuleModel):
+class HarmonizeRule(RuleModel):
     """Rules of the harmonise stage; field names are the config keys under ``harmonize``.
 
     Examples
     --------
-    >>> HarmonizeRules(same_day_rule="first", qualified_values="reject").same_day_rule
+    >>> HarmonizeRule(same_day_rule="first", qualified_values="reject").same_day_rule
     'first'
     """
 
@@ -169,9 +169,9 @@ class HarmonizeRules(RuleModel):
     )
 
 
-def resolve_rules(rules: HarmonizeRules | None, overrides: dict[str, Any]) -> HarmonizeRules:
+def resolve_rules(rule: HarmonizeRule | None, overrides: dict[str, Any]) -> HarmonizeRule:
     """Return ``rules`` (or the defaults) updated by keyword ``overrides``, validated."""
-    return _rules.resolve_rules(HarmonizeRules, rules, overrides, "harmonize")
+    return _rules.resolve_rules(HarmonizeRule, rule, overrides, "harmonize")
 
 
 @dataclass
@@ -207,7 +207,7 @@ class HarmonizeResult:
     assumptions: pl.DataFrame
     patients: pl.DataFrame
     events: pl.DataFrame | None
-    rules: HarmonizeRules = field(default_factory=HarmonizeRules)
+    rule: HarmonizeRule = field(default_factory=HarmonizeRule)
 
 
 # --------------------------------------------------------------------------------------
@@ -388,18 +388,16 @@ _TRUE_TEXT: Final = {
 
 
 def _clean_patients(
-    patients: Any, rules: HarmonizeRules
+    patients: Any, rule: HarmonizeRule
 ) -> tuple[pl.DataFrame, pl.DataFrame, pl.DataFrame, pl.DataFrame, int]:
     """Return (used patients, status lookup, rejected, merged, rows read)."""
     frame = _lazy(patients, "patients")
     require_columns(frame, schemas.PATIENTS_REQUIRED, "patients")
     frame = _with_row_identity(frame, "patients")
-    frame = parse_date_columns(
-        frame, _PATIENT_DATES, name="patients", date_format=rules.date_format
-    )
+    frame = parse_date_columns(frame, _PATIENT_DATES, name="patients", date_format=rule.date_format)
     names = frame.collect_schema().names()
     schema = frame.collect_schema()
-    sex_map = {**DEFAULT_SEX_CODES, **{fold_code(k): v for k, v in rules.sex_codes.items()}}
+    sex_map = {**DEFAULT_SEX_CODES, **{fold_code(k): v for k, v in rule.sex_codes.items()}}
     exprs: list[pl.Expr] = [_text("patient_id").alias("patient_id")]
     notes: list[pl.Expr] = [pl.col("assumption")]
     bad_number: list[str] = []
@@ -527,17 +525,17 @@ _RESULT_PATTERN: Final = (
 )
 
 
-def _parse_result(text: pl.Expr, rules: HarmonizeRules) -> tuple[pl.Expr, pl.Expr]:
+def _parse_result(text: pl.Expr, rule: HarmonizeRule) -> tuple[pl.Expr, pl.Expr]:
     """(number, qualifier) of a reported result text; number null when not a result.
 
-    Explicit rules: an optional leading ``<``, ``<=``, ``≤`` (-> ``"<"``) or ``>``,
+    Explicit rule: an optional leading ``<``, ``<=``, ``≤`` (-> ``"<"``) or ``>``,
     ``>=``, ``≥`` (-> ``">"``); one number, with a decimal comma read as a point when
-    ``rules.decimal_comma``; an optional trailing abnormal flag (``H``, ``L``, ``HH``,
+    ``rule.decimal_comma``; an optional trailing abnormal flag (``H``, ``L``, ``HH``,
     ``LL``, ``A``, ``*``, ``!``, in brackets or not), which is dropped.
     """
     groups = text.str.extract_groups(_RESULT_PATTERN)
     number_text = groups.struct.field("num")
-    if rules.decimal_comma:
+    if rule.decimal_comma:
         comma_ok = ~(
             number_text.str.contains(",", literal=True)
             & number_text.str.contains(".", literal=True)
@@ -557,7 +555,7 @@ def _parse_result(text: pl.Expr, rules: HarmonizeRules) -> tuple[pl.Expr, pl.Exp
 
 
 def _prepare_labs(
-    labs: Any, status: pl.DataFrame, rules: HarmonizeRules
+    labs: Any, status: pl.DataFrame, rule: HarmonizeRule
 ) -> tuple[pl.LazyFrame, list[Check]]:
     frame = _lazy(labs, "labs")
     require_columns(frame, schemas.RAW_LABS_REQUIRED, "labs")
@@ -566,7 +564,7 @@ def _prepare_labs(
     targets: dict[str, pl.DataType] = {"sample_date": pl.Datetime("us")}
     if "sample_datetime" in names:
         targets["sample_datetime"] = pl.Datetime("us")
-    frame = parse_date_columns(frame, targets, name="labs", date_format=rules.date_format)
+    frame = parse_date_columns(frame, targets, name="labs", date_format=rule.date_format)
     names = frame.collect_schema().names()
     when_taken = (
         pl.coalesce(pl.col("sample_datetime"), pl.col("sample_date"))
@@ -580,7 +578,7 @@ def _prepare_labs(
         **{a: a for a in units.ANALYTES},
         **{fold_code(a): a for a in units.ANALYTES},
         **DEFAULT_ANALYTE_NAMES,
-        **{fold_code(k): v for k, v in rules.analyte_names.items()},
+        **{fold_code(k): v for k, v in rule.analyte_names.items()},
     }
     raw_analyte = _text("analyte")
     analyte = pl.coalesce(
@@ -592,7 +590,7 @@ def _prepare_labs(
         ),
     )
     value_text = _text("value")
-    number, parsed_qualifier = _parse_result(pl.col("_value_text"), rules)
+    number, parsed_qualifier = _parse_result(pl.col("_value_text"), rule)
     factors = units.unit_factor_table()
     factor_map = dict(
         zip(
@@ -605,7 +603,7 @@ def _prepare_labs(
     factor = pl.concat_str(
         [pl.col("_analyte"), units.fold_unit_expr(pl.col("_unit_text"))], separator="|"
     ).replace_strict(factor_map, default=None, return_dtype=pl.Float64)
-    ranges = {a: r.in_standard_unit(a) for a, r in rules.plausible_ranges.items()}
+    ranges = {a: r.in_standard_unit(a) for a, r in rule.plausible_ranges.items()}
     low = pl.col("_analyte").replace_strict(
         {a: r[0] for a, r in ranges.items()}, default=None, return_dtype=pl.Float64
     )
@@ -711,7 +709,7 @@ def _prepare_labs(
             pl.format("value '{}' is not a number", pl.col("_value_text")),
         ),
     ]
-    if rules.qualified_values == "reject":
+    if rule.qualified_values == "reject":
         checks.append(
             (
                 pl.col("_qualifier").is_not_null(),
@@ -767,8 +765,8 @@ def _prepare_labs(
             ),
         ),
     ]
-    if rules.data_cut_date is not None:
-        cut = pl.lit(rules.data_cut_date, pl.Date)
+    if rule.data_cut_date is not None:
+        cut = pl.lit(rule.data_cut_date, pl.Date)
         checks.append(
             (
                 pl.col("_day") > cut,
@@ -776,7 +774,7 @@ def _prepare_labs(
                 pl.format(
                     "sample {} after data cut {}",
                     _date_text(pl.col("_day")),
-                    pl.lit(rules.data_cut_date.isoformat()),
+                    pl.lit(rule.data_cut_date.isoformat()),
                 ),
             )
         )
@@ -907,19 +905,19 @@ def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
 
 
 def _clean_events(
-    events: Any, status: pl.DataFrame, rules: HarmonizeRules
+    events: Any, status: pl.DataFrame, rule: HarmonizeRule
 ) -> tuple[pl.DataFrame, pl.DataFrame, pl.DataFrame, int, pl.DataFrame]:
     frame = _lazy(events, "events")
     require_columns(frame, schemas.EVENTS_REQUIRED, "events")
     frame = _with_row_identity(frame, "events")
     dates = {c: t for c, t in schemas.EVENTS.items() if t.is_temporal()}
-    frame = parse_date_columns(frame, dates, name="events", date_format=rules.date_format)
+    frame = parse_date_columns(frame, dates, name="events", date_format=rule.date_format)
     names = frame.collect_schema().names()
     codes = {
         **{e: e for e in schemas.CANONICAL_EVENTS},
         **{fold_code(e): e for e in schemas.CANONICAL_EVENTS},
         **DEFAULT_EVENT_CODES,
-        **{fold_code(k): v for k, v in rules.event_codes.items()},
+        **{fold_code(k): v for k, v in rule.event_codes.items()},
     }
     frame = frame.with_columns(
         _text("patient_id").alias("patient_id"),
@@ -982,15 +980,15 @@ def _clean_events(
             ),
         ),
     ]
-    if rules.data_cut_date is not None:
+    if rule.data_cut_date is not None:
         checks.append(
             (
-                pl.col("event_date") > pl.lit(rules.data_cut_date, pl.Date),
+                pl.col("event_date") > pl.lit(rule.data_cut_date, pl.Date),
                 "after_data_cut",
                 pl.format(
                     "event {} after data cut {}",
                     _date_text(pl.col("event_date")),
-                    pl.lit(rules.data_cut_date.isoformat()),
+                    pl.lit(rule.data_cut_date.isoformat()),
                 ),
             )
         )
@@ -1051,11 +1049,11 @@ def _account(
 _REJECTED_EMPTY: Final = pl.DataFrame(schema=schemas.REJECTED)
 
 
-def harmonize(
+def harmonize_tables(
     labs: Any,
     patients: Any,
     events: Any | None = None,
-    rules: HarmonizeRules | None = None,
+    rule: HarmonizeRule | None = None,
     **rule_fields: Any,
 ) -> HarmonizeResult:
     r"""Harmonise raw labs (and patients, events): standard units, reasons, accounting.
@@ -1073,8 +1071,8 @@ def harmonize(
         columns are kept.
     events
         Optional events table (``schemas.EVENTS``).
-    rules
-        :class:`HarmonizeRules`; keyword ``rule_fields`` override its fields.
+    rule
+        :class:`HarmonizeRule`; keyword ``rule_fields`` override its fields.
 
     Returns
     -------
@@ -1104,11 +1102,11 @@ def harmonize(
     >>> labs = pl.DataFrame({"patient_id": ["a", "a"], "sample_date": ["2020-01-02"] * 2,
     ...                      "analyte": ["2160-0", "creatinine"], "value": ["88,4", "x"],
     ...                      "unit": ["umol/L", "mg/dL"]})
-    >>> out = harmonize(labs, pl.DataFrame({"patient_id": ["a"]}))
+    >>> out = harmonize_tables(labs, pl.DataFrame({"patient_id": ["a"]}))
     >>> out.labs["value"].to_list(), out.rejected["reason"].to_list()
     ([1.0], ['not_a_result'])
     """
-    resolved = resolve_rules(rules, rule_fields)
+    resolved = resolve_rules(rule, rule_fields)
     used_patients, status, rejected_p, merged_p, n_patients = _clean_patients(patients, resolved)
 
     frame, lab_checks = _prepare_labs(labs, status, resolved)
@@ -1189,5 +1187,5 @@ def harmonize(
         assumptions=assumptions,
         patients=_finish_patients(used_patients),
         events=events_out,
-        rules=resolved,
+        rule=resolved,
     )

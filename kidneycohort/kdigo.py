@@ -85,10 +85,10 @@ from pydantic import Field
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
 from kidneycohort._rules import RuleModel
-from kidneycohort.aki import ValueFilter, apply_value_filter, usable_egfr
-from kidneycohort.baseline import uacr_timeline
 from kidneycohort.errors import InputDataError, UnknownUnitError, did_you_mean
+from kidneycohort.uacr import uacr_timeline
 from kidneycohort.units import UACR_MG_G_PER_MG_MMOL, normalize_unit
+from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, usable_egfr
 
 logger = logging.getLogger(__name__)
 
@@ -303,7 +303,10 @@ def kdigo_risk_expr(g_category: pl.Expr | str, a_category: pl.Expr | str) -> pl.
 
 # ---- per-result categories and confirmation -------------------------------------------------
 def _albuminuria_results(
-    labs: FrameLike, patients: FrameLike | None, rule: SustainRule, value_filter: ValueFilter | None
+    labs: FrameLike,
+    patients: FrameLike | None,
+    rule: SustainRule,
+    value_filter: ValueFilterRule | None,
 ) -> pl.DataFrame:
     uacr = uacr_timeline(labs, patients)
     if value_filter is not None and value_filter.exclude_settings:
@@ -344,7 +347,7 @@ def _reported_in_mmol(unit: str) -> bool:
         return False
 
 
-def _gfr_results(egfr: FrameLike, value_filter: ValueFilter | None) -> pl.DataFrame:
+def _gfr_results(egfr: FrameLike, value_filter: ValueFilterRule | None) -> pl.DataFrame:
     df = usable_egfr(egfr, value_filter)
     return df.select(
         "patient_id",
@@ -561,7 +564,7 @@ def _results(
     labs: FrameLike | None,
     patients: FrameLike | None,
     rule: SustainRule,
-    value_filter: ValueFilter | None,
+    value_filter: ValueFilterRule | None,
 ) -> pl.DataFrame:
     parts = []
     if egfr is not None:
@@ -578,7 +581,7 @@ def category_results(
     labs: FrameLike | None = None,
     patients: FrameLike | None = None,
     rule: SustainRule | None = None,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
 ) -> pl.DataFrame:
     """KDIGO category of every result and whether it is confirmed (sustained).
 
@@ -588,12 +591,12 @@ def category_results(
         ``schemas.EGFR`` rows (G axis, one sequence per equation).
     labs : polars or pandas DataFrame, optional
         Harmonised labs; UACR rows give the A axis (see
-        :func:`kidneycohort.baseline.uacr_timeline` for how they are placed in time).
+        :func:`kidneycohort.uacr.uacr_timeline` for how they are placed in time).
     patients : polars or pandas DataFrame, optional
         ``patient_id``, ``index_date``; needed with ``labs`` lacking ``years_from_index``.
     rule : SustainRule, optional
         Confirmation rule; ``SustainRule()`` (90 days) by default.
-    value_filter : ValueFilter, optional
+    value_filter : ValueFilterRule, optional
         Results it excludes are shown with ``used`` false and never confirm anything.
 
     Returns
@@ -629,7 +632,7 @@ def sustained_stages(
     labs: FrameLike | None = None,
     patients: FrameLike | None = None,
     rule: SustainRule | None = None,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
 ) -> pl.DataFrame:
     """Sustained KDIGO category stages per patient, equation and axis.
 
@@ -908,7 +911,7 @@ def ckd_status(
     labs: FrameLike | None = None,
     patients: FrameLike | None = None,
     rule: SustainRule | None = None,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
 ) -> pl.DataFrame:
     """CKD present by the KDIGO definition: eGFR < 60 or albuminuria A2+ for > 3 months.
 
@@ -1002,7 +1005,7 @@ def kdigo_progression(
     baseline: FrameLike,
     slopes: FrameLike | None = None,
     rule: SustainRule | None = None,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
     decline_fraction: float = 0.25,
 ) -> pl.DataFrame:
     """KDIGO progression per patient and equation: certain drop and rapid progression.
@@ -1019,7 +1022,7 @@ def kdigo_progression(
     egfr : polars or pandas DataFrame
         ``schemas.EGFR`` rows.
     baseline : polars or pandas DataFrame
-        :func:`kidneycohort.baseline.baseline` output (``schemas.BASELINE``).
+        :func:`kidneycohort.baseline.egfr_baseline` output (``schemas.BASELINE``).
     slopes : polars or pandas DataFrame, optional
         :func:`kidneycohort.slopes.egfr_slopes` output; gives ``rapid_progression``.
     rule, value_filter
@@ -1160,17 +1163,17 @@ def baseline_categories(
     with :math:`G` and :math:`A` the KDIGO 2012 categories of :func:`gfr_category_expr`
     and :func:`albuminuria_category_expr` (Tables 5 and 6) and :math:`R` the prognosis
     grid of KDIGO 2012 Figure 2 (:data:`RISK_GRID`) [1]_. The baseline UACR is a mean
-    in mg/g (:func:`kidneycohort.baseline.baseline_uacr`), so it is classified on the
+    in mg/g (:func:`kidneycohort.baseline.uacr_baseline`), so it is classified on the
     mg/g thresholds 30 and 300 whatever unit the results were reported in.
 
     Parameters
     ----------
     baseline : polars or pandas DataFrame
-        :func:`kidneycohort.baseline.baseline` output (``schemas.BASELINE``): at least
+        :func:`kidneycohort.baseline.egfr_baseline` output (``schemas.BASELINE``): at least
         ``patient_id``, ``equation``, ``baseline_egfr``; ``baseline_reason`` is used
         when present.
     uacr_baseline : polars or pandas DataFrame, optional
-        :func:`kidneycohort.baseline.baseline_uacr` output: ``patient_id``,
+        :func:`kidneycohort.baseline.uacr_baseline` output: ``patient_id``,
         ``baseline_uacr_mg_g`` (and ``baseline_reason``). Without it every A category is
         null with reason ``no_uacr_baseline``.
     equation : str, optional

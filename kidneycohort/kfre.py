@@ -50,10 +50,10 @@ import numpy.typing as npt
 import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
-from kidneycohort.aki import ValueFilter, usable_egfr
-from kidneycohort.baseline import uacr_timeline
 from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
 from kidneycohort.schemas import DAYS_PER_YEAR
+from kidneycohort.uacr import uacr_timeline
+from kidneycohort.value_filter import ValueFilterRule, usable_egfr
 
 logger = logging.getLogger(__name__)
 
@@ -110,7 +110,7 @@ def kfre_risk(
     """KFRE 4-variable risk of kidney failure within ``horizon_years`` (arrays or scalars).
 
     Applies the module-level formula to any values, without the applicability check
-    (use :func:`kfre` on a table for that). UACR must be positive.
+    (use :func:`add_kfre_risk` on a table for that). UACR must be positive.
 
     Parameters
     ----------
@@ -146,7 +146,7 @@ def kfre_risk(
     return 1.0 - survival[horizon_years] ** np.exp(eta)
 
 
-def kfre(inputs: FrameLike, region: Region = "north_american") -> pl.DataFrame:
+def add_kfre_risk(inputs: FrameLike, region: Region = "north_american") -> pl.DataFrame:
     """Add 2- and 5-year KFRE risks to a table of inputs, enforcing applicability.
 
     Parameters
@@ -210,7 +210,7 @@ def kfre_inputs(
     equation: str,
     at_years: float | FrameLike = 0.0,
     lookback_days: float = 365.0,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
 ) -> pl.DataFrame:
     """The KFRE inputs of each patient at a chosen time: the latest values before it.
 
@@ -222,7 +222,7 @@ def kfre_inputs(
     egfr : polars or pandas DataFrame
         ``schemas.EGFR`` rows.
     labs : polars or pandas DataFrame
-        Harmonised labs with UACR rows (see :func:`kidneycohort.baseline.uacr_timeline`).
+        Harmonised labs with UACR rows (see :func:`kidneycohort.uacr.uacr_timeline`).
     patients : polars or pandas DataFrame
         ``patient_id``, ``sex`` and ``age_at_index`` or (``birth_date``, ``index_date``).
     equation : str
@@ -232,7 +232,7 @@ def kfre_inputs(
         ``at_years`` giving one time per patient.
     lookback_days : float
         How far back a value may be.
-    value_filter : ValueFilter, optional
+    value_filter : ValueFilterRule, optional
         eGFR results it excludes are not used.
 
     Returns

@@ -1,6 +1,6 @@
 """Per-patient eGFR slopes by ordinary least squares, from group-by sums.
 
-For each patient x equation the usable values (see :mod:`kidneycohort.aki`) inside the
+For each patient x equation the usable values (see :mod:`kidneycohort.value_filter`) inside the
 rule's time window are regressed on years from index. The fit is the closed form of
 simple linear regression from the sums :math:`n, \\sum x, \\sum y, \\sum x^2,
 \\sum xy, \\sum y^2` of one polars group-by, so it is the same on any partition of
@@ -45,8 +45,8 @@ from pydantic import Field, model_validator
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform
 from kidneycohort._rules import RuleModel
-from kidneycohort.aki import ValueFilter, usable_egfr
 from kidneycohort.errors import ConfigError
+from kidneycohort.value_filter import ValueFilterRule, usable_egfr
 
 logger = logging.getLogger(__name__)
 
@@ -119,7 +119,7 @@ def _centred(prefix: str, n: pl.Expr) -> list[pl.Expr]:
 def egfr_slopes(
     egfr: FrameLike,
     rule: SlopeRule | None = None,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
 ) -> pl.DataFrame:
     """OLS slope of eGFR on years from index, per patient and equation.
 
@@ -131,7 +131,7 @@ def egfr_slopes(
     rule : SlopeRule, optional
         Eligibility, rapid-decline threshold and time window; defaults to
         ``SlopeRule()``.
-    value_filter : ValueFilter, optional
+    value_filter : ValueFilterRule, optional
         Results it excludes are not used (an ``excluded`` column already present is
         honoured either way).
 

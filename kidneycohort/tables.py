@@ -2,7 +2,7 @@
 
 Every function returns a polars DataFrame ready to print: counts and statistics are
 formatted as text, and small cells are protected. A count between 1 and the threshold
-(``TableSpec.small_cell_threshold``, default 10) is shown as ``"<11"``; a percentage,
+(``TableRule.small_cell_threshold``, default 10) is shown as ``"<11"``; a percentage,
 rate or sum that would reveal such a count is suppressed with it; and where the other
 cells of a category block would give a suppressed cell away by subtraction from the
 total, the next smallest cell of the block is suppressed too (secondary suppression,
@@ -39,7 +39,7 @@ from kidneycohort.models.survival import CoxModel
 logger = logging.getLogger(__name__)
 
 __all__ = [
-    "TableSpec",
+    "TableRule",
     "baseline_characteristics",
     "endpoint_table",
     "kdigo_count_grid",
@@ -57,7 +57,7 @@ _MISSING_LEVEL = "missing"
 _COMPLEMENTARY_LABEL = "*"  # hidden so that a suppressed cell cannot be recovered
 
 
-class TableSpec(RuleModel):
+class TableRule(RuleModel):
     """Options of the output tables (config key ``tables``)."""
 
     model_config = ConfigDict(frozen=False)
@@ -83,15 +83,15 @@ class TableSpec(RuleModel):
     )
 
 
-def suppression_label(spec: TableSpec | None = None) -> str:
+def suppression_label(spec: TableRule | None = None) -> str:
     """The text shown for a suppressed count, e.g. ``"<11"``."""
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     return f"<{spec.small_cell_threshold + 1}"
 
 
-def suppression_footnote(spec: TableSpec | None = None) -> str:
+def suppression_footnote(spec: TableRule | None = None) -> str:
     """Footnote explaining small-cell suppression, for every aggregate table."""
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     if spec.small_cell_threshold == 0:
         return "No small-cell suppression applied."
     label = suppression_label(spec)
@@ -106,11 +106,11 @@ def suppression_footnote(spec: TableSpec | None = None) -> str:
 # ---- formatting expressions ------------------------------------------------------------
 
 
-def _is_small(count: pl.Expr, spec: TableSpec) -> pl.Expr:
+def _is_small(count: pl.Expr, spec: TableRule) -> pl.Expr:
     return (count >= 1) & (count <= spec.small_cell_threshold)
 
 
-def _count_text(count: pl.Expr, spec: TableSpec, hide: pl.Expr | None = None) -> pl.Expr:
+def _count_text(count: pl.Expr, spec: TableRule, hide: pl.Expr | None = None) -> pl.Expr:
     hidden = _is_small(count, spec) if hide is None else hide
     return (
         pl.when(count.is_null())
@@ -141,7 +141,7 @@ def _format_fixed(expr: pl.Expr, decimals: int) -> pl.Expr:
     )
 
 
-def _p_text(expr: pl.Expr, spec: TableSpec) -> pl.Expr:
+def _p_text(expr: pl.Expr, spec: TableRule) -> pl.Expr:
     floor = 10.0 ** (-spec.p_decimals)
     return (
         pl.when(expr.is_null() | expr.is_nan())
@@ -166,11 +166,11 @@ def _interval(estimate: pl.Expr, lower: pl.Expr, upper: pl.Expr, decimals: int) 
 
 
 def suppress_small_counts(
-    frame: FrameLike, count_columns: Sequence[str], *, spec: TableSpec | None = None
+    frame: FrameLike, count_columns: Sequence[str], *, spec: TableRule | None = None
 ) -> pl.DataFrame:
     """Return ``frame`` with each of ``count_columns`` as text, counts from 1 to the
     threshold replaced by the suppression label (``"<11"``)."""
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     table = to_polars(frame, "table")
     require_columns(table, count_columns, "table")
     return table.with_columns(_count_text(pl.col(c), spec).alias(c) for c in count_columns)
@@ -188,7 +188,7 @@ def endpoint_table(
     covariates: Sequence[str] = (),
     strata: Sequence[str] = (),
     endpoint: str | Sequence[str] | None = None,
-    spec: TableSpec | None = None,
+    spec: TableRule | None = None,
 ) -> pl.DataFrame:
     r"""Endpoint table: per endpoint and group, N, events n (%), person-years, rate per
     100 person-years (exact 95 % CI), hazard ratio (95 % CI) and p.
@@ -208,7 +208,7 @@ def endpoint_table(
         ``endpoint, group, n_patients, events, person_years, rate_per_100py,
         hazard_ratio, p`` as text.
     """
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     frame = _with_group(endpoints, patients, group_column)
     rates = incidence_rates(frame, group_column="group", endpoint=endpoint)
     counts = frame.group_by("endpoint", "group").agg(pl.len().cast(pl.Int64).alias("n_patients"))
@@ -307,7 +307,7 @@ def endpoint_table(
 # ---- slope table -----------------------------------------------------------------------
 
 
-def slope_table(model: SlopeModel, *, spec: TableSpec | None = None) -> pl.DataFrame:
+def slope_table(model: SlopeModel, *, spec: TableRule | None = None) -> pl.DataFrame:
     """Slope table of a fitted :class:`~kidneycohort.models.mixed.SlopeModel`: per group
     and per difference, acute change, chronic and total slopes with SE, 95 % CI and p.
 
@@ -317,7 +317,7 @@ def slope_table(model: SlopeModel, *, spec: TableSpec | None = None) -> pl.DataF
         ``contrast, quantity, n_patients, estimate, se, ci_95, p`` as text; ``n_patients``
         is the group's size (both groups' for a difference), small counts suppressed.
     """
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     if not hasattr(model, "group_sizes_"):
         raise InputDataError(
             "slope_table: the model is not fitted; call .fit(egfr, patients) first"
@@ -371,7 +371,7 @@ def baseline_characteristics(
     group_column: str = "group",
     covariates: Sequence[str] = (),
     equation: str | None = None,
-    spec: TableSpec | None = None,
+    spec: TableRule | None = None,
 ) -> pl.DataFrame:
     r"""Baseline characteristics by group (and overall).
 
@@ -387,7 +387,7 @@ def baseline_characteristics(
     polars.DataFrame
         ``characteristic, statistic, level``, one text column per group, and ``Overall``.
     """
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     people = to_polars(patients, "patients")
     require_columns(people, ("patient_id", group_column), "patients")
     if people["patient_id"].is_duplicated().any():
@@ -609,7 +609,7 @@ def _category_block(
     sizes: pl.DataFrame,
     characteristic: str,
     order: int,
-    spec: TableSpec,
+    spec: TableRule,
     *,
     levels: Sequence[str] | None,
 ) -> pl.DataFrame:
@@ -738,7 +738,7 @@ def _one_row_per_patient(categories: pl.DataFrame, equation: str | None) -> pl.D
 
 
 def kdigo_count_grid(
-    categories: FrameLike, *, equation: str | None = None, spec: TableSpec | None = None
+    categories: FrameLike, *, equation: str | None = None, spec: TableRule | None = None
 ) -> pl.DataFrame:
     """Number of patients in each KDIGO GFR x albuminuria cell (KDIGO 2012 / 2024 grid).
 
@@ -752,7 +752,7 @@ def kdigo_count_grid(
         included) plus any ``missing`` cells; ``n`` is null where suppressed and
         ``n_display`` is the text to show (``"<11"``).
     """
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     kdigo = _one_row_per_patient(to_polars(categories, "categories"), equation)
     require_columns(kdigo, ("g_category", "a_category"), "categories")
     _check_levels(kdigo, "g_category", G_CATEGORIES)
@@ -787,7 +787,7 @@ def transition_matrix(
     *,
     axis: str = "G",
     equation: str | None = None,
-    spec: TableSpec | None = None,
+    spec: TableRule | None = None,
 ) -> pl.DataFrame:
     """Counts of category transitions (``schemas.TRANSITIONS`` rows) on one axis.
 
@@ -798,7 +798,7 @@ def transition_matrix(
         distinct categories of the axis (zeros included); ``n`` counts transitions,
         ``n_patients`` patients with at least one; both null where suppressed.
     """
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     table = to_polars(transitions, "transitions")
     require_columns(table, ("patient_id", "axis", "from_category", "to_category"), "transitions")
     if axis not in ("G", "A"):
@@ -941,7 +941,7 @@ def rate_comparison_table(
     group_column: str = "group",
     reference_group: str | None = None,
     confidence: float = 0.95,
-    spec: TableSpec | None = None,
+    spec: TableRule | None = None,
 ) -> pl.DataFrame:
     r"""Incidence rates per 100 person-years with rate ratios and differences, for sharing.
 
@@ -969,7 +969,7 @@ def rate_comparison_table(
     """
     from kidneycohort.models.rates import incidence_rates, rate_difference, rate_ratio
 
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     rates = incidence_rates(endpoints, patients, group_column=group_column, confidence=confidence)
     groups = sorted(rates["group"].drop_nulls().unique().to_list())
     reference = reference_group if reference_group is not None else (groups[0] if groups else None)

@@ -13,9 +13,9 @@ from polars.testing import assert_frame_equal
 from scipy import stats
 
 from kidneycohort import schemas
-from kidneycohort.aki import ValueFilter
-from kidneycohort.baseline import BaselineRule, baseline, baseline_uacr
+from kidneycohort.baseline import BaselineRule, egfr_baseline, uacr_baseline
 from kidneycohort.errors import ConfigError, InputDataError
+from kidneycohort.value_filter import ValueFilterRule
 
 # patient a: one value before the window, four in it, one after index
 TIMELINE = [
@@ -29,7 +29,7 @@ TIMELINE = [
 
 
 def _one(rule: BaselineRule, rows=TIMELINE, **kw) -> dict:
-    out = baseline(egfr_table(rows), rule, **kw)
+    out = egfr_baseline(egfr_table(rows), rule, **kw)
     return out.row(0, named=True)
 
 
@@ -67,7 +67,7 @@ def test_window_bounds_are_inclusive():
 
 def test_values_only_before_index_and_only_after_index():
     rows = [("before", -20, 45.0), ("before", -5, 47.0), ("after", 5, 60.0), ("after", 90, 58.0)]
-    out = baseline(egfr_table(rows)).sort("patient_id")
+    out = egfr_baseline(egfr_table(rows)).sort("patient_id")
     assert out["baseline_egfr"].to_list() == [None, 47.0]
     assert out["baseline_reason"].to_list() == ["no_value_in_window", None]
     assert out["baseline_n_values"].to_list() == [0, 1]
@@ -76,7 +76,9 @@ def test_values_only_before_index_and_only_after_index():
 def test_every_patient_and_equation_appears_with_a_reason():
     rows = [("none", -10, None), ("ok", -10, 50.0), ("sick", -10, 20.0, 1.0, "inpatient")]
     df = pl.concat([egfr_table(rows), egfr_table([("ok", -5, 48.0)], equation="ckd_epi_2009_cr")])
-    out = baseline(df, value_filter=ValueFilter(exclude_aki=False)).sort("patient_id", "equation")
+    out = egfr_baseline(df, value_filter=ValueFilterRule(exclude_aki=False)).sort(
+        "patient_id", "equation"
+    )
     expected = pl.DataFrame(
         {
             "patient_id": ["none", "ok", "ok", "sick"],
@@ -105,8 +107,8 @@ def test_require_n():
 def test_accepts_pandas_and_ties_do_not_depend_on_row_order():
     rows = [("a", -10, 50.0), ("a", -10, 54.0)]
     df = egfr_table(rows)
-    first = baseline(df.to_pandas())
-    second = baseline(df.reverse())
+    first = egfr_baseline(df.to_pandas())
+    second = egfr_baseline(df.reverse())
     assert_frame_equal(first, second)
     assert first["baseline_egfr"][0] == 54.0  # ties at the latest time: highest last
 
@@ -117,30 +119,32 @@ def test_bad_rules_and_tables():
     with pytest.raises(ConfigError, match=r"BaselineRule\.method"):
         BaselineRule(method="last")
     with pytest.raises(InputDataError, match="'egfr'"):
-        baseline(pl.DataFrame({"patient_id": ["a"], "equation": [EQ], "years_from_index": [0.0]}))
+        egfr_baseline(
+            pl.DataFrame({"patient_id": ["a"], "equation": [EQ], "years_from_index": [0.0]})
+        )
     with pytest.raises(InputDataError, match="expected a polars or pandas"):
-        baseline([1, 2, 3])
+        egfr_baseline([1, 2, 3])
 
 
 def test_uacr_geometric_mean_with_index_dates():
     labs = uacr_labs([("a", -200, 10.0), ("a", -20, 1000.0), ("a", 40, 5.0), ("b", 30, 50.0)])
     pts = patients_table(["a", "b", "c"])
-    out = baseline_uacr(labs, pts).sort("patient_id")
+    out = uacr_baseline(labs, pts).sort("patient_id")
     # geometric mean of 10 and 1000 is 100 (scipy.stats.gmean)
     assert out["baseline_uacr_mg_g"][0] == pytest.approx(stats.gmean([10.0, 1000.0]))
     assert out["baseline_uacr_mg_g"][0] == pytest.approx(100.0)
     assert out["baseline_reason"].to_list() == [None, "no_value_in_window", "no_computable_value"]
-    arithmetic = baseline_uacr(labs, pts, BaselineRule(method="mean_in_window"))
+    arithmetic = uacr_baseline(labs, pts, BaselineRule(method="mean_in_window"))
     assert arithmetic.filter(pl.col("patient_id") == "a")["baseline_uacr_mg_g"][0] == 505.0
     no_index = patients_table(["a", "b"], index=None)
-    assert baseline_uacr(labs, no_index)["baseline_reason"].to_list() == ["no_index_date"] * 2
+    assert uacr_baseline(labs, no_index)["baseline_reason"].to_list() == ["no_index_date"] * 2
     with pytest.raises(InputDataError, match="index_date"):
-        baseline_uacr(labs)
+        uacr_baseline(labs)
 
 
 def test_uacr_zero_value_has_no_geometric_mean():
     labs = uacr_labs([("a", -20, 0.0), ("a", -10, 30.0)])
-    out = baseline_uacr(labs, patients_table(["a"]))
+    out = uacr_baseline(labs, patients_table(["a"]))
     assert out["baseline_reason"][0] == "nonpositive_value_for_geometric_mean"
     assert out["baseline_uacr_mg_g"][0] is None
 
@@ -149,7 +153,7 @@ def test_mean_matches_pandas_groupby():
     # reference: pandas group-by mean of the same window, a general-purpose library
     df = random_cohort(3, n_patients=60)
     rule = BaselineRule(method="mean_in_window", window_start_days=-365, window_end_days=0)
-    ours = baseline(df, rule).sort("patient_id")
+    ours = egfr_baseline(df, rule).sort("patient_id")
     pdf = df.to_pandas()
     days = pdf["years_from_index"] * 365.25
     ref = pdf[(days >= -365 - 1e-6) & (days <= 1e-6)].groupby("patient_id")["egfr"].mean()
@@ -163,15 +167,15 @@ def test_mean_matches_pandas_groupby():
 def test_partition_and_row_order_invariance(seed):
     df = random_cohort(seed, n_patients=30, equations=(EQ, "other"))
     rule = BaselineRule(method="mean_last_n", n=2)
-    vf = ValueFilter()
-    whole = baseline(df, rule, vf).sort("patient_id", "equation")
+    vf = ValueFilterRule()
+    whole = egfr_baseline(df, rule, vf).sort("patient_id", "equation")
     part = df["patient_id"].unique().sort().sample(fraction=0.4, seed=seed).implode()
     split = pl.concat(
         [
-            baseline(df.filter(pl.col("patient_id").is_in(part)), rule, vf),
-            baseline(df.filter(~pl.col("patient_id").is_in(part)), rule, vf),
+            egfr_baseline(df.filter(pl.col("patient_id").is_in(part)), rule, vf),
+            egfr_baseline(df.filter(~pl.col("patient_id").is_in(part)), rule, vf),
         ]
     ).sort("patient_id", "equation")
     assert_frame_equal(whole, split)
-    shuffled = baseline(df.sample(fraction=1.0, shuffle=True, seed=seed), rule, vf)
+    shuffled = egfr_baseline(df.sample(fraction=1.0, shuffle=True, seed=seed), rule, vf)
     assert_frame_equal(whole, shuffled.sort("patient_id", "equation"))

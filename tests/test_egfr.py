@@ -11,9 +11,9 @@ import pytest
 from polars.testing import assert_frame_equal
 
 from kidneycohort import equations, schemas
-from kidneycohort.egfr import EGFR_REASON_CODES, AgeBand, EgfrRules, compute_egfr, egfr_wide
+from kidneycohort.egfr import EGFR_REASON_CODES, AgeBand, EgfrRule, compute_egfr, egfr_wide
 from kidneycohort.errors import ConfigError, InputDataError
-from kidneycohort.harmonize import harmonize
+from kidneycohort.harmonize import harmonize_tables
 from tests import _harmonize_fixtures as fx
 
 
@@ -222,13 +222,13 @@ def test_default_is_adult_only_and_age_bands_choose_equations() -> None:
     patients = pl.concat([CHILD, ADULT], how="diagonal_relaxed")
     default = compute_egfr(labs, patients)
     assert default["egfr_reason"].to_list() == ["age_below_validated_range", None]
-    rules = EgfrRules(
+    rule = EgfrRule(
         by_age=[
             AgeBand(max_age=18, equations=["ckid_u25_cr"]),
             AgeBand(min_age=18, equations=["ckd_epi_2021_cr"]),
         ]
     )
-    banded = compute_egfr(labs, patients, rules=rules)
+    banded = compute_egfr(labs, patients, rule=rule)
     assert banded.select("patient_id", "equation").rows() == [
         ("K", "ckid_u25_cr"),
         ("M", "ckd_epi_2021_cr"),
@@ -269,12 +269,12 @@ def test_measurement_window() -> None:
 
 def test_partition_invariance_harmonise_then_egfr() -> None:
     chosen = ["ckd_epi_2021_cr", "ckd_epi_2021_crcys", "cockcroft_gault"]
-    whole_h = harmonize(fx.dirty_labs(), fx.patients(), data_cut_date=fx.DATA_CUT)
+    whole_h = harmonize_tables(fx.dirty_labs(), fx.patients(), data_cut_date=fx.DATA_CUT)
     whole = compute_egfr(whole_h.labs, whole_h.patients, chosen)
     parts = []
     for half in (["P1", "P3", "P5"], ["P2", "P4", "P6"]):
         in_half = pl.col("patient_id").is_in(half)
-        h = harmonize(
+        h = harmonize_tables(
             fx.dirty_labs().filter(in_half),
             fx.patients().filter(in_half),
             data_cut_date=fx.DATA_CUT,

@@ -24,7 +24,7 @@ from kidneycohort.endpoints import (
     Death,
     EgfrBelow,
     EgfrDecline,
-    EndpointRules,
+    EndpointRule,
     KidneyDeath,
     KidneyFailure,
     derive_endpoints,
@@ -50,7 +50,7 @@ class Case:
     timeline: Timeline
     expected: dict[str, tuple[int | None, int | None, str, int | None]]
     definitions: list[Any] = field(default_factory=lambda: DEFS)
-    rules: dict[str, Any] = field(default_factory=dict)
+    rule: dict[str, Any] = field(default_factory=dict)
 
 
 T = Timeline
@@ -72,14 +72,14 @@ CASES = [
         "decline_at_last_visit_counted",
         T("p03", [(90, 100), (180, 55)]),
         {DEC: (1, 180, "unconfirmed_last_value", 0)},
-        rules={"unconfirmed_last_value": "event"},
+        rule={"unconfirmed_last_value": "event"},
     ),
     # 4. Same, with 'censor': the death 20 days later is then a competing event.
     Case(
         "decline_at_last_visit_censor_rule",
         T("p04", [(90, 100), (180, 55)], death=200),
         {DEC: (0, 200, "death", 1)},
-        rules={"unconfirmed_last_value": "censor"},
+        rule={"unconfirmed_last_value": "censor"},
     ),
     # 5. Confirmation exactly 28 days later.
     Case(
@@ -110,7 +110,7 @@ CASES = [
         "event_at_confirming_date",
         T("p09", [(180, 55), (208, 58)]),
         {DEC: (1, 208, "confirmed", 0)},
-        rules={"event_date": "confirming"},
+        rule={"event_date": "confirming"},
     ),
     # 10. Two values on one day are averaged (common practice): (50 + 60) / 2 = 55 qualifies.
     Case(
@@ -222,7 +222,7 @@ CASES = [
         "dip_inside_grace",
         T("p26", [(60, 55), (100, 55), (200, 95)]),
         {DEC: (0, 200, "last_assessment", 0)},
-        rules={"grace_period_days": 90},
+        rule={"grace_period_days": 90},
     ),
     # 26. Composite where two components fire on the same day: both are named.
     Case(
@@ -270,27 +270,27 @@ CASES = [
         "lab_censoring_end_of_followup",
         T("p32", [(180, 80)], end_of_followup=700),
         {DEC: (0, 700, "end_of_followup", 0)},
-        rules={"lab_censoring": "end_of_followup"},
+        rule={"lab_censoring": "end_of_followup"},
     ),
     # 32. ...and at kidney-failure onset when that comes first.
     Case(
         "lab_censoring_at_kidney_failure",
         T("p33", [(180, 80)], kfrt=400),
         {DEC: (0, 400, "kidney_failure", 0), COMP: (1, 400, KF, 0)},
-        rules={"lab_censoring": "end_of_followup"},
+        rule={"lab_censoring": "end_of_followup"},
     ),
     # 33. Sustained to the end: a later value back above 60 undoes the decline.
     Case(
         "sustained_to_end_broken",
         T("p34", [(180, 55), (210, 58), (400, 65)]),
         {DEC: (0, 400, "last_assessment", 0)},
-        rules={"confirmation": "sustained_to_end"},
+        rule={"confirmation": "sustained_to_end"},
     ),
     Case(
         "sustained_to_end_kept",
         T("p35", [(180, 55), (210, 58), (400, 50)]),
         {DEC: (1, 180, "sustained", 0)},
-        rules={"confirmation": "sustained_to_end"},
+        rule={"confirmation": "sustained_to_end"},
     ),
     # 34. The same broken pattern is confirmed under 'next_value' (day 210 confirms day 180).
     Case(
@@ -313,7 +313,7 @@ CASES = [
         "outside_confirmation_window",
         T("p38", [(180, 55), (300, 55)]),
         {DEC: (0, 300, "last_assessment", 0)},
-        rules={"confirm_within_days": 60},
+        rule={"confirm_within_days": 60},
     ),
     # 37. Prevalent kidney failure (transplant before index): kidney endpoints not evaluable.
     Case(
@@ -351,7 +351,7 @@ CASES = [
 ]
 
 
-def _run(timelines: list[Timeline], definitions: list[Any], rules: dict[str, Any]) -> pl.DataFrame:
+def _run(timelines: list[Timeline], definitions: list[Any], rule: dict[str, Any]) -> pl.DataFrame:
     t = build(timelines)
     return derive_endpoints(
         t["egfr"],
@@ -361,7 +361,7 @@ def _run(timelines: list[Timeline], definitions: list[Any], rules: dict[str, Any
         definitions,
         equation=EQUATION,
         data_cut=DATA_CUT,
-        rules=EndpointRules(**rules),
+        rule=EndpointRule(**rule),
     )
 
 
@@ -372,7 +372,7 @@ def test_at_least_25_hand_built_cases() -> None:
 
 @pytest.mark.parametrize("case", CASES, ids=[c.id for c in CASES])
 def test_hand_built_timeline(case: Case) -> None:
-    result = _run([case.timeline], case.definitions, case.rules)
+    result = _run([case.timeline], case.definitions, case.rule)
     assert result.columns == list(schemas.ENDPOINTS)
     for endpoint, (event, end_day, reason, competing) in case.expected.items():
         row = result.filter(pl.col("endpoint") == endpoint)
@@ -394,7 +394,7 @@ def test_hand_built_timeline(case: Case) -> None:
 
 def test_cases_together_equal_cases_alone() -> None:
     """Partition rule: the default-rule cases derived as one cohort give the same rows."""
-    same = [c for c in CASES if not c.rules and c.definitions is DEFS]
+    same = [c for c in CASES if not c.rule and c.definitions is DEFS]
     together = _run([c.timeline for c in same], DEFS, {})
     alone = pl.concat([_run([c.timeline], DEFS, {}) for c in same])
     key = ["endpoint", "patient_id"]
@@ -427,7 +427,7 @@ def test_pandas_input_gives_the_same_table() -> None:
 def test_definitions_from_config_mappings() -> None:
     """The YAML keys are the model field names."""
     config = [
-        {"kind": "egfr_decline", "percent": 40, "rules": {"confirm_after_days": 90}},
+        {"kind": "egfr_decline", "percent": 40, "rule": {"confirm_after_days": 90}},
         {"kind": "kidney_failure"},
         {
             "kind": "composite",

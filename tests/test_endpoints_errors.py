@@ -11,7 +11,7 @@ from kidneycohort.endpoints import (
     Composite,
     EgfrBelow,
     EgfrDecline,
-    EndpointRules,
+    EndpointRule,
     KidneyFailure,
     derive_endpoints,
     parse_endpoint_definitions,
@@ -135,8 +135,8 @@ def test_no_definitions() -> None:
         ),
         ({"kind": "egfr_decline", "percnt": 40}, r"percnt: Extra inputs.*did you mean 'percent'"),
         (
-            {"kind": "egfr_decline", "percent": 40, "rules": {"confirm_after_day": 30}},
-            r"rules\.confirm_after_day: Extra inputs.*did you mean 'confirm_after_days'",
+            {"kind": "egfr_decline", "percent": 40, "rule": {"confirm_after_day": 30}},
+            r"rule\.confirm_after_day: Extra inputs.*did you mean 'confirm_after_days'",
         ),
         ({"kind": "egfr_below", "threshold": -1}, r"threshold: .*greater than 0 \(got -1\)"),
         ({"kind": "composite", "components": []}, r"components: .*at least 1"),
@@ -151,24 +151,24 @@ def test_models_built_in_python_raise_config_error() -> None:
     with pytest.raises(ConfigError, match=r"EgfrDecline\.percent: .*greater than 0 \(got 0\)"):
         EgfrDecline(percent=0)
     with pytest.raises(
-        ConfigError, match=r"EndpointRules\.confirm_after_days: .*greater than or equal to 1"
+        ConfigError, match=r"EndpointRule\.confirm_after_days: .*greater than or equal to 1"
     ):
-        EndpointRules(confirm_after_days=0)
+        EndpointRule(confirm_after_days=0)
     with pytest.raises(
         ConfigError, match=r"confirm_within_days \(10\) must be at least confirm_after_days \(28\)"
     ):
-        EndpointRules(confirm_within_days=10)
+        EndpointRule(confirm_within_days=10)
     with pytest.raises(ConfigError, match=r"paramcd 'TOOLONGCODE' must be 1-8"):
         EgfrDecline(percent=40, paramcd="TOOLONGCODE")
     with pytest.raises(ConfigError, match=r"unconfirmed_last_value"):
-        EndpointRules(unconfirmed_last_value="maybe")
+        EndpointRule(unconfirmed_last_value="maybe")
 
 
 def test_rules_mapping_with_typo() -> None:
     with pytest.raises(
-        ConfigError, match=r"rules\.grace_days: Extra inputs.*did you mean 'grace_period_days'"
+        ConfigError, match=r"rule\.grace_days: Extra inputs.*did you mean 'grace_period_days'"
     ):
-        _derive(rules={"grace_days": 30})
+        _derive(rule={"grace_days": 30})
 
 
 def test_unknown_composite_component() -> None:
@@ -208,6 +208,6 @@ def test_definition_defaults_are_self_describing() -> None:
     b = EgfrBelow(threshold=15, and_decline_percent=40)
     assert (b.name, b.paramcd) == ("egfr_below_15_and_decline_40", "LT15D40")
     assert "40%" in b.label
-    for model in (EndpointRules, EgfrDecline, EgfrBelow, KidneyFailure, Composite):
+    for model in (EndpointRule, EgfrDecline, EgfrBelow, KidneyFailure, Composite):
         for name, info in model.model_fields.items():
             assert info.description, f"{model.__name__}.{name} has no description"

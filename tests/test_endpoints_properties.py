@@ -9,7 +9,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from polars.testing import assert_frame_equal
 
-from kidneycohort.endpoints import Death, EndpointRules, derive_endpoints, usual_kidney_composite
+from kidneycohort.endpoints import Death, EndpointRule, derive_endpoints, usual_kidney_composite
 from tests._endpoints_fixtures import DATA_CUT, EQUATION, INDEX, Timeline, build
 
 CUT_DAY = (DATA_CUT - INDEX).days
@@ -71,7 +71,7 @@ def cohort(draw: st.DrawFn) -> list[Timeline]:
 
 
 rules_strategy = st.builds(
-    EndpointRules,
+    EndpointRule,
     confirmation=st.sampled_from(["next_value", "sustained_to_end"]),
     confirm_after_days=st.sampled_from([28, 30, 90]),
     unconfirmed_last_value=st.sampled_from(["censor", "event_if_death_or_failure", "event"]),
@@ -83,7 +83,7 @@ rules_strategy = st.builds(
 SETTINGS = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
-def _derive(tables: dict[str, pl.DataFrame], rules: EndpointRules) -> pl.DataFrame:
+def _derive(tables: dict[str, pl.DataFrame], rule: EndpointRule) -> pl.DataFrame:
     return derive_endpoints(
         tables["egfr"],
         tables["baseline"],
@@ -92,16 +92,14 @@ def _derive(tables: dict[str, pl.DataFrame], rules: EndpointRules) -> pl.DataFra
         DEFS,
         equation=EQUATION,
         data_cut=DATA_CUT,
-        rules=rules,
+        rule=rule,
     )
 
 
 @SETTINGS
 @given(cohort(), rules_strategy)
-def test_end_date_within_start_and_data_cut(
-    timelines: list[Timeline], rules: EndpointRules
-) -> None:
-    out = _derive(build(timelines), rules)
+def test_end_date_within_start_and_data_cut(timelines: list[Timeline], rule: EndpointRule) -> None:
+    out = _derive(build(timelines), rule)
     assert out.height == len(timelines) * len(DEFS)
     evaluable = out.filter(pl.col("event").is_not_null())
     assert (evaluable["end_date"] >= evaluable["start_date"]).all()
@@ -117,9 +115,9 @@ def test_end_date_within_start_and_data_cut(
 @SETTINGS
 @given(cohort(), rules_strategy)
 def test_composite_time_is_the_minimum_of_its_components(
-    timelines: list[Timeline], rules: EndpointRules
+    timelines: list[Timeline], rule: EndpointRule
 ) -> None:
-    out = _derive(build(timelines), rules)
+    out = _derive(build(timelines), rule)
     parts = out.filter(pl.col("endpoint").is_in(COMPONENTS))
     comp = out.filter(pl.col("endpoint") == "kidney_composite").select(
         "patient_id", "end_date", "event", "competing"
@@ -137,32 +135,30 @@ def test_composite_time_is_the_minimum_of_its_components(
             assert (row["event"], row["end_date"]) == (1, row["first_event"])
         else:
             assert (row["event"], row["end_date"]) == (0, row["first_end"])
-        if rules.lab_censoring == "end_of_followup" and not row["any_missing"]:
+        if rule.lab_censoring == "end_of_followup" and not row["any_missing"]:
             # With a common follow-up end, the composite time is the plain minimum.
             assert row["end_date"] == row["first_end"]
 
 
 @SETTINGS
 @given(cohort(), rules_strategy, st.randoms(use_true_random=False))
-def test_row_order_does_not_matter(
-    timelines: list[Timeline], rules: EndpointRules, rnd: Any
-) -> None:
+def test_row_order_does_not_matter(timelines: list[Timeline], rule: EndpointRule, rnd: Any) -> None:
     tables = build(timelines)
     shuffled = {
         name: frame.sample(fraction=1.0, shuffle=True, seed=rnd.randint(0, 2**31))
         for name, frame in tables.items()
     }
-    assert_frame_equal(_derive(tables, rules), _derive(shuffled, rules))
+    assert_frame_equal(_derive(tables, rule), _derive(shuffled, rule))
 
 
 @SETTINGS
 @given(cohort(), rules_strategy, st.randoms(use_true_random=False))
 def test_partition_of_patients_does_not_matter(
-    timelines: list[Timeline], rules: EndpointRules, rnd: Any
+    timelines: list[Timeline], rule: EndpointRule, rnd: Any
 ) -> None:
-    whole = _derive(build(timelines), rules)
+    whole = _derive(build(timelines), rule)
     groups: dict[int, list[Timeline]] = {}
     for t in timelines:
         groups.setdefault(rnd.randint(0, 2), []).append(t)
-    pieces = pl.concat([_derive(build(g), rules) for g in groups.values()])
+    pieces = pl.concat([_derive(build(g), rule) for g in groups.values()])
     assert_frame_equal(whole.sort(KEY), pieces.sort(KEY))

@@ -18,7 +18,7 @@ from kidneycohort import equations
 from kidneycohort.endpoints import (
     EgfrBelow,
     EgfrDecline,
-    EndpointRules,
+    EndpointRule,
     KidneyFailure,
     derive_endpoints,
 )
@@ -74,7 +74,7 @@ def derived() -> dict[str, pl.DataFrame]:
         equation=EQUATION,
         data_cut=truth["end_of_followup"].max(),
         # noise-free values need no confirmation against noise; count a last-visit value too
-        rules=EndpointRules(unconfirmed_last_value="event"),
+        rule=EndpointRule(unconfirmed_last_value="event"),
     )
     return {"endpoints": out, "truth": truth, "egfr": egfr}
 

@@ -13,9 +13,9 @@ from kidneycohort.errors import AccountingError, ConfigError, InputDataError
 from kidneycohort.harmonize import (
     DEFAULT_PLAUSIBLE_RANGES,
     REASON_CODES,
-    HarmonizeRules,
+    HarmonizeRule,
     _account,
-    harmonize,
+    harmonize_tables,
 )
 from tests import _harmonize_fixtures as fx
 
@@ -50,7 +50,7 @@ def lab(
 
 def test_reason_codes_fixture_table() -> None:
     # the fixture names the one reason each dirty row must get
-    out = harmonize(fx.dirty_labs(), fx.patients_with_bad_rows(), data_cut_date=fx.DATA_CUT)
+    out = harmonize_tables(fx.dirty_labs(), fx.patients_with_bad_rows(), data_cut_date=fx.DATA_CUT)
     got = pl.concat([out.rejected, out.merged]).filter(pl.col("table") == "labs")
     assert dict(zip(got["source_row"], got["reason"], strict=True)) == fx.expected_reasons()
     patients = pl.concat([out.rejected, out.merged]).filter(pl.col("table") == "patients")
@@ -65,7 +65,7 @@ def test_reason_codes_fixture_table() -> None:
     assert out.labs.schema == pl.Schema(schemas.LABS)
 
 
-# One minimal case per reason code: (labs, patients, events, rules) -> the single bad row.
+# One minimal case per reason code: (labs, patients, events, rule) -> the single bad row.
 EVENTS_OK = {"patient_id": "A", "event_date": "2021-01-01", "event": "dialysis"}
 
 
@@ -135,7 +135,7 @@ def test_every_reason_code_has_a_case() -> None:
 @pytest.mark.parametrize("code", sorted(REASON_CASES))
 def test_reason_code_case(code: str) -> None:
     table, case = REASON_CASES[code]
-    out = harmonize(
+    out = harmonize_tables(
         case.get("labs", lab()),
         case.get("patients", ONE_PATIENT),
         case.get("events"),
@@ -160,7 +160,7 @@ def test_unit_conversion_factors() -> None:
             "unit": ["umol/L", "mmol/L", "mg/mmol", "mg/g", "mg/dL", "mg/L"],
         }
     )
-    out = harmonize(labs, ONE_PATIENT)
+    out = harmonize_tables(labs, ONE_PATIENT)
     assert out.labs["value"].to_list() == pytest.approx(
         [1.0, 1.0, 3 * 1000 / 113.12, 30.0, 1.1, 1.1], rel=1e-3
     )
@@ -189,7 +189,7 @@ def test_unit_conversion_factors() -> None:
     ],
 )
 def test_result_text_rules(text: str, value: float, qualifier: str | None) -> None:
-    out = harmonize(lab(value=text), ONE_PATIENT)
+    out = harmonize_tables(lab(value=text), ONE_PATIENT)
     assert out.labs["value"].item() == pytest.approx(value)
     assert out.labs["qualifier"].item() == qualifier
     assert out.labs["reported_value"].item() == text.strip()
@@ -197,13 +197,13 @@ def test_result_text_rules(text: str, value: float, qualifier: str | None) -> No
 
 @pytest.mark.parametrize("text", ["see comment", "1.2.3", "1,2.3", "1.2 mg", "pos", "--", "H"])
 def test_text_that_is_not_a_result(text: str) -> None:
-    out = harmonize(lab(value=text), ONE_PATIENT)
+    out = harmonize_tables(lab(value=text), ONE_PATIENT)
     assert out.labs.height == 0
     assert out.rejected["reason"].to_list() == ["not_a_result"]
 
 
 def test_decimal_comma_can_be_switched_off() -> None:
-    out = harmonize(lab(value="0,9"), ONE_PATIENT, decimal_comma=False)
+    out = harmonize_tables(lab(value="0,9"), ONE_PATIENT, decimal_comma=False)
     assert out.rejected["reason"].to_list() == ["not_a_result"]
 
 
@@ -222,7 +222,7 @@ def test_loinc_and_site_names_map_to_analytes() -> None:
             ]
         ]
     ).with_columns(pl.Series("sample_date", [f"2020-01-0{d}" for d in range(1, 8)]))
-    out = harmonize(labs, ONE_PATIENT, analyte_names={"labx-acr": "uacr"})
+    out = harmonize_tables(labs, ONE_PATIENT, analyte_names={"labx-acr": "uacr"})
     assert out.labs["analyte"].to_list() == [
         "creatinine",
         "creatinine",
@@ -248,7 +248,7 @@ def test_same_day_rules(rule: str, value: float, kept_row: int) -> None:
             "unit": ["mg/dL"] * 3,
         }
     )
-    out = harmonize(labs, ONE_PATIENT, same_day_rule=rule)
+    out = harmonize_tables(labs, ONE_PATIENT, same_day_rule=rule)
     assert out.labs["value"].item() == pytest.approx(value)  # (0.8 + 1.0 + 1.2) / 3 = 1.0
     assert out.labs["source_row"].item() == kept_row
     assert out.labs["n_collapsed"].item() == 3
@@ -258,16 +258,16 @@ def test_same_day_rules(rule: str, value: float, kept_row: int) -> None:
 
 def test_same_day_rule_none_keeps_all() -> None:
     labs = pl.concat([lab(value="1.0"), lab(value="1.2")])
-    out = harmonize(labs, ONE_PATIENT, same_day_rule="none")
+    out = harmonize_tables(labs, ONE_PATIENT, same_day_rule="none")
     assert out.labs["value"].to_list() == [1.0, 1.2]
     assert out.merged.height == 0
 
 
 def test_plausible_range_in_another_unit() -> None:
     # 2000 umol/L = 22.6 mg/dL: inside the default 0.1-30 mg/dL, outside 20-1500 umol/L
-    assert harmonize(lab(value="2000", unit="umol/L"), ONE_PATIENT).labs.height == 1
+    assert harmonize_tables(lab(value="2000", unit="umol/L"), ONE_PATIENT).labs.height == 1
     ranges = {**DEFAULT_PLAUSIBLE_RANGES, "creatinine": {"low": 20, "high": 1500, "unit": "umol/L"}}
-    out = harmonize(lab(value="2000", unit="umol/L"), ONE_PATIENT, plausible_ranges=ranges)
+    out = harmonize_tables(lab(value="2000", unit="umol/L"), ONE_PATIENT, plausible_ranges=ranges)
     assert out.rejected["reason"].to_list() == ["implausible_value"]
     assert "22.6244 mg/dL outside 0.2262-16.9683 mg/dL" in out.rejected["detail"].item()
 
@@ -279,7 +279,7 @@ def test_accounting_identity_is_asserted_inside_the_stage() -> None:
 
 
 def test_accounting_columns_contract() -> None:
-    out = harmonize(fx.dirty_labs(), fx.patients(), data_cut_date=fx.DATA_CUT)
+    out = harmonize_tables(fx.dirty_labs(), fx.patients(), data_cut_date=fx.DATA_CUT)
     assert out.accounting.columns == [
         "table",
         "rows_read",
@@ -298,7 +298,7 @@ def test_accounting_columns_contract() -> None:
 
 def test_patients_cleaned_and_covariates_kept() -> None:
     patients = fx.patients().with_columns(pl.col("sex").replace({"F": "U"}))
-    out = harmonize(lab(patient="P2"), patients)
+    out = harmonize_tables(lab(patient="P2"), patients)
     assert out.patients["patient_id"].to_list() == ["P1", "P2", "P3", "P4", "P5", "P6"]
     assert out.patients["sex"].to_list() == [None, "male", "male", "female", "female", None]
     assert out.patients["arm"].to_list() == ["A", "B", "A", "B", "A", "B"]
@@ -307,7 +307,7 @@ def test_patients_cleaned_and_covariates_kept() -> None:
 
 def test_site_sex_codes() -> None:
     patients = pl.DataFrame({"patient_id": ["A", "B"], "sex": ["1", "2"]})
-    out = harmonize(lab(), patients, sex_codes={"1": "male", "2": "female"})
+    out = harmonize_tables(lab(), patients, sex_codes={"1": "male", "2": "female"})
     assert out.patients["sex"].to_list() == ["male", "female"]
 
 
@@ -321,7 +321,7 @@ def test_events_cleaned() -> None:
             _event(event_date="1960-01-01"),
         ]
     )
-    out = harmonize(lab(), ONE_PATIENT, events, event_codes={"hd": "dialysis"})
+    out = harmonize_tables(lab(), ONE_PATIENT, events, event_codes={"hd": "dialysis"})
     assert out.events is not None
     assert out.events["event"].to_list() == ["dialysis", "dialysis", "transplant"]
     assert out.events.schema["event_date"] == pl.Date
@@ -342,14 +342,14 @@ def test_pandas_input_and_numeric_values() -> None:
             "unit": ["mg/dL"],
         }
     )
-    out = harmonize(labs.to_pandas(), ONE_PATIENT.to_pandas())
+    out = harmonize_tables(labs.to_pandas(), ONE_PATIENT.to_pandas())
     assert out.labs["value"].item() == pytest.approx(1.1)
     assert out.labs["sample_datetime"].item() == dt.datetime(2020, 1, 1, 9)
 
 
 def test_harmonising_harmonised_labs_changes_nothing() -> None:
-    first = harmonize(fx.dirty_labs(), fx.patients(), data_cut_date=fx.DATA_CUT)
-    again = harmonize(first.labs, first.patients, data_cut_date=fx.DATA_CUT)
+    first = harmonize_tables(fx.dirty_labs(), fx.patients(), data_cut_date=fx.DATA_CUT)
+    again = harmonize_tables(first.labs, first.patients, data_cut_date=fx.DATA_CUT)
     assert_frame_equal(again.labs, first.labs)
     assert_frame_equal(again.patients, first.patients)
     assert again.rejected.height == 0 and again.merged.height == 0
@@ -359,12 +359,12 @@ def test_bad_rules_and_inputs() -> None:
     with pytest.raises(
         ConfigError, match=r"unknown rule 'same_day_rul'.*did you mean 'same_day_rule'"
     ):
-        harmonize(lab(), ONE_PATIENT, same_day_rul="mean")
+        harmonize_tables(lab(), ONE_PATIENT, same_day_rul="mean")
     with pytest.raises(ConfigError, match="same_day_rule"):
-        harmonize(lab(), ONE_PATIENT, rules=HarmonizeRules(), same_day_rule="median")
+        harmonize_tables(lab(), ONE_PATIENT, rule=HarmonizeRule(), same_day_rule="median")
     with pytest.raises(InputDataError, match="labs: missing required column 'unit'"):
-        harmonize(lab().drop("unit").with_columns(units=pl.lit("x")), ONE_PATIENT)
+        harmonize_tables(lab().drop("unit").with_columns(units=pl.lit("x")), ONE_PATIENT)
     with pytest.raises(InputDataError, match="patients: expected a polars or pandas"):
-        harmonize(lab(), [1, 2])
+        harmonize_tables(lab(), [1, 2])
     with pytest.raises(InputDataError, match="date column 'sample_date' cannot be parsed"):
-        harmonize(pl.concat([lab(date="yesterday")] * 3), ONE_PATIENT)
+        harmonize_tables(pl.concat([lab(date="yesterday")] * 3), ONE_PATIENT)

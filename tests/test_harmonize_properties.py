@@ -9,7 +9,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from polars.testing import assert_frame_equal
 
-from kidneycohort.harmonize import REASON_CODES, harmonize
+from kidneycohort.harmonize import REASON_CODES, harmonize_tables
 
 PATIENTS = pl.DataFrame(
     {
@@ -92,7 +92,7 @@ def _labs(data: list[tuple]) -> pl.DataFrame:
 @given(rows)
 def test_accounting_identity_always_holds(data: list[tuple]) -> None:
     labs = _labs(data)
-    out = harmonize(labs, PATIENTS, **RULES)
+    out = harmonize_tables(labs, PATIENTS, **RULES)
     row = out.accounting.filter(pl.col("table") == "labs").row(0, named=True)
     assert row["rows_read"] == labs.height
     assert row["rows_read"] == row["rows_used"] + row["rows_rejected"] + row["rows_merged"]
@@ -113,8 +113,8 @@ def test_result_does_not_depend_on_row_order(data: list[tuple], rnd) -> None:
     labs = _labs(data)
     order = list(range(labs.height))
     rnd.shuffle(order)
-    first = harmonize(labs, PATIENTS, **RULES)
-    shuffled = harmonize(labs[order], PATIENTS[[4, 3, 2, 1, 0, 5]], **RULES)
+    first = harmonize_tables(labs, PATIENTS, **RULES)
+    shuffled = harmonize_tables(labs[order], PATIENTS[[4, 3, 2, 1, 0, 5]], **RULES)
     assert_frame_equal(shuffled.labs, first.labs)
     assert_frame_equal(
         shuffled.rejected.filter(pl.col("table") == "labs"),
@@ -129,8 +129,8 @@ def test_result_does_not_depend_on_row_order(data: list[tuple], rnd) -> None:
 @SETTINGS
 @given(rows)
 def test_harmonising_twice_changes_nothing(data: list[tuple]) -> None:
-    first = harmonize(_labs(data), PATIENTS, **RULES)
-    again = harmonize(first.labs, first.patients, **RULES)
+    first = harmonize_tables(_labs(data), PATIENTS, **RULES)
+    again = harmonize_tables(first.labs, first.patients, **RULES)
     assert_frame_equal(again.labs, first.labs)
     assert again.rejected.height == 0 and again.merged.height == 0
 
@@ -139,10 +139,11 @@ def test_harmonising_twice_changes_nothing(data: list[tuple]) -> None:
 @given(rows, st.sets(st.sampled_from(["A", "B", "C", "D", "E", "Z", "a"])))
 def test_partition_of_patients_gives_the_rows_of_the_whole(data: list[tuple], half: set) -> None:
     labs = _labs(data)
-    whole = harmonize(labs, PATIENTS, **RULES)
+    whole = harmonize_tables(labs, PATIENTS, **RULES)
     in_half = pl.col("patient_id").str.strip_chars().is_in(list(half)).fill_null(False)
     parts = [
-        harmonize(labs.filter(mask), PATIENTS.filter(mask), **RULES) for mask in (in_half, ~in_half)
+        harmonize_tables(labs.filter(mask), PATIENTS.filter(mask), **RULES)
+        for mask in (in_half, ~in_half)
     ]
     key = ["patient_id", "sample_datetime", "analyte", "source", "source_row"]
     assert_frame_equal(pl.concat([p.labs for p in parts]).sort(key), whole.labs.sort(key))

@@ -12,10 +12,10 @@ from polars.testing import assert_frame_equal
 
 from kidneycohort import units
 from kidneycohort.errors import ConfigError, InputDataError
-from kidneycohort.harmonize import harmonize
+from kidneycohort.harmonize import harmonize_tables
 from kidneycohort.io import (
     LOINC_CODES,
-    SourceSpec,
+    FileSource,
     infer_date_format,
     loinc_table,
     read_events,
@@ -54,7 +54,7 @@ def test_csv_with_bom_semicolons_column_map_and_default_unit(tmp_path: Path) -> 
     assert got["assumption"].to_list() == ["unit 'umol/L' from source defaults", None]
     assert got["source"].to_list() == ["site_b", "site_b"]
     assert got["source_row"].to_list() == [1, 2]
-    out = harmonize(frame, pl.DataFrame({"patient_id": ["B1"]}))
+    out = harmonize_tables(frame, pl.DataFrame({"patient_id": ["B1"]}))
     assert out.labs["value"].to_list() == pytest.approx([1.0, 20 / units.CREATININE_UMOL_PER_MG_DL])
     assert out.assumptions.select("table", "source", "rows").row(0) == ("labs", "site_b", 1)
 
@@ -169,7 +169,7 @@ def test_stated_date_format_and_row_level_failures(tmp_path: Path) -> None:
     got = read_labs(path, date_format="%d/%m/%Y").collect()
     assert got["sample_date"].to_list() == [dt.datetime(2020, 4, 3), None]
     assert got["sample_date_as_read"].to_list() == [None, "31/31/2020"]
-    out = harmonize(got, pl.DataFrame({"patient_id": ["A"]}))
+    out = harmonize_tables(got, pl.DataFrame({"patient_id": ["A"]}))
     assert out.rejected["reason"].to_list() == ["unparseable_date"]
 
 
@@ -182,9 +182,9 @@ def test_read_many_stacks_sources(tmp_path: Path) -> None:
         tmp_path / "b.csv", "PID;DRAWN;TEST;RESULT;UNIT\nA;2020-01-01;creatinine;88.4;umol/L\n"
     )
     frame = read_many(
-        [SourceSpec(path=str(a)), SourceSpec(path=str(b), delimiter=";", columns=SITE_B_MAP)]
+        [FileSource(path=str(a)), FileSource(path=str(b), delimiter=";", columns=SITE_B_MAP)]
     )
-    out = harmonize(frame, pl.DataFrame({"patient_id": ["A"]}))
+    out = harmonize_tables(frame, pl.DataFrame({"patient_id": ["A"]}))
     # the two laboratories' results of the same day fold into one (mean of 1.0 and 1.0)
     assert out.labs["value"].to_list() == pytest.approx([1.0])
     assert out.merged["detail"].to_list() == ["folded into row a:1 (mean)"]

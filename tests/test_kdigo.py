@@ -12,8 +12,7 @@ from hypothesis import given, settings
 from polars.testing import assert_frame_equal
 
 from kidneycohort import schemas
-from kidneycohort.aki import ValueFilter
-from kidneycohort.baseline import baseline
+from kidneycohort.baseline import egfr_baseline
 from kidneycohort.errors import ConfigError, InputDataError, UnknownUnitError
 from kidneycohort.kdigo import (
     RISK_GRID,
@@ -31,6 +30,7 @@ from kidneycohort.kdigo import (
     transitions,
 )
 from kidneycohort.slopes import egfr_slopes
+from kidneycohort.value_filter import ValueFilterRule
 
 
 def test_gfr_boundaries_exactly_as_kdigo_2012_table_5():
@@ -150,7 +150,7 @@ def test_confirm_within_days_and_excluded_values():
     strict = category_results(egfr_table(rows), rule=SustainRule(confirm_within_days=365))
     assert strict["confirmed"][0] is False
     rows = [("b", 0, 50.0), ("b", 95, 50.0, None, "inpatient"), ("b", 300, 80.0)]
-    res = category_results(egfr_table(rows), value_filter=ValueFilter(exclude_aki=False))
+    res = category_results(egfr_table(rows), value_filter=ValueFilterRule(exclude_aki=False))
     assert res["used"].to_list() == [True, False, True]
     assert res["confirmed"].to_list() == [False, None, False]
     with pytest.raises(ConfigError, match="confirm_after_days"):
@@ -268,7 +268,7 @@ def test_certain_drop_needs_category_drop_and_25_percent():
         ("dip", 200, 57.0),
     ]
     df = egfr_table(rows)
-    out = kdigo_progression(df, baseline(df), egfr_slopes(df)).sort("patient_id")
+    out = kdigo_progression(df, egfr_baseline(df), egfr_slopes(df)).sort("patient_id")
     got = {r["patient_id"]: r for r in out.iter_rows(named=True)}
     assert got["near"]["certain_drop"] is False
     assert got["dip"]["certain_drop"] is False
@@ -278,7 +278,7 @@ def test_certain_drop_needs_category_drop_and_25_percent():
     assert got["drop"]["baseline_category"] == "G3a"
     assert got["drop"]["rapid_progression"] is None  # slope needs a year of values
     with pytest.raises(InputDataError, match="decline_fraction"):
-        kdigo_progression(df, baseline(df), decline_fraction=25)
+        kdigo_progression(df, egfr_baseline(df), decline_fraction=25)
 
 
 def _partitioned(fn, df: pl.DataFrame, seed: int) -> pl.DataFrame:
@@ -295,7 +295,7 @@ def _partitioned(fn, df: pl.DataFrame, seed: int) -> pl.DataFrame:
 @given(seed=seeds)
 def test_partition_and_row_order_invariance(seed):
     df = random_cohort(seed, n_patients=30, equations=(EQ, "other"))
-    vf = ValueFilter()
+    vf = ValueFilterRule()
     order = ["patient_id", "equation", "axis", "stage_number"]
 
     def stages_of(d: pl.DataFrame) -> pl.DataFrame:

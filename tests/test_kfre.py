@@ -16,7 +16,7 @@ import pytest
 from _derivation_fixtures import EQ, INDEX, egfr_table, uacr_labs
 
 from kidneycohort.errors import ConfigError, InputDataError
-from kidneycohort.kfre import kfre, kfre_inputs, kfre_risk
+from kidneycohort.kfre import add_kfre_risk, kfre_inputs, kfre_risk
 
 
 def test_hand_computed_risk_70_year_old_man():
@@ -67,7 +67,7 @@ def test_table_enforces_applicability():
             "uacr_mg_g": [300.0, 300.0, 300.0, 0.0, 300.0, 300.0, 30.0],
         }
     )
-    out = kfre(inputs)
+    out = add_kfre_risk(inputs)
     assert out["kfre_reason"].to_list() == [
         None,
         "not_adult",
@@ -82,9 +82,9 @@ def test_table_enforces_applicability():
     assert out["kfre_2y"].null_count() == 5
     assert out["kfre_region"].unique().to_list() == ["north_american"]
     with pytest.raises(ConfigError, match="did you mean 'north_american'"):
-        kfre(inputs, region="north_america")  # type: ignore[arg-type]
+        add_kfre_risk(inputs, region="north_america")  # type: ignore[arg-type]
     with pytest.raises(InputDataError, match="uacr_mg_g"):
-        kfre(inputs.drop("uacr_mg_g"))
+        add_kfre_risk(inputs.drop("uacr_mg_g"))
 
 
 def test_inputs_at_a_chosen_time_take_latest_values():
@@ -105,7 +105,7 @@ def test_inputs_at_a_chosen_time_take_latest_values():
     later = kfre_inputs(egfr, labs, patients, EQ, at_years=1.0).sort("patient_id")
     assert later["egfr"].to_list() == [28.0, None]  # b's value is older than 365 days
     assert later["uacr_mg_g"][0] == 900.0
-    risks = kfre(at_index)
+    risks = add_kfre_risk(at_index)
     assert risks["kfre_reason"].to_list() == [None, "missing_input"]
     with pytest.raises(InputDataError, match="did you mean 'ckd_epi_2021_cr'"):
         kfre_inputs(egfr, labs, patients, "ckd_epi_2021_c")

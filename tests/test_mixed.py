@@ -13,7 +13,7 @@ import pytest
 import statsmodels
 
 from kidneycohort.errors import ConfigError, ConvergenceError, InputDataError, StatisticalWarning
-from kidneycohort.models.mixed import SlopeModel, SlopeModelSpec
+from kidneycohort.models.mixed import SlopeModel, SlopeModelRule
 from tests._models_fixtures import TwoSlopeTruth, simulate_two_slope_trial
 
 
@@ -211,7 +211,7 @@ def test_horizon_before_knot_is_a_config_error(few_pigs: pl.DataFrame) -> None:
 
 
 def test_spec_round_trip() -> None:
-    spec = SlopeModelSpec(knot_years=0.25, horizons_years=[2, 3], covariates=["age_at_index"])
+    spec = SlopeModelRule(knot_years=0.25, horizons_years=[2, 3], covariates=["age_at_index"])
     model = SlopeModel.from_spec(spec)
     assert (model.knot_years, model.horizons_years, model.covariates) == (
         0.25,

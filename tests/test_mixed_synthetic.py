@@ -37,7 +37,7 @@ import pytest
 from scipy import stats
 
 from kidneycohort.egfr import compute_egfr
-from kidneycohort.harmonize import harmonize
+from kidneycohort.harmonize import harmonize_tables
 from kidneycohort.models.mixed import SlopeModel
 from kidneycohort.schemas import DAYS_PER_YEAR
 from kidneycohort.slopes import SlopeRule, egfr_slopes
@@ -56,7 +56,7 @@ def _cohort(patients: int, seed: int | None = None, *, noise_off: bool = False) 
 
 def _egfr(cohort: SyntheticCohort) -> tuple[pl.DataFrame, pl.DataFrame]:
     """The library's stages: harmonised labs, then CKD-EPI 2021 creatinine eGFR."""
-    harmonised = harmonize(cohort.labs, cohort.patients, cohort.events)
+    harmonised = harmonize_tables(cohort.labs, cohort.patients, cohort.events)
     return compute_egfr(harmonised.labs, harmonised.patients, [EQUATION]), harmonised.patients
 
 

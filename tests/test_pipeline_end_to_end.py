@@ -148,28 +148,28 @@ def test_same_inputs_give_byte_identical_tables(demo, tmp_path: Path) -> None:
 
 
 def test_tables_equal_the_stage_functions_called_directly(demo) -> None:
-    from kidneycohort.aki import ValueFilter
-    from kidneycohort.baseline import BaselineRule, baseline
-    from kidneycohort.egfr import EgfrRules, compute_egfr
-    from kidneycohort.harmonize import HarmonizeRules, harmonize
+    from kidneycohort.baseline import BaselineRule, egfr_baseline
+    from kidneycohort.egfr import EgfrRule, compute_egfr
+    from kidneycohort.harmonize import HarmonizeRule, harmonize_tables
     from kidneycohort.io import read_events, read_labs, read_patients
     from kidneycohort.slopes import SlopeRule, egfr_slopes
+    from kidneycohort.value_filter import ValueFilterRule
 
     run, inputs, _ = demo
     cfg = json.loads((run / "manifest.json").read_text())["config"]
     labs_spec = {**cfg["data"]["labs"], "path": str(inputs / "labs.parquet")}
-    h = harmonize(
+    h = harmonize_tables(
         read_labs(labs_spec.pop("path"), **labs_spec).collect(),
         read_patients(inputs / "patients.parquet").collect(),
         read_events(inputs / "events.parquet").collect(),
-        rules=HarmonizeRules(**cfg["harmonize"]),
+        rule=HarmonizeRule(**cfg["harmonize"]),
     )
-    egfr = compute_egfr(h.labs, h.patients, rules=EgfrRules(**cfg["egfr"]))
-    vf = ValueFilter(**cfg["value_filter"])
+    egfr = compute_egfr(h.labs, h.patients, rule=EgfrRule(**cfg["egfr"]))
+    vf = ValueFilterRule(**cfg["value_filter"])
     expected = {
         "labs": h.labs,
         "egfr": egfr,
-        "baseline": baseline(egfr, rule=BaselineRule(**cfg["baseline"]), value_filter=vf),
+        "baseline": egfr_baseline(egfr, rule=BaselineRule(**cfg["baseline"]), value_filter=vf),
         "slopes": egfr_slopes(egfr, rule=SlopeRule(**cfg["slopes"]), value_filter=vf),
     }
     for name, want in expected.items():

@@ -11,7 +11,7 @@ import pytest
 
 from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.pipeline.summaries import kdigo_grid_counts, kfre_at_baseline, kfre_summary
-from kidneycohort.tables import TableSpec
+from kidneycohort.tables import TableRule
 
 
 # Tangri et al. JAMA 2011, 4-variable KFRE (from memory), North American baseline
@@ -160,7 +160,7 @@ def test_kfre_summary_protects_small_cells_and_their_complements() -> None:
         numbers = counts[column].str.extract(r"^(\d+)", 1).cast(pl.Int64).drop_nulls()
         assert not numbers.is_between(1, 10).any()
     # suppression switched off prints everything
-    plain = kfre_summary(rows, spec=TableSpec(small_cell_threshold=0))
+    plain = kfre_summary(rows, spec=TableRule(small_cell_threshold=0))
     assert _cell(plain, "KFRE applicable", "x") == "5 (14.3%)"
 
 

@@ -14,11 +14,11 @@ from kidneycohort._rules import (
     rule_error_message,
     validate_config,
 )
-from kidneycohort.egfr import AgeBand, EgfrRules
+from kidneycohort.egfr import AgeBand, EgfrRule
 from kidneycohort.errors import ConfigError
-from kidneycohort.harmonize import HarmonizeRules
-from kidneycohort.models.survival import SurvivalSpec
-from kidneycohort.tables import TableSpec
+from kidneycohort.harmonize import HarmonizeRule
+from kidneycohort.models.survival import SurvivalRule
+from kidneycohort.tables import TableRule
 
 
 class Window(RuleModel):
@@ -63,7 +63,7 @@ def test_model_validate_leaves_the_pydantic_error_to_the_caller():
 def test_rules_are_frozen_unless_a_model_says_otherwise():
     with pytest.raises(ValidationError):
         Window().days = 3  # type: ignore[misc]
-    spec = TableSpec()
+    spec = TableRule()
     spec.decimals = 2
     assert spec.decimals == 2
 
@@ -79,13 +79,13 @@ def test_resolve_rules_names_unknown_and_bad_overrides():
 @pytest.mark.parametrize(
     ("build", "match"),
     [
-        (lambda: TableSpec(decimals=9), r"^TableSpec\.decimals: .*less than or equal to 6"),
-        (lambda: SurvivalSpec(group_colum="arm"), r"did you mean 'group_column'"),
-        (lambda: HarmonizeRules(same_day_rule="avg"), r"^HarmonizeRules\.same_day_rule: "),
+        (lambda: TableRule(decimals=9), r"^TableRule\.decimals: .*less than or equal to 6"),
+        (lambda: SurvivalRule(group_colum="arm"), r"did you mean 'group_column'"),
+        (lambda: HarmonizeRule(same_day_rule="avg"), r"^HarmonizeRule\.same_day_rule: "),
         (lambda: AgeBand(equations=["ckd_epi_2021"]), r"did you mean 'ckd_epi_2021_cr'"),
         (
-            lambda: EgfrRules(by_age=[{"equations": ["ckd_epi_2021_cr"], "max_agee": 18}]),
-            r"^EgfrRules\.by_age\.0\.max_agee: .*did you mean 'max_age'",
+            lambda: EgfrRule(by_age=[{"equations": ["ckd_epi_2021_cr"], "max_agee": 18}]),
+            r"^EgfrRule\.by_age\.0\.max_agee: .*did you mean 'max_age'",
         ),
     ],
 )

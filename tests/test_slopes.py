@@ -11,9 +11,9 @@ from hypothesis import given, settings
 from polars.testing import assert_frame_equal
 
 from kidneycohort import schemas
-from kidneycohort.aki import ValueFilter
 from kidneycohort.errors import ConfigError
 from kidneycohort.slopes import SlopeRule, egfr_slopes
+from kidneycohort.value_filter import ValueFilterRule
 
 
 def test_slopes_equal_numpy_polyfit_and_statsmodels_ols():
@@ -102,7 +102,7 @@ def test_time_window_and_value_filter():
         ("a", 840, 56.0),
     ]
     df = egfr_table(rows)
-    chronic = egfr_slopes(df, SlopeRule(from_years=0.25), ValueFilter(exclude_aki=False))
+    chronic = egfr_slopes(df, SlopeRule(from_years=0.25), ValueFilterRule(exclude_aki=False))
     x = np.array([120, 480, 840]) / 365.25
     assert chronic["slope_per_year"][0] == pytest.approx(
         np.polyfit(x, [60.0, 58.0, 56.0], 1)[0], abs=1e-9
@@ -125,7 +125,7 @@ def test_nonpositive_value_gives_no_log_slope():
 @given(seed=seeds)
 def test_partition_and_row_order_invariance(seed):
     df = random_cohort(seed, n_patients=30, equations=(EQ, "other"))
-    vf = ValueFilter()
+    vf = ValueFilterRule()
     whole = egfr_slopes(df, value_filter=vf).sort("patient_id", "equation")
     part = df["patient_id"].unique().sort().sample(fraction=0.5, seed=seed).implode()
     split = pl.concat(

@@ -13,7 +13,7 @@ from kidneycohort.models.survival import (
     CoxModel,
     CumulativeIncidence,
     KaplanMeier,
-    SurvivalSpec,
+    SurvivalRule,
     numbers_at_risk,
 )
 
@@ -228,7 +228,7 @@ def test_aalen_johansen_without_competing_events_is_one_minus_kaplan_meier() -> 
 
 
 def test_spec_builds_models() -> None:
-    spec = SurvivalSpec(horizons_years=[1, 2], at_risk_years=[0, 1], covariates=["age"])
+    spec = SurvivalRule(horizons_years=[1, 2], at_risk_years=[0, 1], covariates=["age"])
     assert KaplanMeier.from_spec(spec).horizons_years == (1.0, 2.0)
     assert CoxModel.from_spec(spec, endpoint="x").covariates == ("age",)
 

@@ -15,7 +15,7 @@ from kidneycohort.errors import InputDataError
 from kidneycohort.models.mixed import SlopeModel
 from kidneycohort.models.rates import exact_poisson_interval
 from kidneycohort.tables import (
-    TableSpec,
+    TableRule,
     baseline_characteristics,
     endpoint_table,
     kdigo_count_grid,
@@ -49,7 +49,7 @@ def _patients(n_active: int = 30, n_placebo: int = 30) -> pl.DataFrame:
 def test_suppression_label_and_threshold() -> None:
     # common practice in data-use agreements: cells of 1-10 shown as "<11"
     assert suppression_label() == "<11"
-    assert suppression_label(TableSpec(small_cell_threshold=4)) == "<5"
+    assert suppression_label(TableRule(small_cell_threshold=4)) == "<5"
     counts = pl.DataFrame({"n": [0, 1, 10, 11, None]})
     result = suppress_small_counts(counts, ["n"])
     assert result["n"].to_list() == ["0", "<11", "<11", "11", "–"]
@@ -75,7 +75,7 @@ def test_baseline_table_counts_percentages_and_suppression() -> None:
 
 
 def test_baseline_table_without_suppression_shows_everything() -> None:
-    table = baseline_characteristics(_patients(), spec=TableSpec(small_cell_threshold=0))
+    table = baseline_characteristics(_patients(), spec=TableRule(small_cell_threshold=0))
     sex = table.filter(pl.col("characteristic") == "Sex")
     assert sex["active"].to_list() == ["25 (83.3%)", "5 (16.7%)"]
 

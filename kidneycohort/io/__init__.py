@@ -5,7 +5,7 @@ from kidneycohort.io.maps import (
     DEFAULT_ANALYTE_NAMES,
     DEFAULT_EVENT_CODES,
     DEFAULT_SEX_CODES,
-    SourceSpec,
+    FileSource,
 )
 from kidneycohort.io.readers import (
     infer_date_format,
@@ -23,7 +23,7 @@ __all__ = [
     "DEFAULT_SEX_CODES",
     "LOINC_CODES",
     "LOINC_TO_ANALYTE",
-    "SourceSpec",
+    "FileSource",
     "infer_date_format",
     "loinc_table",
     "parse_date_columns",

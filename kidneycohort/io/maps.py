@@ -1,11 +1,11 @@
 """Column maps, value maps and per-source defaults.
 
-A :class:`SourceSpec` says where one table comes from and how its columns and codes
+A :class:`FileSource` says where one table comes from and how its columns and codes
 translate to kidneycohort's canonical tables (see ``kidneycohort.schemas``). Its field
 names are the keys a study config uses under a source entry.
 
 The default code lists below are common practice (the spellings sites use most); a
-study adds its own codes in :class:`SourceSpec.values` or in the harmonise rules.
+study adds its own codes in :class:`FileSource.values` or in the harmonise rules.
 """
 
 from __future__ import annotations
@@ -97,12 +97,12 @@ _FORMATS: Final = {
 }
 
 
-class SourceSpec(BaseModel):
+class FileSource(BaseModel):
     """Where one input table comes from and how it maps to the canonical table.
 
     Examples
     --------
-    >>> spec = SourceSpec(path="site_b_labs.csv", delimiter=";",
+    >>> spec = FileSource(path="site_b_labs.csv", delimiter=";",
     ...                   columns={"PID": "patient_id", "RESULT": "value"},
     ...                   defaults={"unit": "umol/L"})
     >>> spec.resolved_format(), spec.source_name()

@@ -3,7 +3,7 @@
 Every reader returns the canonical columns of its table kind (``labs``, ``patients``,
 ``events``; see ``kidneycohort.schemas``) plus two bookkeeping columns:
 
-* ``source`` — the source label (:meth:`SourceSpec.source_name`),
+* ``source`` — the source label (:meth:`FileSource.source_name`),
 * ``source_row`` — the 1-based data row number in the file (header not counted), so a
   rejected row can be found again in the extract.
 
@@ -29,7 +29,7 @@ import polars as pl
 
 from kidneycohort import schemas
 from kidneycohort.errors import InputDataError, did_you_mean
-from kidneycohort.io.maps import SourceSpec, TableKind
+from kidneycohort.io.maps import FileSource, TableKind
 
 logger = logging.getLogger(__name__)
 
@@ -191,7 +191,7 @@ def _check_utf8_head(path: Path, name: str) -> None:
         ) from None
 
 
-def _scan_csv(spec: SourceSpec, path: Path, name: str) -> pl.LazyFrame:
+def _scan_csv(spec: FileSource, path: Path, name: str) -> pl.LazyFrame:
     options: dict[str, Any] = {
         "separator": spec.delimiter,
         "infer_schema": False,  # every column as text; the stage casts by contract
@@ -212,7 +212,7 @@ def _scan_csv(spec: SourceSpec, path: Path, name: str) -> pl.LazyFrame:
     return pl.scan_csv(text.encode("utf-8"), **options)
 
 
-def _read_duckdb(spec: SourceSpec, path: Path, name: str) -> pl.LazyFrame:
+def _read_duckdb(spec: FileSource, path: Path, name: str) -> pl.LazyFrame:
     import duckdb
 
     if (spec.table is None) == (spec.query is None):
@@ -244,7 +244,7 @@ def _read_duckdb(spec: SourceSpec, path: Path, name: str) -> pl.LazyFrame:
     )
 
 
-def scan_source(spec: SourceSpec) -> pl.LazyFrame:
+def scan_source(spec: FileSource) -> pl.LazyFrame:
     """Open ``spec``'s file as a LazyFrame with its own column names (no mapping)."""
     path = Path(spec.path)
     name = str(spec.path)
@@ -265,14 +265,14 @@ def scan_source(spec: SourceSpec) -> pl.LazyFrame:
 
 
 def read_source(
-    spec: SourceSpec | str | Path, kind: TableKind = "labs", **fields: Any
+    spec: FileSource | str | Path, kind: TableKind = "labs", **fields: Any
 ) -> pl.LazyFrame:
     """Read one source as the canonical ``kind`` table (lazily where the format allows).
 
     Parameters
     ----------
     spec
-        A :class:`SourceSpec`, or a path (then ``fields`` are SourceSpec fields).
+        A :class:`FileSource`, or a path (then ``fields`` are FileSource fields).
     kind
         ``"labs"`` (raw lab results), ``"patients"`` or ``"events"``.
 
@@ -290,8 +290,8 @@ def read_source(
         File not found, unreadable encoding or format, a required column missing after
         the column map (with a "did you mean"), a date column that cannot be parsed.
     """
-    if not isinstance(spec, SourceSpec):
-        spec = SourceSpec(path=str(spec), **fields)
+    if not isinstance(spec, FileSource):
+        spec = FileSource(path=str(spec), **fields)
     elif fields:
         spec = spec.model_copy(update=fields)
     if kind not in SCHEMAS:
@@ -348,22 +348,22 @@ def read_source(
     return parse_date_columns(frame, target, name=name, date_format=spec.date_format)
 
 
-def read_labs(spec: SourceSpec | str | Path, **fields: Any) -> pl.LazyFrame:
+def read_labs(spec: FileSource | str | Path, **fields: Any) -> pl.LazyFrame:
     """:func:`read_source` for raw lab results (``kind="labs"``)."""
     return read_source(spec, "labs", **fields)
 
 
-def read_patients(spec: SourceSpec | str | Path, **fields: Any) -> pl.LazyFrame:
+def read_patients(spec: FileSource | str | Path, **fields: Any) -> pl.LazyFrame:
     """:func:`read_source` for the patients table (``kind="patients"``)."""
     return read_source(spec, "patients", **fields)
 
 
-def read_events(spec: SourceSpec | str | Path, **fields: Any) -> pl.LazyFrame:
+def read_events(spec: FileSource | str | Path, **fields: Any) -> pl.LazyFrame:
     """:func:`read_source` for the events table (``kind="events"``)."""
     return read_source(spec, "events", **fields)
 
 
-def read_many(specs: list[SourceSpec], kind: TableKind = "labs") -> pl.LazyFrame:
+def read_many(specs: list[FileSource], kind: TableKind = "labs") -> pl.LazyFrame:
     """Read several sources of one kind and stack them (columns aligned by name)."""
     if not specs:
         raise InputDataError(f"{kind}: no sources given")

@@ -5,7 +5,7 @@ Model objects follow one pattern: configure (keyword arguments or a typed spec),
 polars table. The fitting is done by statsmodels and lifelines.
 """
 
-from kidneycohort.models.mixed import SlopeModel, SlopeModelSpec
+from kidneycohort.models.mixed import SlopeModel, SlopeModelRule
 from kidneycohort.models.rates import (
     exact_poisson_interval,
     incidence_rates,
@@ -16,7 +16,7 @@ from kidneycohort.models.survival import (
     CoxModel,
     CumulativeIncidence,
     KaplanMeier,
-    SurvivalSpec,
+    SurvivalRule,
     numbers_at_risk,
 )
 
@@ -25,8 +25,8 @@ __all__ = [
     "CumulativeIncidence",
     "KaplanMeier",
     "SlopeModel",
-    "SlopeModelSpec",
-    "SurvivalSpec",
+    "SlopeModelRule",
+    "SurvivalRule",
     "exact_poisson_interval",
     "incidence_rates",
     "numbers_at_risk",

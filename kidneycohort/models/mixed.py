@@ -41,7 +41,7 @@ from kidneycohort.models._design import capture_warnings, encode_covariates
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["RandomEffects", "SlopeModel", "SlopeModelSpec"]
+__all__ = ["RandomEffects", "SlopeModel", "SlopeModelRule"]
 
 RandomEffects = Literal["unstructured", "diagonal", "intercept_and_slope", "intercept"]
 
@@ -61,7 +61,7 @@ _FAILURE_WORDS = ("not positive definite", "gradient optimization failed", "fit 
 _OPTIMIZERS = ["lbfgs", "bfgs", "cg"]
 
 
-class SlopeModelSpec(BaseModel):
+class SlopeModelRule(BaseModel):
     """Options of the eGFR slope model of one study (config key ``slope_model``)."""
 
     model_config = ConfigDict(extra="forbid")
@@ -99,7 +99,7 @@ class SlopeModelSpec(BaseModel):
     )
 
     @model_validator(mode="after")
-    def _horizons_after_knot(self) -> SlopeModelSpec:
+    def _horizons_after_knot(self) -> SlopeModelRule:
         for horizon in self.horizons_years:
             if horizon <= 0 or (self.knot_years is not None and horizon <= self.knot_years):
                 raise ValueError(
@@ -146,7 +146,7 @@ class SlopeModel:
         Patients columns adjusted for (text columns become indicators).
     group_column, reference_group, equation, max_years, random_effects, confidence,
     trajectory_step_years
-        As in :class:`SlopeModelSpec`.
+        As in :class:`SlopeModelRule`.
 
     Attributes
     ----------
@@ -242,13 +242,13 @@ class SlopeModel:
         self.trajectory_step_years = trajectory_step_years
 
     @classmethod
-    def from_spec(cls, spec: SlopeModelSpec) -> Self:
-        """Build the model from a :class:`SlopeModelSpec`."""
+    def from_spec(cls, spec: SlopeModelRule) -> Self:
+        """Build the model from a :class:`SlopeModelRule`."""
         return cls(spec.knot_years, **spec.model_dump(exclude={"knot_years"}))
 
-    def _spec(self) -> SlopeModelSpec:
+    def _spec(self) -> SlopeModelRule:
         try:
-            return SlopeModelSpec(
+            return SlopeModelRule(
                 knot_years=self.knot_years,
                 horizons_years=list(self.horizons_years),
                 covariates=list(self.covariates),
@@ -266,7 +266,7 @@ class SlopeModel:
     # ---- data -------------------------------------------------------------------------
 
     def _rows(
-        self, egfr: FrameLike, patients: FrameLike | None, spec: SlopeModelSpec
+        self, egfr: FrameLike, patients: FrameLike | None, spec: SlopeModelRule
     ) -> pl.DataFrame:
         values = to_polars(egfr, "egfr")
         require_columns(values, ("patient_id", "years_from_index", "egfr"), "egfr")
@@ -493,7 +493,7 @@ class SlopeModel:
 
     # ---- results ----------------------------------------------------------------------
 
-    def _collect(self, spec: SlopeModelSpec, time: np.ndarray) -> None:
+    def _collect(self, spec: SlopeModelRule, time: np.ndarray) -> None:
         result = self.result_
         k_fe = len(self.fixed_effect_names_)
         beta = np.asarray(result.fe_params, dtype=float)
@@ -537,7 +537,7 @@ class SlopeModel:
     def _index(self, group: str, term: str) -> int:
         return self.fixed_effect_names_.index(f"{group}: {term}")
 
-    def _quantity_contrasts(self, spec: SlopeModelSpec) -> dict[tuple[str, str], np.ndarray]:
+    def _quantity_contrasts(self, spec: SlopeModelRule) -> dict[tuple[str, str], np.ndarray]:
         k_fe = len(self.fixed_effect_names_)
         contrasts: dict[tuple[str, str], np.ndarray] = {}
         for group in self.groups_:
@@ -560,7 +560,7 @@ class SlopeModel:
                     )
         return contrasts
 
-    def _summarise(self, spec: SlopeModelSpec, z: float) -> pl.DataFrame:
+    def _summarise(self, spec: SlopeModelRule, z: float) -> pl.DataFrame:
         labels, quantities, vectors = [], [], []
         quantity_names = list(dict.fromkeys(q for _, q in self._contrasts))
         for group in self.groups_:
@@ -593,7 +593,7 @@ class SlopeModel:
             }
         )
 
-    def _trajectories(self, spec: SlopeModelSpec, time: np.ndarray, z: float) -> pl.DataFrame:
+    def _trajectories(self, spec: SlopeModelRule, time: np.ndarray, z: float) -> pl.DataFrame:
         end = (
             max([float(np.max(time)), *spec.horizons_years])
             if spec.knot_years

@@ -40,7 +40,7 @@ __all__ = [
     "CoxModel",
     "CumulativeIncidence",
     "KaplanMeier",
-    "SurvivalSpec",
+    "SurvivalRule",
     "numbers_at_risk",
 ]
 
@@ -48,7 +48,7 @@ CURVE_COLUMNS = ("group", "years", "estimate", "lower", "upper", "measure")
 AT_RISK_COLUMNS = ("group", "years", "n_at_risk")
 
 
-class SurvivalSpec(RuleModel):
+class SurvivalRule(RuleModel):
     """Options of the survival analyses of one study (config key ``survival``)."""
 
     model_config = ConfigDict(frozen=False)
@@ -242,8 +242,8 @@ class _CurveModel:
         self.confidence = confidence
 
     @classmethod
-    def from_spec(cls, spec: SurvivalSpec, *, endpoint: str | None = None) -> Self:
-        """Build the estimator from a :class:`SurvivalSpec`."""
+    def from_spec(cls, spec: SurvivalRule, *, endpoint: str | None = None) -> Self:
+        """Build the estimator from a :class:`SurvivalRule`."""
         return cls(
             endpoint=endpoint,
             group_column=spec.group_column,
@@ -577,8 +577,8 @@ class CoxModel:
         self.confidence = confidence
 
     @classmethod
-    def from_spec(cls, spec: SurvivalSpec, *, endpoint: str | None = None) -> CoxModel:
-        """Build the model from a :class:`SurvivalSpec`."""
+    def from_spec(cls, spec: SurvivalRule, *, endpoint: str | None = None) -> CoxModel:
+        """Build the model from a :class:`SurvivalRule`."""
         return cls(
             endpoint=endpoint,
             group_column=spec.group_column,

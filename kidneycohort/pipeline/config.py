@@ -27,7 +27,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from kidneycohort._rules import error_facts, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
-from kidneycohort.io.maps import SourceSpec
+from kidneycohort.io.maps import FileSource
 from kidneycohort.pipeline.registry import Step, StepRegistry, default_registry
 
 FIXED_SECTIONS = ("study", "data", "output")
@@ -58,20 +58,20 @@ class StudySection(_Strict):
 class DataSection(_Strict):
     """The input tables of the study (see the data contract in DESIGN.md).
 
-    Each entry is a :class:`kidneycohort.io.SourceSpec` (the readers' own option model),
+    Each entry is a :class:`kidneycohort.io.FileSource` (the readers' own option model),
     or a list of them for a table split over several files (e.g. one lab extract per
     site). Paths are relative to the config file.
     """
 
-    patients: SourceSpec = Field(description="One row per patient.")
-    labs: SourceSpec | list[SourceSpec] = Field(
+    patients: FileSource = Field(description="One row per patient.")
+    labs: FileSource | list[FileSource] = Field(
         description="Long lab results (one row per result); a list stacks several files."
     )
-    events: SourceSpec | list[SourceSpec] | None = Field(
+    events: FileSource | list[FileSource] | None = Field(
         None, description="Optional long events: dialysis, transplant, death, ..."
     )
 
-    def specs(self, table: str) -> list[SourceSpec]:
+    def specs(self, table: str) -> list[FileSource]:
         """The sources of ``table`` ("patients", "labs" or "events") as a list."""
         value = getattr(self, table)
         if value is None:
@@ -413,7 +413,7 @@ def source_tables(data: DataSection) -> list[str]:
 
 
 def _anchor_paths(data: DataSection, config_dir: Path) -> DataSection:
-    def anchor(spec: SourceSpec) -> SourceSpec:
+    def anchor(spec: FileSource) -> FileSource:
         path = Path(spec.path)
         if path.is_absolute():
             return spec

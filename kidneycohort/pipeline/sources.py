@@ -8,7 +8,7 @@ from typing import Any
 import polars as pl
 
 from kidneycohort.errors import InputDataError
-from kidneycohort.io import SourceSpec, read_source
+from kidneycohort.io import FileSource, read_source
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.manifest import sha256_of
 
@@ -20,7 +20,7 @@ SOURCE_TABLES = {
 }
 
 
-def _where(table: str, specs: list[SourceSpec], i: int) -> str:
+def _where(table: str, specs: list[FileSource], i: int) -> str:
     return f"data.{table}[{i}]" if len(specs) > 1 else f"data.{table}"
 
 

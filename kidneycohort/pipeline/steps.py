@@ -23,7 +23,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from kidneycohort import schemas
 from kidneycohort.baseline import BaselineRule
-from kidneycohort.endpoints import EndpointDefinition, EndpointRules
+from kidneycohort.endpoints import EndpointDefinition, EndpointRule
 from kidneycohort.errors import (
     ConfigError,
     ConvergenceError,
@@ -40,7 +40,7 @@ def _records(frame: pl.DataFrame, keys: tuple[str, ...]) -> list[dict[str, Any]]
 
 
 def _add_harmonize(registry: StepRegistry) -> None:
-    from kidneycohort.harmonize import HarmonizeRules, harmonize
+    from kidneycohort.harmonize import HarmonizeRule, harmonize_tables
 
     @registry.register(
         "harmonize",
@@ -48,16 +48,16 @@ def _add_harmonize(registry: StepRegistry) -> None:
         optional_needs=["events"],
         makes=["labs", "rejected_rows", "cohort", "cohort_events"],
         section="harmonize",
-        options=HarmonizeRules,
+        options=HarmonizeRule,
         description="Raw labs -> labs in standard units; every unused row with a reason.",
     )
     def harmonize_step(ctx: StepContext) -> dict[str, Any]:
         """Harmonise labs, patients and events (kidneycohort.harmonize.harmonize)."""
-        result = harmonize(
+        result = harmonize_tables(
             ctx.tables["raw_labs"],
             ctx.tables["patients"],
             ctx.tables.get("events"),
-            rules=ctx.options,  # type: ignore[arg-type]
+            rule=ctx.options,  # type: ignore[arg-type]
         )
         ctx.accounting.extend(
             _records(
@@ -90,9 +90,9 @@ def _add_harmonize(registry: StepRegistry) -> None:
 
 
 def _add_baseline_and_slopes(registry: StepRegistry) -> None:
-    from kidneycohort.aki import ValueFilter
-    from kidneycohort.baseline import BaselineRule, baseline
+    from kidneycohort.baseline import BaselineRule, egfr_baseline
     from kidneycohort.slopes import SlopeRule, egfr_slopes
+    from kidneycohort.value_filter import ValueFilterRule
 
     @registry.register(
         "baseline",
@@ -100,14 +100,14 @@ def _add_baseline_and_slopes(registry: StepRegistry) -> None:
         makes=["baseline"],
         section="baseline",
         options=BaselineRule,
-        extra_sections={"value_filter": ValueFilter},
+        extra_sections={"value_filter": ValueFilterRule},
         description="Baseline eGFR per patient and equation (kidneycohort.baseline).",
     )
     def baseline_step(ctx: StepContext) -> dict[str, Any]:
         """Baseline eGFR per patient and equation."""
         value_filter = ctx.sections.get("value_filter")
         return {
-            "baseline": baseline(
+            "baseline": egfr_baseline(
                 ctx.tables["egfr"],
                 rule=ctx.options,
                 value_filter=value_filter,  # type: ignore[arg-type]
@@ -120,7 +120,7 @@ def _add_baseline_and_slopes(registry: StepRegistry) -> None:
         makes=["slopes"],
         section="slopes",
         options=SlopeRule,
-        extra_sections={"value_filter": ValueFilter},
+        extra_sections={"value_filter": ValueFilterRule},
         description="Per-patient least-squares eGFR slopes (kidneycohort.slopes).",
     )
     def slopes_step(ctx: StepContext) -> dict[str, Any]:
@@ -180,20 +180,20 @@ def _check_primary(config: Any) -> None:
 
 
 def _add_egfr(registry: StepRegistry) -> None:
-    from kidneycohort.egfr import EgfrRules, compute_egfr
+    from kidneycohort.egfr import EgfrRule, compute_egfr
 
     @registry.register(
         "egfr",
         needs=["labs", "cohort"],
         makes=["egfr"],
         section="egfr",
-        options=EgfrRules,
+        options=EgfrRule,
         check=_check_primary,
         description="eGFR by each chosen equation for every sample (kidneycohort.egfr).",
     )
     def egfr_step(ctx: StepContext) -> dict[str, Any]:
         """eGFR by each chosen equation for every creatinine / cystatin C sample."""
-        return {"egfr": compute_egfr(ctx.tables["labs"], ctx.tables["cohort"], rules=ctx.options)}  # type: ignore[arg-type]
+        return {"egfr": compute_egfr(ctx.tables["labs"], ctx.tables["cohort"], rule=ctx.options)}  # type: ignore[arg-type]
 
 
 class EndpointsSection(BaseModel):
@@ -211,8 +211,8 @@ class EndpointsSection(BaseModel):
         description="Endpoint definitions, each with a `kind` (egfr_decline, egfr_below, "
         "kidney_failure, death, kidney_death, composite) and that kind's keys.",
     )
-    rules: EndpointRules = Field(
-        default_factory=EndpointRules,
+    rule: EndpointRule = Field(
+        default_factory=EndpointRule,
         description="Confirmation and timing rules used by every definition without its own.",
     )
     data_cut: dt.date = Field(
@@ -244,14 +244,14 @@ def _add_endpoints(registry: StepRegistry) -> None:
             opts.definitions,
             equation=primary_equation(ctx.sections, ctx.tables),
             data_cut=opts.data_cut,
-            rules=opts.rules,
+            rule=opts.rule,
         )
         return {"endpoints": table}
 
 
 def _add_kdigo(registry: StepRegistry) -> None:
-    from kidneycohort.aki import ValueFilter
     from kidneycohort.kdigo import SustainRule, sustained_stages, transition_matrix, transitions
+    from kidneycohort.value_filter import ValueFilterRule
 
     @registry.register(
         "kdigo",
@@ -259,7 +259,7 @@ def _add_kdigo(registry: StepRegistry) -> None:
         makes=["stages", "transitions", "transition_matrix", "models/transition_counts"],
         section="sustain",
         options=SustainRule,
-        extra_sections={"value_filter": ValueFilter},
+        extra_sections={"value_filter": ValueFilterRule},
         description="Sustained KDIGO G and A stages and their transitions (kidneycohort.kdigo).",
     )
     def kdigo_step(ctx: StepContext) -> dict[str, Any]:
@@ -296,7 +296,7 @@ class KdigoGridSection(BaseModel):
 
     The G category comes from the baseline eGFR of the primary equation (the
     ``baseline`` section's rule); the A category from a baseline UACR chosen by
-    ``uacr_baseline`` (:func:`kidneycohort.baseline.baseline_uacr`).
+    ``uacr_baseline`` (:func:`kidneycohort.baseline.uacr_baseline`).
     """
 
     model_config = ConfigDict(extra="forbid")
@@ -310,10 +310,10 @@ class KdigoGridSection(BaseModel):
 
 def _add_kdigo_grid(registry: StepRegistry) -> None:
     from kidneycohort import tables as tb
-    from kidneycohort.aki import ValueFilter
-    from kidneycohort.baseline import baseline_uacr
+    from kidneycohort.baseline import uacr_baseline
     from kidneycohort.kdigo import baseline_categories
     from kidneycohort.pipeline.summaries import kdigo_grid_counts
+    from kidneycohort.value_filter import ValueFilterRule
 
     @registry.register(
         "kdigo_grid",
@@ -321,7 +321,7 @@ def _add_kdigo_grid(registry: StepRegistry) -> None:
         makes=["baseline_categories", "models/kdigo_grid", "tables/kdigo_grid"],
         section="kdigo_grid",
         options=KdigoGridSection,
-        extra_sections={"value_filter": ValueFilter, "tables": tb.TableSpec},
+        extra_sections={"value_filter": ValueFilterRule, "tables": tb.TableRule},
         description="Baseline KDIGO G x A category per patient and the prognosis grid counts.",
     )
     def kdigo_grid_step(ctx: StepContext) -> dict[str, Any]:
@@ -329,7 +329,7 @@ def _add_kdigo_grid(registry: StepRegistry) -> None:
         opts = ctx.options
         assert isinstance(opts, KdigoGridSection)
         value_filter = ctx.sections.get("value_filter")
-        uacr = baseline_uacr(
+        uacr = uacr_baseline(
             ctx.tables["labs"],
             ctx.tables["cohort"],
             rule=opts.uacr_baseline,
@@ -344,7 +344,7 @@ def _add_kdigo_grid(registry: StepRegistry) -> None:
             "models/kdigo_grid": kdigo_grid_counts(categories),
             "tables/kdigo_grid": tb.kdigo_count_grid(
                 categories,
-                spec=spec if isinstance(spec, tb.TableSpec) else None,
+                spec=spec if isinstance(spec, tb.TableRule) else None,
             ),
         }
 
@@ -375,9 +375,9 @@ class KfreSection(BaseModel):
 
 def _add_kfre(registry: StepRegistry) -> None:
     from kidneycohort import tables as tb
-    from kidneycohort.aki import ValueFilter
-    from kidneycohort.models.survival import SurvivalSpec
+    from kidneycohort.models.survival import SurvivalRule
     from kidneycohort.pipeline.summaries import kfre_at_baseline, kfre_summary
+    from kidneycohort.value_filter import ValueFilterRule
 
     @registry.register(
         "kfre",
@@ -385,7 +385,7 @@ def _add_kfre(registry: StepRegistry) -> None:
         makes=["kfre", "tables/kfre_summary"],
         section="kfre",
         options=KfreSection,
-        extra_sections={"value_filter": ValueFilter, "tables": tb.TableSpec},
+        extra_sections={"value_filter": ValueFilterRule, "tables": tb.TableRule},
         description="2- and 5-year KFRE risk per patient at baseline, with applicability.",
     )
     def kfre_step(ctx: StepContext) -> dict[str, Any]:
@@ -393,7 +393,7 @@ def _add_kfre(registry: StepRegistry) -> None:
         opts = ctx.options
         assert isinstance(opts, KfreSection)
         survival = ctx.sections.get("survival")
-        group = survival.group_column if isinstance(survival, SurvivalSpec) else "group"
+        group = survival.group_column if isinstance(survival, SurvivalRule) else "group"
         rows = kfre_at_baseline(
             ctx.tables["egfr"],
             ctx.tables["labs"],
@@ -410,7 +410,7 @@ def _add_kfre(registry: StepRegistry) -> None:
             group_column=group,
             thresholds_2y=opts.thresholds_2y,
             thresholds_5y=opts.thresholds_5y,
-            spec=spec if isinstance(spec, tb.TableSpec) else None,
+            spec=spec if isinstance(spec, tb.TableRule) else None,
         )
         return {"kfre": rows, "tables/kfre_summary": summary}
 
@@ -509,12 +509,12 @@ def _add_survival(registry: StepRegistry) -> None:
         CoxModel,
         CumulativeIncidence,
         KaplanMeier,
-        SurvivalSpec,
+        SurvivalRule,
     )
 
     def curves(estimator: Any, ctx: StepContext) -> dict[str, Any]:
         spec = ctx.options
-        assert isinstance(spec, SurvivalSpec)
+        assert isinstance(spec, SurvivalRule)
         rows = _evaluable(ctx.tables["endpoints"])
         fits = _fit_each_endpoint(
             rows,
@@ -533,7 +533,7 @@ def _add_survival(registry: StepRegistry) -> None:
         needs=["endpoints", "cohort"],
         makes=["models/survival_curves", "models/at_risk"],
         section="survival",
-        options=SurvivalSpec,
+        options=SurvivalRule,
         description="Kaplan–Meier curves per endpoint and group (kidneycohort.models.survival).",
     )
     def kaplan_meier_step(ctx: StepContext) -> dict[str, Any]:
@@ -545,7 +545,7 @@ def _add_survival(registry: StepRegistry) -> None:
         needs=["endpoints", "cohort"],
         makes=["models/survival_curves", "models/at_risk"],
         section="survival",
-        options=SurvivalSpec,
+        options=SurvivalRule,
         description="Aalen–Johansen cumulative incidence with death competing, per endpoint.",
     )
     def cumulative_incidence_step(ctx: StepContext) -> dict[str, Any]:
@@ -557,13 +557,13 @@ def _add_survival(registry: StepRegistry) -> None:
         needs=["endpoints", "cohort"],
         makes=["models/hazard_ratios"],
         section="survival",
-        options=SurvivalSpec,
+        options=SurvivalRule,
         description="Cox hazard ratios per endpoint with the proportional-hazards test.",
     )
     def cox_step(ctx: StepContext) -> dict[str, Any]:
         """Cox hazard ratios (group, covariates, strata) per endpoint."""
         spec = ctx.options
-        assert isinstance(spec, SurvivalSpec)
+        assert isinstance(spec, SurvivalRule)
         rows = _evaluable(ctx.tables["endpoints"])
         fits = _fit_each_endpoint(
             rows,
@@ -660,20 +660,20 @@ def _empty_at_risk() -> pl.DataFrame:
 
 
 def _add_slope_model(registry: StepRegistry) -> None:
-    from kidneycohort.models.mixed import SlopeModel, SlopeModelSpec
+    from kidneycohort.models.mixed import SlopeModel, SlopeModelRule
 
     @registry.register(
         "slope_model",
         needs=["egfr", "cohort"],
         makes=["models/trajectories", "models/slope_summary", "slope_model_fit"],
         section="slope_model",
-        options=SlopeModelSpec,
+        options=SlopeModelRule,
         description="Linear mixed model of eGFR (one slope or two slopes with a knot) by group.",
     )
     def slope_model_step(ctx: StepContext) -> dict[str, Any]:
         """Mixed-model mean trajectories and slope contrasts (kidneycohort.models.mixed)."""
         spec = ctx.options
-        assert isinstance(spec, SlopeModelSpec)
+        assert isinstance(spec, SlopeModelRule)
         if spec.equation is None:
             spec = spec.model_copy(update={"equation": primary_equation(ctx.sections, ctx.tables)})
         model = SlopeModel.from_spec(spec).fit(ctx.tables["egfr"], ctx.tables["cohort"])
@@ -730,13 +730,13 @@ def _categories_for_table(categories: pl.DataFrame | None) -> pl.DataFrame | Non
 def _add_tables(registry: StepRegistry) -> None:
     from kidneycohort import tables as tb
     from kidneycohort.models.rates import incidence_rates
-    from kidneycohort.models.survival import SurvivalSpec
+    from kidneycohort.models.survival import SurvivalRule
 
     def common(ctx: StepContext) -> dict[str, pl.DataFrame]:
         spec = ctx.options
-        assert isinstance(spec, tb.TableSpec)
+        assert isinstance(spec, tb.TableRule)
         survival = ctx.sections.get("survival")
-        survival = survival if isinstance(survival, SurvivalSpec) else SurvivalSpec()
+        survival = survival if isinstance(survival, SurvivalRule) else SurvivalRule()
         endpoints = _evaluable(ctx.tables["endpoints"])
         cohort = ctx.tables["cohort"]
         return {
@@ -787,7 +787,7 @@ def _add_tables(registry: StepRegistry) -> None:
             "tables/slope_table",
         ],
         section="tables",
-        options=tb.TableSpec,
+        options=tb.TableRule,
         description="Endpoint, baseline, incidence-rate and slope tables (kidneycohort.tables).",
     )
     def trial_tables_step(ctx: StepContext) -> dict[str, Any]:
@@ -808,7 +808,7 @@ def _add_tables(registry: StepRegistry) -> None:
             "tables/transition_matrix",
         ],
         section="tables",
-        options=tb.TableSpec,
+        options=tb.TableRule,
         description="Endpoint, baseline, incidence-rate and G-transition tables (kidneycohort.tables).",
     )
     def cohort_tables_step(ctx: StepContext) -> dict[str, Any]:

@@ -2,7 +2,7 @@
 
 * :func:`kfre_at_baseline` -- the Kidney Failure Risk Equation at cohort entry, one row
   per patient, applicability stated (wraps :func:`kidneycohort.kfre.kfre_inputs` and
-  :func:`kidneycohort.kfre.kfre`).
+  :func:`kidneycohort.kfre.add_kfre_risk`).
 * :func:`kfre_summary` -- that risk's distribution by group, small cells protected.
 * :func:`kdigo_grid_counts` -- patients per KDIGO G x A cell with the prognosis level,
   the layout the KDIGO heat-map figure reads.
@@ -19,11 +19,11 @@ from typing import Final
 import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
-from kidneycohort.aki import ValueFilter
 from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES, RISK_GRID
-from kidneycohort.kfre import KFRE_REASONS, Region, kfre, kfre_inputs
-from kidneycohort.tables import TableSpec, suppression_label
+from kidneycohort.kfre import KFRE_REASONS, Region, add_kfre_risk, kfre_inputs
+from kidneycohort.tables import TableRule, suppression_label
+from kidneycohort.value_filter import ValueFilterRule
 
 logger = logging.getLogger(__name__)
 
@@ -48,7 +48,7 @@ def kfre_at_baseline(
     equation: str,
     region: Region = "north_american",
     lookback_days: float = 365.0,
-    value_filter: ValueFilter | None = None,
+    value_filter: ValueFilterRule | None = None,
     group_column: str | None = "group",
 ) -> pl.DataFrame:
     """Two- and five-year KFRE risk of each patient at the index date.
@@ -56,7 +56,7 @@ def kfre_at_baseline(
     The inputs are the latest usable eGFR of ``equation`` and the latest UACR within
     ``lookback_days`` before (or on) the index date, and the age at index
     (:func:`kidneycohort.kfre.kfre_inputs`); the risk is the 4-variable KFRE
-    (:func:`kidneycohort.kfre.kfre`, Tangri 2011 with the 2016 regional baseline
+    (:func:`kidneycohort.kfre.add_kfre_risk`, Tangri 2011 with the 2016 regional baseline
     survivals):
 
     .. math:: \\text{risk}(t) = 1 - S_0(t)^{\\exp(\\eta)}
@@ -97,7 +97,7 @@ def kfre_at_baseline(
         lookback_days=lookback_days,
         value_filter=value_filter,
     )
-    risk = kfre(inputs, region=region)
+    risk = add_kfre_risk(inputs, region=region)
     pts = pts.with_columns(pl.col("patient_id").cast(pl.String))
     extra = [pl.col("patient_id")]
     if group_column is not None and group_column in pts.columns:
@@ -147,7 +147,7 @@ def _percent(value: float) -> str:
     return f"{text} %"
 
 
-def _protect(counts: pl.DataFrame, spec: TableSpec) -> pl.DataFrame:
+def _protect(counts: pl.DataFrame, spec: TableRule) -> pl.DataFrame:
     """Mark ``_hidden`` cells: small counts, plus complementary cells.
 
     A block (``_block``: counts of one column that add up to its N) or a row (one count
@@ -194,7 +194,7 @@ def kfre_summary(
     group_column: str | None = "group",
     thresholds_2y: Sequence[float] = (0.10, 0.40),
     thresholds_5y: Sequence[float] = (0.03, 0.05),
-    spec: TableSpec | None = None,
+    spec: TableRule | None = None,
 ) -> pl.DataFrame:
     """KFRE risk at baseline by group: applicability, median [IQR] risk, risk above thresholds.
 
@@ -222,7 +222,7 @@ def kfre_summary(
         Column to split by; None (or absent) gives the overall column only.
     thresholds_2y, thresholds_5y : sequence of float
         Risk thresholds as fractions in (0, 1).
-    spec : TableSpec, optional
+    spec : TableRule, optional
         Suppression threshold and decimals.
 
     Returns
@@ -235,7 +235,7 @@ def kfre_summary(
     InputDataError
         A missing column. :class:`ConfigError` for a threshold outside (0, 1).
     """
-    spec = spec or TableSpec()
+    spec = spec or TableRule()
     df = to_polars(kfre_rows, "kfre")
     require_columns(df, ("patient_id", "kfre_2y", "kfre_5y", "kfre_reason"), "kfre")
     for name, values in (("thresholds_2y", thresholds_2y), ("thresholds_5y", thresholds_5y)):

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 
-from kidneycohort.synthetic.scenario import Death, Scenario
+from kidneycohort.synthetic.scenario import DeathProcess, Scenario
 from kidneycohort.synthetic.trajectories import (
     FloatArray,
     Population,
@@ -80,12 +80,12 @@ def min_gfr_on(traj: Trajectories, start: FloatArray, stop: FloatArray) -> Float
 
 
 def death_rate(
-    d: Death,
+    d: DeathProcess,
     age_at_index: FloatArray,
     traj: Trajectories,
     kfrt: FloatArray,
 ) -> Callable[[IntArray, FloatArray], FloatArray]:
-    """Death hazard of :class:`~kidneycohort.synthetic.scenario.Death` as a rate function."""
+    """Death hazard of :class:`~kidneycohort.synthetic.scenario.DeathProcess` as a rate."""
 
     def rate(patient: IntArray, t: FloatArray) -> FloatArray:
         age = age_at_index[patient] + t

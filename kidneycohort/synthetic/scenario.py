@@ -247,7 +247,7 @@ class Labs(_Strict):
     uacr: UacrLab | None = UacrLab()
 
 
-class KidneyFailure(_Strict):
+class KidneyFailureProcess(_Strict):
     """Kidney failure with replacement therapy once true GFR is low enough."""
 
     gfr_threshold: Range = Range(mean=10, sd=2, min=5, max=15)
@@ -256,7 +256,7 @@ class KidneyFailure(_Strict):
     transplant_fraction: float = Field(0.15, ge=0, le=1)
 
 
-class Death(_Strict):
+class DeathProcess(_Strict):
     """Death hazard: Gompertz in age, rising at low true GFR and after kidney failure.
 
     .. math::
@@ -275,8 +275,8 @@ class Death(_Strict):
 class Events(_Strict):
     """Kidney failure, death, loss to follow-up (administrative end: the calendar)."""
 
-    kidney_failure: KidneyFailure = KidneyFailure()
-    death: Death = Death()
+    kidney_failure: KidneyFailureProcess = KidneyFailureProcess()
+    death: DeathProcess = DeathProcess()
     loss_to_followup_per_year: float = Field(0.02, ge=0)
 
 

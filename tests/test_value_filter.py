@@ -8,12 +8,12 @@ from _derivation_fixtures import egfr_table, random_cohort, seeds
 from hypothesis import given, settings
 from polars.testing import assert_frame_equal
 
-from kidneycohort.aki import ValueFilter, apply_value_filter, flag_aki
 from kidneycohort.errors import ConfigError, InputDataError
+from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, flag_aki
 
 
 def _flags(rows, **rule):
-    out = flag_aki(egfr_table(rows), ValueFilter(**rule) if rule else None)
+    out = flag_aki(egfr_table(rows), ValueFilterRule(**rule) if rule else None)
     return out["aki_flag"].to_list(), out["aki_criterion"].to_list(), out["aki_recovery"].to_list()
 
 
@@ -84,7 +84,7 @@ def test_value_filter_reasons_keep_every_row():
         "setting_emergency",
     ]
     assert out["excluded"].to_list() == [False, True, True, False, True]
-    kept = apply_value_filter(df, ValueFilter(exclude_settings=(), exclude_aki=False))
+    kept = apply_value_filter(df, ValueFilterRule(exclude_settings=(), exclude_aki=False))
     assert not kept["excluded"].any()
 
 
@@ -101,9 +101,9 @@ def test_missing_columns_and_bad_rules_raise_our_errors():
     with pytest.raises(InputDataError, match=r"'setting'.*exclude_settings"):
         apply_value_filter(df.drop("setting"))
     with pytest.raises(ConfigError, match=r"aki_ratio.*got 0\.9"):
-        ValueFilter(aki_ratio=0.9)
+        ValueFilterRule(aki_ratio=0.9)
     with pytest.raises(ConfigError, match="did you mean 'exclude_aki'"):
-        ValueFilter(exclude_akii=True)
+        ValueFilterRule(exclude_akii=True)
 
 
 @settings(max_examples=15, deadline=None)

@@ -5,7 +5,7 @@ in hospital or the emergency department, and results distorted by an episode of 
 kidney injury, are commonly left out of that work. This module marks such results
 instead of dropping them: :func:`apply_value_filter` returns the input table with the
 flag columns below added, so a user can see what was excluded and why, and every
-downstream stage (:func:`kidneycohort.baseline.baseline`,
+downstream stage (:func:`kidneycohort.baseline.egfr_baseline`,
 :func:`kidneycohort.slopes.egfr_slopes`, :mod:`kidneycohort.kdigo`) skips the rows with
 ``excluded`` true.
 
@@ -60,7 +60,7 @@ KNOWN_SETTINGS: Final = ("outpatient", "inpatient", "emergency")
 EGFR_REQUIRED: Final = ("patient_id", "equation", "years_from_index", "egfr")
 
 
-class ValueFilter(RuleModel):
+class ValueFilterRule(RuleModel):
     """Which eGFR results count for baseline, slope and category work.
 
     Field names are the keys of the ``value_filter`` section of a study config.
@@ -119,7 +119,7 @@ def sample_time_expr(columns: list[str]) -> pl.Expr:
     return pl.coalesce(parts)
 
 
-def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
+def flag_aki(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFrame:
     """Add ``aki_flag``, ``aki_criterion`` and ``aki_recovery`` to an eGFR (or labs) table.
 
     The criteria are applied row by row; rows of the same patient at the same time (the
@@ -136,7 +136,7 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
     egfr : polars or pandas DataFrame
         Needs ``patient_id``, ``creatinine_mg_dl`` and ``sample_datetime`` or
         ``sample_date``.
-    rule : ValueFilter, optional
+    rule : ValueFilterRule, optional
         Thresholds and the recovery window; the KDIGO defaults when omitted.
 
     Returns
@@ -154,7 +154,7 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
     .. [1] KDIGO Acute Kidney Injury Work Group. KDIGO clinical practice guideline for
        acute kidney injury. Kidney Int Suppl 2012;2:1-138, recommendation 2.1.1.
     """
-    rule = rule or ValueFilter()
+    rule = rule or ValueFilterRule()
     df = to_polars(egfr, "egfr")
     require_columns(df, ("patient_id", "creatinine_mg_dl"), "egfr")
     if "sample_datetime" not in df.columns and "sample_date" not in df.columns:
@@ -236,7 +236,7 @@ def flag_aki(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
     return out
 
 
-def apply_value_filter(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.DataFrame:
+def apply_value_filter(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFrame:
     """Mark the results that do not count, keeping every row (see module docstring).
 
     Parameters
@@ -244,8 +244,8 @@ def apply_value_filter(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.D
     egfr : polars or pandas DataFrame
         An ``egfr`` table (``schemas.EGFR``); ``setting`` is needed when
         ``exclude_settings`` is not empty, ``creatinine_mg_dl`` when ``exclude_aki``.
-    rule : ValueFilter, optional
-        Defaults to ``ValueFilter()`` (inpatient and emergency results and AKI left out).
+    rule : ValueFilterRule, optional
+        Defaults to ``ValueFilterRule()`` (inpatient and emergency results and AKI left out).
 
     Returns
     -------
@@ -258,7 +258,7 @@ def apply_value_filter(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.D
     InputDataError
         When a column the rule needs is missing.
     """
-    rule = rule or ValueFilter()
+    rule = rule or ValueFilterRule()
     df = to_polars(egfr, "egfr")
     for setting in rule.exclude_settings:
         if setting not in KNOWN_SETTINGS:
@@ -307,7 +307,7 @@ def apply_value_filter(egfr: FrameLike, rule: ValueFilter | None = None) -> pl.D
 
 
 def usable_egfr(
-    egfr: FrameLike, value_filter: ValueFilter | None, name: str = "egfr"
+    egfr: FrameLike, value_filter: ValueFilterRule | None, name: str = "egfr"
 ) -> pl.DataFrame:
     """The eGFR rows a derivation may use, with ``_days`` (days from index) added.
 
