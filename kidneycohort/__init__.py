@@ -98,6 +98,7 @@ _PUBLIC: dict[str, str] = {
             "ckd_status",
             "kdigo_progression",
             "baseline_categories",
+            "kdigo_grid_counts",
         )
     },
     **{name: "kidneycohort.kfre" for name in ("kfre_risk", "kfre_inputs", "add_kfre_risk")},
@@ -118,10 +119,7 @@ _PUBLIC: dict[str, str] = {
         )
     },
     "to_adam_tte": "kidneycohort.adam",
-    **{
-        name: "kidneycohort.pipeline.summaries"
-        for name in ("kfre_at_baseline", "kfre_summary", "kdigo_grid_counts")
-    },
+    **{name: "kidneycohort.kfre" for name in ("kfre_at_baseline", "kfre_summary_table")},
     # models and tables
     **{
         name: "kidneycohort.models"

@@ -14,9 +14,9 @@ from kidneycohort.harmonize import (
     DEFAULT_PLAUSIBLE_RANGES,
     REASON_CODES,
     HarmonizeRule,
-    _account,
     harmonize_tables,
 )
+from kidneycohort.harmonize._accounting import _account
 from tests import _harmonize_fixtures as fx
 
 ONE_PATIENT = pl.DataFrame(

@@ -9,9 +9,9 @@ import pytest
 from _derivation_fixtures import egfr_table, patients_table, random_cohort, uacr_labs
 from polars.testing import assert_frame_equal
 
-from kidneycohort import kdigo
 from kidneycohort.kdigo import (
     SustainRule,
+    _sustained,
     category_results,
     ckd_status,
     sustained_stages,
@@ -55,7 +55,7 @@ def test_general_paths_match_packed_paths(monkeypatch):
     egfr, labs = _cohort()
     packed = _all_outputs(egfr, labs)
     # no key fits in zero bits: every packed shortcut falls back to the general path
-    monkeypatch.setattr(kdigo, "_PACKED_KEY_BITS", 0)
+    monkeypatch.setattr(_sustained, "_PACKED_KEY_BITS", 0)
     general = _all_outputs(egfr, labs)
     for fast, slow in zip(packed, general, strict=True):
         assert_frame_equal(fast, slow)

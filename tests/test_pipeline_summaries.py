@@ -10,7 +10,8 @@ import polars as pl
 import pytest
 
 from kidneycohort.errors import ConfigError, InputDataError
-from kidneycohort.pipeline.summaries import kdigo_grid_counts, kfre_at_baseline, kfre_summary
+from kidneycohort.kdigo import kdigo_grid_counts
+from kidneycohort.kfre import kfre_at_baseline, kfre_summary_table
 from kidneycohort.tables import TableRule
 
 
@@ -128,7 +129,7 @@ def _cell(table: pl.DataFrame, characteristic: str, column: str) -> str:
 
 def test_kfre_summary_counts_percentages_and_quartiles() -> None:
     rows = _rows({"x": 40, "y": 60}, {"x": 12, "y": 20})
-    table = kfre_summary(rows)
+    table = kfre_summary_table(rows)
     assert table.columns == ["characteristic", "statistic", "level", "x", "y", "Overall"]
     assert _cell(table, "N", "x") == "70" and _cell(table, "N", "Overall") == "160"
     assert _cell(table, "KFRE applicable", "y") == "60 (66.7%)"
@@ -145,7 +146,7 @@ def test_kfre_summary_protects_small_cells_and_their_complements() -> None:
     # x: 5 applicable (a small count; its reason cell 30 would give it away as N - 30,
     # so that one is hidden too); 3 above 10 % in x, 20 in y
     rows = _rows({"x": 5, "y": 60}, {"x": 3, "y": 20})
-    table = kfre_summary(rows)
+    table = kfre_summary_table(rows)
     assert _cell(table, "KFRE applicable", "x") == "<11"
     assert _cell(table, "KFRE not applicable", "x") == "*"
     assert _cell(table, "2-year kidney failure risk, %", "x") == "<11"  # median of 5
@@ -160,20 +161,20 @@ def test_kfre_summary_protects_small_cells_and_their_complements() -> None:
         numbers = counts[column].str.extract(r"^(\d+)", 1).cast(pl.Int64).drop_nulls()
         assert not numbers.is_between(1, 10).any()
     # suppression switched off prints everything
-    plain = kfre_summary(rows, spec=TableRule(small_cell_threshold=0))
+    plain = kfre_summary_table(rows, spec=TableRule(small_cell_threshold=0))
     assert _cell(plain, "KFRE applicable", "x") == "5 (14.3%)"
 
 
 def test_kfre_summary_without_groups_and_bad_input() -> None:
     rows = _rows({"x": 40}, {"x": 12}).drop("group")
-    table = kfre_summary(rows)
+    table = kfre_summary_table(rows)
     assert table.columns == ["characteristic", "statistic", "level", "Overall"]
     with pytest.raises(ConfigError, match=r"kfre\.thresholds_2y: 10"):
-        kfre_summary(rows, thresholds_2y=[10])
+        kfre_summary_table(rows, thresholds_2y=[10])
     with pytest.raises(InputDataError, match="kfre_5y"):
-        kfre_summary(rows.drop("kfre_5y"))
+        kfre_summary_table(rows.drop("kfre_5y"))
     with pytest.raises(InputDataError, match="unknown code 'egfr_high'"):
-        kfre_summary(rows.with_columns(kfre_reason=pl.lit("egfr_high")))
+        kfre_summary_table(rows.with_columns(kfre_reason=pl.lit("egfr_high")))
 
 
 def test_kdigo_grid_counts_every_cell_with_its_risk() -> None:

@@ -311,8 +311,7 @@ class KdigoGridSection(BaseModel):
 def _add_kdigo_grid(registry: StepRegistry) -> None:
     from kidneycohort import tables as tb
     from kidneycohort.baseline import uacr_baseline
-    from kidneycohort.kdigo import baseline_categories
-    from kidneycohort.pipeline.summaries import kdigo_grid_counts
+    from kidneycohort.kdigo import baseline_categories, kdigo_grid_counts
     from kidneycohort.value_filter import ValueFilterRule
 
     @registry.register(
@@ -375,8 +374,8 @@ class KfreSection(BaseModel):
 
 def _add_kfre(registry: StepRegistry) -> None:
     from kidneycohort import tables as tb
+    from kidneycohort.kfre import kfre_at_baseline, kfre_summary_table
     from kidneycohort.models.survival import SurvivalRule
-    from kidneycohort.pipeline.summaries import kfre_at_baseline, kfre_summary
     from kidneycohort.value_filter import ValueFilterRule
 
     @registry.register(
@@ -405,7 +404,7 @@ def _add_kfre(registry: StepRegistry) -> None:
             group_column=group,
         )
         spec = ctx.sections.get("tables")
-        summary = kfre_summary(
+        summary = kfre_summary_table(
             rows,
             group_column=group,
             thresholds_2y=opts.thresholds_2y,

@@ -1,18 +1,7 @@
-"""Run-level summaries the pipeline writes beside the stage outputs.
-
-* :func:`kfre_at_baseline` -- the Kidney Failure Risk Equation at cohort entry, one row
-  per patient, applicability stated (wraps :func:`kidneycohort.kfre.kfre_inputs` and
-  :func:`kidneycohort.kfre.add_kfre_risk`).
-* :func:`kfre_summary` -- that risk's distribution by group, small cells protected.
-* :func:`kdigo_grid_counts` -- patients per KDIGO G x A cell with the prognosis level,
-  the layout the KDIGO heat-map figure reads.
-
-All are plain table functions (polars in, polars out), usable without the runner.
-"""
+"""The distribution of KFRE risk at baseline by group, as a table for sharing."""
 
 from __future__ import annotations
 
-import logging
 from collections.abc import Sequence
 from typing import Final
 
@@ -20,125 +9,13 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
-from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES, RISK_GRID
-from kidneycohort.kfre import KFRE_REASONS, Region, add_kfre_risk, kfre_inputs
+from kidneycohort.kfre._inputs import KFRE_SUMMARY_REASONS
 from kidneycohort.tables import TableRule, suppression_label
-from kidneycohort.value_filter import ValueFilterRule
-
-logger = logging.getLogger(__name__)
-
-ON_KFRT: Final = "on_kfrt_at_baseline"
-"""Extra ``kfre_reason``: kidney replacement therapy began on or before the assessment."""
-
-KFRE_SUMMARY_REASONS: Final[dict[str, str]] = {
-    **KFRE_REASONS,
-    ON_KFRT: "kidney replacement therapy already started: the equation does not apply",
-}
 
 _DASH: Final = "–"
+
+
 _OVERALL: Final = "Overall"
-
-
-# ---- KFRE at baseline ---------------------------------------------------------------------
-def kfre_at_baseline(
-    egfr: FrameLike,
-    labs: FrameLike,
-    cohort: FrameLike,
-    *,
-    equation: str,
-    region: Region = "north_american",
-    lookback_days: float = 365.0,
-    value_filter: ValueFilterRule | None = None,
-    group_column: str | None = "group",
-) -> pl.DataFrame:
-    """Two- and five-year KFRE risk of each patient at the index date.
-
-    The inputs are the latest usable eGFR of ``equation`` and the latest UACR within
-    ``lookback_days`` before (or on) the index date, and the age at index
-    (:func:`kidneycohort.kfre.kfre_inputs`); the risk is the 4-variable KFRE
-    (:func:`kidneycohort.kfre.add_kfre_risk`, Tangri 2011 with the 2016 regional baseline
-    survivals):
-
-    .. math:: \\text{risk}(t) = 1 - S_0(t)^{\\exp(\\eta)}
-
-    Applicability is stated per patient: ``kfre_applicable`` is true when a risk was
-    computed, and ``kfre_reason`` names why not (:data:`KFRE_SUMMARY_REASONS`). Besides
-    the checks of :func:`~kidneycohort.kfre.kfre`, a patient whose ``kfrt_date`` is on
-    or before the index date is already on kidney replacement therapy and gets
-    ``on_kfrt_at_baseline`` (the equation predicts the start of it).
-
-    Parameters
-    ----------
-    egfr, labs, cohort : polars or pandas DataFrame
-        ``egfr.parquet`` rows, harmonised labs (UACR in mg/g) and harmonised patients.
-    equation : str
-        The eGFR equation (the study's primary one).
-    region, lookback_days, value_filter
-        Passed to the KFRE functions.
-    group_column : str or None
-        A ``cohort`` column copied to the output (the grouping of :func:`kfre_summary`).
-
-    Returns
-    -------
-    polars.DataFrame
-        One row per patient of ``cohort``: ``patient_id``, the group column, ``equation``,
-        the inputs (``at_years``, ``age_years``, ``sex``, ``egfr``, ``egfr_years``,
-        ``uacr_mg_g``, ``uacr_years``), ``kfre_2y``, ``kfre_5y``, ``kfre_region``,
-        ``kfre_applicable``, ``kfre_reason``.
-    """
-    pts = to_polars(cohort, "cohort")
-    require_columns(pts, ("patient_id",), "cohort")
-    inputs = kfre_inputs(
-        egfr,
-        labs,
-        pts,
-        equation,
-        at_years=0.0,
-        lookback_days=lookback_days,
-        value_filter=value_filter,
-    )
-    risk = add_kfre_risk(inputs, region=region)
-    pts = pts.with_columns(pl.col("patient_id").cast(pl.String))
-    extra = [pl.col("patient_id")]
-    if group_column is not None and group_column in pts.columns:
-        extra.append(pl.col(group_column).cast(pl.String))
-    on_kfrt = pl.lit(False)
-    if "kfrt_date" in pts.columns and "index_date" in pts.columns:
-        on_kfrt = (
-            pl.col("kfrt_date").cast(pl.Date) <= pl.col("index_date").cast(pl.Date)
-        ).fill_null(False)
-    extra.append(on_kfrt.alias("_on_kfrt"))
-    out = risk.join(
-        pts.select(extra).unique("patient_id", keep="first", maintain_order=True),
-        on="patient_id",
-        how="left",
-        maintain_order="left",
-    )
-    reason = pl.when(pl.col("_on_kfrt")).then(pl.lit(ON_KFRT)).otherwise(pl.col("kfre_reason"))
-    out = out.with_columns(
-        kfre_reason=reason,
-        kfre_2y=pl.when(pl.col("_on_kfrt")).then(None).otherwise(pl.col("kfre_2y")),
-        kfre_5y=pl.when(pl.col("_on_kfrt")).then(None).otherwise(pl.col("kfre_5y")),
-        equation=pl.lit(equation, dtype=pl.String),
-    ).with_columns(kfre_applicable=pl.col("kfre_reason").is_null())
-    group = [group_column] if group_column is not None and group_column in out.columns else []
-    return out.select(
-        "patient_id",
-        *group,
-        "equation",
-        "at_years",
-        "age_years",
-        "sex",
-        "egfr",
-        "egfr_years",
-        "uacr_mg_g",
-        "uacr_years",
-        "kfre_2y",
-        "kfre_5y",
-        "kfre_region",
-        "kfre_applicable",
-        "kfre_reason",
-    )
 
 
 # ---- KFRE summary table ------------------------------------------------------------------
@@ -188,7 +65,7 @@ def _protect(counts: pl.DataFrame, spec: TableRule) -> pl.DataFrame:
     return out.drop("_rank")
 
 
-def kfre_summary(
+def kfre_summary_table(
     kfre_rows: FrameLike,
     *,
     group_column: str | None = "group",
@@ -408,41 +285,4 @@ def kfre_summary(
     )
     return table.sort("_order", maintain_order=True).select(
         "characteristic", "statistic", "level", *columns
-    )
-
-
-# ---- KDIGO grid counts -------------------------------------------------------------------
-def kdigo_grid_counts(categories: FrameLike) -> pl.DataFrame:
-    """Patients per KDIGO GFR x albuminuria cell, with the cell's prognosis level.
-
-    Counts the patients of :func:`kidneycohort.kdigo.baseline_categories` that have both
-    categories; the 18 cells of KDIGO 2012 Figure 2 are all present (zeros included).
-    ``risk`` uses the figure's level names (``low``, ``moderately_increased``, ``high``,
-    ``very_high``). Patients with a missing category are counted in the
-    ``tables/kdigo_grid`` table (:func:`kidneycohort.tables.kdigo_count_grid`), not here.
-
-    Returns
-    -------
-    polars.DataFrame
-        ``g_category``, ``a_category``, ``n`` (Int64, unsuppressed), ``risk``.
-    """
-    df = to_polars(categories, "categories")
-    require_columns(df, ("g_category", "a_category"), "categories")
-    cells = pl.DataFrame(
-        {
-            "g_category": [g for g in G_CATEGORIES for _ in A_CATEGORIES],
-            "a_category": [a for _ in G_CATEGORIES for a in A_CATEGORIES],
-        }
-    ).with_columns(
-        risk=pl.concat_str("g_category", "a_category", separator="|")
-        .replace_strict({f"{g}|{a}": r for (g, a), r in RISK_GRID.items()})
-        .str.replace_all(" ", "_")
-    )
-    counts = (
-        df.filter(pl.col("g_category").is_not_null() & pl.col("a_category").is_not_null())
-        .group_by("g_category", "a_category")
-        .agg(pl.len().cast(pl.Int64).alias("n"))
-    )
-    return cells.join(counts, on=["g_category", "a_category"], how="left").select(
-        "g_category", "a_category", pl.col("n").fill_null(0), "risk"
     )
