@@ -85,10 +85,10 @@ def time_fit(
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", StatisticalWarning)
         if kind == "linear":
-            model = SlopeModel(None, reference_group="placebo").fit(values, patients)
+            model = SlopeModel(knot_years=None, reference_group="placebo").fit(values, patients)
             note = model.random_effects_structure_
         elif kind == "two_slope":
-            model = SlopeModel(0.25, reference_group="placebo").fit(values, patients)
+            model = SlopeModel(knot_years=0.25, reference_group="placebo").fit(values, patients)
             note = model.random_effects_structure_
         else:
             cox = CoxModel(reference_group="placebo", covariates=["age_at_index", "diabetes"]).fit(

@@ -143,8 +143,8 @@ _PUBLIC: dict[str, str] = {
             "TableRule",
             "endpoint_table",
             "slope_table",
-            "baseline_characteristics",
-            "kdigo_count_grid",
+            "baseline_characteristics_table",
+            "kdigo_grid_table",
             "write_tables",
         )
     },

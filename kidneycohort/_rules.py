@@ -11,8 +11,9 @@ instead of pydantic's multi-line report.
 from __future__ import annotations
 
 import contextvars
+import reprlib
 import typing
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, TypeVar
 
@@ -63,6 +64,7 @@ class ErrorFacts:
     got: Any
     known: tuple[str, ...]
     count: int
+    expected: str = ""
 
     @property
     def path(self) -> str:
@@ -100,13 +102,53 @@ def error_facts(
         got=err.get("input"),
         known=tuple(known),
         count=exc.error_count(),
+        expected=str(err.get("ctx", {}).get("expected_tags", "")),
     )
 
 
+def short_repr(value: Any, limit: int = 60) -> str:
+    """``repr(value)`` cut to ``limit`` characters, without rendering a large value whole.
+
+    A nested value (e.g. a YAML alias that expands to millions of items) is summarised
+    level by level, so building an error message costs little whatever the value is.
+
+    >>> short_repr("x" * 100, limit=12)
+    "'xxx...xxxx'"
+    >>> short_repr(list(range(10**6)))
+    '[0, 1, 2, 3, 4, 5, ...]'
+    """
+    shortened = reprlib.Repr()  # Python 3.11: limits are attributes, not arguments
+    shortened.maxlevel, shortened.maxlist, shortened.maxdict = 2, 6, 4
+    shortened.maxstring = shortened.maxother = limit
+    text = shortened.repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _join(where: str, path: Sequence[Any]) -> str:
+    """``where`` followed by a location; a file name is set off by ": " rather than "."."""
+    parts = [str(p) for p in path]
+    if not parts:
+        return where
+    if not where:
+        return ".".join(parts)
+    joint = ": " if where.endswith((".yaml", ".yml", ".json")) else "."
+    return where + joint + ".".join(parts)
+
+
 def rule_error_message(
-    model: type[BaseModel] | str, exc: ValidationError, fields: Iterable[str] | None = None
+    model: type[BaseModel] | str,
+    exc: ValidationError,
+    fields: Iterable[str] | None = None,
+    *,
+    schema: type[BaseModel] | None = None,
+    kinds: Sequence[str] = (),
 ) -> str:
-    """One line from a pydantic error: ``Rule.field: problem (got value)``.
+    """The one line every options error is worded in: ``where.field: problem (got value)``.
+
+    A misspelt key reads ``where: unknown key 'x' (did you mean 'y'?)``, a missing one
+    ``where.field: required key missing; add it``, an unknown kind of a tagged union
+    ``where.kind: unknown kind 'x'; kind must be one of ...``. When pydantic found
+    several problems, ``(+n more)`` says so.
 
     Parameters
     ----------
@@ -118,6 +160,10 @@ def rule_error_message(
     fields
         Known field names for the suggestion; by default those of the (sub-)model the
         misspelt key sits in.
+    schema
+        The model validated, when ``model`` is a location text (for the suggestion).
+    kinds
+        The kinds of a tagged union, when pydantic does not list them itself.
 
     Examples
     --------
@@ -129,17 +175,38 @@ def rule_error_message(
     ...     Window(dayz=30)
     ... except ValidationError as exc:
     ...     print(rule_error_message(Window, exc))
-    Window.dayz: Extra inputs are not permitted (got 30) (did you mean 'days'?)
+    Window: unknown key 'dayz' (did you mean 'days'?)
+    >>> try:
+    ...     Window(days="many")
+    ... except ValidationError as exc:
+    ...     print(rule_error_message("window", exc))
+    window.days: Input should be a valid integer, unable to parse string as an integer (got 'many')
     """
-    facts = error_facts(None if isinstance(model, str) else model, exc, fields)
+    facts = error_facts(schema if isinstance(model, str) else model, exc, fields)
     where = model if isinstance(model, str) else model.__name__
-    place = ".".join([where, *(str(p) for p in facts.loc)])
-    got = facts.got
-    shown = "" if facts.kind == "missing" or isinstance(got, Mapping) else f" (got {got!r})"
-    hint = ""
     if facts.kind == "extra_forbidden" and facts.loc:
         hint = facts.suggestion or (f"; known: {', '.join(facts.known)}" if facts.known else "")
-    return f"{place}: {facts.message}{shown}{hint}"
+        text = f"{_join(where, facts.loc[:-1])}: unknown key '{facts.loc[-1]}'{hint}"
+    elif facts.kind == "missing":
+        text = f"{_join(where, facts.loc)}: required key missing; add it"
+    elif facts.kind in ("union_tag_invalid", "union_tag_not_found"):
+        tag = str(facts.got.get("kind")) if isinstance(facts.got, Mapping) else str(facts.got)
+        known = [k.strip(" '") for k in facts.expected.split(",")] if facts.expected else kinds
+        text = (
+            f"{_join(where, [*facts.loc, 'kind'])}: unknown or missing kind {tag!r}"
+            f"{did_you_mean(tag, known)}; kind must be one of {', '.join(known)}"
+        )
+    else:
+        got = facts.got
+        shown = "" if isinstance(got, Mapping) else f" (got {short_repr(got)})"
+        text = f"{_join(where, facts.loc)}: {facts.message}{shown}"
+    # a misspelt key also makes its intended field "missing": that is not a second problem
+    others = facts.count - 1 - (facts.kind == "extra_forbidden") * _missing_count(exc)
+    return text + (f" (+{others} more)" if others > 0 else "")
+
+
+def _missing_count(exc: ValidationError) -> int:
+    return sum(1 for e in exc.errors() if e["type"] == "missing")
 
 
 def _fields_at(model: type[BaseModel], path: tuple[Any, ...]) -> list[str]:

@@ -34,7 +34,7 @@ from typing import Any, Final
 
 import numpy as np
 import polars as pl
-from pydantic import ConfigDict, Field, field_validator
+from pydantic import Field, field_validator
 
 from kidneycohort import equations as eq
 from kidneycohort import schemas, units
@@ -84,7 +84,6 @@ def _check_ids(value: list[str]) -> list[str]:
 class AgeBand(RuleModel):
     """Equations used for samples taken at ages in ``[min_age, max_age)``."""
 
-    model_config = ConfigDict(frozen=False)
 
     min_age: float = Field(default=0.0, description="Lowest age of the band (inclusive).")
     max_age: float | None = Field(
@@ -110,7 +109,6 @@ class EgfrRule(RuleModel):
     ['ckid_u25_cr', 'ckd_epi_2021_cr']
     """
 
-    model_config = ConfigDict(frozen=False)
 
     equations: list[str] = Field(
         default_factory=lambda: ["ckd_epi_2021_cr"],

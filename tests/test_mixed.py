@@ -47,7 +47,7 @@ def test_random_slope_model_matches_published_lme4_fit(dietox: pl.DataFrame) -> 
     statsmodels documentation notebook "Linear Mixed Effects Models" (mixed_lm_example):
     fixed effects 15.73865 (SE 0.55012) and 6.93901 (SE 0.07982); random-effects
     variances 19.493 (intercept) and 0.416 (Time), correlation 0.10; residual 6.038."""
-    model = SlopeModel(None).fit(dietox)
+    model = SlopeModel(knot_years=None).fit(dietox)
     fixed = {row[0]: row[1:3] for row in model.fixed_effects_.rows()}
     assert fixed["all: intercept"][0] == pytest.approx(15.73865, abs=2e-3)
     assert fixed["all: intercept"][1] == pytest.approx(0.55012, rel=5e-3)
@@ -73,9 +73,9 @@ def trial() -> tuple[SlopeModel, TwoSlopeTruth]:
     # seed 11 was tried first: its acute-change difference lay 2.2 SE from the truth, as a
     # 2-SE check will for about 1 seed in 20; the slow test checks calibration over 20 seeds
     egfr, patients, truth = simulate_two_slope_trial(120, seed=12)
-    return SlopeModel(0.25, reference_group="placebo", covariates=["age_at_index", "sex"]).fit(
-        egfr, patients
-    ), truth
+    return SlopeModel(
+        knot_years=0.25, reference_group="placebo", covariates=["age_at_index", "sex"]
+    ).fit(egfr, patients), truth
 
 
 def test_two_slope_model_recovers_simulated_trial(trial: tuple[SlopeModel, TwoSlopeTruth]) -> None:
@@ -153,7 +153,7 @@ def test_fallback_structure_is_announced(
 
     monkeypatch.setattr(SlopeModel, "_fit_structure", unstructured_fails)
     with pytest.warns(StatisticalWarning, match="refitting with 'diagonal'"):
-        model = SlopeModel(None).fit(few_pigs)
+        model = SlopeModel(knot_years=None).fit(few_pigs)
     assert model.random_effects_structure_ == "diagonal"
     assert model.fit_messages_[0].startswith("unstructured: The Hessian")
     assert "cov(intercept, slope)" not in dict(model.variance_components_.rows()) or dict(
@@ -170,7 +170,7 @@ def test_no_converging_structure_raises(
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", StatisticalWarning)
         with pytest.raises(ConvergenceError, match="no random-effects structure converged"):
-            SlopeModel(None).fit(few_pigs)
+            SlopeModel(knot_years=None).fit(few_pigs)
 
 
 def test_rows_not_used_are_reported(few_pigs: pl.DataFrame) -> None:
@@ -181,7 +181,7 @@ def test_rows_not_used_are_reported(few_pigs: pl.DataFrame) -> None:
         .otherwise(pl.col("years_from_index"))
         .alias("years_from_index"),
     )
-    model = SlopeModel(None, max_years=10).fit(holes)
+    model = SlopeModel(knot_years=None, max_years=10).fit(holes)
     reasons = dict(model.excluded_.select("reason", "n_rows").rows())
     assert reasons["egfr_missing"] == 1
     assert reasons["before_index"] == 1
@@ -198,32 +198,38 @@ def test_several_equations_need_a_choice(few_pigs: pl.DataFrame) -> None:
         ]
     )
     with pytest.raises(InputDataError, match="pass equation="):
-        SlopeModel(None).fit(both)
+        SlopeModel(knot_years=None).fit(both)
     with pytest.raises(InputDataError, match="did you mean 'eq_a'"):
-        SlopeModel(None, equation="eq_aa").fit(both)
+        SlopeModel(knot_years=None, equation="eq_aa").fit(both)
 
 
 def test_horizon_before_knot_is_a_config_error(few_pigs: pl.DataFrame) -> None:
     with pytest.raises(ConfigError, match="horizons_years"):
-        SlopeModel(0.5, horizons_years=[0.25]).fit(few_pigs)
+        SlopeModel(knot_years=0.5, horizons_years=[0.25]).fit(few_pigs)
     with pytest.raises(ConfigError, match="knot_years"):
-        SlopeModel(-1.0).fit(few_pigs)
+        SlopeModel(knot_years=-1.0).fit(few_pigs)
 
 
-def test_spec_round_trip() -> None:
-    spec = SlopeModelRule(knot_years=0.25, horizons_years=[2, 3], covariates=["age_at_index"])
-    model = SlopeModel.from_spec(spec)
-    assert (model.knot_years, model.horizons_years, model.covariates) == (
-        0.25,
-        (2.0, 3.0),
-        ("age_at_index",),
+def test_model_takes_its_rule_and_keyword_overrides() -> None:
+    rule = SlopeModelRule(knot_years=0.25, horizons_years=[2, 3], covariates=["age_at_index"])
+    assert SlopeModel(rule).rule == rule
+    model = SlopeModel(rule, knot_years=None, horizons_years=[1])
+    assert (model.rule.knot_years, model.rule.horizons_years, model.rule.covariates) == (
+        None,
+        [1.0],
+        ["age_at_index"],
     )
+    # options validate when the model is built, not when it is fitted
+    with pytest.raises(ConfigError, match="confidence"):
+        SlopeModel(confidence=2)
+    with pytest.raises(ConfigError, match=r"unknown rule 'knots_years'.*did you mean 'knot_years'"):
+        SlopeModel(knots_years=0.5)
 
 
 def test_missing_group_column_suggests(few_pigs: pl.DataFrame) -> None:
     patients = pl.DataFrame({"patient_id": few_pigs["patient_id"].unique(), "arm": "x"})
     with pytest.raises(InputDataError, match="did you mean 'arm'"):
-        SlopeModel(None, group_column="arms").fit(few_pigs.drop("group"), patients)
+        SlopeModel(knot_years=None, group_column="arms").fit(few_pigs.drop("group"), patients)
 
 
 @pytest.mark.slow
@@ -234,7 +240,9 @@ def test_confidence_intervals_cover_the_truth_across_seeds() -> None:
     covered = {"acute_change": 0, "chronic_slope": 0}
     for seed in range(20):
         egfr, patients, truth = simulate_two_slope_trial(100, seed=100 + seed)
-        summary = SlopeModel(0.25, reference_group="placebo").fit(egfr, patients).summary()
+        summary = (
+            SlopeModel(knot_years=0.25, reference_group="placebo").fit(egfr, patients).summary()
+        )
         for quantity, true_value in (
             ("acute_change", truth.acute("active") - truth.acute("placebo")),
             ("chronic_slope", truth.chronic("active") - truth.chronic("placebo")),

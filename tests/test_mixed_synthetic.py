@@ -116,7 +116,7 @@ def test_two_slope_model_recovers_the_trial_truth(noisy_trial) -> None:
     difference 1.0)."""
     cohort, egfr, patients = noisy_trial
     knot = _dip_end_years(cohort)
-    model = SlopeModel(knot, reference_group="placebo", horizons_years=[HORIZON]).fit(
+    model = SlopeModel(knot_years=knot, reference_group="placebo", horizons_years=[HORIZON]).fit(
         egfr, patients
     )
     assert model.random_effects_structure_ == "unstructured"
@@ -145,7 +145,7 @@ def test_the_plain_statsmodels_fit_gives_the_same_contrasts(noisy_trial) -> None
     keep = cohort.patients["patient_id"].head(200).implode()
     egfr = egfr.filter(pl.col("patient_id").is_in(keep))
     knot = _dip_end_years(cohort)
-    model = SlopeModel(knot, reference_group="placebo").fit(egfr, patients)
+    model = SlopeModel(knot_years=knot, reference_group="placebo").fit(egfr, patients)
     frame = (
         egfr.filter(pl.col("years_from_index") >= 0)
         .join(patients.select("patient_id", "group"), on="patient_id")
@@ -180,7 +180,7 @@ def test_three_month_knot_attenuates_a_four_week_dip() -> None:
     cohort = _cohort(400, noise_off=True)
     egfr, patients = _egfr(cohort)
     truth = _true_differences(cohort, 0.25)
-    model = SlopeModel(0.25, reference_group="placebo", horizons_years=[HORIZON]).fit(
+    model = SlopeModel(knot_years=0.25, reference_group="placebo", horizons_years=[HORIZON]).fit(
         egfr, patients
     )
     fitted = _differences(model)
@@ -201,7 +201,9 @@ def test_three_month_knot_attenuates_a_four_week_dip() -> None:
     trimmed = egfr.join(ramp_visits, on=["patient_id", "sample_date"], how="anti")
     assert egfr.height - trimmed.height == ramp_visits.height
     refit = _differences(
-        SlopeModel(0.25, reference_group="placebo", horizons_years=[HORIZON]).fit(trimmed, patients)
+        SlopeModel(knot_years=0.25, reference_group="placebo", horizons_years=[HORIZON]).fit(
+            trimmed, patients
+        )
     )
     acute = refit["acute_change"]
     assert abs(acute["estimate"] - truth["acute_change"]) <= 2 * acute["se"]
@@ -279,7 +281,7 @@ def test_confidence_intervals_cover_the_trial_truth_across_seeds() -> None:
         egfr, patients = _egfr(cohort)
         knot = _dip_end_years(cohort)
         fitted = _differences(
-            SlopeModel(knot, reference_group="placebo", horizons_years=[HORIZON]).fit(
+            SlopeModel(knot_years=knot, reference_group="placebo", horizons_years=[HORIZON]).fit(
                 egfr, patients
             )
         )

@@ -24,6 +24,7 @@ from PIL import Image
 from scipy import stats
 
 from kidneycohort import plots
+from kidneycohort.disclosure import small_cell_text
 from kidneycohort.errors import InputDataError
 
 
@@ -75,9 +76,9 @@ def test_group_colours_do_not_depend_on_order_or_duplicates() -> None:
 def test_small_cell_text() -> None:
     # common practice: data-use agreements forbid showing cells below 11
     df = pl.DataFrame({"n": [0, 1, 10, 11, 250, None]})
-    out = df.select(plots.small_cell_text(pl.col("n"), 10))["n"].to_list()
+    out = df.select(small_cell_text(pl.col("n"), 10))["n"].to_list()
     assert out == ["0", "<11", "<11", "11", "250", None]
-    out5 = df.select(plots.small_cell_text(pl.col("n"), 5))["n"].to_list()
+    out5 = df.select(small_cell_text(pl.col("n"), 5))["n"].to_list()
     assert out5 == ["0", "<6", "10", "11", "250", None]
     with pytest.raises(InputDataError, match="small_cell_threshold"):
         plots.kdigo_grid_cells(

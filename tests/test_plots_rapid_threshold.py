@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from kidneycohort.plots import RAPID_DECLINE_PER_YEAR, rapid_decline_threshold
+from kidneycohort.plots import RAPID_DECLINE_PER_YEAR
+from kidneycohort.plots._write import rapid_decline_threshold
 from kidneycohort.slopes import SlopeRule
 
 

@@ -38,7 +38,7 @@ def test_bad_value_is_one_line_with_field_and_value():
 
 
 def test_misspelt_key_suggests_the_field():
-    with pytest.raises(ConfigError, match=r"Window\.dayz: Extra inputs.*did you mean 'days'"):
+    with pytest.raises(ConfigError, match=r"^Window: unknown key 'dayz' \(did you mean 'days'\?\)$"):
         Window(dayz=3)
     with pytest.raises(ConfigError, match=r"; known: days$"):
         Window(zzzzzz=3)
@@ -47,7 +47,7 @@ def test_misspelt_key_suggests_the_field():
 def test_nested_error_keeps_the_full_path_and_the_sub_model_fields():
     with pytest.raises(ConfigError, match=r"^Plan\.windows\.1\.days: .*\(got -5\)$"):
         Plan(windows=[{"days": 1}, {"days": -5}])
-    with pytest.raises(ConfigError, match=r"Plan\.windows\.0\.dais: .*did you mean 'days'"):
+    with pytest.raises(ConfigError, match=r"^Plan\.windows\.0: unknown key 'dais' \(did you mean 'days'"):
         Plan(windows=[{"dais": 1}])
 
 
@@ -60,12 +60,11 @@ def test_model_validate_leaves_the_pydantic_error_to_the_caller():
         validate_config(Plan.model_validate, {"windows": [{"days": -5}]}, "plan")
 
 
-def test_rules_are_frozen_unless_a_model_says_otherwise():
+def test_rules_are_frozen():
     with pytest.raises(ValidationError):
         Window().days = 3  # type: ignore[misc]
-    spec = TableRule()
-    spec.decimals = 2
-    assert spec.decimals == 2
+    with pytest.raises(ValidationError):
+        TableRule().decimals = 2  # type: ignore[misc]
 
 
 def test_resolve_rules_names_unknown_and_bad_overrides():
@@ -85,7 +84,7 @@ def test_resolve_rules_names_unknown_and_bad_overrides():
         (lambda: AgeBand(equations=["ckd_epi_2021"]), r"did you mean 'ckd_epi_2021_cr'"),
         (
             lambda: EgfrRule(by_age=[{"equations": ["ckd_epi_2021_cr"], "max_agee": 18}]),
-            r"^EgfrRule\.by_age\.0\.max_agee: .*did you mean 'max_age'",
+            r"^EgfrRule\.by_age\.0: unknown key 'max_agee' \(did you mean 'max_age'",
         ),
     ],
 )
@@ -98,7 +97,7 @@ def test_message_from_text_location_has_no_suggestion_list():
     with pytest.raises(ValidationError) as info:
         Window.model_validate({"other": 1})
     assert rule_error_message("cfg", info.value) == (
-        "cfg.other: Extra inputs are not permitted (got 1)"
+        "cfg: unknown key 'other'"
     )
 
 
@@ -130,7 +129,7 @@ def test_misspelt_key_in_a_tagged_union_suggests_the_chosen_members_fields():
     facts = error_facts(Tagged, info.value)
     assert facts.known == ("kind", "visits", "every_days")
     assert facts.suggestion == " (did you mean 'every_days'?)"
-    with pytest.raises(ConfigError, match=r"^Tagged\.schedule\.care\.tests_per_yer: .*"):
+    with pytest.raises(ConfigError, match=r"^Tagged\.schedule\.care: unknown key 'tests_per_yer' \(did you"):
         Tagged(schedule={"kind": "care", "tests_per_yer": 2})
 
 

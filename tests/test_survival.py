@@ -8,7 +8,7 @@ import pytest
 from lifelines import CoxPHFitter, KaplanMeierFitter
 from lifelines.datasets import load_rossi
 
-from kidneycohort.errors import ConvergenceError, InputDataError
+from kidneycohort.errors import ConfigError, ConvergenceError, InputDataError
 from kidneycohort.models.survival import (
     CoxModel,
     CumulativeIncidence,
@@ -227,10 +227,13 @@ def test_aalen_johansen_without_competing_events_is_one_minus_kaplan_meier() -> 
     assert model.horizon_estimates_["estimate"].to_numpy() == pytest.approx(expected, abs=1e-9)
 
 
-def test_spec_builds_models() -> None:
-    spec = SurvivalRule(horizons_years=[1, 2], at_risk_years=[0, 1], covariates=["age"])
-    assert KaplanMeier.from_spec(spec).horizons_years == (1.0, 2.0)
-    assert CoxModel.from_spec(spec, endpoint="x").covariates == ("age",)
+def test_models_take_their_rule_and_validate_at_once() -> None:
+    rule = SurvivalRule(horizons_years=[1, 2], at_risk_years=[0, 1], covariates=["age"])
+    assert KaplanMeier(rule).rule.horizons_years == [1.0, 2.0]
+    assert CoxModel(rule, endpoint="x").rule.covariates == ["age"]
+    assert CoxModel(rule, covariates=["prio"]).rule.covariates == ["prio"]
+    with pytest.raises(ConfigError, match="confidence"):
+        KaplanMeier(confidence=2)
 
 
 def test_several_endpoints_need_a_choice(rossi: tuple[pl.DataFrame, pl.DataFrame]) -> None:

@@ -16,15 +16,15 @@ from kidneycohort.models.mixed import SlopeModel
 from kidneycohort.models.rates import exact_poisson_interval
 from kidneycohort.tables import (
     TableRule,
-    baseline_characteristics,
+    baseline_characteristics_table,
     endpoint_table,
-    kdigo_count_grid,
+    kdigo_grid_table,
     slope_table,
     suppress_small_counts,
     suppression_footnote,
     suppression_label,
     to_markdown,
-    transition_matrix,
+    transition_table,
     write_tables,
 )
 from tests._models_fixtures import simulate_two_slope_trial
@@ -57,7 +57,7 @@ def test_suppression_label_and_threshold() -> None:
 
 
 def test_baseline_table_counts_percentages_and_suppression() -> None:
-    table = baseline_characteristics(_patients(), covariates=[])
+    table = baseline_characteristics_table(_patients(), covariates=[])
     sex = table.filter(pl.col("characteristic") == "Sex")
     # active: 5 male is suppressed; female 25 would reveal it (N 30 - 25), so it is
     # suppressed too (complementary, '*'); placebo shown in full; overall 40 / 20.
@@ -75,7 +75,7 @@ def test_baseline_table_counts_percentages_and_suppression() -> None:
 
 
 def test_baseline_table_without_suppression_shows_everything() -> None:
-    table = baseline_characteristics(_patients(), spec=TableRule(small_cell_threshold=0))
+    table = baseline_characteristics_table(_patients(), spec=TableRule(small_cell_threshold=0))
     sex = table.filter(pl.col("characteristic") == "Sex")
     assert sex["active"].to_list() == ["25 (83.3%)", "5 (16.7%)"]
 
@@ -100,7 +100,7 @@ def test_baseline_table_uacr_categories_equations_and_skewed_covariate() -> None
             "uacr_mg_g": np.arange(60, dtype=float),
         }
     )
-    table = baseline_characteristics(
+    table = baseline_characteristics_table(
         patients, baseline, categories, covariates=["crp_mg_l", "diabetes"]
     )
     characteristics = table["characteristic"].unique(maintain_order=True).to_list()
@@ -126,7 +126,7 @@ def _kdigo() -> pl.DataFrame:
 
 
 def test_kdigo_grid_counts_every_cell() -> None:
-    grid = kdigo_count_grid(_kdigo())
+    grid = kdigo_grid_table(_kdigo())
     assert grid.columns == ["g_category", "a_category", "n", "n_display"]
     assert grid.height == 6 * 3 + 3  # full KDIGO grid + missing GFR category row
     cell = {(r[0], r[1]): (r[2], r[3]) for r in grid.rows()}
@@ -143,10 +143,10 @@ def test_kdigo_grid_counts_every_cell() -> None:
 def test_kdigo_grid_refuses_unknown_category() -> None:
     bad = _kdigo().with_columns(pl.lit("G3").alias("g_category"))
     with pytest.raises(InputDataError, match="value 'G3'"):
-        kdigo_count_grid(bad)
+        kdigo_grid_table(bad)
 
 
-def test_transition_matrix_counts_transitions_and_patients() -> None:
+def test_transition_table_counts_transitions_and_patients() -> None:
     rows = pl.DataFrame(
         {
             "patient_id": [f"T{i}" for i in range(15)] + ["T0"] * 2 + [f"U{i}" for i in range(3)],
@@ -156,7 +156,7 @@ def test_transition_matrix_counts_transitions_and_patients() -> None:
             "to_category": ["G3b"] * 17 + ["G3a"] * 3,
         }
     )
-    matrix = transition_matrix(rows)
+    matrix = transition_table(rows)
     assert matrix.height == 30  # 6 x 6 pairs without the diagonal
     cell = {(r[0], r[1]): r[2:] for r in matrix.rows()}
     assert cell[("G3a", "G3b")] == (17, 15, "17")
@@ -206,7 +206,9 @@ def test_endpoint_table_by_hand() -> None:
 @pytest.fixture(scope="module")
 def slope_model() -> SlopeModel:
     egfr, patients, _ = simulate_two_slope_trial(20, seed=3)
-    return SlopeModel(0.25, reference_group="placebo", horizons_years=[2]).fit(egfr, patients)
+    return SlopeModel(knot_years=0.25, reference_group="placebo", horizons_years=[2]).fit(
+        egfr, patients
+    )
 
 
 def test_slope_table_layout(slope_model: SlopeModel) -> None:
@@ -221,7 +223,7 @@ def test_slope_table_layout(slope_model: SlopeModel) -> None:
 
 
 def test_write_tables_csv_xlsx_and_notes(tmp_path: Path) -> None:
-    grid = kdigo_count_grid(_kdigo())
+    grid = kdigo_grid_table(_kdigo())
     matrix = pl.DataFrame({"from_category": ["G2"], "to_category": ["G3a"], "n": [12]})
     written = write_tables(
         {"kdigo_grid": grid, "transitions": matrix},

@@ -6,7 +6,7 @@ import datetime as dt
 
 import polars as pl
 
-from kidneycohort.tables import TableRule, baseline_characteristics
+from kidneycohort.tables import TableRule, baseline_characteristics_table
 
 
 def test_missing_baseline_is_one_row_with_the_hand_count() -> None:
@@ -29,7 +29,9 @@ def test_missing_baseline_is_one_row_with_the_hand_count() -> None:
             "baseline_egfr": values,
         }
     )
-    table = baseline_characteristics(patients, baseline, spec=TableRule(small_cell_threshold=0))
+    table = baseline_characteristics_table(
+        patients, baseline, spec=TableRule(small_cell_threshold=0)
+    )
     missing = table.filter(
         pl.col("characteristic").str.starts_with("Baseline eGFR") & (pl.col("level") == "missing")
     )

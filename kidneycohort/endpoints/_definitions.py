@@ -9,7 +9,7 @@ from typing import Annotated, Any, Final, Literal
 
 from pydantic import BaseModel, Field, TypeAdapter, ValidationError, model_validator
 
-from kidneycohort._rules import RuleModel, first_error, rule_error_message, validate_config
+from kidneycohort._rules import RuleModel, rule_error_message, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
 
 # A fall that equals the threshold percentage to within floating-point rounding counts
@@ -361,20 +361,12 @@ _ALL_KINDS: Final = (EgfrDecline, EgfrBelow, KidneyFailure, Death, KidneyDeath, 
 
 
 def _one_line(exc: ValidationError, where: str) -> str:
-    err = first_error(exc)
-    if err["type"] in ("union_tag_invalid", "union_tag_not_found"):
-        loc = ".".join(str(x) for x in err["loc"])
-        kinds = [m.model_fields["kind"].default for m in _ALL_KINDS]
-        tag = err.get("ctx", {}).get("tag")
-        return (
-            f"{where}.{loc}.kind: unknown or missing endpoint kind {tag!r}"
-            f"{did_you_mean(str(tag), kinds)}; kind must be one of {', '.join(kinds)}"
-        )
     # a list of definitions has no single model: suggest among every kind's fields
     fields: set[str] = set(EndpointRule.model_fields)
     for model in _ALL_KINDS:
         fields |= set(model.model_fields)
-    return rule_error_message(where, exc, fields=sorted(fields))
+    kinds = [m.model_fields["kind"].default for m in _ALL_KINDS]
+    return rule_error_message(where, exc, fields=sorted(fields), kinds=kinds)
 
 
 def parse_endpoint_definitions(

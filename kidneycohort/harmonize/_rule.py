@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 from typing import Any, Final, Literal
 
 import polars as pl
-from pydantic import ConfigDict, Field
+from pydantic import Field
 
 from kidneycohort import _rules, units
 from kidneycohort._rules import RuleModel
@@ -51,7 +51,6 @@ MERGE_REASONS: Final = ("exact_duplicate", "same_day_collapsed")
 class PlausibleRange(RuleModel):
     """Closed range ``[low, high]`` of plausible results of one analyte, in ``unit``."""
 
-    model_config = ConfigDict(frozen=False)
 
     low: float = Field(description="Lowest plausible result (inclusive).")
     high: float = Field(description="Highest plausible result (inclusive).")
@@ -84,7 +83,6 @@ class HarmonizeRule(RuleModel):
     'first'
     """
 
-    model_config = ConfigDict(frozen=False)
 
     qualified_values: Literal["keep", "reject"] = Field(
         default="keep",

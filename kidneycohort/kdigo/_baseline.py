@@ -198,7 +198,7 @@ def kdigo_grid_counts(categories: FrameLike) -> pl.DataFrame:
     categories; the 18 cells of KDIGO 2012 Figure 2 are all present (zeros included).
     ``risk`` uses the figure's level names (``low``, ``moderately_increased``, ``high``,
     ``very_high``). Patients with a missing category are counted in the
-    ``tables/kdigo_grid`` table (:func:`kidneycohort.tables.kdigo_count_grid`), not here.
+    ``tables/kdigo_grid`` table (:func:`kidneycohort.tables.kdigo_grid_table`), not here.
 
     Returns
     -------

@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import datetime as dt
 import logging
-import warnings
 from collections.abc import Mapping
 from typing import Any, Literal
 
@@ -26,10 +25,9 @@ from kidneycohort.baseline import BaselineRule
 from kidneycohort.endpoints import EndpointDefinition, EndpointRule
 from kidneycohort.errors import (
     ConfigError,
-    ConvergenceError,
-    StatisticalWarning,
     did_you_mean,
 )
+from kidneycohort.models.survival import evaluable_rows
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 
 logger = logging.getLogger(__name__)
@@ -341,7 +339,7 @@ def _add_kdigo_grid(registry: StepRegistry) -> None:
         return {
             "baseline_categories": categories,
             "models/kdigo_grid": kdigo_grid_counts(categories),
-            "tables/kdigo_grid": tb.kdigo_count_grid(
+            "tables/kdigo_grid": tb.kdigo_grid_table(
                 categories,
                 spec=spec if isinstance(spec, tb.TableRule) else None,
             ),
@@ -481,51 +479,20 @@ def _add_report(registry: StepRegistry) -> None:
         return {"report_file": pl.DataFrame({"file": [path.name]}, schema={"file": pl.String})}
 
 
-def _fit_each_endpoint(endpoints: pl.DataFrame, fit: Any, what: str) -> list[tuple[str, Any]]:
-    """Fit ``fit(endpoint_name)`` per endpoint; an endpoint that cannot be fitted warns."""
-    out = []
-    names = sorted(endpoints.filter(pl.col("event").is_not_null())["endpoint"].unique().to_list())
-    for name in names:
-        try:
-            out.append((name, fit(name)))
-        except ConvergenceError as exc:  # e.g. no events: reported, not fatal
-            warnings.warn(
-                f"{what} of endpoint '{name}' not estimated: {exc}",
-                StatisticalWarning,
-                stacklevel=2,
-            )
-    return out
-
-
-def _evaluable(endpoints: pl.DataFrame) -> pl.DataFrame:
-    # not-evaluable patients (null event, with a reason) are counted in the endpoint
-    # table; the estimators take the evaluable rows
-    return endpoints.filter(pl.col("event").is_not_null())
-
-
 def _add_survival(registry: StepRegistry) -> None:
     from kidneycohort.models.survival import (
-        CoxModel,
-        CumulativeIncidence,
-        KaplanMeier,
         SurvivalRule,
+        hazard_ratio_table,
+        survival_curves_by_endpoint,
     )
 
-    def curves(estimator: Any, ctx: StepContext) -> dict[str, Any]:
-        spec = ctx.options
-        assert isinstance(spec, SurvivalRule)
-        rows = _evaluable(ctx.tables["endpoints"])
-        fits = _fit_each_endpoint(
-            rows,
-            lambda name: estimator.from_spec(spec, endpoint=name).fit(rows, ctx.tables["cohort"]),
-            estimator.__name__,
+    def curves(ctx: StepContext, competing: bool) -> dict[str, Any]:
+        rule = ctx.options
+        assert isinstance(rule, SurvivalRule)
+        curves, at_risk = survival_curves_by_endpoint(
+            ctx.tables["endpoints"], ctx.tables["cohort"], competing=competing, rule=rule
         )
-        curve = [f.curves_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
-        risk = [f.at_risk_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
-        return {
-            "models/survival_curves": pl.concat(curve) if curve else _empty_curves(),
-            "models/at_risk": pl.concat(risk) if risk else _empty_at_risk(),
-        }
+        return {"models/survival_curves": curves, "models/at_risk": at_risk}
 
     @registry.register(
         "kaplan_meier",
@@ -537,7 +504,7 @@ def _add_survival(registry: StepRegistry) -> None:
     )
     def kaplan_meier_step(ctx: StepContext) -> dict[str, Any]:
         """Kaplan–Meier curves and numbers at risk per endpoint and group."""
-        return curves(KaplanMeier, ctx)
+        return curves(ctx, competing=False)
 
     @registry.register(
         "cumulative_incidence",
@@ -549,7 +516,7 @@ def _add_survival(registry: StepRegistry) -> None:
     )
     def cumulative_incidence_step(ctx: StepContext) -> dict[str, Any]:
         """Aalen–Johansen cumulative incidence per endpoint and group."""
-        return curves(CumulativeIncidence, ctx)
+        return curves(ctx, competing=True)
 
     @registry.register(
         "cox",
@@ -560,102 +527,12 @@ def _add_survival(registry: StepRegistry) -> None:
         description="Cox hazard ratios per endpoint with the proportional-hazards test.",
     )
     def cox_step(ctx: StepContext) -> dict[str, Any]:
-        """Cox hazard ratios (group, covariates, strata) per endpoint."""
-        spec = ctx.options
-        assert isinstance(spec, SurvivalRule)
-        rows = _evaluable(ctx.tables["endpoints"])
-        fits = _fit_each_endpoint(
-            rows,
-            lambda name: CoxModel.from_spec(spec, endpoint=name).fit(rows, ctx.tables["cohort"]),
-            "Cox model",
-        )
-        parts = [_hazard_rows(name, fit, None) for name, fit in fits]
-        cohort = ctx.tables["cohort"]
-        for column in spec.subgroups:
-            if column not in cohort.columns:
-                raise ConfigError(
-                    f"survival.subgroups: '{column}' is not a patients column"
-                    f"{did_you_mean(column, cohort.columns)}"
-                )
-            # the subgroup column cannot also be adjusted for or stratified on within a level
-            sub_spec = spec.model_copy(
-                update={
-                    "covariates": [c for c in spec.covariates if c != column],
-                    "strata": [c for c in spec.strata if c != column],
-                }
+        """Cox hazard ratios (group, covariates, strata; subgroups) per endpoint."""
+        return {
+            "models/hazard_ratios": hazard_ratio_table(
+                ctx.tables["endpoints"], ctx.tables["cohort"], rule=ctx.options
             )
-            # one fit per level: a handful of levels, each a vectorised lifelines fit
-            for level in sorted(cohort[column].drop_nulls().cast(pl.String).unique().to_list()):
-                members = cohort.filter(pl.col(column).cast(pl.String) == level)
-                level_rows = rows.join(members.select("patient_id"), on="patient_id", how="semi")
-                level_fits = _fit_each_endpoint(
-                    level_rows,
-                    lambda name, r=level_rows, m=members, s=sub_spec: CoxModel.from_spec(
-                        s, endpoint=name
-                    ).fit(r, m),
-                    f"Cox model in subgroup {column}={level}",
-                )
-                parts.extend(
-                    _hazard_rows(name, fit, f"{column}={level}") for name, fit in level_fits
-                )
-        empty = pl.DataFrame(schema=HAZARD_RATIOS)
-        return {"models/hazard_ratios": pl.concat(parts) if parts else empty}
-
-
-def _hazard_rows(name: str, fit: Any, subgroup: str | None) -> pl.DataFrame:
-    """One endpoint's hazard ratios with the proportional-hazards p, in HAZARD_RATIOS."""
-    ph = fit.ph_test_.select("term", pl.col("p").alias("ph_p"))
-    return (
-        fit.summary()
-        .join(ph, on="term", how="left", maintain_order="left")
-        .select(
-            pl.lit(name).alias("endpoint"),
-            "term",
-            pl.lit(subgroup, dtype=pl.String).alias("subgroup"),
-            "hr",
-            "hr_lower",
-            "hr_upper",
-            "p",
-            "ph_p",
-        )
-    )
-
-
-HAZARD_RATIOS = {
-    "endpoint": pl.String(),
-    "term": pl.String(),
-    "subgroup": pl.String(),  # null for the whole cohort; "column=level" otherwise
-    "hr": pl.Float64(),
-    "hr_lower": pl.Float64(),
-    "hr_upper": pl.Float64(),
-    "p": pl.Float64(),
-    "ph_p": pl.Float64(),
-}
-
-
-def _empty_curves() -> pl.DataFrame:
-    return pl.DataFrame(
-        schema={
-            "endpoint": pl.String,
-            "group": pl.String,
-            "years": pl.Float64,
-            "estimate": pl.Float64,
-            "lower": pl.Float64,
-            "upper": pl.Float64,
-            "measure": pl.String,
         }
-    )
-
-
-def _empty_at_risk() -> pl.DataFrame:
-    return pl.DataFrame(
-        schema={
-            "endpoint": pl.String,
-            "group": pl.String,
-            "years": pl.Float64,
-            "n_at_risk": pl.Int64,
-        }
-    )
 
 
 def _add_slope_model(registry: StepRegistry) -> None:
@@ -675,7 +552,7 @@ def _add_slope_model(registry: StepRegistry) -> None:
         assert isinstance(spec, SlopeModelRule)
         if spec.equation is None:
             spec = spec.model_copy(update={"equation": primary_equation(ctx.sections, ctx.tables)})
-        model = SlopeModel.from_spec(spec).fit(ctx.tables["egfr"], ctx.tables["cohort"])
+        model = SlopeModel(spec).fit(ctx.tables["egfr"], ctx.tables["cohort"])
         name = "two_slope" if spec.knot_years is not None else "one_slope"
         return {
             "models/trajectories": model.trajectories_.select(
@@ -736,7 +613,7 @@ def _add_tables(registry: StepRegistry) -> None:
         assert isinstance(spec, tb.TableRule)
         survival = ctx.sections.get("survival")
         survival = survival if isinstance(survival, SurvivalRule) else SurvivalRule()
-        endpoints = _evaluable(ctx.tables["endpoints"])
+        endpoints = evaluable_rows(ctx.tables["endpoints"])
         cohort = ctx.tables["cohort"]
         return {
             "tables/endpoint_table": tb.endpoint_table(
@@ -748,7 +625,7 @@ def _add_tables(registry: StepRegistry) -> None:
                 strata=survival.strata,
                 spec=spec,
             ),
-            "tables/baseline_characteristics": tb.baseline_characteristics(
+            "tables/baseline_characteristics": tb.baseline_characteristics_table(
                 cohort,
                 ctx.tables["baseline"],
                 # KDIGO G and A categories and UACR at baseline, when the recipe made them
@@ -813,7 +690,7 @@ def _add_tables(registry: StepRegistry) -> None:
     def cohort_tables_step(ctx: StepContext) -> dict[str, Any]:
         """The cohort's endpoint, baseline, incidence and transition tables."""
         out = common(ctx)
-        out["tables/transition_matrix"] = tb.transition_matrix(
+        out["tables/transition_matrix"] = tb.transition_table(
             ctx.tables["transitions"],
             axis="G",
             equation=primary_equation(ctx.sections, ctx.tables),

@@ -30,7 +30,9 @@ import polars as pl
 
 from kidneycohort import plots
 from kidneycohort.cautions import CAUTIONS
+from kidneycohort.disclosure import small_count_text
 from kidneycohort.errors import InputDataError
+from kidneycohort.labels import display_label
 
 logger = logging.getLogger(__name__)
 
@@ -377,8 +379,8 @@ def _equation_rows(run: Path, ids: list[str], threshold: int) -> list[dict[str, 
                 "ages": _age_range(spec) if spec is not None else "not in the registry",
                 "unit": (_spec_value(spec, "output_unit") or "").replace("1.73 m2", "1.73 m²"),
                 "observed_ages": age,
-                "n_values": plots._small(int(seen["values"]), threshold) if seen else "",
-                "n_computed": plots._small(int(seen["computed"]), threshold) if seen else "",
+                "n_values": small_count_text(int(seen["values"]), threshold) if seen else "",
+                "n_computed": small_count_text(int(seen["computed"]), threshold) if seen else "",
             }
         )
     return rows
@@ -402,14 +404,14 @@ def _summary(
     if flow:
         lines.append(
             "Patients: "
-            + "; ".join(f"{k} {plots._small(v, threshold)}" for k, v in flow.items())
+            + "; ".join(f"{k} {small_count_text(v, threshold)}" for k, v in flow.items())
             + "."
         )
     counts = _group_counts(run)
     if counts is not None and counts.height > 1:
         lines.append(
             "Groups: "
-            + ", ".join(f"{g} ({plots._small(n, threshold)})" for g, n in counts.rows())
+            + ", ".join(f"{g} ({small_count_text(n, threshold)})" for g, n in counts.rows())
             + "."
         )
     slopes = _read(run, "slopes.parquet")
@@ -452,8 +454,8 @@ def _summary(
         )
         for name, n, e in events.rows():
             lines.append(
-                f"{plots._readable(name)}: {plots._small(int(e), threshold)} events among "
-                f"{plots._small(int(n), threshold)} patients."
+                f"{display_label(name)}: {small_count_text(int(e), threshold)} events among "
+                f"{small_count_text(int(n), threshold)} patients."
             )
     hrs = _read(run, "models/hazard_ratios.parquet")
     if hrs is not None and hrs.height:
@@ -521,7 +523,7 @@ def build_report_context(run_dir: str | Path) -> dict[str, Any]:
         add(
             "endpoints",
             path.stem,
-            f"Time to {plots._readable(endpoint)}" if endpoint else titles["survival"],
+            f"Time to {display_label(endpoint)}" if endpoint else titles["survival"],
         )
     add("endpoints", "forest_hazard_ratios", titles["forest_hazard_ratios"])
 
@@ -578,7 +580,7 @@ def build_report_context(run_dir: str | Path) -> dict[str, Any]:
         [
             str(a.get("table", "")),
             *(
-                plots._small(int(a.get(k) or 0), threshold)
+                small_count_text(int(a.get(k) or 0), threshold)
                 for k in ("rows_read", "rows_used", "rows_rejected", "rows_merged")
             ),
         ]
@@ -588,7 +590,7 @@ def build_report_context(run_dir: str | Path) -> dict[str, Any]:
         [
             str(r.get("table", "")),
             str(r.get("reason", "")),
-            plots._small(int(r.get("rows") or 0), threshold),
+            small_count_text(int(r.get("rows") or 0), threshold),
         ]
         for r in by_reason
     ]
@@ -658,7 +660,7 @@ def build_report_context(run_dir: str | Path) -> dict[str, Any]:
         "warnings": warnings,
         "accounting": acc_rows,
         "accounting_by_reason": reason_rows,
-        "groups": [[g, plots._small(int(n), threshold)] for g, n in groups.rows()]
+        "groups": [[g, small_count_text(int(n), threshold)] for g, n in groups.rows()]
         if groups is not None
         else [],
         "provenance": provenance,

@@ -1,52 +1,29 @@
-"""eGFR slope models: linear mixed models with random intercept and slope(s) per patient.
-
-Two models, one class (:class:`SlopeModel`):
-
-- ``knot_years=None``: one slope, eGFR ~ group x time with a random intercept and a
-  random slope per patient (unstructured 2 x 2 covariance), REML.
-- ``knot_years=k`` (default 0.25 y, 3 months): a linear spline in time with a knot at
-  ``k``, fixed effects per group for the intercept, the acute slope (0 to k) and the
-  chronic slope (after k), random effects on all three (unstructured 3 x 3). It reports
-  the acute change (baseline to knot), the chronic slope and the total slope over each
-  horizon, per group and as differences between groups (delta method, 95 % CI, p).
-
-The fitting is statsmodels' ``MixedLM``; this module builds the design, handles
-non-convergence (a stated fallback sequence, each step announced by a
-:class:`~kidneycohort.errors.StatisticalWarning`), and lays out the results.
-"""
+"""The eGFR slope model: design, fit with a stated fallback chain, contrasts and trajectories."""
 
 from __future__ import annotations
 
 import logging
 import warnings
-from collections.abc import Sequence
-from typing import Literal, Self
+from typing import Any, Self
 
 import numpy as np
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 from scipy import stats
 from statsmodels.regression.mixed_linear_model import MixedLM, MixedLMParams
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
-from kidneycohort._rules import rule_error_message
+from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import (
-    ConfigError,
     ConvergenceError,
     InputDataError,
     StatisticalWarning,
     did_you_mean,
 )
 from kidneycohort.models._design import capture_warnings, encode_covariates
+from kidneycohort.models.mixed._rule import TRAJECTORY_COLUMNS, SlopeModelRule
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["RandomEffects", "SlopeModel", "SlopeModelRule"]
-
-RandomEffects = Literal["unstructured", "diagonal", "intercept_and_slope", "intercept"]
-
-SUMMARY_COLUMNS = ("contrast", "quantity", "estimate", "se", "lower", "upper", "p")
-TRAJECTORY_COLUMNS = ("group", "years", "mean", "lower", "upper")
 
 # What each structure falls back to when its fit does not converge (stated, in order).
 _FALLBACK: dict[str, tuple[str, ...]] = {
@@ -55,58 +32,14 @@ _FALLBACK: dict[str, tuple[str, ...]] = {
     "intercept_and_slope": ("intercept_and_slope", "intercept"),
     "intercept": ("intercept",),
 }
+
+
 # Messages that make a fit unusable; statsmodels' "Retrying ... with <optimizer>" notes
 # are not failures by themselves (the next optimizer may converge).
 _FAILURE_WORDS = ("not positive definite", "gradient optimization failed", "fit error")
+
+
 _OPTIMIZERS = ["lbfgs", "bfgs", "cg"]
-
-
-class SlopeModelRule(BaseModel):
-    """Options of the eGFR slope model of one study (config key ``slope_model``)."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    knot_years: float | None = Field(
-        0.25,
-        gt=0,
-        description="Knot of the two-slope model in years (3 months = 0.25); null for one slope.",
-    )
-    horizons_years: list[float] = Field(
-        default_factory=lambda: [2.0, 3.0],
-        description="Horizons (years) of the total slope, each longer than the knot.",
-    )
-    covariates: list[str] = Field(
-        default_factory=list,
-        description="Patients columns adjusted for (centred, so trajectories are at their mean).",
-    )
-    group_column: str = Field("group", description="Patients column naming the arm or group.")
-    reference_group: str | None = Field(
-        None, description="Group the differences are taken against (default: first, sorted)."
-    )
-    equation: str | None = Field(
-        None, description="eGFR equation to model when the eGFR table holds several."
-    )
-    max_years: float | None = Field(
-        None, gt=0, description="Leave out values after this time (reported as after_max_years)."
-    )
-    random_effects: RandomEffects = Field(
-        "unstructured",
-        description="Random-effects structure to try first; simpler ones follow on non-convergence.",
-    )
-    confidence: float = Field(0.95, gt=0, lt=1, description="Confidence level.")
-    trajectory_step_years: float = Field(
-        0.25, gt=0, description="Spacing (years) of the model-based mean trajectories."
-    )
-
-    @model_validator(mode="after")
-    def _horizons_after_knot(self) -> SlopeModelRule:
-        for horizon in self.horizons_years:
-            if horizon <= 0 or (self.knot_years is not None and horizon <= self.knot_years):
-                raise ValueError(
-                    f"horizons_years: {horizon} must be positive and after the knot "
-                    f"({self.knot_years} years)"
-                )
-        return self
 
 
 class SlopeModel:
@@ -138,15 +71,10 @@ class SlopeModel:
 
     Parameters
     ----------
-    knot_years : float or None, default 0.25
-        Knot of the two-slope model; ``None`` for the one-slope model.
-    horizons_years : sequence of float, default (2, 3)
-        Horizons of the total slope (two-slope model).
-    covariates : sequence of str
-        Patients columns adjusted for (text columns become indicators).
-    group_column, reference_group, equation, max_years, random_effects, confidence,
-    trajectory_step_years
-        As in :class:`SlopeModelRule`.
+    rule : SlopeModelRule, optional
+        The model's options; keyword ``options`` (any field of :class:`SlopeModelRule`,
+        e.g. ``knot_years=None`` for one slope) override it. Validated at once: a bad
+        value raises :class:`~kidneycohort.errors.ConfigError`.
 
     Attributes
     ----------
@@ -216,52 +144,8 @@ class SlopeModel:
        2019;30:1756-1769. doi:10.1681/ASN.2019010009
     """
 
-    def __init__(
-        self,
-        knot_years: float | None = 0.25,
-        *,
-        horizons_years: Sequence[float] = (2.0, 3.0),
-        covariates: Sequence[str] = (),
-        group_column: str = "group",
-        reference_group: str | None = None,
-        equation: str | None = None,
-        max_years: float | None = None,
-        random_effects: RandomEffects = "unstructured",
-        confidence: float = 0.95,
-        trajectory_step_years: float = 0.25,
-    ) -> None:
-        self.knot_years = knot_years
-        self.horizons_years = tuple(horizons_years)
-        self.covariates = tuple(covariates)
-        self.group_column = group_column
-        self.reference_group = reference_group
-        self.equation = equation
-        self.max_years = max_years
-        self.random_effects = random_effects
-        self.confidence = confidence
-        self.trajectory_step_years = trajectory_step_years
-
-    @classmethod
-    def from_spec(cls, spec: SlopeModelRule) -> Self:
-        """Build the model from a :class:`SlopeModelRule`."""
-        return cls(spec.knot_years, **spec.model_dump(exclude={"knot_years"}))
-
-    def _spec(self) -> SlopeModelRule:
-        try:
-            return SlopeModelRule(
-                knot_years=self.knot_years,
-                horizons_years=list(self.horizons_years),
-                covariates=list(self.covariates),
-                group_column=self.group_column,
-                reference_group=self.reference_group,
-                equation=self.equation,
-                max_years=self.max_years,
-                random_effects=self.random_effects,
-                confidence=self.confidence,
-                trajectory_step_years=self.trajectory_step_years,
-            )
-        except ValidationError as error:
-            raise ConfigError(rule_error_message("SlopeModel", error)) from None
+    def __init__(self, rule: SlopeModelRule | None = None, /, **options: Any) -> None:
+        self.rule = resolve_rules(SlopeModelRule, rule, options, "SlopeModel")
 
     # ---- data -------------------------------------------------------------------------
 
@@ -359,7 +243,7 @@ class SlopeModel:
     def fit(self, egfr: FrameLike, patients: FrameLike | None = None) -> Self:
         """Fit the model to ``egfr`` (``schemas.EGFR`` layout) with groups and covariates
         from ``patients``; returns ``self``."""
-        spec = self._spec()
+        spec = self.rule
         rows = self._rows(egfr, patients, spec)
         groups = sorted(rows["_group"].unique().to_list())
         reference = spec.reference_group if spec.reference_group is not None else groups[0]

@@ -1,0 +1,51 @@
+"""Survival analysis of kidney endpoints: Kaplan–Meier, Cox, Aalen–Johansen.
+
+Every model reads the time-to-event table (``schemas.ENDPOINTS``: one row per patient
+and endpoint with ``years``, ``event`` and ``competing``) and, for the group and
+covariates, the patients table. The estimators are lifelines'; this module selects the
+rows, converts only the needed columns at the boundary, and lays the results out as
+polars tables with the column names the figures and tables read:
+
+- curves: ``group, years, estimate, lower, upper, measure``
+- numbers at risk: ``group, years, n_at_risk``
+- Cox: ``term, hr, hr_lower, hr_upper, p`` and the proportional-hazards check
+  ``term, test_statistic, p``.
+"""
+
+from __future__ import annotations
+
+from kidneycohort.models.survival._by_endpoint import (
+    AT_RISK_BY_ENDPOINT,
+    CURVES_BY_ENDPOINT,
+    HAZARD_RATIOS,
+    evaluable_rows,
+    hazard_ratio_table,
+    survival_curves_by_endpoint,
+)
+from kidneycohort.models.survival._cox import (
+    CoxModel,
+)
+from kidneycohort.models.survival._curves import (
+    CumulativeIncidence,
+    KaplanMeier,
+)
+from kidneycohort.models.survival._data import (
+    numbers_at_risk,
+)
+from kidneycohort.models.survival._rule import (
+    SurvivalRule,
+)
+
+__all__ = [
+    "AT_RISK_BY_ENDPOINT",
+    "CURVES_BY_ENDPOINT",
+    "HAZARD_RATIOS",
+    "CoxModel",
+    "CumulativeIncidence",
+    "KaplanMeier",
+    "SurvivalRule",
+    "evaluable_rows",
+    "hazard_ratio_table",
+    "numbers_at_risk",
+    "survival_curves_by_endpoint",
+]

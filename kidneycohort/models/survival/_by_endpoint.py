@@ -1,0 +1,229 @@
+"""Survival analyses of every endpoint of a time-to-event table at once.
+
+The endpoints table holds one row per patient per endpoint; a study reports curves and
+hazard ratios for each endpoint, and hazard ratios within subgroups (the levels of a
+patients column, e.g. sex or diabetes status) beside the overall one. These functions
+run the single-endpoint models of this package over every evaluable endpoint and stack
+their results into the layouts the run folder stores (``models/survival_curves``,
+``models/at_risk``, ``models/hazard_ratios``).
+
+An endpoint whose model cannot be estimated (no events, no convergence) is reported with
+a :class:`~kidneycohort.errors.StatisticalWarning` and left out of the stacked table; it
+never stops the others.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Callable
+from typing import Any, Final, TypeVar
+
+import polars as pl
+
+from kidneycohort._frames import FrameLike, to_polars
+from kidneycohort._rules import resolve_rules
+from kidneycohort.errors import ConfigError, ConvergenceError, StatisticalWarning, did_you_mean
+from kidneycohort.models.survival._cox import CoxModel
+from kidneycohort.models.survival._curves import CumulativeIncidence, KaplanMeier
+from kidneycohort.models.survival._rule import SurvivalRule
+
+__all__ = [
+    "AT_RISK_BY_ENDPOINT",
+    "CURVES_BY_ENDPOINT",
+    "HAZARD_RATIOS",
+    "evaluable_rows",
+    "hazard_ratio_table",
+    "survival_curves_by_endpoint",
+]
+
+Fitted = TypeVar("Fitted")
+
+HAZARD_RATIOS: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "term": pl.String(),
+    "subgroup": pl.String(),  # null for the whole cohort; "column=level" otherwise
+    "hr": pl.Float64(),
+    "hr_lower": pl.Float64(),
+    "hr_upper": pl.Float64(),
+    "p": pl.Float64(),
+    "ph_p": pl.Float64(),
+}
+"""Layout of :func:`hazard_ratio_table` (``models/hazard_ratios``)."""
+
+CURVES_BY_ENDPOINT: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "group": pl.String(),
+    "years": pl.Float64(),
+    "estimate": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+    "measure": pl.String(),
+}
+"""Layout of the curves of :func:`survival_curves_by_endpoint` (``models/survival_curves``)."""
+
+AT_RISK_BY_ENDPOINT: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "group": pl.String(),
+    "years": pl.Float64(),
+    "n_at_risk": pl.Int64(),
+}
+"""Layout of the numbers at risk of :func:`survival_curves_by_endpoint` (``models/at_risk``)."""
+
+
+def evaluable_rows(endpoints: FrameLike) -> pl.DataFrame:
+    """The rows a survival model can use: those with an event indicator.
+
+    Not-evaluable patients (null ``event``, with a reason code) are counted in the
+    endpoint table but carry no follow-up time for an estimator.
+    """
+    return to_polars(endpoints, "endpoints").filter(pl.col("event").is_not_null())
+
+
+def _fit_each_endpoint(
+    rows: pl.DataFrame, fit: Callable[[str], Fitted], what: str
+) -> list[tuple[str, Fitted]]:
+    """``fit(endpoint)`` for every endpoint of ``rows``; one that cannot be estimated warns."""
+    out = []
+    for name in sorted(rows["endpoint"].unique().to_list()):
+        try:
+            out.append((name, fit(name)))
+        except ConvergenceError as exc:  # e.g. no events: reported, not fatal
+            warnings.warn(
+                f"{what} of endpoint '{name}' not estimated: {exc}",
+                StatisticalWarning,
+                stacklevel=3,
+            )
+    return out
+
+
+def survival_curves_by_endpoint(
+    endpoints: FrameLike,
+    patients: FrameLike | None = None,
+    *,
+    competing: bool = False,
+    rule: SurvivalRule | None = None,
+    **options: Any,
+) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Curves and numbers at risk of every endpoint, by group.
+
+    Parameters
+    ----------
+    endpoints
+        The time-to-event table (:data:`~kidneycohort.schemas.ENDPOINTS`).
+    patients
+        The patients table, for the group column when ``endpoints`` lacks it.
+    competing
+        ``False``: Kaplan–Meier survival free of the endpoint (:class:`KaplanMeier`);
+        ``True``: Aalen–Johansen cumulative incidence with death competing
+        (:class:`CumulativeIncidence`).
+    rule
+        :class:`SurvivalRule`; keyword ``options`` override its fields.
+
+    Returns
+    -------
+    tuple of polars.DataFrame
+        Curves (:data:`CURVES_BY_ENDPOINT`) and numbers at risk
+        (:data:`AT_RISK_BY_ENDPOINT`).
+    """
+    resolved = resolve_rules(SurvivalRule, rule, options, "survival_curves_by_endpoint")
+    estimator = CumulativeIncidence if competing else KaplanMeier
+    rows = evaluable_rows(endpoints)
+    fits = _fit_each_endpoint(
+        rows,
+        lambda name: estimator(resolved, endpoint=name).fit(rows, patients),
+        estimator.__name__,
+    )
+    curves = [f.curves_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
+    at_risk = [f.at_risk_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
+    return (
+        pl.concat(curves) if curves else pl.DataFrame(schema=CURVES_BY_ENDPOINT),
+        pl.concat(at_risk) if at_risk else pl.DataFrame(schema=AT_RISK_BY_ENDPOINT),
+    )
+
+
+def _hazard_rows(name: str, fit: CoxModel, subgroup: str | None) -> pl.DataFrame:
+    """One endpoint's hazard ratios with the proportional-hazards p, in HAZARD_RATIOS."""
+    ph = fit.ph_test_.select("term", pl.col("p").alias("ph_p"))
+    return (
+        fit.summary()
+        .join(ph, on="term", how="left", maintain_order="left")
+        .select(
+            pl.lit(name).alias("endpoint"),
+            "term",
+            pl.lit(subgroup, dtype=pl.String).alias("subgroup"),
+            "hr",
+            "hr_lower",
+            "hr_upper",
+            "p",
+            "ph_p",
+        )
+    )
+
+
+def hazard_ratio_table(
+    endpoints: FrameLike,
+    patients: FrameLike,
+    *,
+    rule: SurvivalRule | None = None,
+    **options: Any,
+) -> pl.DataFrame:
+    """Cox hazard ratios of every endpoint, overall and within each subgroup level.
+
+    For each endpoint the Cox model of :class:`CoxModel` (group, covariates, strata of
+    the rule) is fitted on all patients; then, for every column of ``rule.subgroups``,
+    once per level of that column on the patients of the level. Within a level the
+    subgroup column is neither adjusted for nor stratified on (it is constant there).
+
+    Parameters
+    ----------
+    endpoints
+        The time-to-event table (:data:`~kidneycohort.schemas.ENDPOINTS`).
+    patients
+        The patients table: group, covariates, strata and subgroup columns.
+    rule
+        :class:`SurvivalRule`; keyword ``options`` override its fields.
+
+    Returns
+    -------
+    polars.DataFrame
+        :data:`HAZARD_RATIOS`: one row per endpoint, term and subgroup (``subgroup`` null
+        for the whole cohort, ``"column=level"`` otherwise), with the
+        proportional-hazards test p of the term (``ph_p``).
+
+    Raises
+    ------
+    ConfigError
+        A subgroup column that is not a patients column.
+    """
+    resolved = resolve_rules(SurvivalRule, rule, options, "hazard_ratio_table")
+    rows = evaluable_rows(endpoints)
+    cohort = to_polars(patients, "patients")
+    fits = _fit_each_endpoint(
+        rows, lambda name: CoxModel(resolved, endpoint=name).fit(rows, cohort), "Cox model"
+    )
+    parts = [_hazard_rows(name, fit, None) for name, fit in fits]
+    for column in resolved.subgroups:
+        if column not in cohort.columns:
+            raise ConfigError(
+                f"survival.subgroups: '{column}' is not a patients column"
+                f"{did_you_mean(column, cohort.columns)}"
+            )
+        within = resolved.model_copy(
+            update={
+                "covariates": [c for c in resolved.covariates if c != column],
+                "strata": [c for c in resolved.strata if c != column],
+            }
+        )
+        # one fit per level: a handful of levels, each a vectorised fit
+        for level in sorted(cohort[column].drop_nulls().cast(pl.String).unique().to_list()):
+            members = cohort.filter(pl.col(column).cast(pl.String) == level)
+            level_rows = rows.join(members.select("patient_id"), on="patient_id", how="semi")
+            level_fits = _fit_each_endpoint(
+                level_rows,
+                lambda name, r=level_rows, m=members, w=within: CoxModel(w, endpoint=name).fit(
+                    r, m
+                ),
+                f"Cox model in subgroup {column}={level}",
+            )
+            parts.extend(_hazard_rows(name, fit, f"{column}={level}") for name, fit in level_fits)
+    return pl.concat(parts) if parts else pl.DataFrame(schema=HAZARD_RATIOS)

@@ -1,0 +1,45 @@
+"""The survival analyses' rule (config key ``survival``) and the layouts of their results."""
+
+from __future__ import annotations
+
+from pydantic import Field
+
+from kidneycohort._rules import RuleModel
+
+CURVE_COLUMNS = ("group", "years", "estimate", "lower", "upper", "measure")
+
+
+AT_RISK_COLUMNS = ("group", "years", "n_at_risk")
+
+
+class SurvivalRule(RuleModel):
+    """Options of the survival analyses of one study (config key ``survival``)."""
+
+    group_column: str | None = Field(
+        "group",
+        description="Patients column naming the arm or exposure group; null for the whole cohort.",
+    )
+    reference_group: str | None = Field(
+        None, description="Group every hazard ratio is relative to (default: first group, sorted)."
+    )
+    covariates: list[str] = Field(
+        default_factory=list, description="Patients columns adjusted for in the Cox model."
+    )
+    strata: list[str] = Field(
+        default_factory=list,
+        description="Patients columns stratifying the Cox baseline hazard (e.g. randomisation strata).",
+    )
+    horizons_years: list[float] = Field(
+        default_factory=lambda: [1.0, 2.0, 3.0],
+        description="Times (years) at which survival / cumulative incidence is reported.",
+    )
+    at_risk_years: list[float] = Field(
+        default_factory=lambda: [0.0, 1.0, 2.0, 3.0, 4.0, 5.0],
+        description="Times (years) of the numbers-at-risk table under the curves.",
+    )
+    confidence: float = Field(0.95, gt=0, lt=1, description="Confidence level of intervals.")
+    subgroups: list[str] = Field(
+        default_factory=list,
+        description="Patients columns whose levels each get their own Cox hazard ratios "
+        "(subgroup analysis shown in the forest plot); the overall estimate is always kept.",
+    )

@@ -1,0 +1,251 @@
+"""KDIGO figures: the G x A prognosis grid and the transition heat maps."""
+
+from __future__ import annotations
+
+from typing import Final
+
+import polars as pl
+from plotnine import (
+    aes,
+    element_blank,
+    facet_wrap,
+    geom_text,
+    geom_tile,
+    ggplot,
+    labs,
+    scale_color_identity,
+    scale_fill_gradient,
+    scale_fill_manual,
+    scale_x_discrete,
+    scale_y_discrete,
+    theme,
+)
+
+from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
+from kidneycohort.errors import InputDataError, did_you_mean
+from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
+from kidneycohort.plots._style import (
+    A_RANGES,
+    EGFR_UNIT_LABEL,
+    G_RANGES,
+    KDIGO_RISK,
+    KDIGO_RISK_COLOURS,
+    KDIGO_RISK_LABELS,
+    KDIGO_RISK_LEVELS,
+    OKABE_ITO,
+    _check_threshold,
+    _theme,
+)
+
+
+def kdigo_grid_cells(
+    grid: FrameLike, *, small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD
+) -> pl.DataFrame:
+    """All 18 cells of the KDIGO G x A grid with counts, risk level and printed label.
+
+    Cells missing from ``grid`` hold 0 patients and take the KDIGO 2012 risk level [2]_.
+
+    Returns
+    -------
+    polars.DataFrame
+        ``g_category``, ``a_category``, ``n``, ``risk``, ``label``.
+    """
+    threshold = _check_threshold(small_cell_threshold)
+    df = to_polars(grid, "kdigo_grid")
+    require_columns(df, ("g_category", "a_category", "n"), "kdigo_grid")
+    for column, allowed in (("g_category", G_CATEGORIES), ("a_category", A_CATEGORIES)):
+        unknown = sorted(set(df[column].drop_nulls().cast(pl.String).to_list()) - set(allowed))
+        if unknown:
+            raise InputDataError(
+                f"kdigo_grid: column '{column}' has unknown value '{unknown[0]}' (expected "
+                f"one of {list(allowed)}){did_you_mean(unknown[0], allowed)}"
+            )
+    if "risk" in df.columns:
+        # kidneycohort.kdigo writes "moderately increased"; both spellings are accepted
+        df = df.with_columns(pl.col("risk").cast(pl.String).str.replace_all(" ", "_"))
+        unknown = sorted(set(df["risk"].drop_nulls().to_list()) - set(KDIGO_RISK_LEVELS))
+        if unknown:
+            raise InputDataError(
+                f"kdigo_grid: column 'risk' has unknown value '{unknown[0]}' (expected one of "
+                f"{list(KDIGO_RISK_LEVELS)}){did_you_mean(unknown[0], KDIGO_RISK_LEVELS)}"
+            )
+    full = pl.DataFrame(
+        {
+            "g_category": [g for g, _ in KDIGO_RISK],
+            "a_category": [a for _, a in KDIGO_RISK],
+            "guideline_risk": list(KDIGO_RISK.values()),
+        }
+    )
+    counts = df.group_by("g_category", "a_category").agg(
+        pl.col("n").sum().cast(pl.Int64),
+        *([pl.col("risk").first()] if "risk" in df.columns else []),
+    )
+    out = full.join(counts, on=["g_category", "a_category"], how="left")
+    if "risk" not in out.columns:
+        out = out.with_columns(risk=pl.lit(None, dtype=pl.String))
+    return out.select(
+        "g_category",
+        "a_category",
+        n=pl.col("n").fill_null(0),
+        risk=pl.col("risk").fill_null(pl.col("guideline_risk")),
+        label=small_cell_text(pl.col("n").fill_null(0), threshold),
+    )
+
+
+def kdigo_grid_figure(
+    grid: FrameLike, *, small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD
+) -> ggplot:
+    """Patients per KDIGO GFR x albuminuria category, coloured by the guideline risk level.
+
+    Parameters
+    ----------
+    grid : DataFrame
+        ``models/kdigo_grid.parquet``: ``g_category``, ``a_category``, ``n``, ``risk``.
+    small_cell_threshold : int
+        Counts 1..threshold print as ``"<threshold+1>"``.
+
+    Returns
+    -------
+    plotnine.ggplot
+    """
+    cells = kdigo_grid_cells(grid, small_cell_threshold=small_cell_threshold)
+    g_labels = [f"{g}  ({G_RANGES[g]})" for g in G_CATEGORIES]
+    a_labels = [f"{a}\n{A_RANGES[a]}" for a in A_CATEGORIES]
+    plot = (
+        ggplot(cells.to_pandas(), aes("a_category", "g_category"))
+        + _theme()
+        + geom_tile(aes(fill="risk"), colour="white", size=1.5)
+        + geom_text(aes(label="label"), size=11)
+        + scale_fill_manual(
+            values=KDIGO_RISK_COLOURS,
+            limits=list(KDIGO_RISK_LEVELS),
+            labels=[KDIGO_RISK_LABELS[r] for r in KDIGO_RISK_LEVELS],
+            name="KDIGO risk",
+        )
+        + scale_x_discrete(limits=list(A_CATEGORIES), labels=a_labels)
+        + scale_y_discrete(limits=list(G_CATEGORIES)[::-1], labels=g_labels[::-1])
+        + theme(figure_size=(6.4, 5.0), panel_grid_major=element_blank())
+        + labs(
+            x="Albuminuria category (UACR)",
+            y=f"GFR category ({EGFR_UNIT_LABEL})",
+            title="Patients by KDIGO GFR and albuminuria category",
+            caption="Colours: KDIGO 2012 prognosis of CKD (risk of adverse outcomes).",
+        )
+    )
+    return plot
+
+
+def _category_axis(category: pl.Expr) -> pl.Expr:
+    return pl.when(category.str.starts_with("A")).then(pl.lit("A")).otherwise(pl.lit("G"))
+
+
+def transition_cells(
+    transition_counts: FrameLike, *, small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD
+) -> pl.DataFrame:
+    """The square from-category x to-category matrix of transition counts, per axis.
+
+    The categories present on an axis (G or A, read from the category names) form the
+    rows and columns; missing pairs are 0. Cells with 1..threshold transitions get a
+    null ``fill`` so the colour does not disclose them either.
+
+    Returns
+    -------
+    polars.DataFrame
+        ``axis``, ``from_category``, ``to_category``, ``n``, ``fill``, ``label``,
+        ``share_of_from`` (row percentage of the from-category).
+    """
+    threshold = _check_threshold(small_cell_threshold)
+    df = to_polars(transition_counts, "transition_counts")
+    require_columns(df, ("from_category", "to_category", "n"), "transition_counts")
+    known = {*G_CATEGORIES, *A_CATEGORIES}
+    for column in ("from_category", "to_category"):
+        unknown = sorted(set(df[column].drop_nulls().cast(pl.String).to_list()) - known)
+        if unknown:
+            raise InputDataError(
+                f"transition_counts: column '{column}' has unknown category '{unknown[0]}'"
+                f"{did_you_mean(unknown[0], sorted(known))}; expected KDIGO G1..G5 or A1..A3"
+            )
+    df = df.with_columns(axis=_category_axis(pl.col("from_category")))
+    levels = (
+        pl.concat(
+            [
+                df.select("axis", category="from_category"),
+                df.select("axis", category="to_category"),
+            ]
+        )
+        .unique()
+        .with_columns(order=pl.col("category").replace_strict(_CATEGORY_ORDER, default=99))
+    )
+    square = levels.join(levels, on="axis", suffix="_to").select(
+        "axis", from_category="category", to_category="category_to"
+    )
+    counts = df.group_by("axis", "from_category", "to_category").agg(pl.col("n").sum())
+    out = square.join(counts, on=["axis", "from_category", "to_category"], how="left").with_columns(
+        n=pl.col("n").fill_null(0).cast(pl.Int64)
+    )
+    out = out.with_columns(
+        share_of_from=pl.when(pl.col("n").sum().over("axis", "from_category") > 0).then(
+            100.0 * pl.col("n") / pl.col("n").sum().over("axis", "from_category")
+        ),
+        fill=pl.when(pl.col("n").is_between(1, threshold))
+        .then(None)
+        .otherwise(pl.col("n").cast(pl.Float64)),
+        label=small_cell_text(pl.col("n"), threshold),
+    )
+    return out.sort(
+        "axis",
+        pl.col("from_category").replace_strict(_CATEGORY_ORDER, default=99),
+        pl.col("to_category").replace_strict(_CATEGORY_ORDER, default=99),
+    )
+
+
+_CATEGORY_ORDER: Final[dict[str, int]] = {
+    c: i for i, c in enumerate((*G_CATEGORIES, *A_CATEGORIES))
+}
+
+
+def transition_heatmap_figure(
+    transition_counts: FrameLike, *, small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD
+) -> ggplot:
+    """Heat map of KDIGO category transitions (from-category rows, to-category columns).
+
+    A single-hue scale (white to Okabe–Ito blue) reads the same in greyscale and for
+    colour-deficient readers; suppressed small cells are grey.
+
+    Returns
+    -------
+    plotnine.ggplot
+    """
+    threshold = _check_threshold(small_cell_threshold)
+    cells = transition_cells(transition_counts, small_cell_threshold=threshold)
+    top = float(cells["fill"].max() or 0.0)
+    cells = cells.with_columns(
+        text_colour=pl.when(pl.col("fill").fill_null(0) > 0.6 * top)
+        .then(pl.lit("white"))
+        .otherwise(pl.lit("black"))
+    )
+    present = set(cells["from_category"].to_list())
+    order = [c for c in (*G_CATEGORIES, *A_CATEGORIES) if c in present]
+    plot = (
+        ggplot(cells.to_pandas(), aes("to_category", "from_category"))
+        + _theme()
+        + geom_tile(aes(fill="fill"), colour="white", size=1)
+        + geom_text(aes(label="label", colour="text_colour"), size=9)
+        + scale_color_identity()
+        + scale_fill_gradient(
+            low="#F4F8FB", high=OKABE_ITO["blue"], na_value="#C8C8C8", name="Transitions"
+        )
+        + scale_x_discrete(limits=order)
+        + scale_y_discrete(limits=order[::-1])
+        + theme(panel_grid_major=element_blank(), figure_size=(6.4, 5.0))
+        + labs(
+            x="To category",
+            y="From category",
+            title="KDIGO category transitions",
+            caption=f"Grey: 1 to {threshold} transitions (shown as <{threshold + 1}).",
+        )
+    )
+    if cells["axis"].n_unique() > 1:
+        plot += facet_wrap("axis", scales="free")
+    return plot

@@ -1,0 +1,161 @@
+"""Table options and cell formatting: counts, percentages, intervals, p values, and small-cell
+protection with complementary suppression.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import polars as pl
+from pydantic import Field
+
+from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._rules import RuleModel
+
+_DASH = "–"
+
+
+_MISSING_LEVEL = "missing"
+
+
+_COMPLEMENTARY_LABEL = "*"  # hidden so that a suppressed cell cannot be recovered
+
+
+class TableRule(RuleModel):
+    """Options of the output tables (config key ``tables``)."""
+
+
+    small_cell_threshold: int = Field(
+        10,
+        ge=0,
+        description="Counts from 1 to this value are shown as '<threshold+1>' (0 turns suppression off).",
+    )
+    decimals: int = Field(
+        1, ge=0, le=6, description="Decimals of means, SDs, medians and percentages."
+    )
+    estimate_decimals: int = Field(
+        2, ge=0, le=6, description="Decimals of rates, slopes and hazard ratios."
+    )
+    p_decimals: int = Field(
+        3, ge=1, le=6, description="Decimals of p values (smaller shown as '<0.001')."
+    )
+    skew_threshold: float = Field(
+        1.0,
+        gt=0,
+        description="Numeric covariates with |skewness| above this are summarised as median [IQR].",
+    )
+
+
+def suppression_label(spec: TableRule | None = None) -> str:
+    """The text shown for a suppressed count, e.g. ``"<11"``."""
+    spec = spec or TableRule()
+    return f"<{spec.small_cell_threshold + 1}"
+
+
+def suppression_footnote(spec: TableRule | None = None) -> str:
+    """Footnote explaining small-cell suppression, for every aggregate table."""
+    spec = spec or TableRule()
+    if spec.small_cell_threshold == 0:
+        return "No small-cell suppression applied."
+    label = suppression_label(spec)
+    return (
+        f"Counts from 1 to {spec.small_cell_threshold} are shown as '{label}'; percentages and "
+        "rates that would reveal them are suppressed, and where a suppressed count could be "
+        "recovered from the other counts of its block or from the overall column, further "
+        "counts are suppressed too (shown as '*')."
+    )
+
+
+def _is_small(count: pl.Expr, spec: TableRule) -> pl.Expr:
+    return (count >= 1) & (count <= spec.small_cell_threshold)
+
+
+def _count_text(count: pl.Expr, spec: TableRule, hide: pl.Expr | None = None) -> pl.Expr:
+    hidden = _is_small(count, spec) if hide is None else hide
+    return (
+        pl.when(count.is_null())
+        .then(pl.lit(_DASH))
+        .when(hidden)
+        .then(pl.lit(suppression_label(spec)))
+        .otherwise(count.cast(pl.Int64).cast(pl.String))
+    )
+
+
+def _format_fixed(expr: pl.Expr, decimals: int) -> pl.Expr:
+    scale = 10**decimals
+    rounded = (expr * scale).round(0)
+    sign = pl.when(rounded < 0).then(pl.lit("-")).otherwise(pl.lit(""))
+    magnitude = rounded.abs().cast(pl.Int64)
+    whole = (magnitude // scale).cast(pl.String)
+    if decimals == 0:
+        text = pl.concat_str([sign, whole])
+    else:
+        fraction = (magnitude % scale).cast(pl.String).str.zfill(decimals)
+        text = pl.concat_str([sign, whole, pl.lit("."), fraction])
+    return (
+        pl.when(expr.is_null() | expr.is_nan())
+        .then(pl.lit(_DASH))
+        .when(expr.is_infinite())
+        .then(pl.lit("inf"))
+        .otherwise(text)
+    )
+
+
+def _p_text(expr: pl.Expr, spec: TableRule) -> pl.Expr:
+    floor = 10.0 ** (-spec.p_decimals)
+    return (
+        pl.when(expr.is_null() | expr.is_nan())
+        .then(pl.lit(_DASH))
+        .when(expr < floor)
+        .then(pl.lit(f"<{floor:.{spec.p_decimals}f}"))
+        .otherwise(_format_fixed(expr, spec.p_decimals))
+    )
+
+
+def _interval(estimate: pl.Expr, lower: pl.Expr, upper: pl.Expr, decimals: int) -> pl.Expr:
+    return pl.concat_str(
+        [
+            _format_fixed(estimate, decimals),
+            pl.lit(" ("),
+            _format_fixed(lower, decimals),
+            pl.lit(" to "),
+            _format_fixed(upper, decimals),
+            pl.lit(")"),
+        ]
+    )
+
+
+def suppress_small_counts(
+    frame: FrameLike, count_columns: Sequence[str], *, spec: TableRule | None = None
+) -> pl.DataFrame:
+    """Return ``frame`` with each of ``count_columns`` as text, counts from 1 to the
+    threshold replaced by the suppression label (``"<11"``)."""
+    spec = spec or TableRule()
+    table = to_polars(frame, "table")
+    require_columns(table, count_columns, "table")
+    return table.with_columns(_count_text(pl.col(c), spec).alias(c) for c in count_columns)
+
+
+def _complementary(counts: pl.DataFrame) -> pl.DataFrame:
+    """Add ``_hidden``: ``_primary`` cells plus, in a group's block with exactly one
+    hidden cell (recoverable as N minus the others), its smallest other non-zero cell."""
+    block = pl.col("_group")
+    candidate = pl.when(~pl.col("_primary") & (pl.col("_count") > 0)).then(
+        pl.col("_count") * 10_000 + pl.col("_level_order")
+    )
+    return (
+        counts.with_columns(
+            pl.col("_primary").sum().over(block).alias("_n_hidden"), candidate.alias("_candidate")
+        )
+        .with_columns(
+            (
+                pl.col("_primary")
+                | (
+                    (pl.col("_n_hidden") == 1)
+                    & pl.col("_candidate").is_not_null()
+                    & (pl.col("_candidate") == pl.col("_candidate").min().over(block))
+                )
+            ).alias("_hidden")
+        )
+        .drop("_n_hidden", "_candidate")
+    )
