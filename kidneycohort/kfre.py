@@ -19,10 +19,11 @@ region                       S0(2 yr)   S0(5 yr)
 ``non_north_american``       0.9832     0.9365
 ============================ ========== ==========
 
-**From memory**: every number in this docstring and in :data:`COEFFICIENTS`,
-:data:`CENTRES` and :data:`BASELINE_SURVIVAL` was recalled, not re-read from the
-papers; check them against [1]_ (model 3, 4 variables) and [2]_ (Table 3 / eTable)
-before publication.
+The numbers above are the module constants :data:`COEFFICIENTS`, :data:`CENTRES`,
+:data:`BASELINE_SURVIVAL` and the applicability limits; their publication, table and
+whether each was re-read or recalled are recorded in :mod:`kidneycohort.provenance`
+(ids ``kfre.*``; ``kidneycohort equations --sources`` lists them and counts the recalled
+ones, which must be checked against [1]_ and [2]_ before publication use).
 
 Applicability (enforced): the equation was developed and validated in adults with CKD
 G3-G5 (eGFR < 60 mL/min/1.73 m2) not yet on kidney replacement therapy. A row outside
@@ -59,26 +60,29 @@ logger = logging.getLogger(__name__)
 
 Region = Literal["north_american", "non_north_american"]
 
-# from memory (Tangri 2011, 4-variable model): per 10 years of age, male sex,
-# per 5 mL/min/1.73 m2 of eGFR, per natural-log unit of UACR in mg/g
+# per 10 years of age, male sex, per 5 mL/min/1.73 m2 of eGFR, per natural-log unit of
+# UACR in mg/g (Tangri 2011, 4-variable model)
 COEFFICIENTS: Final[dict[str, float]] = {
     "age_per_10y": -0.2201,
     "male": 0.2467,
     "egfr_per_5": -0.5567,
     "log_uacr": 0.4510,
 }
-# from memory: the centring values (development-cohort means of the scaled variables)
+# the centring values (development-cohort means of the scaled variables)
 CENTRES: Final[dict[str, float]] = {
     "age_per_10y": 7.036,
     "male": 0.5642,
     "egfr_per_5": 7.222,
     "log_uacr": 5.137,
 }
-# from memory (Tangri 2016 regional recalibration)
+# Tangri 2016 regional recalibration
 BASELINE_SURVIVAL: Final[dict[str, dict[int, float]]] = {
     "north_american": {2: 0.9750, 5: 0.9240},
     "non_north_american": {2: 0.9832, 5: 0.9365},
 }
+# the population the equation was developed in: adults with CKD G3-G5
+MIN_AGE_YEARS: Final = 18.0
+EGFR_BELOW: Final = 60.0
 
 KFRE_REASONS: Final[dict[str, str]] = {
     "missing_input": "age, sex, eGFR or UACR missing",
@@ -173,9 +177,9 @@ def kfre(inputs: FrameLike, region: Region = "north_american") -> pl.DataFrame:
     reason = (
         pl.when(age.is_null() | gfr.is_null() | acr.is_null() | pl.col("sex").is_null())
         .then(pl.lit("missing_input"))
-        .when(age < 18)
+        .when(age < MIN_AGE_YEARS)
         .then(pl.lit("not_adult"))
-        .when(gfr >= 60)
+        .when(gfr >= EGFR_BELOW)
         .then(pl.lit("egfr_not_below_60"))
         .when(acr <= 0)
         .then(pl.lit("uacr_not_positive"))
