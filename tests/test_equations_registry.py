@@ -343,3 +343,45 @@ def test_cli_lists_equations_as_json() -> None:
         set(r) == {"id", "label", "inputs", "ages", "unit", "population", "reference"} for r in rows
     )
     assert {r["unit"] for r in rows} == {"mL/min/1.73 m2", "mL/min"}
+
+
+def test_cli_sources_table_lists_constants_and_counts_recalled() -> None:
+    from kidneycohort.provenance import CONSTANTS, RECALLED_CAUTION, status_counts
+
+    # wide terminal so that no id is folded across lines
+    result = CliRunner(env={"COLUMNS": "400"}).invoke(cli, ["equations", "--sources"])
+    assert result.exit_code == 0, result.output
+    for constant in CONSTANTS:
+        assert constant.id in result.output
+    counts = status_counts()
+    assert counts["recalled"] == sum(c.status == "recalled" for c in CONSTANTS) > 0
+    footer = (
+        f"{len(CONSTANTS)} constants: {counts['re-read']} re-read, {counts['derived']} "
+        f"derived, {counts['recalled']} recalled."
+    )
+    flat = " ".join(result.output.split())
+    assert footer in flat
+    assert RECALLED_CAUTION in flat
+    assert "Inker 2021, doi:10.1056/NEJMoa2102953" in flat
+    # the plain listing is unchanged: equations, not constants
+    plain = CliRunner(env={"COLUMNS": "400"}).invoke(cli, ["equations"])
+    assert "ckd_epi_2021_cr" in plain.output and "recalled" not in plain.output
+
+
+def test_cli_sources_as_json() -> None:
+    from kidneycohort.provenance import CONSTANTS, PUBLICATIONS, RECALLED_CAUTION
+
+    result = CliRunner().invoke(cli, ["equations", "--sources", "--format", "json"])
+    assert result.exit_code == 0, result.output
+    payload = json.loads(result.output)
+    assert set(payload) == {"constants", "publications", "counts", "caution"}
+    rows = payload["constants"]
+    assert [r["id"] for r in rows] == [c.id for c in CONSTANTS]
+    assert set(rows[0]) == {"id", "value", "unit", "publication", "where", "status", "note", "code"}
+    recalled = [r for r in rows if r["status"] == "recalled"]
+    assert payload["counts"]["recalled"] == len(recalled) > 0
+    assert sum(payload["counts"].values()) == len(rows)
+    assert payload["caution"] == RECALLED_CAUTION
+    assert {p["key"] for p in payload["publications"]} == {p.key for p in PUBLICATIONS}
+    schwartz = next(r for r in rows if r["id"] == "schwartz_bedside.k")
+    assert (schwartz["value"], schwartz["status"]) == (str(eq.pediatric.BEDSIDE_K), "re-read")
