@@ -140,7 +140,8 @@ def test_reasons_above_range_and_outside_domain() -> None:
 
 def test_outside_age_opt_in_gives_the_formula_value() -> None:
     # 2021 creatinine formula at 16, computed by hand (Inker 2021 coefficients, from
-    # memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check)
+    # memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+    # check)
     assert math.isnan(eq.evaluate("ckd_epi_2021_cr", creatinine_mg_dl=0.8, age=16, sex="male"))
     got = eq.evaluate(
         "ckd_epi_2021_cr", creatinine_mg_dl=0.8, age=16, sex="male", allow_outside_age=True
@@ -302,7 +303,8 @@ def test_bisection_agrees_with_the_closed_form() -> None:
 
 def test_body_surface_area_and_deindexing() -> None:
     # DuBois & DuBois 1916: 0.007184 W^0.425 H^0.725; Mosteller 1987: sqrt(H W / 3600).
-    # From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check. 1.73 m2 (de-indexing) re-read in KDIGO 2012 (bsa.standard).
+    # From memory: arithmetic re-check of the implementation; coefficients recalled, not an
+    # independent check. 1.73 m2 (de-indexing) re-read in KDIGO 2012 (bsa.standard).
     assert eq.bsa_dubois(170, 70) == pytest.approx(0.007184 * 70**0.425 * 170**0.725, rel=1e-12)
     assert eq.bsa_mosteller(170, 70) == pytest.approx(math.sqrt(170 * 70 / 3600), rel=1e-12)
     # both give about 1.81 m2 for 170 cm / 70 kg (published tables, from memory)

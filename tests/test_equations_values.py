@@ -34,7 +34,8 @@ def ev(equation_id: str, **inputs: object) -> float:
 # --------------------------------------------------------------------------- CKD-EPI 2021
 # Inker LA et al. N Engl J Med 2021;385:1737-49 (doi:10.1056/NEJMoa2102953), creatinine
 # equation: 142, kappa 0.7/0.9, alpha -0.241/-0.302, -1.200, 0.9938^age, 1.012 female.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("creatinine", "age", "sex", "expected"),
     [
@@ -52,7 +53,8 @@ def test_ckd_epi_2021_cr(creatinine: float, age: float, sex: str, expected: floa
 
 # Inker 2021 (as above), creatinine-cystatin C: 135, kappa 0.7/0.9, alpha -0.219/-0.144,
 # -0.544; cystatin 0.8, -0.323/-0.778; 0.9961^age; 0.963 female.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("creatinine", "cystatin", "age", "sex", "expected"),
     [
@@ -90,7 +92,8 @@ def test_ckd_epi_2021_crcys(
 # --------------------------------------------------------------------------- CKD-EPI 2012
 # Inker LA et al. N Engl J Med 2012;367:20-9 (doi:10.1056/NEJMoa1114248), cystatin C:
 # 133, 0.8, -0.499/-1.328, 0.996^age, 0.932 female.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("cystatin", "age", "sex", "expected"),
     [
@@ -106,7 +109,8 @@ def test_ckd_epi_2012_cys(cystatin: float, age: float, sex: str, expected: float
 
 # Inker 2012 (as above), creatinine-cystatin C: 135, kappa 0.7/0.9, alpha -0.248/-0.207,
 # -0.601; cystatin 0.8, -0.375/-0.711; 0.995^age; 0.969 female; 1.08 Black.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("creatinine", "cystatin", "age", "sex", "expected"),
     [
@@ -153,7 +157,8 @@ def test_ckd_epi_2012_crcys_race_coefficient() -> None:
 # --------------------------------------------------------------------------- CKD-EPI 2009
 # Levey AS et al. Ann Intern Med 2009;150:604-12 (doi:10.7326/0003-4819-150-9-200905050-00006):
 # 141, kappa 0.7/0.9, alpha -0.329/-0.411, -1.209, 0.993^age, 1.018 female, 1.159 Black.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("creatinine", "age", "sex", "expected"),
     [
@@ -219,7 +224,8 @@ def test_ckd_epi_2009_doubling_creatinine_is_57_percent_fall() -> None:
 # --------------------------------------------------------------------------- MDRD
 # Levey AS et al. Ann Intern Med 2006;145:247-54: 175 x Scr^-1.154 x age^-0.203 x 0.742
 # female x 1.212 Black. 186 form: Levey et al. J Am Soc Nephrol 2000;11:155A (abstract),
-# race factor 1.210. From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# race factor 1.210. From memory: arithmetic re-check of the implementation; coefficients recalled,
+# not an independent check.
 @pytest.mark.parametrize(
     ("equation_id", "constant", "creatinine", "age", "sex", "expected_factor"),
     [
@@ -271,7 +277,8 @@ def test_mdrd_race_coefficients() -> None:
 # Pottel H et al. Ann Intern Med 2021;174:183-91 (doi:10.7326/M20-4366): 107.3 x (Scr/Q)^a,
 # a = -0.322 below 1, -1.132 at or above; x 0.990^(age-40) above 40; adult Q 80 umol/L
 # (male) and 62 umol/L (female); paediatric ln Q polynomials.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 def _q_child_umol(age: float, sex: str) -> float:
     la = math.log(age)
     if sex == "male":
@@ -308,7 +315,8 @@ def test_ekfc_child_q_meets_adult_q_at_25() -> None:
 
 # Pottel H et al. N Engl J Med 2023;388:333-43 (doi:10.1056/NEJMoa2203769): same form with
 # Scys/Q; Q = 0.83 mg/L up to 50, 0.83 + 0.005 (age - 50) above.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("cystatin", "age", "expected"),
     [
@@ -326,7 +334,8 @@ def test_ekfc_cys(cystatin: float, age: float, expected: float) -> None:
 # --------------------------------------------------------------------------- FAS
 # Pottel H et al. Nephrol Dial Transplant 2016;31:798-806 (doi:10.1093/ndt/gfv454):
 # 107.3 / (Scr/Q), x 0.988^(age-40) above 40; adult Q 0.70 / 0.90 mg/dL.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("creatinine", "age", "sex", "expected"),
     [
@@ -342,7 +351,8 @@ def test_fas_cr(creatinine: float, age: float, sex: str, expected: float) -> Non
 
 # --------------------------------------------------------------------------- BIS1, LMR
 # Schaeffner ES et al. Ann Intern Med 2012;157:471-81: 3736 x Scr^-0.87 x age^-0.95
-# x 0.82 female. From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# x 0.82 female. From memory: arithmetic re-check of the implementation; coefficients recalled, not
+# an independent check.
 @pytest.mark.parametrize(
     ("creatinine", "age", "sex", "expected"),
     [
@@ -359,7 +369,8 @@ def test_bis1(creatinine: float, age: float, sex: str, expected: float) -> None:
 # Björk J et al. Scand J Clin Lab Invest 2011;71:232-9: e^(X - 0.0158 age + 0.438 ln age);
 # p in umol/L; female X = 2.50 + 0.0121 (150 - p) below 150, 2.50 - 0.926 ln(p/150) above;
 # male 2.56 + 0.00968 (180 - p) below 180, 2.56 - 0.926 ln(p/180) above.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("creatinine", "age", "sex", "x"),
     [
@@ -377,7 +388,9 @@ def test_lmr(creatinine: float, age: float, sex: str, x: float) -> None:
 
 # --------------------------------------------------------------------------- Cockcroft-Gault
 # Cockcroft DW, Gault MH. Nephron 1976;16:31-41: (140 - age) x weight / (72 x Scr),
-# x 0.85 female; mL/min. From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# x 0.85 female; mL/min. Constants re-read in the abstract ("(140 - age) (wt kg) / 72
+# Scr(mg/100 ml) (15% less in females)"): an arithmetic re-check of the implementation
+# with constants that were checked against the publication.
 def test_cockcroft_gault() -> None:
     got = evaluate(
         "cockcroft_gault",
@@ -408,7 +421,8 @@ def test_schwartz_bedside() -> None:
 # Pierce CB et al. Kidney Int 2021;99:948-56 (doi:10.1016/j.kint.2020.10.047), creatinine
 # K: male 39.0 x 1.008^(age-12) (<12), 39.0 x 1.045^(age-12) (12-18), 50.8 (18+); female
 # 36.1 x 1.008^(age-12), 36.1 x 1.023^(age-12), 41.4; eGFR = K x height (m) / Scr.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# The adult K (50.8, 41.4) was re-read in the abstract; the rest from memory: arithmetic
+# re-check of the implementation; coefficients recalled, not an independent check.
 @pytest.mark.parametrize(
     ("creatinine", "height_cm", "age", "sex", "expected"),
     [
@@ -429,7 +443,8 @@ def test_ckid_u25_cr(
 # Pierce 2021 (as above), cystatin C K: male 87.2 x 1.011^(age-15) (<15), 87.2 x
 # 0.960^(age-15) (15-18), 77.1 (18+); female 79.9 x 1.004^(age-12) (<12), 79.9 x
 # 0.974^(age-12) (12-18), 68.3 (18+); eGFR = K / Scys.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent check.
+# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+# check.
 @pytest.mark.parametrize(
     ("cystatin", "age", "sex", "expected"),
     [
@@ -444,6 +459,25 @@ def test_ckid_u25_cr(
 def test_ckid_u25_cys(cystatin: float, age: float, sex: str, expected: float) -> None:
     got = ev("ckid_u25_cys", cystatin_c_mg_l=cystatin, age=age, sex=sex)
     assert got == pytest.approx(expected, rel=REL)
+
+
+def test_ckid_u25_creatinine_k_matches_values_printed_in_the_abstract() -> None:
+    # Independent check (Pierce CB et al. Kidney Int 2021;99:948-56, abstract, PubMed
+    # 33301749): "For males, K ranged from 35.7 for one-year-olds to 50.8 for those 18
+    # and older. For females, the values of K ranged from 33.1 to 41.4", K constant from
+    # 18 to 25. Printed to one decimal, hence abs 0.05. The value at age 1 tests the
+    # recalled base and child rate together (39.0 x 1.008^-11 = 35.73; 36.1 x 1.008^-11 =
+    # 33.07).
+    male, female = np.array([False]), np.array([True])
+    for age, k_male, k_female in ((1.0, 35.7, 33.1), (18.0, 50.8, 41.4), (24.9, 50.8, 41.4)):
+        assert ckid_u25_creatinine_k(np.array([age]), male)[0] == pytest.approx(k_male, abs=0.05)
+        assert ckid_u25_creatinine_k(np.array([age]), female)[0] == pytest.approx(
+            k_female, abs=0.05
+        )
+    # "increased monotonically for children 1-18 years old"
+    ages = np.linspace(1.0, 17.99, 200)
+    for sex in (male, female):
+        assert np.all(np.diff(ckid_u25_creatinine_k(ages, np.repeat(sex, ages.size))) > 0)
 
 
 def test_ckid_u25_k_meets_adult_constants_at_18() -> None:

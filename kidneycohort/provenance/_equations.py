@@ -278,24 +278,38 @@ ELDERLY: Final[tuple[Constant, ...]] = (
 
 # ---- Cockcroft-Gault --------------------------------------------------------------------
 _G = "kidneycohort.equations.clearance:"
-_WCG = "the clearance formula of the abstract and text (not re-read)"
+_WCG = (
+    "Abstract: '(140 - age) (wt kg) / 72 Scr(mg/100 ml) (15% less in females)'; read in a "
+    "copy of the article"
+)
 
 COCKCROFT_GAULT: Final[tuple[Constant, ...]] = (
-    _recalled("cockcroft_gault.age_offset", f"{_G}AGE_OFFSET", _YEARS, "cockcroft_1976", _WCG),
-    _recalled("cockcroft_gault.divisor", f"{_G}DIVISOR", _NUMBER, "cockcroft_1976", _WCG),
-    _recalled(
+    Constant(
+        "cockcroft_gault.age_offset", f"{_G}AGE_OFFSET", _YEARS, "cockcroft_1976", _WCG, "re-read"
+    ),
+    Constant("cockcroft_gault.divisor", f"{_G}DIVISOR", _NUMBER, "cockcroft_1976", _WCG, "re-read"),
+    Constant(
         "cockcroft_gault.female_factor",
         f"{_G}FEMALE_FACTOR",
         _NUMBER,
         "cockcroft_1976",
         _WCG,
-        "the authors proposed 15 % less for women",
+        "re-read",
+        "'15% less in females', i.e. x 0.85",
     ),
 )
 
 # ---- children and young adults ----------------------------------------------------------
 _P = "kidneycohort.equations.pediatric:"
 _WU25 = "the K coefficients by age and sex as printed in the article (location not re-read)"
+
+
+_WU25_ABSTRACT = (
+    "Abstract: 'K increased monotonically for children 1-18 years old and was constant for "
+    "young adults 18-25 years. For males, K ranged from 35.7 for one-year-olds to 50.8 for "
+    "those 18 and older. For females, the values of K ranged from 33.1 to 41.4'; read in "
+    "the PubMed record (PMID 33301749)"
+)
 
 
 def _u25(marker: str, sex: str, attribute: str) -> list[Constant]:
@@ -306,17 +320,18 @@ def _u25(marker: str, sex: str, attribute: str) -> list[Constant]:
         ("rate_above", "factor per year from the pivot age to 18"),
         ("adult", "K from age 18"),
     )
-    return [
-        _recalled(
-            f"ckid_u25.{marker}.{sex}.{name}",
-            f"{_P}{attribute}.{name}",
-            _YEARS if name == "pivot_age" else _NUMBER,
-            "pierce_2021",
-            _WU25,
-            note,
-        )
-        for name, note in fields
-    ]
+    constants = []
+    for name, note in fields:
+        unit = _YEARS if name == "pivot_age" else _NUMBER
+        id_, code = f"ckid_u25.{marker}.{sex}.{name}", f"{_P}{attribute}.{name}"
+        if marker == "creatinine" and name == "adult":
+            # the abstract prints the adult creatinine K of both sexes
+            constants.append(
+                Constant(id_, code, unit, "pierce_2021", _WU25_ABSTRACT, "re-read", note)
+            )
+        else:
+            constants.append(_recalled(id_, code, unit, "pierce_2021", _WU25, note))
+    return constants
 
 
 PEDIATRIC: Final[tuple[Constant, ...]] = (
@@ -329,7 +344,14 @@ PEDIATRIC: Final[tuple[Constant, ...]] = (
         "cm; read in the full text on PubMed Central (PMC2653687)",
         "re-read",
     ),
-    _recalled("ckid_u25.adult_from_age", f"{_P}U25_ADULT_FROM_AGE", _YEARS, "pierce_2021", _WU25),
+    Constant(
+        "ckid_u25.adult_from_age",
+        f"{_P}U25_ADULT_FROM_AGE",
+        _YEARS,
+        "pierce_2021",
+        _WU25_ABSTRACT,
+        "re-read",
+    ),
     *_u25("creatinine", "male", "U25_CREATININE_MALE"),
     *_u25("creatinine", "female", "U25_CREATININE_FEMALE"),
     *_u25("cystatin_c", "male", "U25_CYSTATIN_MALE"),
