@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 from kidneycohort.equations import evaluate
-from kidneycohort.equations.ekfc import creatinine_q_mg_dl
+from kidneycohort.equations.ekfc import creatinine_q_mg_dl, cystatin_q_mg_l
 from kidneycohort.equations.pediatric import ckid_u25_creatinine_k, ckid_u25_cystatin_k
 from kidneycohort.errors import EquationWarning
 
@@ -313,10 +313,18 @@ def test_ekfc_child_q_meets_adult_q_at_25() -> None:
     np.testing.assert_allclose(below, at, rtol=0.015)
 
 
-# Pottel H et al. N Engl J Med 2023;388:333-43 (doi:10.1056/NEJMoa2203769): same form with
-# Scys/Q; Q = 0.83 mg/L up to 50, 0.83 + 0.005 (age - 50) above.
-# From memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
-# check.
+def test_ekfc_cystatin_q_is_the_published_rescaling_factor() -> None:
+    # Pottel H et al. N Engl J Med 2023;388:333-43, abstract: "the rescaling factor for
+    # cystatin C was estimated at 0.83 for men and women younger than 50 years of age and
+    # 0.83+0.005x(age-50) for those 50 years of age or older" (re-read). Sex plays no part.
+    ages = np.array([18.0, 35.0, 49.9, 50.0, 60.0, 80.0])
+    published = np.where(ages < 50, 0.83, 0.83 + 0.005 * (ages - 50))
+    np.testing.assert_allclose(cystatin_q_mg_l(ages), published, rtol=1e-12)
+
+
+# Pottel 2023 (as above): same form as the creatinine equation with Scys/Q. Q re-read
+# (above); 107.3, the exponents and the age factor from memory: arithmetic re-check of the
+# implementation; coefficients recalled, not an independent check.
 @pytest.mark.parametrize(
     ("cystatin", "age", "expected"),
     [

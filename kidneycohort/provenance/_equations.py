@@ -181,7 +181,11 @@ MDRD: Final[tuple[Constant, ...]] = (
 _E = "kidneycohort.equations.ekfc:"
 _WEKFC = "the EKFC equation and its Q values as printed in the article (location not re-read)"
 _WEKFCQ = "the ln Q polynomials for ages 2-25 (appendix; location not re-read)"
-_WCYS = "the cystatin C Q by age as printed in the article (location not re-read)"
+_WCYS = (
+    "Abstract (Results): 'the rescaling factor for cystatin C was estimated at 0.83 for men "
+    "and women younger than 50 years of age and 0.83+0.005x(age-50) for those 50 years of "
+    "age or older'; read in the Lund University research-portal record of the article"
+)
 
 
 def _polynomial(sex: str, attribute: str) -> list[Constant]:
@@ -223,9 +227,23 @@ EKFC: Final[tuple[Constant, ...]] = (
     _recalled("ekfc.adult_q_male", f"{_E}ADULT_Q_UMOL_MALE", _UMOL, "pottel_2021", _WEKFC),
     *_polynomial("male", "CHILD_LOG_Q_MALE"),
     *_polynomial("female", "CHILD_LOG_Q_FEMALE"),
-    _recalled("ekfc.cys.q", f"{_E}CYSTATIN_Q", _MG_L, "pottel_2023", _WCYS),
-    _recalled("ekfc.cys.q_flat_until", f"{_E}CYSTATIN_Q_FLAT_UNTIL", _YEARS, "pottel_2023", _WCYS),
-    _recalled("ekfc.cys.q_slope", f"{_E}CYSTATIN_Q_SLOPE", "mg/L per year", "pottel_2023", _WCYS),
+    Constant("ekfc.cys.q", f"{_E}CYSTATIN_Q", _MG_L, "pottel_2023", _WCYS, "re-read"),
+    Constant(
+        "ekfc.cys.q_flat_until",
+        f"{_E}CYSTATIN_Q_FLAT_UNTIL",
+        _YEARS,
+        "pottel_2023",
+        _WCYS,
+        "re-read",
+    ),
+    Constant(
+        "ekfc.cys.q_slope",
+        f"{_E}CYSTATIN_Q_SLOPE",
+        "mg/L per year",
+        "pottel_2023",
+        _WCYS,
+        "re-read",
+    ),
 )
 
 _F = "kidneycohort.equations.full_age:"
