@@ -115,7 +115,7 @@ CKD_EPI: Final[tuple[Constant, ...]] = (
 
 # ---- MDRD -------------------------------------------------------------------------------
 _M = "kidneycohort.equations.mdrd:"
-_W2006 = "the re-expressed 4-variable equation (abstract and Methods; not re-read)"
+_W2006 = "the re-expressed 4-variable equation (Methods; not re-read; the abstract omits it)"
 _W2000 = "the 4-variable equation of the abstract (not re-read)"
 
 MDRD: Final[tuple[Constant, ...]] = (
@@ -261,7 +261,7 @@ FAS: Final[tuple[Constant, ...]] = (
 
 # ---- BIS1 and revised Lund-Malmö --------------------------------------------------------
 _L = "kidneycohort.equations.elderly:"
-_WBIS = "the BIS1 equation (abstract and Results; not re-read)"
+_WBIS = "the BIS1 equation (Results; not re-read; the abstract omits it)"
 _WLMR = "the revised LM equation by sex and creatinine range (location not re-read)"
 
 ELDERLY: Final[tuple[Constant, ...]] = (

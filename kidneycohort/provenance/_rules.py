@@ -23,7 +23,7 @@ _KDIGO_REC_2_1_3 = (
     "recommendation statements"
 )
 _AKI_TEXT = (
-    "Recommendation 2.1.1 (p. 19), restated in Chapter 2.4, p. 30: 'a 50% increase in SCr "
+    "Recommendation 2.1.1 (Chapter 2.1), restated in Chapter 2.4, p. 30: 'a 50% increase in SCr "
     "within 1 week or a 0.3 mg/dl (26.5 umol/l) increase within 48 hours'; read in a copy "
     "of the guideline text"
 )
@@ -34,8 +34,8 @@ UNITS: Final[tuple[Constant, ...]] = (
         "kidneycohort.units:CREATININE_UMOL_PER_MG_DL",
         "umol/L per mg/dL",
         "kdigo_2012_aki",
-        "Table 2 (staging of AKI), p. 19: '4.0 mg/dl (353.6 umol/l)', i.e. 353.6 / 4.0; "
-        "read in a copy of Section 2",
+        "Table 2 (staging of AKI), Chapter 2.1: '4.0 mg/dl (353.6 umol/l)', i.e. "
+        "353.6 / 4.0; read in a copy of Section 2",
         "re-read",
         "also 10 000 / 113.12, the molar mass of creatinine in g/mol",
     ),
