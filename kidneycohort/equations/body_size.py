@@ -29,7 +29,8 @@ STANDARD_BSA_M2: Final = 1.73
 
 
 class DuBoisCoefficients(NamedTuple):
-    """BSA (m²) = ``constant`` × weight (kg) ^ ``weight_exponent`` × height (cm) ^ ``height_exponent``."""
+    """BSA (m²) = ``constant`` × weight (kg) ^ ``weight_exponent``
+    × height (cm) ^ ``height_exponent``."""
 
     constant: float
     weight_exponent: float
