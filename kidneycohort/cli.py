@@ -68,9 +68,18 @@ def cli() -> None:
     show_default=True,
     help="Readable table, or JSON for machines.",
 )
+@click.option(
+    "--sources",
+    is_flag=True,
+    help="List the published constants instead: value, publication, where, and whether "
+    "each was re-read or recalled.",
+)
 @_guarded
-def equations_cmd(fmt: str) -> None:
+def equations_cmd(fmt: str, sources: bool) -> None:
     """List the GFR-estimating equations: id, inputs, ages, unit and reference."""
+    if sources:
+        _print_sources(fmt)
+        return
     from kidneycohort.equations import registry_table
 
     table = registry_table()
@@ -85,6 +94,54 @@ def equations_cmd(fmt: str) -> None:
         out.add_column(column, overflow="fold")
     for row in table.iter_rows(named=True):
         out.add_row(row["id"], row["inputs"], row["ages"], row["unit"], row["reference"])
+    Console(width=max(120, shutil.get_terminal_size().columns)).print(out)
+
+
+def _print_sources(fmt: str) -> None:
+    from kidneycohort.provenance import (
+        PUBLICATIONS,
+        RECALLED_CAUTION,
+        constants_table,
+        status_counts,
+    )
+
+    table = constants_table()
+    counts = status_counts()
+    footer = (
+        f"{table.height} constants: {counts['re-read']} re-read, {counts['derived']} "
+        f"derived, {counts['recalled']} recalled."
+    )
+    if fmt == "json":
+        payload = {
+            "constants": table.to_dicts(),
+            "publications": [
+                {
+                    "key": p.key,
+                    "authors": p.authors,
+                    "title": p.title,
+                    "journal": p.journal,
+                    "year": p.year,
+                    "doi": p.doi,
+                }
+                for p in PUBLICATIONS
+            ],
+            "counts": counts,
+            "caution": RECALLED_CAUTION,
+        }
+        click.echo(json.dumps(payload, indent=2, ensure_ascii=False))
+        return
+    from rich.console import Console
+    from rich.table import Table
+
+    out = Table(
+        title="Published constants and their sources",
+        caption=f"{footer} {RECALLED_CAUTION}",
+        show_lines=False,
+    )
+    for column in ("id", "value", "publication", "where", "status"):
+        out.add_column(column, overflow="fold")
+    for row in table.iter_rows(named=True):
+        out.add_row(row["id"], row["value"], row["publication"], row["where"], row["status"])
     Console(width=max(120, shutil.get_terminal_size().columns)).print(out)
 
 

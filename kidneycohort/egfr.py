@@ -84,7 +84,6 @@ def _check_ids(value: list[str]) -> list[str]:
 class AgeBand(RuleModel):
     """Equations used for samples taken at ages in ``[min_age, max_age)``."""
 
-
     min_age: float = Field(default=0.0, description="Lowest age of the band (inclusive).")
     max_age: float | None = Field(
         default=None, description="Age where the band ends (exclusive); none = no limit."
@@ -108,7 +107,6 @@ class EgfrRule(RuleModel):
     >>> rule.all_equations()
     ['ckid_u25_cr', 'ckd_epi_2021_cr']
     """
-
 
     equations: list[str] = Field(
         default_factory=lambda: ["ckd_epi_2021_cr"],

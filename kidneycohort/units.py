@@ -2,12 +2,14 @@
 
 Standard units used inside kidneycohort:
 
-* serum creatinine: mg/dL (1 mg/dL = 88.4 umol/L = 0.0884 mmol/L; molar mass of
-  creatinine 113.12 g/mol, so 10 000 / 113.12 = 88.4 — common practice, the factor
-  printed in KDIGO 2012 and in the CKD-EPI papers),
+* serum creatinine: mg/dL (1 mg/dL = 88.4 umol/L = 0.0884 mmol/L; 10 000 / 113.12,
+  the molar mass of creatinine in g/mol),
 * serum cystatin C: mg/L (reported in mg/L almost everywhere; 1 mg/dL = 10 mg/L),
-* urine albumin/creatinine ratio (UACR): mg/g (1 mg/mmol = 8.84 mg/g, the
-  KDIGO 2012 guideline's A1/A2/A3 table gives 3 mg/mmol ~ 30 mg/g; 1 g/g = 1000 mg/g).
+* urine albumin/creatinine ratio (UACR): mg/g (1 mg/mmol = 8.84 mg/g; 1 g/g = 1000 mg/g).
+
+The two kidney-specific factors, :data:`CREATININE_UMOL_PER_MG_DL` and
+:data:`UACR_MG_G_PER_MG_MMOL`, are registered with their provenance in
+:mod:`kidneycohort.provenance` (ids ``units.*``); the others are SI prefixes.
 
 Spellings are normalised before lookup: case, spaces, the micro sign (U+00B5) and the
 Greek small mu (U+03BC) are folded to ``u``, and UCUM codes (``umol/L``, ``mg/dL``,

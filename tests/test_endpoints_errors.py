@@ -133,7 +133,10 @@ def test_no_definitions() -> None:
             {"kind": "egfr_decline", "percent": 120},
             r"endpoints\.0\.egfr_decline\.percent: .*less than 100 \(got 120\)",
         ),
-        ({"kind": "egfr_decline", "percnt": 40}, r"unknown key 'percnt' \(did you mean 'percent'\?\)$"),
+        (
+            {"kind": "egfr_decline", "percnt": 40},
+            r"unknown key 'percnt' \(did you mean 'percent'\?\)$",
+        ),
         (
             {"kind": "egfr_decline", "percent": 40, "rule": {"confirm_after_day": 30}},
             r"rule: unknown key 'confirm_after_day' \(did you mean 'confirm_after_days'",

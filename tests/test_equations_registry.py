@@ -139,7 +139,9 @@ def test_reasons_above_range_and_outside_domain() -> None:
 
 
 def test_outside_age_opt_in_gives_the_formula_value() -> None:
-    # 2021 creatinine formula at 16, computed by hand (Inker 2021 coefficients)
+    # 2021 creatinine formula at 16, computed by hand (Inker 2021 coefficients, from
+    # memory: arithmetic re-check of the implementation; coefficients recalled, not an independent
+    # check)
     assert math.isnan(eq.evaluate("ckd_epi_2021_cr", creatinine_mg_dl=0.8, age=16, sex="male"))
     got = eq.evaluate(
         "ckd_epi_2021_cr", creatinine_mg_dl=0.8, age=16, sex="male", allow_outside_age=True
@@ -264,7 +266,8 @@ def test_evaluate_of_solve_returns_the_target(equation_id: str) -> None:
 
 def test_solve_scalar_and_closed_form_by_hand() -> None:
     # Inker 2021: above the knot eGFR = 142 (S/0.7)^-1.2 0.9938^age 1.012 (female),
-    # so S = 0.7 (eGFR / (142 0.9938^age 1.012))^(-1/1.2)
+    # so S = 0.7 (eGFR / (142 0.9938^age 1.012))^(-1/1.2). From memory: an arithmetic
+    # re-check of the implementation; coefficients recalled, not an independent check.
     got = eq.solve_creatinine("ckd_epi_2021_cr", 45.0, age=60, sex="female")
     assert isinstance(got, float)
     assert got == pytest.approx(0.7 * (45.0 / (142 * 0.9938**60 * 1.012)) ** (-1 / 1.2), rel=1e-12)
@@ -299,7 +302,9 @@ def test_bisection_agrees_with_the_closed_form() -> None:
 
 
 def test_body_surface_area_and_deindexing() -> None:
-    # DuBois & DuBois 1916: 0.007184 W^0.425 H^0.725; Mosteller 1987: sqrt(H W / 3600)
+    # DuBois & DuBois 1916: 0.007184 W^0.425 H^0.725; Mosteller 1987: sqrt(H W / 3600).
+    # From memory: arithmetic re-check of the implementation; coefficients recalled, not an
+    # independent check. 1.73 m2 (de-indexing) re-read in KDIGO 2012 (bsa.standard).
     assert eq.bsa_dubois(170, 70) == pytest.approx(0.007184 * 70**0.425 * 170**0.725, rel=1e-12)
     assert eq.bsa_mosteller(170, 70) == pytest.approx(math.sqrt(170 * 70 / 3600), rel=1e-12)
     # both give about 1.81 m2 for 170 cm / 70 kg (published tables, from memory)
@@ -343,3 +348,45 @@ def test_cli_lists_equations_as_json() -> None:
         set(r) == {"id", "label", "inputs", "ages", "unit", "population", "reference"} for r in rows
     )
     assert {r["unit"] for r in rows} == {"mL/min/1.73 m2", "mL/min"}
+
+
+def test_cli_sources_table_lists_constants_and_counts_recalled() -> None:
+    from kidneycohort.provenance import CONSTANTS, RECALLED_CAUTION, status_counts
+
+    # wide terminal so that no id is folded across lines
+    result = CliRunner(env={"COLUMNS": "400"}).invoke(cli, ["equations", "--sources"])
+    assert result.exit_code == 0, result.output
+    for constant in CONSTANTS:
+        assert constant.id in result.output
+    counts = status_counts()
+    assert counts["recalled"] == sum(c.status == "recalled" for c in CONSTANTS) > 0
+    footer = (
+        f"{len(CONSTANTS)} constants: {counts['re-read']} re-read, {counts['derived']} "
+        f"derived, {counts['recalled']} recalled."
+    )
+    flat = " ".join(result.output.split())
+    assert footer in flat
+    assert RECALLED_CAUTION in flat
+    assert "Inker 2021, doi:10.1056/NEJMoa2102953" in flat
+    # the plain listing is unchanged: equations, not constants
+    plain = CliRunner(env={"COLUMNS": "400"}).invoke(cli, ["equations"])
+    assert "ckd_epi_2021_cr" in plain.output and "recalled" not in plain.output
+
+
+def test_cli_sources_as_json() -> None:
+    from kidneycohort.provenance import CONSTANTS, PUBLICATIONS, RECALLED_CAUTION
+
+    result = CliRunner().invoke(cli, ["equations", "--sources", "--format", "json"])
+    assert result.exit_code == 0, result.output
+    payload = json.loads(result.output)
+    assert set(payload) == {"constants", "publications", "counts", "caution"}
+    rows = payload["constants"]
+    assert [r["id"] for r in rows] == [c.id for c in CONSTANTS]
+    assert set(rows[0]) == {"id", "value", "unit", "publication", "where", "status", "note", "code"}
+    recalled = [r for r in rows if r["status"] == "recalled"]
+    assert payload["counts"]["recalled"] == len(recalled) > 0
+    assert sum(payload["counts"].values()) == len(rows)
+    assert payload["caution"] == RECALLED_CAUTION
+    assert {p["key"] for p in payload["publications"]} == {p.key for p in PUBLICATIONS}
+    schwartz = next(r for r in rows if r["id"] == "schwartz_bedside.k")
+    assert (schwartz["value"], schwartz["status"]) == (str(eq.pediatric.BEDSIDE_K), "re-read")

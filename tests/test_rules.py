@@ -38,7 +38,9 @@ def test_bad_value_is_one_line_with_field_and_value():
 
 
 def test_misspelt_key_suggests_the_field():
-    with pytest.raises(ConfigError, match=r"^Window: unknown key 'dayz' \(did you mean 'days'\?\)$"):
+    with pytest.raises(
+        ConfigError, match=r"^Window: unknown key 'dayz' \(did you mean 'days'\?\)$"
+    ):
         Window(dayz=3)
     with pytest.raises(ConfigError, match=r"; known: days$"):
         Window(zzzzzz=3)
@@ -47,7 +49,9 @@ def test_misspelt_key_suggests_the_field():
 def test_nested_error_keeps_the_full_path_and_the_sub_model_fields():
     with pytest.raises(ConfigError, match=r"^Plan\.windows\.1\.days: .*\(got -5\)$"):
         Plan(windows=[{"days": 1}, {"days": -5}])
-    with pytest.raises(ConfigError, match=r"^Plan\.windows\.0: unknown key 'dais' \(did you mean 'days'"):
+    with pytest.raises(
+        ConfigError, match=r"^Plan\.windows\.0: unknown key 'dais' \(did you mean 'days'"
+    ):
         Plan(windows=[{"dais": 1}])
 
 
@@ -96,9 +100,7 @@ def test_stage_options_built_in_python_raise_config_errors(build, match):
 def test_message_from_text_location_has_no_suggestion_list():
     with pytest.raises(ValidationError) as info:
         Window.model_validate({"other": 1})
-    assert rule_error_message("cfg", info.value) == (
-        "cfg: unknown key 'other'"
-    )
+    assert rule_error_message("cfg", info.value) == ("cfg: unknown key 'other'")
 
 
 class Visits(RuleModel):
@@ -129,7 +131,9 @@ def test_misspelt_key_in_a_tagged_union_suggests_the_chosen_members_fields():
     facts = error_facts(Tagged, info.value)
     assert facts.known == ("kind", "visits", "every_days")
     assert facts.suggestion == " (did you mean 'every_days'?)"
-    with pytest.raises(ConfigError, match=r"^Tagged\.schedule\.care: unknown key 'tests_per_yer' \(did you"):
+    with pytest.raises(
+        ConfigError, match=r"^Tagged\.schedule\.care: unknown key 'tests_per_yer' \(did you"
+    ):
         Tagged(schedule={"kind": "care", "tests_per_yer": 2})
 
 

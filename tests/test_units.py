@@ -1,9 +1,10 @@
 """Unit spellings and conversion factors.
 
-Factors: creatinine 1 mg/dL = 88.4 umol/L (molar mass 113.12 g/mol; the factor printed in
-KDIGO 2012 and the CKD-EPI papers); UACR 1 mg/mmol = 8.84 mg/g (KDIGO 2012: A1/A2/A3 at
-3 and 30 mg/mmol ~ 30 and 300 mg/g; 1 mmol creatinine = 113.12 mg, so 1000 / 113.12 =
-8.84); cystatin C 1 mg/dL = 10 mg/L (SI prefixes).
+Factors: creatinine 1 mg/dL = 88.4 umol/L (re-read: the KDIGO 2012 AKI guideline prints
+4.0 mg/dl as 353.6 umol/l); UACR 1 mg/mmol = 8.84 mg/g (derived: 88.4 / 10, since 1 mmol
+creatinine = 113.12 mg); cystatin C 1 mg/dL = 10 mg/L (SI prefixes). The parametrised
+conversions below type expected values with those factors: arithmetic re-checks of the
+conversion code, with the factors themselves checked in ``test_published_factors``.
 """
 
 from __future__ import annotations
@@ -17,11 +18,15 @@ from kidneycohort.errors import UnknownUnitError
 
 
 def test_published_factors() -> None:
-    assert units.CREATININE_UMOL_PER_MG_DL == 88.4
-    assert units.UACR_MG_G_PER_MG_MMOL == 8.84
-    # both follow from the molar mass of creatinine, 113.12 g/mol (common practice)
-    assert 10_000 / 113.12 == pytest.approx(88.4, abs=0.005)
-    assert 1_000 / 113.12 == pytest.approx(8.84, abs=0.0005)
+    # Independent of the constant: KDIGO clinical practice guideline for AKI (Kidney Int
+    # Suppl 2012;2:19-36), Table 2 (staging of AKI) prints serum creatinine 4.0 mg/dl as
+    # 353.6 umol/l and the 0.3 mg/dl rise as 26.5 umol/l (one decimal).
+    assert units.to_standard(353.6, "creatinine", "umol/L") == pytest.approx(4.0, rel=1e-9)
+    assert units.to_standard(26.5, "creatinine", "umol/L") == pytest.approx(0.3, abs=0.0005)
+    # the UACR factor is derived from the creatinine one: mg/mmol -> mg/g is x 88.4 / 10
+    assert units.UACR_MG_G_PER_MG_MMOL == pytest.approx(
+        units.CREATININE_UMOL_PER_MG_DL / 10, rel=1e-12
+    )
 
 
 @pytest.mark.parametrize(

@@ -4,7 +4,9 @@ One function per equation lives in a family module (``ckd_epi``, ``mdrd``, ``ekf
 ``full_age``, ``elderly``, ``pediatric``, ``clearance``); each has an
 :class:`EquationSpec` entry in :data:`REGISTRY`. The registry does the shared work:
 dispatch by id, input coercion (scalars, lists, numpy arrays, pandas or polars Series),
-validated age ranges, NaN handling and per-element reasons.
+validated age ranges, NaN handling and per-element reasons. Each family module keeps its
+published numbers as named constants at its top; where each one comes from, and whether it
+was re-read or recalled, is in :mod:`kidneycohort.provenance`.
 
 >>> from kidneycohort.equations import evaluate
 >>> round(evaluate("ckd_epi_2021_cr", creatinine_mg_dl=0.9, age=40, sex="male"), 2)

@@ -11,15 +11,34 @@ References
    doi:10.1001/archinte.1916.00080130010002
 .. [2] Mosteller RD. Simplified calculation of body-surface area. N Engl J Med.
    1987;317(17):1098. doi:10.1056/NEJM198710223171717
+
+The coefficients are the module constants below; their publication and whether each was
+re-read or recalled are recorded in :mod:`kidneycohort.provenance` (ids ``bsa.*``;
+``kidneycohort equations --sources`` lists them).
 """
 
 from __future__ import annotations
+
+from typing import Final, NamedTuple
 
 import numpy as np
 
 from kidneycohort.equations._core import ArrayLike, FloatArray, as_float_array, finish
 
-STANDARD_BSA_M2 = 1.73
+STANDARD_BSA_M2: Final = 1.73
+
+
+class DuBoisCoefficients(NamedTuple):
+    """BSA (m²) = ``constant`` × weight (kg) ^ ``weight_exponent``
+    × height (cm) ^ ``height_exponent``."""
+
+    constant: float
+    weight_exponent: float
+    height_exponent: float
+
+
+DUBOIS: Final = DuBoisCoefficients(constant=0.007184, weight_exponent=0.425, height_exponent=0.725)
+MOSTELLER_DIVISOR: Final = 3600.0  # cm·kg per m⁴
 
 
 def _positive(*arrays: FloatArray) -> np.ndarray:
@@ -39,7 +58,7 @@ def bsa_dubois(height_cm: ArrayLike, weight_kg: ArrayLike) -> FloatArray | float
     h, w = as_float_array(height_cm, "height_cm"), as_float_array(weight_kg, "weight_kg")
     ok = _positive(h, w)
     with np.errstate(all="ignore"):
-        bsa = 0.007184 * w**0.425 * h**0.725
+        bsa = DUBOIS.constant * w**DUBOIS.weight_exponent * h**DUBOIS.height_exponent
     return finish(np.where(ok, bsa, np.nan), h.ndim == 0 and w.ndim == 0)
 
 
@@ -53,7 +72,7 @@ def bsa_mosteller(height_cm: ArrayLike, weight_kg: ArrayLike) -> FloatArray | fl
     h, w = as_float_array(height_cm, "height_cm"), as_float_array(weight_kg, "weight_kg")
     ok = _positive(h, w)
     with np.errstate(all="ignore"):
-        bsa = np.sqrt(h * w / 3600.0)
+        bsa = np.sqrt(h * w / MOSTELLER_DIVISOR)
     return finish(np.where(ok, bsa, np.nan), h.ndim == 0 and w.ndim == 0)
 
 

@@ -6,6 +6,11 @@ All share one form: a constant, a two-slope power of each serum marker with a kn
 at 0.8 mg/L), an exponential age term and a sex factor. The kernels compute it in log
 space (one ``exp`` per element), which is the same number as the product form.
 
+The coefficients are the module constants below (one :class:`CkdEpiCoefficients` per
+equation); their publication, table and whether each was re-read or recalled are
+recorded in :mod:`kidneycohort.provenance` (ids ``ckd_epi.*``; ``kidneycohort equations
+--sources`` lists them).
+
 References
 ----------
 .. [1] Levey AS, Stevens LA, Schmid CH, et al. A new equation to estimate glomerular
@@ -22,7 +27,8 @@ References
 from __future__ import annotations
 
 import math
-from typing import Any
+from dataclasses import dataclass
+from typing import Any, Final
 
 import numpy as np
 
@@ -35,8 +41,77 @@ from kidneycohort.equations._core import (
 )
 
 INDEXED = "mL/min/1.73 m2"
-KAPPA_FEMALE, KAPPA_MALE = 0.7, 0.9  # mg/dL, refs [1]-[3]
-CYSTATIN_KNOT = 0.8  # mg/L, refs [2], [3]
+KAPPA_FEMALE: Final = 0.7  # creatinine knot, mg/dL
+KAPPA_MALE: Final = 0.9
+CYSTATIN_KNOT: Final = 0.8  # mg/L
+
+
+@dataclass(frozen=True)
+class CkdEpiCoefficients:
+    """The coefficients of one CKD-EPI equation (None where the equation has no such term).
+
+    ``age_factor`` is the factor per year of age, ``female_factor`` and ``black_factor``
+    multiply the estimate; the creatinine exponents apply below (``alpha_*``) and at or
+    above (``creatinine_above``) the knot :math:`\\kappa`, the cystatin C exponents below
+    and at or above :data:`CYSTATIN_KNOT`.
+    """
+
+    constant: float
+    age_factor: float
+    female_factor: float
+    alpha_female: float | None = None
+    alpha_male: float | None = None
+    creatinine_above: float | None = None
+    cystatin_below: float | None = None
+    cystatin_above: float | None = None
+    black_factor: float | None = None
+
+
+CR_2021: Final = CkdEpiCoefficients(
+    constant=142.0,
+    age_factor=0.9938,
+    female_factor=1.012,
+    alpha_female=-0.241,
+    alpha_male=-0.302,
+    creatinine_above=-1.200,
+)
+CRCYS_2021: Final = CkdEpiCoefficients(
+    constant=135.0,
+    age_factor=0.9961,
+    female_factor=0.963,
+    alpha_female=-0.219,
+    alpha_male=-0.144,
+    creatinine_above=-0.544,
+    cystatin_below=-0.323,
+    cystatin_above=-0.778,
+)
+CYS_2012: Final = CkdEpiCoefficients(
+    constant=133.0,
+    age_factor=0.996,
+    female_factor=0.932,
+    cystatin_below=-0.499,
+    cystatin_above=-1.328,
+)
+CRCYS_2012: Final = CkdEpiCoefficients(
+    constant=135.0,
+    age_factor=0.995,
+    female_factor=0.969,
+    alpha_female=-0.248,
+    alpha_male=-0.207,
+    creatinine_above=-0.601,
+    cystatin_below=-0.375,
+    cystatin_above=-0.711,
+    black_factor=1.08,
+)
+CR_2009: Final = CkdEpiCoefficients(
+    constant=141.0,
+    age_factor=0.993,
+    female_factor=1.018,
+    alpha_female=-0.329,
+    alpha_male=-0.411,
+    creatinine_above=-1.209,
+    black_factor=1.159,
+)
 
 
 def _two_slope(log_ratio: FloatArray, below: Any, above: Any) -> FloatArray:
@@ -45,15 +120,33 @@ def _two_slope(log_ratio: FloatArray, below: Any, above: Any) -> FloatArray:
 
 
 def _creatinine_term(
-    creatinine_mg_dl: FloatArray, female: BoolArray, alpha_f: float, alpha_m: float, above: float
+    c: CkdEpiCoefficients, creatinine_mg_dl: FloatArray, female: BoolArray
 ) -> FloatArray:
     kappa = np.where(female, KAPPA_FEMALE, KAPPA_MALE)
     log_ratio = np.log(creatinine_mg_dl / kappa)
-    return _two_slope(log_ratio, np.where(female, alpha_f, alpha_m), above)
+    return _two_slope(log_ratio, np.where(female, c.alpha_female, c.alpha_male), c.creatinine_above)
 
 
-def _cystatin_term(cystatin_c_mg_l: FloatArray, below: float, above: float) -> FloatArray:
-    return _two_slope(np.log(cystatin_c_mg_l / CYSTATIN_KNOT), below, above)
+def _cystatin_term(c: CkdEpiCoefficients, cystatin_c_mg_l: FloatArray) -> FloatArray:
+    return _two_slope(np.log(cystatin_c_mg_l / CYSTATIN_KNOT), c.cystatin_below, c.cystatin_above)
+
+
+def _demographic_terms(
+    c: CkdEpiCoefficients, age: FloatArray, female: BoolArray, black: BoolArray | None
+) -> FloatArray:
+    terms = (
+        math.log(c.constant)
+        + age * math.log(c.age_factor)
+        + np.where(female, math.log(c.female_factor), 0.0)
+    )
+    if black is not None and c.black_factor is not None:
+        terms = terms + np.where(black, math.log(c.black_factor), 0.0)
+    return terms
+
+
+def _creatinine_shape(c: CkdEpiCoefficients, female: BoolArray) -> tuple[Any, Any, Any]:
+    kappa = np.where(female, KAPPA_FEMALE, KAPPA_MALE)
+    return kappa, np.where(female, c.alpha_female, c.alpha_male), c.creatinine_above
 
 
 # ---------------------------------------------------------------- creatinine 2021 (race-free)
@@ -62,13 +155,10 @@ def _cystatin_term(cystatin_c_mg_l: FloatArray, below: float, above: float) -> F
 def _kernel_2021_cr(
     *, creatinine_mg_dl: FloatArray, age: FloatArray, female: BoolArray
 ) -> FloatArray:
-    log_egfr = (
-        math.log(142.0)
-        + _creatinine_term(creatinine_mg_dl, female, -0.241, -0.302, -1.200)
-        + age * math.log(0.9938)
-        + np.where(female, math.log(1.012), 0.0)
+    c = CR_2021
+    return np.exp(
+        _demographic_terms(c, age, female, None) + _creatinine_term(c, creatinine_mg_dl, female)
     )
-    return np.exp(log_egfr)
 
 
 def ckd_epi_2021_cr(
@@ -101,7 +191,7 @@ def ckd_epi_2021_cr(
 
 
 def _shape_2021_cr(*, female: BoolArray, **_: Any) -> tuple[Any, Any, Any]:
-    return np.where(female, KAPPA_FEMALE, KAPPA_MALE), np.where(female, -0.241, -0.302), -1.200
+    return _creatinine_shape(CR_2021, female)
 
 
 CKD_EPI_2021_CR = EquationSpec(
@@ -128,14 +218,12 @@ CKD_EPI_2021_CR = EquationSpec(
 def _kernel_2021_crcys(
     *, creatinine_mg_dl: FloatArray, cystatin_c_mg_l: FloatArray, age: FloatArray, female: BoolArray
 ) -> FloatArray:
-    log_egfr = (
-        math.log(135.0)
-        + _creatinine_term(creatinine_mg_dl, female, -0.219, -0.144, -0.544)
-        + _cystatin_term(cystatin_c_mg_l, -0.323, -0.778)
-        + age * math.log(0.9961)
-        + np.where(female, math.log(0.963), 0.0)
+    c = CRCYS_2021
+    return np.exp(
+        _demographic_terms(c, age, female, None)
+        + _creatinine_term(c, creatinine_mg_dl, female)
+        + _cystatin_term(c, cystatin_c_mg_l)
     )
-    return np.exp(log_egfr)
 
 
 def ckd_epi_2021_crcys(
@@ -174,11 +262,11 @@ def ckd_epi_2021_crcys(
 
 
 def _shape_2021_crcys_cr(*, female: BoolArray, **_: Any) -> tuple[Any, Any, Any]:
-    return np.where(female, KAPPA_FEMALE, KAPPA_MALE), np.where(female, -0.219, -0.144), -0.544
+    return _creatinine_shape(CRCYS_2021, female)
 
 
 def _shape_2021_crcys_cys(**_: Any) -> tuple[Any, Any, Any]:
-    return CYSTATIN_KNOT, -0.323, -0.778
+    return CYSTATIN_KNOT, CRCYS_2021.cystatin_below, CRCYS_2021.cystatin_above
 
 
 CKD_EPI_2021_CRCYS = EquationSpec(
@@ -206,13 +294,8 @@ CKD_EPI_2021_CRCYS = EquationSpec(
 def _kernel_2012_cys(
     *, cystatin_c_mg_l: FloatArray, age: FloatArray, female: BoolArray
 ) -> FloatArray:
-    log_egfr = (
-        math.log(133.0)
-        + _cystatin_term(cystatin_c_mg_l, -0.499, -1.328)
-        + age * math.log(0.996)
-        + np.where(female, math.log(0.932), 0.0)
-    )
-    return np.exp(log_egfr)
+    c = CYS_2012
+    return np.exp(_demographic_terms(c, age, female, None) + _cystatin_term(c, cystatin_c_mg_l))
 
 
 def ckd_epi_2012_cys(
@@ -244,7 +327,7 @@ def ckd_epi_2012_cys(
 
 
 def _shape_2012_cys(**_: Any) -> tuple[Any, Any, Any]:
-    return CYSTATIN_KNOT, -0.499, -1.328
+    return CYSTATIN_KNOT, CYS_2012.cystatin_below, CYS_2012.cystatin_above
 
 
 CKD_EPI_2012_CYS = EquationSpec(
@@ -275,16 +358,12 @@ def _kernel_2012_crcys(
     female: BoolArray,
     black: BoolArray | None = None,
 ) -> FloatArray:
-    log_egfr = (
-        math.log(135.0)
-        + _creatinine_term(creatinine_mg_dl, female, -0.248, -0.207, -0.601)
-        + _cystatin_term(cystatin_c_mg_l, -0.375, -0.711)
-        + age * math.log(0.995)
-        + np.where(female, math.log(0.969), 0.0)
+    c = CRCYS_2012
+    return np.exp(
+        _demographic_terms(c, age, female, black)
+        + _creatinine_term(c, creatinine_mg_dl, female)
+        + _cystatin_term(c, cystatin_c_mg_l)
     )
-    if black is not None:
-        log_egfr = log_egfr + np.where(black, math.log(1.08), 0.0)
-    return np.exp(log_egfr)
 
 
 def ckd_epi_2012_crcys(
@@ -334,11 +413,11 @@ def ckd_epi_2012_crcys(
 
 
 def _shape_2012_crcys_cr(*, female: BoolArray, **_: Any) -> tuple[Any, Any, Any]:
-    return np.where(female, KAPPA_FEMALE, KAPPA_MALE), np.where(female, -0.248, -0.207), -0.601
+    return _creatinine_shape(CRCYS_2012, female)
 
 
 def _shape_2012_crcys_cys(**_: Any) -> tuple[Any, Any, Any]:
-    return CYSTATIN_KNOT, -0.375, -0.711
+    return CYSTATIN_KNOT, CRCYS_2012.cystatin_below, CRCYS_2012.cystatin_above
 
 
 CKD_EPI_2012_CRCYS = EquationSpec(
@@ -371,15 +450,10 @@ def _kernel_2009_cr(
     female: BoolArray,
     black: BoolArray | None = None,
 ) -> FloatArray:
-    log_egfr = (
-        math.log(141.0)
-        + _creatinine_term(creatinine_mg_dl, female, -0.329, -0.411, -1.209)
-        + age * math.log(0.993)
-        + np.where(female, math.log(1.018), 0.0)
+    c = CR_2009
+    return np.exp(
+        _demographic_terms(c, age, female, black) + _creatinine_term(c, creatinine_mg_dl, female)
     )
-    if black is not None:
-        log_egfr = log_egfr + np.where(black, math.log(1.159), 0.0)
-    return np.exp(log_egfr)
 
 
 def ckd_epi_2009_cr(
@@ -419,7 +493,7 @@ def ckd_epi_2009_cr(
 
 
 def _shape_2009_cr(*, female: BoolArray, **_: Any) -> tuple[Any, Any, Any]:
-    return np.where(female, KAPPA_FEMALE, KAPPA_MALE), np.where(female, -0.329, -0.411), -1.209
+    return _creatinine_shape(CR_2009, female)
 
 
 CKD_EPI_2009_CR = EquationSpec(

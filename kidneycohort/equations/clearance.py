@@ -4,11 +4,15 @@ References
 ----------
 .. [1] Cockcroft DW, Gault MH. Prediction of creatinine clearance from serum creatinine.
    Nephron. 1976;16(1):31-41. doi:10.1159/000180580
+
+The constants are the module constants below; their publication and whether each was
+re-read or recalled are recorded in :mod:`kidneycohort.provenance` (ids
+``cockcroft_gault.*``; ``kidneycohort equations --sources`` lists them).
 """
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Final
 
 import numpy as np
 
@@ -20,12 +24,21 @@ from kidneycohort.equations._core import (
     call_formula,
 )
 
+AGE_OFFSET: Final = 140.0  # years: (AGE_OFFSET - age)
+DIVISOR: Final = 72.0
+FEMALE_FACTOR: Final = 0.85
+
 
 def _kernel(
     *, creatinine_mg_dl: FloatArray, age: FloatArray, weight_kg: FloatArray, female: BoolArray
 ) -> FloatArray:
     # ages of 140 and over give a non-positive clearance: outside the formula's domain
-    return (140.0 - age) * weight_kg / (72.0 * creatinine_mg_dl) * np.where(female, 0.85, 1.0)
+    return (
+        (AGE_OFFSET - age)
+        * weight_kg
+        / (DIVISOR * creatinine_mg_dl)
+        * np.where(female, FEMALE_FACTOR, 1.0)
+    )
 
 
 def cockcroft_gault(

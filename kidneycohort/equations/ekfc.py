@@ -13,12 +13,17 @@ References
 .. [2] Pottel H, Björk J, Rule AD, et al. Cystatin C-based equation to estimate GFR
    without the inclusion of race and sex. N Engl J Med. 2023;388(4):333-343.
    doi:10.1056/NEJMoa2203769
+
+The coefficients, Q values and age limits are the module constants below; their
+publication, table and whether each was re-read or recalled are recorded in
+:mod:`kidneycohort.provenance` (ids ``ekfc.*``; ``kidneycohort equations --sources``
+lists them).
 """
 
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, Final, NamedTuple
 
 import numpy as np
 
@@ -32,12 +37,40 @@ from kidneycohort.equations._core import (
 from kidneycohort.units import CREATININE_UMOL_PER_MG_DL
 
 INDEXED = "mL/min/1.73 m2"
-CONSTANT = 107.3
-EXPONENT_BELOW, EXPONENT_ABOVE = -0.322, -1.132
-AGE_FACTOR = 0.990  # per year above 40
-ADULT_Q_UMOL_FEMALE, ADULT_Q_UMOL_MALE = 62.0, 80.0  # ref [1], from age 25
-CYSTATIN_Q = 0.83  # mg/L up to age 50, ref [2] (from memory)
-CYSTATIN_Q_SLOPE = 0.005  # mg/L per year above 50, ref [2] (from memory)
+CONSTANT: Final = 107.3
+EXPONENT_BELOW: Final = -0.322
+EXPONENT_ABOVE: Final = -1.132
+AGE_FACTOR: Final = 0.990  # per year above AGE_TERM_FROM
+AGE_TERM_FROM: Final = 40.0  # years
+ADULT_Q_FROM_AGE: Final = 25.0  # years; the paediatric Q applies below
+ADULT_Q_UMOL_FEMALE: Final = 62.0  # umol/L
+ADULT_Q_UMOL_MALE: Final = 80.0
+CYSTATIN_Q: Final = 0.83  # mg/L up to CYSTATIN_Q_FLAT_UNTIL
+CYSTATIN_Q_FLAT_UNTIL: Final = 50.0  # years
+CYSTATIN_Q_SLOPE: Final = 0.005  # mg/L per year above CYSTATIN_Q_FLAT_UNTIL
+
+
+class LogQPolynomial(NamedTuple):
+    """Coefficients of ln Q (Q in umol/L) as a polynomial in age :math:`a` and ln a."""
+
+    intercept: float
+    age: float
+    log_age: float
+    age_squared: float
+    age_cubed: float
+
+    def __call__(self, a: FloatArray, log_a: FloatArray) -> FloatArray:
+        return (
+            self.intercept
+            + self.age * a
+            + self.log_age * log_a
+            + self.age_squared * a**2
+            + self.age_cubed * a**3
+        )
+
+
+CHILD_LOG_Q_MALE: Final = LogQPolynomial(3.200, 0.259, -0.543, -0.00763, 0.0000790)
+CHILD_LOG_Q_FEMALE: Final = LogQPolynomial(3.080, 0.177, -0.223, -0.00596, 0.0000686)
 
 
 def creatinine_q_mg_dl(age: ArrayLike, female: ArrayLike) -> FloatArray:
@@ -50,35 +83,34 @@ def creatinine_q_mg_dl(age: ArrayLike, female: ArrayLike) -> FloatArray:
 
         \ln Q_{female} = 3.080 + 0.177\,a - 0.223 \ln a - 0.00596\,a^2 + 0.0000686\,a^3
 
-    Coefficients from memory of ref. [1]; they reproduce the adult values at 25 to
-    within 1 %. Converted to mg/dL with 88.4 µmol/L per mg/dL.
+    The polynomials (:data:`CHILD_LOG_Q_MALE`, :data:`CHILD_LOG_Q_FEMALE`) meet the
+    adult values at 25 to within 1.5 %. Converted to mg/dL with 88.4 µmol/L per mg/dL.
     """
     a = np.asarray(age, dtype=np.float64)
     f = np.asarray(female, dtype=bool)
     with np.errstate(all="ignore"):
         log_a = np.log(a)
-        child_male = 3.200 + 0.259 * a - 0.543 * log_a - 0.00763 * a**2 + 0.0000790 * a**3
-        child_female = 3.080 + 0.177 * a - 0.223 * log_a - 0.00596 * a**2 + 0.0000686 * a**3
-        child = np.exp(np.where(f, child_female, child_male))
+        child_log_q = np.where(f, CHILD_LOG_Q_FEMALE(a, log_a), CHILD_LOG_Q_MALE(a, log_a))
+        child = np.exp(child_log_q)
     adult = np.where(f, ADULT_Q_UMOL_FEMALE, ADULT_Q_UMOL_MALE)
-    return np.where(a < 25, child, adult) / CREATININE_UMOL_PER_MG_DL
+    return np.where(a < ADULT_Q_FROM_AGE, child, adult) / CREATININE_UMOL_PER_MG_DL
 
 
 def cystatin_q_mg_l(age: ArrayLike) -> FloatArray:
-    r"""Q for cystatin C (mg/L), sex-independent (ref. [2], from memory).
+    r"""Q for cystatin C (mg/L), sex-independent (ref. [2]).
 
     .. math::
         Q = 0.83 \ (age \le 50), \qquad Q = 0.83 + 0.005\,(age - 50) \ (age > 50)
     """
     a = np.asarray(age, dtype=np.float64)
-    return CYSTATIN_Q + CYSTATIN_Q_SLOPE * np.maximum(a - 50.0, 0.0)
+    return CYSTATIN_Q + CYSTATIN_Q_SLOPE * np.maximum(a - CYSTATIN_Q_FLAT_UNTIL, 0.0)
 
 
 def _ekfc(log_ratio: FloatArray, age: FloatArray) -> FloatArray:
     log_egfr = (
         math.log(CONSTANT)
         + log_ratio * np.where(log_ratio < 0, EXPONENT_BELOW, EXPONENT_ABOVE)
-        + np.maximum(age - 40.0, 0.0) * math.log(AGE_FACTOR)
+        + np.maximum(age - AGE_TERM_FROM, 0.0) * math.log(AGE_FACTOR)
     )
     return np.exp(log_egfr)
 
@@ -99,7 +131,7 @@ def ekfc_cr(creatinine_mg_dl: ArrayLike, age: ArrayLike, sex: ArrayLike) -> Floa
         \qquad \alpha = -0.322\ (S_{cr}/Q < 1),\ -1.132\ (S_{cr}/Q \ge 1)
 
     Q from :func:`creatinine_q_mg_dl` (age- and sex-dependent below 25).
-    Validated from age 2 (constants from memory of ref. [1]).
+    Validated from age 2.
 
     Parameters
     ----------
@@ -125,7 +157,7 @@ def ekfc_cys(cystatin_c_mg_l: ArrayLike, age: ArrayLike) -> FloatArray | float:
         eGFR = 107.3 \times (S_{cys}/Q)^{\alpha} \times 0.990^{\max(age - 40,\,0)},
         \qquad \alpha = -0.322\ (S_{cys}/Q < 1),\ -1.132\ (S_{cys}/Q \ge 1)
 
-    Q from :func:`cystatin_q_mg_l`. Constants from memory of ref. [2].
+    Q from :func:`cystatin_q_mg_l`.
 
     Parameters
     ----------

@@ -9,12 +9,16 @@ References
 .. [2] Björk J, Grubb A, Sterner G, Nyman U. Revised equations for estimating glomerular
    filtration rate based on the Lund-Malmö Study cohort. Scand J Clin Lab Invest.
    2011;71(3):232-239. doi:10.3109/00365513.2011.557086
+
+The coefficients are the module constants below; their publication, table and whether
+each was re-read or recalled are recorded in :mod:`kidneycohort.provenance` (ids
+``bis1.*`` and ``lmr.*``; ``kidneycohort equations --sources`` lists them).
 """
 
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, Final, NamedTuple
 
 import numpy as np
 
@@ -29,13 +33,33 @@ from kidneycohort.units import CREATININE_UMOL_PER_MG_DL
 
 INDEXED = "mL/min/1.73 m2"
 
+BIS1_CONSTANT: Final = 3736.0
+BIS1_CREATININE_EXPONENT: Final = -0.87
+BIS1_AGE_EXPONENT: Final = -0.95
+BIS1_FEMALE_FACTOR: Final = 0.82
+
+
+class LundMalmoSex(NamedTuple):
+    """The sex-specific part of the revised Lund-Malmö X term (creatinine in umol/L)."""
+
+    knot_umol: float
+    base: float
+    linear_slope: float
+
+
+LMR_FEMALE: Final = LundMalmoSex(knot_umol=150.0, base=2.50, linear_slope=0.0121)
+LMR_MALE: Final = LundMalmoSex(knot_umol=180.0, base=2.56, linear_slope=0.00968)
+LMR_LOG_SLOPE: Final = -0.926  # coefficient of ln(p / knot) at or above the knot
+LMR_AGE_COEFFICIENT: Final = -0.0158
+LMR_LOG_AGE_COEFFICIENT: Final = 0.438
+
 
 def _kernel_bis1(*, creatinine_mg_dl: FloatArray, age: FloatArray, female: BoolArray) -> FloatArray:
     log_egfr = (
-        math.log(3736.0)
-        - 0.87 * np.log(creatinine_mg_dl)
-        - 0.95 * np.log(age)
-        + np.where(female, math.log(0.82), 0.0)
+        math.log(BIS1_CONSTANT)
+        + BIS1_CREATININE_EXPONENT * np.log(creatinine_mg_dl)
+        + BIS1_AGE_EXPONENT * np.log(age)
+        + np.where(female, math.log(BIS1_FEMALE_FACTOR), 0.0)
     )
     return np.exp(log_egfr)
 
@@ -66,20 +90,20 @@ def bis1_cr(creatinine_mg_dl: ArrayLike, age: ArrayLike, sex: ArrayLike) -> Floa
 
 
 def _shape_bis1(**_: Any) -> tuple[Any, Any, Any]:
-    return 1.0, -0.87, -0.87
+    return 1.0, BIS1_CREATININE_EXPONENT, BIS1_CREATININE_EXPONENT
 
 
 def _kernel_lmr(*, creatinine_mg_dl: FloatArray, age: FloatArray, female: BoolArray) -> FloatArray:
     p_cr = creatinine_mg_dl * CREATININE_UMOL_PER_MG_DL
-    knot = np.where(female, 150.0, 180.0)
-    base = np.where(female, 2.50, 2.56)
-    linear_slope = np.where(female, 0.0121, 0.00968)
+    knot = np.where(female, LMR_FEMALE.knot_umol, LMR_MALE.knot_umol)
+    base = np.where(female, LMR_FEMALE.base, LMR_MALE.base)
+    linear_slope = np.where(female, LMR_FEMALE.linear_slope, LMR_MALE.linear_slope)
     x = np.where(
         p_cr < knot,
         base + linear_slope * (knot - p_cr),
-        base - 0.926 * np.log(p_cr / knot),
+        base + LMR_LOG_SLOPE * np.log(p_cr / knot),
     )
-    return np.exp(x - 0.0158 * age + 0.438 * np.log(age))
+    return np.exp(x + LMR_AGE_COEFFICIENT * age + LMR_LOG_AGE_COEFFICIENT * np.log(age))
 
 
 def lmr_cr(creatinine_mg_dl: ArrayLike, age: ArrayLike, sex: ArrayLike) -> FloatArray | float:
@@ -95,7 +119,7 @@ def lmr_cr(creatinine_mg_dl: ArrayLike, age: ArrayLike, sex: ArrayLike) -> Float
     * male, :math:`p < 180`: :math:`X = 2.56 + 0.00968\,(180 - p)`
     * male, :math:`p \ge 180`: :math:`X = 2.56 - 0.926 \ln(p/180)`
 
-    Coefficients from memory of ref. [2]. Adults (18+).
+    Adults (18+).
 
     Parameters
     ----------

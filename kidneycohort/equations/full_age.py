@@ -5,12 +5,16 @@ References
 .. [1] Pottel H, Hoste L, Dubourg L, et al. An estimated glomerular filtration rate
    equation for the full age spectrum. Nephrol Dial Transplant. 2016;31(5):798-806.
    doi:10.1093/ndt/gfv454
+
+The coefficients are the module constants below; their publication, table and whether
+each was re-read or recalled are recorded in :mod:`kidneycohort.provenance` (ids
+``fas.*``; ``kidneycohort equations --sources`` lists them).
 """
 
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, Final
 
 import numpy as np
 
@@ -23,15 +27,20 @@ from kidneycohort.equations._core import (
 )
 
 INDEXED = "mL/min/1.73 m2"
-CONSTANT = 107.3
-AGE_FACTOR = 0.988  # per year above 40
-ADULT_Q_FEMALE, ADULT_Q_MALE = 0.70, 0.90  # mg/dL
+CONSTANT: Final = 107.3
+AGE_FACTOR: Final = 0.988  # per year above AGE_TERM_FROM
+AGE_TERM_FROM: Final = 40.0  # years
+ADULT_Q_FEMALE: Final = 0.70  # mg/dL
+ADULT_Q_MALE: Final = 0.90
 
 
 def _kernel(*, creatinine_mg_dl: FloatArray, age: FloatArray, female: BoolArray) -> FloatArray:
     q = np.where(female, ADULT_Q_FEMALE, ADULT_Q_MALE)
     return (
-        CONSTANT * q / creatinine_mg_dl * np.exp(np.maximum(age - 40.0, 0.0) * math.log(AGE_FACTOR))
+        CONSTANT
+        * q
+        / creatinine_mg_dl
+        * np.exp(np.maximum(age - AGE_TERM_FROM, 0.0) * math.log(AGE_FACTOR))
     )
 
 

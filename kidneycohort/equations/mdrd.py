@@ -11,12 +11,16 @@ References
    1999;130(6):461-470. doi:10.7326/0003-4819-130-6-199903160-00002 (the 4-variable
    form with 186 was published as Levey AS, Greene T, Kusek JW, Beck GJ, J Am Soc
    Nephrol. 2000;11:155A, abstract).
+
+The coefficients are the module constants below; their publication, table and whether
+each was re-read or recalled are recorded in :mod:`kidneycohort.provenance` (ids
+``mdrd.*``; ``kidneycohort equations --sources`` lists them).
 """
 
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, Final, NamedTuple
 
 import numpy as np
 
@@ -29,27 +33,39 @@ from kidneycohort.equations._core import (
 )
 
 INDEXED = "mL/min/1.73 m2"
-CREATININE_EXPONENT = -1.154
-AGE_EXPONENT = -0.203
-FEMALE_FACTOR = 0.742
+CREATININE_EXPONENT: Final = -1.154
+AGE_EXPONENT: Final = -0.203
+FEMALE_FACTOR: Final = 0.742
+
+
+class MdrdVariant(NamedTuple):
+    """Leading constant and legacy race factor of one creatinine calibration."""
+
+    constant: float
+    black_factor: float
+
+
+IDMS: Final = MdrdVariant(constant=175.0, black_factor=1.212)
+"""IDMS-traceable creatinine (ref. [1])."""
+NON_IDMS: Final = MdrdVariant(constant=186.0, black_factor=1.210)
+"""Creatinine from assays not traceable to IDMS (ref. [2])."""
 
 
 def _mdrd(
-    constant: float,
-    race_factor: float,
+    variant: MdrdVariant,
     creatinine_mg_dl: FloatArray,
     age: FloatArray,
     female: BoolArray,
     black: BoolArray | None,
 ) -> FloatArray:
     log_egfr = (
-        math.log(constant)
+        math.log(variant.constant)
         + CREATININE_EXPONENT * np.log(creatinine_mg_dl)
         + AGE_EXPONENT * np.log(age)
         + np.where(female, math.log(FEMALE_FACTOR), 0.0)
     )
     if black is not None:
-        log_egfr = log_egfr + np.where(black, math.log(race_factor), 0.0)
+        log_egfr = log_egfr + np.where(black, math.log(variant.black_factor), 0.0)
     return np.exp(log_egfr)
 
 
@@ -60,7 +76,7 @@ def _kernel_175(
     female: BoolArray,
     black: BoolArray | None = None,
 ) -> FloatArray:
-    return _mdrd(175.0, 1.212, creatinine_mg_dl, age, female, black)
+    return _mdrd(IDMS, creatinine_mg_dl, age, female, black)
 
 
 def _kernel_186(
@@ -70,7 +86,7 @@ def _kernel_186(
     female: BoolArray,
     black: BoolArray | None = None,
 ) -> FloatArray:
-    return _mdrd(186.0, 1.210, creatinine_mg_dl, age, female, black)
+    return _mdrd(NON_IDMS, creatinine_mg_dl, age, female, black)
 
 
 def mdrd_175(

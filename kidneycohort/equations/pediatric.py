@@ -8,11 +8,16 @@ References
    sex-dependent clinical equations to estimate glomerular filtration rates in children
    and young adults with chronic kidney disease. Kidney Int. 2021;99(4):948-956.
    doi:10.1016/j.kint.2020.10.047
+
+The coefficients and age limits are the module constants below; their publication,
+table and whether each was re-read or recalled are recorded in
+:mod:`kidneycohort.provenance` (ids ``schwartz_bedside.*`` and ``ckid_u25.*``;
+``kidneycohort equations --sources`` lists them).
 """
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Final, NamedTuple
 
 import numpy as np
 
@@ -25,7 +30,44 @@ from kidneycohort.equations._core import (
 )
 
 INDEXED = "mL/min/1.73 m2"
-BEDSIDE_K = 0.413
+BEDSIDE_K: Final = 0.413  # with height in cm
+
+
+class U25Coefficient(NamedTuple):
+    r"""One sex's CKiD U25 K: :math:`base \times rate^{age - pivot}` below 18, ``adult`` after.
+
+    ``rate_below`` applies below ``pivot_age``, ``rate_above`` from ``pivot_age`` to 18.
+    """
+
+    base: float
+    pivot_age: float
+    rate_below: float
+    rate_above: float
+    adult: float
+
+
+U25_ADULT_FROM_AGE: Final = 18.0  # years: K is constant from here
+U25_CREATININE_MALE: Final = U25Coefficient(39.0, 12.0, 1.008, 1.045, 50.8)
+U25_CREATININE_FEMALE: Final = U25Coefficient(36.1, 12.0, 1.008, 1.023, 41.4)
+U25_CYSTATIN_MALE: Final = U25Coefficient(87.2, 15.0, 1.011, 0.960, 77.1)
+U25_CYSTATIN_FEMALE: Final = U25Coefficient(79.9, 12.0, 1.004, 0.974, 68.3)
+
+
+def _u25_k(
+    age: ArrayLike, female: ArrayLike, k_female: U25Coefficient, k_male: U25Coefficient
+) -> FloatArray:
+    a = np.asarray(age, dtype=np.float64)
+    f = np.asarray(female, dtype=bool)
+    pivot = np.where(f, k_female.pivot_age, k_male.pivot_age)
+    base = np.where(f, k_female.base, k_male.base)
+    rate = np.where(
+        a < pivot,
+        np.where(f, k_female.rate_below, k_male.rate_below),
+        np.where(f, k_female.rate_above, k_male.rate_above),
+    )
+    with np.errstate(all="ignore"):
+        k = base * rate ** (a - pivot)
+    return np.where(a >= U25_ADULT_FROM_AGE, np.where(f, k_female.adult, k_male.adult), k)
 
 
 def _kernel_bedside(
@@ -76,14 +118,7 @@ def ckid_u25_creatinine_k(age: ArrayLike, female: ArrayLike) -> FloatArray:
         K_{female} = \begin{cases} 36.1 \times 1.008^{age-12} & age < 12 \\
         36.1 \times 1.023^{age-12} & 12 \le age < 18 \\ 41.4 & age \ge 18 \end{cases}
     """
-    a = np.asarray(age, dtype=np.float64)
-    f = np.asarray(female, dtype=bool)
-    base = np.where(f, 36.1, 39.0)
-    teen_rate = np.where(f, 1.023, 1.045)
-    rate = np.where(a < 12, 1.008, teen_rate)
-    with np.errstate(all="ignore"):
-        k = base * rate ** (a - 12.0)
-    return np.where(a >= 18, np.where(f, 41.4, 50.8), k)
+    return _u25_k(age, female, U25_CREATININE_FEMALE, U25_CREATININE_MALE)
 
 
 def ckid_u25_cystatin_k(age: ArrayLike, female: ArrayLike) -> FloatArray:
@@ -96,14 +131,7 @@ def ckid_u25_cystatin_k(age: ArrayLike, female: ArrayLike) -> FloatArray:
         K_{female} = \begin{cases} 79.9 \times 1.004^{age-12} & age < 12 \\
         79.9 \times 0.974^{age-12} & 12 \le age < 18 \\ 68.3 & age \ge 18 \end{cases}
     """
-    a = np.asarray(age, dtype=np.float64)
-    f = np.asarray(female, dtype=bool)
-    pivot = np.where(f, 12.0, 15.0)
-    base = np.where(f, 79.9, 87.2)
-    rate = np.where(a < pivot, np.where(f, 1.004, 1.011), np.where(f, 0.974, 0.960))
-    with np.errstate(all="ignore"):
-        k = base * rate ** (a - pivot)
-    return np.where(a >= 18, np.where(f, 68.3, 77.1), k)
+    return _u25_k(age, female, U25_CYSTATIN_FEMALE, U25_CYSTATIN_MALE)
 
 
 def _kernel_u25_cr(

@@ -51,7 +51,6 @@ MERGE_REASONS: Final = ("exact_duplicate", "same_day_collapsed")
 class PlausibleRange(RuleModel):
     """Closed range ``[low, high]`` of plausible results of one analyte, in ``unit``."""
 
-
     low: float = Field(description="Lowest plausible result (inclusive).")
     high: float = Field(description="Highest plausible result (inclusive).")
     unit: str = Field(description="Unit of low and high; any known unit of the analyte.")
@@ -82,7 +81,6 @@ class HarmonizeRule(RuleModel):
     >>> HarmonizeRule(same_day_rule="first", qualified_values="reject").same_day_rule
     'first'
     """
-
 
     qualified_values: Literal["keep", "reject"] = Field(
         default="keep",

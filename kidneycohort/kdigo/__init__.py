@@ -4,7 +4,9 @@ Categories (KDIGO 2012 CKD guideline, Tables 5 and 6 and Figure 2; unchanged in 
 ---------------------------------------------------------------------------------------
 GFR (mL/min/1.73 m2): G1 >= 90, G2 60-89, G3a 45-59, G3b 30-44, G4 15-29, G5 < 15.
 Albuminuria (UACR): A1 < 30 mg/g (< 3 mg/mmol), A2 30-300 mg/g (3-30 mg/mmol),
-A3 > 300 mg/g (> 30 mg/mmol).
+A3 > 300 mg/g (> 30 mg/mmol). The bounds, the prognosis grid and the defaults below that
+come from the guideline are registered with their provenance in
+:mod:`kidneycohort.provenance` (ids ``kdigo.*``).
 
 **Non-integer eGFR.** The guideline writes the G ranges with integers (60-89) but
 defines them by thresholds: CKD is "GFR < 60", G1 is ">= 90", G5 "< 15". We apply

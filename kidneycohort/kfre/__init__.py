@@ -19,10 +19,11 @@ region                       S0(2 yr)   S0(5 yr)
 ``non_north_american``       0.9832     0.9365
 ============================ ========== ==========
 
-**From memory**: every number in this docstring and in :data:`COEFFICIENTS`,
-:data:`CENTRES` and :data:`BASELINE_SURVIVAL` was recalled, not re-read from the
-papers; check them against [1]_ (model 3, 4 variables) and [2]_ (Table 3 / eTable)
-before publication.
+The numbers above are the module constants :data:`COEFFICIENTS`, :data:`CENTRES`,
+:data:`BASELINE_SURVIVAL` and the applicability limits; their publication, table and
+whether each was re-read or recalled are recorded in :mod:`kidneycohort.provenance`
+(ids ``kfre.*``; ``kidneycohort equations --sources`` lists them and counts the recalled
+ones, which must be checked against [1]_ and [2]_ before publication use).
 
 Applicability (enforced): the equation was developed and validated in adults with CKD
 G3-G5 (eGFR < 60 mL/min/1.73 m2) not yet on kidney replacement therapy. A row outside
@@ -46,7 +47,9 @@ from kidneycohort.kfre._equation import (
     BASELINE_SURVIVAL,
     CENTRES,
     COEFFICIENTS,
+    EGFR_BELOW,
     KFRE_REASONS,
+    MIN_AGE_YEARS,
     Region,
     add_kfre_risk,
     kfre_risk,
@@ -65,8 +68,10 @@ __all__ = [
     "BASELINE_SURVIVAL",
     "CENTRES",
     "COEFFICIENTS",
+    "EGFR_BELOW",
     "KFRE_REASONS",
     "KFRE_SUMMARY_REASONS",
+    "MIN_AGE_YEARS",
     "ON_KFRT",
     "Region",
     "add_kfre_risk",

@@ -20,8 +20,8 @@ logger = logging.getLogger(__name__)
 Region = Literal["north_american", "non_north_american"]
 
 
-# from memory (Tangri 2011, 4-variable model): per 10 years of age, male sex,
-# per 5 mL/min/1.73 m2 of eGFR, per natural-log unit of UACR in mg/g
+# per 10 years of age, male sex, per 5 mL/min/1.73 m2 of eGFR, per natural-log unit of
+# UACR in mg/g (Tangri 2011, 4-variable model)
 COEFFICIENTS: Final[dict[str, float]] = {
     "age_per_10y": -0.2201,
     "male": 0.2467,
@@ -30,7 +30,7 @@ COEFFICIENTS: Final[dict[str, float]] = {
 }
 
 
-# from memory: the centring values (development-cohort means of the scaled variables)
+# the centring values (development-cohort means of the scaled variables)
 CENTRES: Final[dict[str, float]] = {
     "age_per_10y": 7.036,
     "male": 0.5642,
@@ -39,11 +39,14 @@ CENTRES: Final[dict[str, float]] = {
 }
 
 
-# from memory (Tangri 2016 regional recalibration)
+# Tangri 2016 regional recalibration
 BASELINE_SURVIVAL: Final[dict[str, dict[int, float]]] = {
     "north_american": {2: 0.9750, 5: 0.9240},
     "non_north_american": {2: 0.9832, 5: 0.9365},
 }
+# the population the equation was developed in: adults with CKD G3-G5
+MIN_AGE_YEARS: Final = 18.0
+EGFR_BELOW: Final = 60.0
 
 
 KFRE_REASONS: Final[dict[str, str]] = {
@@ -139,9 +142,9 @@ def add_kfre_risk(inputs: FrameLike, region: Region = "north_american") -> pl.Da
     reason = (
         pl.when(age.is_null() | gfr.is_null() | acr.is_null() | pl.col("sex").is_null())
         .then(pl.lit("missing_input"))
-        .when(age < 18)
+        .when(age < MIN_AGE_YEARS)
         .then(pl.lit("not_adult"))
-        .when(gfr >= 60)
+        .when(gfr >= EGFR_BELOW)
         .then(pl.lit("egfr_not_below_60"))
         .when(acr <= 0)
         .then(pl.lit("uacr_not_positive"))

@@ -24,7 +24,6 @@ _COMPLEMENTARY_LABEL = "*"  # hidden so that a suppressed cell cannot be recover
 class TableRule(RuleModel):
     """Options of the output tables (config key ``tables``)."""
 
-
     small_cell_threshold: int = Field(
         10,
         ge=0,
