@@ -13,9 +13,6 @@ Two input layouts are read:
   column ``event_type``: null or ``"censored"`` for censoring, ``event_of_interest``
   for the event, any label of ``competing_events`` for a competing event (all other
   labels when that list is empty).
-
-Every model reports ``HAZARD_COLUMNS``: one row per model, cause and term with
-``estimable`` and, when a number cannot be given, a one-line ``reason`` and nulls.
 """
 
 from __future__ import annotations
@@ -28,7 +25,6 @@ from typing import Any, Literal
 import numpy as np
 import polars as pl
 from pydantic import Field, model_validator
-from scipy import stats
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort._rules import RuleModel, resolve_rules
@@ -38,32 +34,15 @@ from kidneycohort.models._design import encode_covariates, split_complete_cases
 logger = logging.getLogger(__name__)
 
 __all__ = [
-    "HAZARD_COLUMNS",
     "CompetingRisksSpec",
     "CompetingRows",
-    "hazard_rows",
     "prepare_competing_rows",
     "resolve_spec",
+    "subset_rows",
 ]
 
 CENSORED, EVENT, COMPETING = 0, 1, 2
 CENSORED_LABEL = "censored"
-
-HAZARD_COLUMNS: dict[str, pl.DataType] = {
-    "model": pl.String(),  # "subdistribution" (Fine–Gray) or "cause_specific" (Cox)
-    "cause": pl.String(),  # event modelled: the event of interest or the competing event
-    "term": pl.String(),
-    "hr": pl.Float64(),
-    "hr_lower": pl.Float64(),
-    "hr_upper": pl.Float64(),
-    "p": pl.Float64(),
-    "log_hr": pl.Float64(),
-    "se": pl.Float64(),
-    "n_patients": pl.Int64(),
-    "n_events": pl.Int64(),
-    "estimable": pl.Boolean(),
-    "reason": pl.String(),  # null when estimable; else one line saying why not
-}
 
 
 class CompetingRisksSpec(RuleModel):
@@ -436,90 +415,6 @@ def prepare_competing_rows(
         layout=layout,
         group_column=spec.group_column,
     )
-
-
-@dataclass(frozen=True)
-class EventCheck:
-    """Result of :func:`check_levels_have_events` for one modelled cause."""
-
-    keep: np.ndarray
-    dropped_terms: dict[int, str]
-    fatal: str | None
-
-
-def check_levels_have_events(rows: CompetingRows, cause: int, cause_label: str) -> EventCheck:
-    """Levels of group and text covariates without events of ``cause``.
-
-    A non-reference level without events has no finite hazard ratio: its patients are
-    left out of this model and its term is reported as not estimable. A reference level
-    without events leaves no hazard ratio of its column estimable (``fatal``).
-    """
-    events = rows.cause == cause
-    keep = np.ones(rows.n_patients, dtype=bool)
-    dropped: dict[int, str] = {}
-    for family in rows.families:
-        block = rows.design[:, family.terms] != 0
-        reference = ~block.any(axis=1)
-        if not np.any(events & reference):
-            return EventCheck(
-                keep,
-                {},
-                f"no {cause_label} events in the reference level {family.column}="
-                f"{family.reference}; hazard ratios against it cannot be estimated",
-            )
-        for position, term in enumerate(family.terms):
-            members = block[:, position]
-            if not np.any(events & members):
-                dropped[term] = (
-                    f"no {cause_label} events among the {int(members.sum())} patients with "
-                    f"{rows.terms[term]}; they are left out of this model"
-                )
-                keep &= ~members
-    return EventCheck(keep, dropped, None)
-
-
-def hazard_rows(
-    *,
-    model: str,
-    cause: str,
-    terms: Sequence[str],
-    beta: np.ndarray | None,
-    se: np.ndarray | None,
-    confidence: float,
-    n_patients: int,
-    n_events: int,
-    reasons: dict[str, str] | None = None,
-) -> pl.DataFrame:
-    """Rows of :data:`HAZARD_COLUMNS`; ``beta is None`` or a term in ``reasons`` gives an
-    ``estimable = False`` row with nulls and its reason."""
-    reasons = reasons or {}
-    z = stats.norm.ppf(0.5 + confidence / 2.0)
-    records = []
-    for i, term in enumerate(terms):
-        reason = reasons.get(term)
-        usable = beta is not None and se is not None and reason is None
-        if usable and not (np.isfinite(beta[i]) and np.isfinite(se[i]) and se[i] > 0):
-            usable, reason = False, "standard error not finite; the estimate is not reported"
-        b = float(beta[i]) if usable else None
-        s = float(se[i]) if usable else None
-        records.append(
-            {
-                "model": model,
-                "cause": cause,
-                "term": term,
-                "hr": None if b is None else float(np.exp(b)),
-                "hr_lower": None if b is None else float(np.exp(b - z * s)),
-                "hr_upper": None if b is None else float(np.exp(b + z * s)),
-                "p": None if b is None else float(2.0 * stats.norm.sf(abs(b / s))),
-                "log_hr": b,
-                "se": s,
-                "n_patients": n_patients,
-                "n_events": n_events,
-                "estimable": usable,
-                "reason": None if usable else reason,
-            }
-        )
-    return pl.DataFrame(records, schema=HAZARD_COLUMNS)
 
 
 def subset_rows(rows: CompetingRows, keep: np.ndarray, terms: list[int]) -> CompetingRows:

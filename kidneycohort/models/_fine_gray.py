@@ -62,12 +62,10 @@ from kidneycohort.models._competing_data import (
     EVENT,
     CompetingRisksSpec,
     CompetingRows,
-    check_levels_have_events,
-    hazard_rows,
     prepare_competing_rows,
     resolve_spec,
-    subset_rows,
 )
+from kidneycohort.models._competing_results import fit_checked
 from kidneycohort.models._partial_likelihood import Evaluation, RiskSets, evaluate, newton_raphson
 
 logger = logging.getLogger(__name__)
@@ -276,16 +274,17 @@ class FineGray:
 
     Attributes
     ----------
-    fit_ : FineGrayFit or None
-        Array-level result (None when nothing could be fitted).
+    outcome_ : ModelOutcome
+        The fit (``outcome_.fit`` a :class:`FineGrayFit`, or None), the rows used and
+        the reasons for terms or a model that cannot be estimated.
     coefficients_ : polars.DataFrame
-        ``term, log_hr, se, se_fixed_weights, se_model_based`` (the last is the naive
-        variance, shown for comparison only).
+        ``term, log_hr, se, se_fixed_weights, se_model_based`` of the fitted terms (the
+        last is the naive variance, shown for comparison only).
     cumulative_incidence_ : polars.DataFrame
         Predicted :math:`F_1(t)` per group with the other covariates at their means:
         ``group, years, estimate, lower, upper, measure`` (limits null: not provided).
     horizon_estimates_ : polars.DataFrame
-        The predicted incidence at ``horizons_years`` (null beyond a group's follow-up).
+        ``group, years, estimate`` at ``horizons_years`` (null beyond a group's follow-up).
     statements_ : list of str
         One line per fact a reader must know (no competing events, levels left out...).
     excluded_ : polars.DataFrame
@@ -311,79 +310,57 @@ class FineGray:
                 "covariates"
             )
         self.rows_, self.endpoint_, self.excluded_ = rows, rows.event_label, rows.excluded
-        self.statements_: list[str] = []
-        self.fit_: FineGrayFit | None = None
-        self._reasons: dict[str, str] = {}
-        self._model_reason: str | None = None
         self.n_patients_, self.n_events_ = rows.n_patients, rows.count(EVENT)
         self.n_competing_ = rows.count(COMPETING)
-        self._fit(rows)
-        if self.n_competing_ == 0 and self._model_reason is None:
-            self._model_reason = (
+        limit = self.spec.max_iterations
+        self.outcome_ = fit_checked(
+            rows,
+            EVENT,
+            rows.event_label,
+            lambda used: fine_gray_arrays(used.time, used.cause, used.design, max_iterations=limit),
+            "Fine–Gray",
+        )
+        self.statements_ = self.outcome_.statements()
+        self._same_as_cause_specific: str | None = None
+        if self.n_competing_ == 0 and self.outcome_.model_reason is None:
+            self._same_as_cause_specific = (
                 f"no competing events ({rows.competing_label}): the subdistribution hazard "
                 "equals the cause-specific hazard; see the cause-specific model"
             )
-            self.statements_.append(self._model_reason)
+            self.statements_.append(self._same_as_cause_specific)
+        fit, used = self.outcome_.fit, self.outcome_.used
+        if fit is not None and used is not None and self.outcome_.model_reason is None:
+            self.coefficients_ = pl.DataFrame(
+                {
+                    "term": used.terms,
+                    "log_hr": fit.beta,
+                    "se": fit.se,
+                    "se_fixed_weights": fit.se_fixed_weights,
+                    "se_model_based": fit.se_model_based,
+                }
+            )
+            self._predict(used, fit)
         return self
 
-    def _fit(self, rows: CompetingRows) -> None:
-        label = rows.event_label
-        if self.n_events_ == 0:
-            self._fail(f"no {label} events among {rows.n_patients} patients; no hazard ratio")
-            return
-        check = check_levels_have_events(rows, EVENT, label)
-        if check.fatal is not None:
-            self._fail(check.fatal)
-            return
-        self._reasons = {rows.terms[i]: r for i, r in check.dropped_terms.items()}
-        self.statements_.extend(self._reasons.values())
-        kept = [i for i in range(len(rows.terms)) if i not in check.dropped_terms]
-        used = subset_rows(rows, check.keep, kept)
-        self.used_rows_ = used
-        fit = fine_gray_arrays(
-            used.time, used.cause, used.design, max_iterations=self.spec.max_iterations
-        )
-        if not fit.converged:
-            self._fail(
-                f"the Fine–Gray fit did not converge ({fit.message}); check for collinear "
-                "covariates or covariate levels with few events"
-            )
-            return
-        self.fit_ = fit
-        self.terms_ = used.terms
-        self.coefficients_ = pl.DataFrame(
-            {
-                "term": used.terms,
-                "log_hr": fit.beta,
-                "se": fit.se,
-                "se_fixed_weights": fit.se_fixed_weights,
-                "se_model_based": fit.se_model_based,
-            }
-        )
-        self._predict(used, fit)
-
-    def _fail(self, reason: str) -> None:
-        self._model_reason = reason
-        self.statements_.append(reason)
-        logger.warning("Fine–Gray (%s): %s", self.rows_.event_label, reason)
+    @property
+    def fit_(self) -> FineGrayFit | None:
+        """The array-level fit, or None when none could be made."""
+        return self.outcome_.fit if self.outcome_.model_reason is None else None
 
     def _predict(self, used: CompetingRows, fit: FineGrayFit) -> None:
         means = used.design.mean(axis=0)
+        names = np.array(used.terms)
         prefix = f"{used.group_column}="
-        is_group = (
-            np.array([t.startswith(prefix) for t in used.terms]) if used.group_column else None
-        )
-        curves, last = [], []
+        is_group = np.char.startswith(names.astype(str), prefix) if used.group_column else None
+        years = np.concatenate([[0.0], fit.failure_times])
+        curves, last = [], {}
         for group in sorted(set(used.group.tolist())):
             profile = means.copy()
             if is_group is not None and is_group.any():
-                profile[is_group] = [
-                    float(t == f"{prefix}{group}") for t in np.array(used.terms)[is_group]
-                ]
+                profile[is_group] = names[is_group] == f"{prefix}{group}"
             estimate = np.concatenate([[0.0], fit.cumulative_incidence(profile)])
-            years = np.concatenate([[0.0], fit.failure_times])
             curves.append(pl.DataFrame({"group": group, "years": years, "estimate": estimate}))
-            last.append((group, float(used.time[used.group == group].max())))
+            last[group] = float(used.time[used.group == group].max())
         null = pl.lit(None, dtype=pl.Float64)
         self.cumulative_incidence_ = (
             pl.concat(curves)
@@ -393,34 +370,27 @@ class FineGray:
             )
         )
         self.horizon_estimates_ = _at_horizons(
-            self.cumulative_incidence_, self.spec.horizons_years, dict(last)
+            self.cumulative_incidence_, self.spec.horizons_years, last
         )
 
     def summary(self) -> pl.DataFrame:
-        """Hazard-ratio rows (:data:`HAZARD_COLUMNS`, ``model = "subdistribution"``)."""
-        if not hasattr(self, "rows_"):
+        """Hazard-ratio rows (:data:`HAZARD_COLUMNS`, ``model = "subdistribution"``); with
+        no competing events every row says the model equals the cause-specific one."""
+        if not hasattr(self, "outcome_"):
             raise InputDataError("FineGray: call .fit(endpoints, patients) first")
-        rows = self.rows_
-        beta = se = None
-        if self.fit_ is not None and self._model_reason is None:
-            lookup = dict(zip(self.terms_, range(len(self.terms_)), strict=True))
-            beta = np.array(
-                [self.fit_.beta[lookup[t]] if t in lookup else np.nan for t in rows.terms]
-            )
-            se = np.array([self.fit_.se[lookup[t]] if t in lookup else np.nan for t in rows.terms])
-        reasons = dict(self._reasons)
-        if self._model_reason is not None:
-            reasons = {t: self._model_reason for t in rows.terms}
-        return hazard_rows(
+        table = self.outcome_.rows(
+            self.rows_.terms,
             model="subdistribution",
-            cause=rows.event_label,
-            terms=rows.terms,
-            beta=beta,
-            se=se,
             confidence=self.spec.confidence,
-            n_patients=rows.n_patients,
-            n_events=self.n_events_,
-            reasons=reasons,
+            n=self.n_patients_,
+        )
+        if self._same_as_cause_specific is None:
+            return table
+        null = pl.lit(None, dtype=pl.Float64)
+        return table.with_columns(
+            *(null.alias(c) for c in ("hr", "hr_lower", "hr_upper", "p", "log_hr", "se")),
+            pl.lit(False).alias("estimable"),
+            pl.lit(self._same_as_cause_specific).alias("reason"),
         )
 
 
@@ -437,6 +407,7 @@ def _at_horizons(
         on="years",
         by="group",
         strategy="backward",
+        check_sortedness=False,
     )
     limit = pl.col("group").replace_strict(last_follow_up, return_dtype=pl.Float64)
     return found.with_columns(

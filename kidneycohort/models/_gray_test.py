@@ -133,7 +133,7 @@ def _stratum_scores(counts: _Counts, rho: float) -> tuple[np.ndarray, np.ndarray
         h = np.where(present, rs / skmm, 0.0)
         tr = h.sum(axis=1)
         r = np.where(present, rs * (1.0 - f1m) / skmm, 0.0)
-        nd1, nd2 = d1.sum(axis=1), d2.sum(axis=1)
+        nd1 = d1.sum(axis=1)
         pooled = np.cumsum(nd1 / tr)
         pooled_m = np.concatenate([[0.0], pooled[:-1]])
         fb = (1.0 - pooled_m) ** rho

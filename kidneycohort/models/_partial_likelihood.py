@@ -146,7 +146,7 @@ class RiskSets:
 
 @dataclass(frozen=True)
 class Evaluation:
-    """Log partial likelihood, score and information at ``beta`` with the risk-set
+    r"""Log partial likelihood, score and information at ``beta`` with the risk-set
     sums the variance and the baseline hazard reuse. Risk scores are
     :math:`\exp(\beta^\top x - \text{shift})` (shift = the largest linear predictor) so
     that no exponential overflows; ratios and the likelihood do not depend on it."""
