@@ -74,7 +74,9 @@ class CompetingRisksSpec(RuleModel):
         description="Times (years) at which cumulative incidence is reported.",
     )
     gray_test_strata: list[str] = Field(
-        default_factory=list, description="Patients columns stratifying Gray's test."
+        default_factory=list,
+        description="Patients columns stratifying Gray's test (a patient missing one is left "
+        "out, as for a missing covariate).",
     )
     gray_test_rho: float = Field(
         0.0, ge=-5, le=5, description="Power rho of Gray's weight (1 - F(t-))^rho; 0 as usual."
