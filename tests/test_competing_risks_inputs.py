@@ -288,3 +288,21 @@ def test_predicted_incidence_horizons() -> None:
     assert found.filter(pl.col("years") == 10.0)["estimate"].is_null().all()
     early = found.filter(pl.col("years") == 1.0).sort("group")["estimate"].to_list()
     assert early[0] < early[1]  # treated has the higher subdistribution hazard here
+
+
+def test_stratified_gray_test_through_the_analysis() -> None:
+    """gray_test_strata reads patients columns; the statistic is the stratified one
+    (cmprsk cuminc(strata = ...) convention: scores and variances summed over strata)."""
+    from kidneycohort.models._gray_test import gray_test
+
+    endpoints, patients = simulate_competing(300, seed=17)
+    analysis = CompetingRisks(gray_test_strata=["female"]).fit(endpoints, patients)
+    joined = endpoints.join(patients, on="patient_id")
+    direct = gray_test(
+        joined["years"].to_numpy(),
+        (joined["event"] + 2 * joined["competing"]).to_numpy(),
+        joined["group"].to_numpy(),
+        strata=joined["female"].to_numpy(),
+    )
+    assert analysis.gray_test_["test_statistic"][0] == pytest.approx(direct.statistic, rel=1e-12)
+    assert "stratified by female" in analysis.methods_text()
