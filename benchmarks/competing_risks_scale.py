@@ -92,13 +92,13 @@ def peak_gib() -> float:
 
 def measure_one(n: int, csv: str | None) -> dict[str, object]:
     """Time every part at one size (run in its own process)."""
-    from kidneycohort.models._cause_specific import CauseSpecificCox
-    from kidneycohort.models._competing_data import CompetingRisksSpec, prepare_competing_rows
-    from kidneycohort.models._competing_risks import CompetingRisks
-    from kidneycohort.models._fine_gray import FineGray
-    from kidneycohort.models._gray_test import gray_test
+    from kidneycohort.models.competing._analysis import CompetingRisks
+    from kidneycohort.models.competing._cause_specific import CauseSpecificCox
+    from kidneycohort.models.competing._data import CompetingRisksRule, prepare_competing_rows
+    from kidneycohort.models.competing._fine_gray import FineGray
+    from kidneycohort.models.competing._gray_test import gray_test
 
-    spec = CompetingRisksSpec(covariates=["age", "female"])
+    spec = CompetingRisksRule(covariates=["age", "female"])
     CompetingRisks(spec).fit(*simulate(500, seed=2))  # first calls outside the timing
     endpoints, patients = simulate(n)
     before = peak_gib()

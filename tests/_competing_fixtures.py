@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 import polars as pl
 
-from kidneycohort.models._fine_gray import censoring_survival, survival_before
+from kidneycohort.models.competing._fine_gray import censoring_survival, survival_before
 
 # A 40-patient cohort on a half-year grid (ties of every kind), written out so that
 # external programs read exactly these values. Cause: 0 censored, 1 kidney failure,

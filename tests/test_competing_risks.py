@@ -10,15 +10,15 @@ import pytest
 from lifelines import CoxPHFitter
 from scipy import optimize
 
-from kidneycohort.models._cause_specific import CauseSpecificCox, cause_specific_arrays
-from kidneycohort.models._competing_risks import CompetingRisks
-from kidneycohort.models._fine_gray import (
+from kidneycohort.models.competing._analysis import CompetingRisks
+from kidneycohort.models.competing._cause_specific import CauseSpecificCox, cause_specific_arrays
+from kidneycohort.models.competing._fine_gray import (
     FineGray,
     censoring_survival,
     fine_gray_arrays,
     survival_before,
 )
-from kidneycohort.models._gray_test import aalen_johansen_by_group, gray_test
+from kidneycohort.models.competing._gray_test import aalen_johansen_by_group, gray_test
 from tests._competing_fixtures import (
     SMALL_AGE,
     SMALL_CAUSE,

@@ -8,11 +8,11 @@ import polars as pl
 import pytest
 
 from kidneycohort.errors import ConfigError, InputDataError
-from kidneycohort.models._cause_specific import CauseSpecificCox, cause_specific_arrays
-from kidneycohort.models._competing_data import CompetingRisksSpec
-from kidneycohort.models._competing_results import HAZARD_COLUMNS
-from kidneycohort.models._competing_risks import CURVE_COLUMNS, CompetingRisks
-from kidneycohort.models._fine_gray import FineGray, fine_gray_arrays
+from kidneycohort.models.competing._analysis import CURVE_COLUMNS, CompetingRisks
+from kidneycohort.models.competing._cause_specific import CauseSpecificCox, cause_specific_arrays
+from kidneycohort.models.competing._data import CompetingRisksRule
+from kidneycohort.models.competing._fine_gray import FineGray, fine_gray_arrays
+from kidneycohort.models.competing._results import HAZARD_COLUMNS
 from tests._competing_fixtures import simulate_competing, small_cohort
 
 
@@ -256,9 +256,9 @@ def test_unknown_endpoint_reference_and_nothing_to_model() -> None:
 def test_options_are_validated_with_one_line() -> None:
     """Options derive from RuleModel: frozen, unknown keys refused with a suggestion."""
     with pytest.raises(ConfigError, match="did you mean 'covariates'"):
-        CompetingRisksSpec(covariate=["age"])  # type: ignore[call-arg]
+        CompetingRisksRule(covariate=["age"])  # type: ignore[call-arg]
     with pytest.raises(ConfigError, match="an event cannot compete with itself"):
-        CompetingRisksSpec(event_of_interest="death", competing_events=["death"])
+        CompetingRisksRule(event_of_interest="death", competing_events=["death"])
     with pytest.raises(ConfigError, match="unknown rule 'ties'"):
         FineGray(ties="efron")
     with pytest.raises(ConfigError, match="confidence"):
@@ -293,7 +293,7 @@ def test_predicted_incidence_horizons() -> None:
 def test_stratified_gray_test_through_the_analysis() -> None:
     """gray_test_strata reads patients columns; the statistic is the stratified one
     (cmprsk cuminc(strata = ...) convention: scores and variances summed over strata)."""
-    from kidneycohort.models._gray_test import gray_test
+    from kidneycohort.models.competing._gray_test import gray_test
 
     endpoints, patients = simulate_competing(300, seed=17)
     analysis = CompetingRisks(gray_test_strata=["female"]).fit(endpoints, patients)

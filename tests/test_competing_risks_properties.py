@@ -8,10 +8,10 @@ import polars as pl
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from kidneycohort.models._cause_specific import cause_specific_arrays
-from kidneycohort.models._competing_risks import CompetingRisks
-from kidneycohort.models._fine_gray import fine_gray_arrays
-from kidneycohort.models._gray_test import aalen_johansen_by_group, gray_test
+from kidneycohort.models.competing._analysis import CompetingRisks
+from kidneycohort.models.competing._cause_specific import cause_specific_arrays
+from kidneycohort.models.competing._fine_gray import fine_gray_arrays
+from kidneycohort.models.competing._gray_test import aalen_johansen_by_group, gray_test
 from tests._competing_fixtures import simulate_competing
 
 cohorts = st.tuples(

@@ -34,10 +34,10 @@ from kidneycohort.models._design import encode_covariates, split_complete_cases
 logger = logging.getLogger(__name__)
 
 __all__ = [
-    "CompetingRisksSpec",
+    "CompetingRisksRule",
     "CompetingRows",
     "prepare_competing_rows",
-    "resolve_spec",
+    "resolve_rule",
     "subset_rows",
 ]
 
@@ -45,7 +45,7 @@ CENSORED, EVENT, COMPETING = 0, 1, 2
 CENSORED_LABEL = "censored"
 
 
-class CompetingRisksSpec(RuleModel):
+class CompetingRisksRule(RuleModel):
     """Options of the competing-risks analyses (``competing_risks`` in the survival settings)."""
 
     event_of_interest: str | None = Field(
@@ -89,7 +89,7 @@ class CompetingRisksSpec(RuleModel):
     )
 
     @model_validator(mode="after")
-    def _distinct_events(self) -> CompetingRisksSpec:
+    def _distinct_events(self) -> CompetingRisksRule:
         if self.event_of_interest is not None and self.event_of_interest in self.competing_events:
             raise ValueError(
                 f"competing_events: '{self.event_of_interest}' is the event of interest; "
@@ -102,11 +102,11 @@ class CompetingRisksSpec(RuleModel):
         return self
 
 
-def resolve_spec(
-    spec: CompetingRisksSpec | None, options: dict[str, Any], where: str
-) -> CompetingRisksSpec:
+def resolve_rule(
+    spec: CompetingRisksRule | None, options: dict[str, Any], where: str
+) -> CompetingRisksRule:
     """``spec`` (or defaults) updated by keyword ``options``; misspelt keys refused."""
-    return resolve_rules(CompetingRisksSpec, spec, options, where)
+    return resolve_rules(CompetingRisksRule, spec, options, where)
 
 
 @dataclass(frozen=True)
@@ -146,7 +146,7 @@ class CompetingRows:
         return int(np.count_nonzero(self.cause == cause))
 
 
-def _event_type_causes(frame: pl.DataFrame, spec: CompetingRisksSpec) -> tuple[pl.DataFrame, str]:
+def _event_type_causes(frame: pl.DataFrame, spec: CompetingRisksRule) -> tuple[pl.DataFrame, str]:
     labels = sorted(frame["event_type"].drop_nulls().cast(pl.String).unique().to_list())
     labels = [v for v in labels if v != CENSORED_LABEL]
     wanted = spec.event_of_interest
@@ -173,7 +173,7 @@ def _event_type_causes(frame: pl.DataFrame, spec: CompetingRisksSpec) -> tuple[p
     return frame.with_columns(cause.cast(pl.Int8).alias("_cause"), kind.alias("_label")), wanted
 
 
-def _endpoint_causes(frame: pl.DataFrame, spec: CompetingRisksSpec) -> tuple[pl.DataFrame, str]:
+def _endpoint_causes(frame: pl.DataFrame, spec: CompetingRisksRule) -> tuple[pl.DataFrame, str]:
     require_columns(frame, ("endpoint", "event"), "endpoints")
     names = sorted(frame["endpoint"].drop_nulls().cast(pl.String).unique().to_list())
     wanted = spec.event_of_interest
@@ -286,7 +286,7 @@ def _join_patients(
 
 
 def _group_terms(
-    rows: pl.DataFrame, spec: CompetingRisksSpec
+    rows: pl.DataFrame, spec: CompetingRisksRule
 ) -> tuple[list[pl.Series], list[str], list[str], str | None]:
     if spec.group_column is None:
         return [], [], ["all"], None
@@ -314,7 +314,7 @@ def _group_terms(
 
 def _families(
     rows: pl.DataFrame,
-    spec: CompetingRisksSpec,
+    spec: CompetingRisksRule,
     names: list[str],
     n_group: int,
     reference: str | None,
@@ -337,7 +337,7 @@ def _families(
 
 
 def prepare_competing_rows(
-    endpoints: FrameLike, patients: FrameLike | None, spec: CompetingRisksSpec
+    endpoints: FrameLike, patients: FrameLike | None, spec: CompetingRisksRule
 ) -> CompetingRows:
     """Read either layout into :class:`CompetingRows` (complete cases, one row per patient).
 

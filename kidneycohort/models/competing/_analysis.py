@@ -3,10 +3,10 @@ side by side, Gray's test, cumulative incidence curves and the methods text.
 
 ``CompetingRisks(spec).fit(endpoints, patients)`` prepares the rows once and runs
 
-- :class:`~kidneycohort.models._fine_gray.FineGray` (subdistribution hazard ratios),
-- :class:`~kidneycohort.models._cause_specific.CauseSpecificCox` (both causes),
-- :func:`~kidneycohort.models._gray_test.gray_test` across groups,
-- :func:`~kidneycohort.models._gray_test.aalen_johansen_by_group` and the Fine–Gray
+- :class:`~kidneycohort.models.competing._fine_gray.FineGray` (subdistribution hazard ratios),
+- :class:`~kidneycohort.models.competing._cause_specific.CauseSpecificCox` (both causes),
+- :func:`~kidneycohort.models.competing._gray_test.gray_test` across groups,
+- :func:`~kidneycohort.models.competing._gray_test.aalen_johansen_by_group` and the Fine–Gray
   predicted incidence per group.
 
 Whatever cannot be estimated is a row with ``estimable = False`` and a one-line reason
@@ -21,16 +21,16 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike
 from kidneycohort.errors import InputDataError
-from kidneycohort.models._cause_specific import CauseSpecificCox
-from kidneycohort.models._competing_data import (
-    CompetingRisksSpec,
+from kidneycohort.models.competing._cause_specific import CauseSpecificCox
+from kidneycohort.models.competing._data import (
+    CompetingRisksRule,
     CompetingRows,
     prepare_competing_rows,
-    resolve_spec,
+    resolve_rule,
 )
-from kidneycohort.models._competing_results import HAZARD_COLUMNS
-from kidneycohort.models._fine_gray import FineGray
-from kidneycohort.models._gray_test import aalen_johansen_by_group, gray_test
+from kidneycohort.models.competing._fine_gray import FineGray
+from kidneycohort.models.competing._gray_test import aalen_johansen_by_group, gray_test
+from kidneycohort.models.competing._results import HAZARD_COLUMNS
 
 __all__ = ["CURVE_COLUMNS", "CompetingRisks"]
 
@@ -48,7 +48,7 @@ CURVE_COLUMNS: dict[str, pl.DataType] = {
 class CompetingRisks:
     """Fine–Gray and cause-specific Cox models, Gray's test and cumulative incidence.
 
-    Configure with a :class:`CompetingRisksSpec` and/or its fields as keywords.
+    Configure with a :class:`CompetingRisksRule` and/or its fields as keywords.
 
     Attributes
     ----------
@@ -84,19 +84,19 @@ class CompetingRisks:
     [('subdistribution', 'kidney_failure', 'group=y', True), ('cause_specific', 'kidney_failure', 'group=y', True), ('cause_specific', 'death', 'group=y', True)]
     """
 
-    def __init__(self, spec: CompetingRisksSpec | None = None, **options: Any) -> None:
-        self.spec = resolve_spec(spec, options, type(self).__name__)
+    def __init__(self, rule: CompetingRisksRule | None = None, /, **options: Any) -> None:
+        self.rule = resolve_rule(rule, options, type(self).__name__)
 
     def fit(self, endpoints: FrameLike, patients: FrameLike | None = None) -> CompetingRisks:
         """Run every part of the analysis; returns ``self``."""
-        rows = prepare_competing_rows(endpoints, patients, self.spec)
+        rows = prepare_competing_rows(endpoints, patients, self.rule)
         self.rows_, self.endpoint_, self.excluded_ = rows, rows.event_label, rows.excluded
         statements: list[str] = []
         self.fine_gray_: FineGray | None = None
         self.cause_specific_: CauseSpecificCox | None = None
         if rows.terms:
-            self.fine_gray_ = FineGray(self.spec).fit_rows(rows)
-            self.cause_specific_ = CauseSpecificCox(self.spec).fit_rows(rows)
+            self.fine_gray_ = FineGray(self.rule).fit_rows(rows)
+            self.cause_specific_ = CauseSpecificCox(self.rule).fit_rows(rows)
             statements += self.fine_gray_.statements_ + self.cause_specific_.statements_
         else:
             statements.append(
@@ -108,7 +108,7 @@ class CompetingRisks:
             rows.cause,
             rows.group,
             strata=rows.strata,
-            rho=self.spec.gray_test_rho,
+            rho=self.rule.gray_test_rho,
         )
         self.gray_test_ = test.as_frame(rows.event_label)
         if test.reason is not None:
@@ -168,7 +168,7 @@ class CompetingRisks:
     def methods_text(self) -> str:
         """A methods paragraph that says which hazard ratio is which."""
         self._check_fitted()
-        rows, spec = self.rows_, self.spec
+        rows, spec = self.rows_, self.rule
         rho = f"rho = {spec.gray_test_rho:g}"
         strata = (
             f", stratified by {', '.join(spec.gray_test_strata)}" if spec.gray_test_strata else ""

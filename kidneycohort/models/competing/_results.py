@@ -16,7 +16,7 @@ import numpy as np
 import polars as pl
 from scipy import stats
 
-from kidneycohort.models._competing_data import CompetingRows, subset_rows
+from kidneycohort.models.competing._data import CompetingRows, subset_rows
 
 logger = logging.getLogger(__name__)
 

@@ -40,16 +40,16 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike
 from kidneycohort.errors import InputDataError
-from kidneycohort.models._competing_data import (
+from kidneycohort.models._partial_likelihood import RiskSets, Ties, newton_raphson
+from kidneycohort.models.competing._data import (
     COMPETING,
     EVENT,
-    CompetingRisksSpec,
+    CompetingRisksRule,
     CompetingRows,
     prepare_competing_rows,
-    resolve_spec,
+    resolve_rule,
 )
-from kidneycohort.models._competing_results import ModelOutcome, fit_checked
-from kidneycohort.models._partial_likelihood import RiskSets, Ties, newton_raphson
+from kidneycohort.models.competing._results import ModelOutcome, fit_checked
 
 __all__ = ["CauseSpecificCox", "CoxFit", "cause_specific_arrays"]
 
@@ -130,7 +130,7 @@ def cause_specific_arrays(
 class CauseSpecificCox:
     r"""Cause-specific Cox models of the event of interest and of the competing event.
 
-    Same options and input as :class:`~kidneycohort.models._fine_gray.FineGray`; all
+    Same options and input as :class:`~kidneycohort.models.competing._fine_gray.FineGray`; all
     competing events are pooled into one competing cause (named by their labels
     joined with ``+``). Each model censors the other cause.
 
@@ -145,12 +145,12 @@ class CauseSpecificCox:
         ``patient_id, reason`` of rows not used.
     """
 
-    def __init__(self, spec: CompetingRisksSpec | None = None, **options: Any) -> None:
-        self.spec = resolve_spec(spec, options, type(self).__name__)
+    def __init__(self, rule: CompetingRisksRule | None = None, /, **options: Any) -> None:
+        self.rule = resolve_rule(rule, options, type(self).__name__)
 
     def fit(self, endpoints: FrameLike, patients: FrameLike | None = None) -> CauseSpecificCox:
         """Fit both models; returns ``self``."""
-        return self.fit_rows(prepare_competing_rows(endpoints, patients, self.spec))
+        return self.fit_rows(prepare_competing_rows(endpoints, patients, self.rule))
 
     def fit_rows(self, rows: CompetingRows) -> CauseSpecificCox:
         """Fit prepared rows (see :func:`prepare_competing_rows`); returns ``self``."""
@@ -160,7 +160,7 @@ class CauseSpecificCox:
                 "groups or covariates"
             )
         self.rows_, self.endpoint_, self.excluded_ = rows, rows.event_label, rows.excluded
-        spec = self.spec
+        spec = self.rule
 
         def fitter(cause: int) -> Any:
             return lambda used: cause_specific_arrays(
@@ -192,7 +192,7 @@ class CauseSpecificCox:
             o.rows(
                 self.rows_.terms,
                 model="cause_specific",
-                confidence=self.spec.confidence,
+                confidence=self.rule.confidence,
                 n=self.rows_.n_patients,
             )
             for o in self.outcomes_.values()

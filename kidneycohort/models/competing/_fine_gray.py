@@ -57,16 +57,16 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike
 from kidneycohort.errors import InputDataError
-from kidneycohort.models._competing_data import (
+from kidneycohort.models._partial_likelihood import Evaluation, RiskSets, evaluate, newton_raphson
+from kidneycohort.models.competing._data import (
     COMPETING,
     EVENT,
-    CompetingRisksSpec,
+    CompetingRisksRule,
     CompetingRows,
     prepare_competing_rows,
-    resolve_spec,
+    resolve_rule,
 )
-from kidneycohort.models._competing_results import fit_checked
-from kidneycohort.models._partial_likelihood import Evaluation, RiskSets, evaluate, newton_raphson
+from kidneycohort.models.competing._results import fit_checked
 
 logger = logging.getLogger(__name__)
 
@@ -268,7 +268,7 @@ def fine_gray_arrays(
 class FineGray:
     r"""Fine–Gray regression of the event of interest with competing events.
 
-    Configure with a :class:`CompetingRisksSpec` and/or its fields as keywords, then
+    Configure with a :class:`CompetingRisksRule` and/or its fields as keywords, then
     ``fit(endpoints, patients)``. The group enters as indicators against the reference
     group (terms ``<group_column>=<level>``); text covariates likewise, booleans as 0/1.
 
@@ -295,12 +295,12 @@ class FineGray:
     See the module docstring (Fine & Gray 1999; Geskus 2011; Austin, Lee & Fine 2016).
     """
 
-    def __init__(self, spec: CompetingRisksSpec | None = None, **options: Any) -> None:
-        self.spec = resolve_spec(spec, options, type(self).__name__)
+    def __init__(self, rule: CompetingRisksRule | None = None, /, **options: Any) -> None:
+        self.rule = resolve_rule(rule, options, type(self).__name__)
 
     def fit(self, endpoints: FrameLike, patients: FrameLike | None = None) -> FineGray:
         """Fit the model; returns ``self``."""
-        return self.fit_rows(prepare_competing_rows(endpoints, patients, self.spec))
+        return self.fit_rows(prepare_competing_rows(endpoints, patients, self.rule))
 
     def fit_rows(self, rows: CompetingRows) -> FineGray:
         """Fit prepared rows (see :func:`prepare_competing_rows`); returns ``self``."""
@@ -312,7 +312,7 @@ class FineGray:
         self.rows_, self.endpoint_, self.excluded_ = rows, rows.event_label, rows.excluded
         self.n_patients_, self.n_events_ = rows.n_patients, rows.count(EVENT)
         self.n_competing_ = rows.count(COMPETING)
-        limit = self.spec.max_iterations
+        limit = self.rule.max_iterations
         self.outcome_ = fit_checked(
             rows,
             EVENT,
@@ -370,7 +370,7 @@ class FineGray:
             )
         )
         self.horizon_estimates_ = _at_horizons(
-            self.cumulative_incidence_, self.spec.horizons_years, last
+            self.cumulative_incidence_, self.rule.horizons_years, last
         )
 
     def summary(self) -> pl.DataFrame:
@@ -381,7 +381,7 @@ class FineGray:
         table = self.outcome_.rows(
             self.rows_.terms,
             model="subdistribution",
-            confidence=self.spec.confidence,
+            confidence=self.rule.confidence,
             n=self.n_patients_,
         )
         if self._same_as_cause_specific is None:
