@@ -34,6 +34,7 @@ from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, to_polars
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConfigError
+from kidneycohort.schemas import UACR_BASELINE
 from kidneycohort.uacr import uacr_timeline
 from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, usable_egfr
 
@@ -48,16 +49,6 @@ BASELINE_REASONS: Final[dict[str, str]] = {
     "no_index_date": "the patient has no index date, so no window can be placed",
 }
 """Reason codes written to ``baseline_reason`` when no baseline is found."""
-
-UACR_BASELINE: Final[dict[str, pl.DataType]] = {
-    "patient_id": pl.String(),
-    "baseline_uacr_mg_g": pl.Float64(),
-    "baseline_date": pl.Date(),
-    "baseline_n_values": pl.Int32(),
-    "baseline_method": pl.String(),
-    "baseline_reason": pl.String(),
-}
-"""Layout of :func:`uacr_baseline` output (UACR in mg/g)."""
 
 
 class BaselineRule(RuleModel):

@@ -135,4 +135,143 @@ ENDPOINTS: Final[dict[str, pl.DataType]] = {
     "reason": pl.String(),  # which component fired, or why censored
 }
 
+STAGES: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "equation": pl.String(),  # null on the albuminuria axis
+    "axis": pl.String(),  # "G" or "A"
+    "stage_number": pl.Int32(),  # 0 before the first confirmed category
+    "category": pl.String(),
+    "start_date": pl.Date(),
+    "start_years": pl.Float64(),
+    "confirmed_date": pl.Date(),
+    "end_date": pl.Date(),
+    "end_years": pl.Float64(),
+    "n_results": pl.Int32(),
+    "is_last": pl.Boolean(),
+}
+"""Sustained KDIGO category stages (:func:`kidneycohort.kdigo.sustained_stages`)."""
+
+UACR_BASELINE: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "baseline_uacr_mg_g": pl.Float64(),
+    "baseline_date": pl.Date(),
+    "baseline_n_values": pl.Int32(),
+    "baseline_method": pl.String(),
+    "baseline_reason": pl.String(),
+}
+"""Baseline UACR in mg/g (:func:`kidneycohort.baseline.uacr_baseline`)."""
+
+BASELINE_CATEGORIES: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "equation": pl.String(),
+    "baseline_egfr": pl.Float64(),
+    "g_category": pl.String(),
+    "g_reason": pl.String(),
+    "baseline_uacr_mg_g": pl.Float64(),
+    "a_category": pl.String(),
+    "a_reason": pl.String(),
+    "risk": pl.String(),  # KDIGO prognosis level of the G x A cell
+}
+"""KDIGO categories at baseline (:func:`kidneycohort.kdigo.baseline_categories`)."""
+
+KFRE_AT_BASELINE: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "equation": pl.String(),
+    "at_years": pl.Float64(),
+    "age_years": pl.Float64(),
+    "sex": pl.String(),
+    "egfr": pl.Float64(),
+    "egfr_years": pl.Float64(),
+    "uacr_mg_g": pl.Float64(),
+    "uacr_years": pl.Float64(),
+    "kfre_2y": pl.Float64(),
+    "kfre_5y": pl.Float64(),
+    "kfre_region": pl.String(),
+    "kfre_applicable": pl.Boolean(),
+    "kfre_reason": pl.String(),
+}
+"""KFRE risk at the index date (:func:`kidneycohort.kfre.kfre_at_baseline`; plus the group)."""
+
+# ---- model results (run folder ``models/``) ------------------------------------------
+SURVIVAL_CURVES: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "group": pl.String(),
+    "years": pl.Float64(),
+    "estimate": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+    "measure": pl.String(),  # "survival" or "cumulative_incidence"
+}
+"""Survival or cumulative-incidence curves per endpoint and group."""
+
+AT_RISK: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "group": pl.String(),
+    "years": pl.Float64(),
+    "n_at_risk": pl.Int64(),
+}
+"""Numbers at risk under the curves."""
+
+HAZARD_RATIOS: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "term": pl.String(),
+    "subgroup": pl.String(),  # null for the whole cohort; "column=level" otherwise
+    "hr": pl.Float64(),
+    "hr_lower": pl.Float64(),
+    "hr_upper": pl.Float64(),
+    "p": pl.Float64(),
+    "ph_p": pl.Float64(),  # proportional-hazards test of the term
+}
+"""Cox hazard ratios per endpoint, term and subgroup."""
+
+INCIDENCE_RATES: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "group": pl.String(),
+    "events": pl.Int64(),
+    "person_years": pl.Float64(),
+    "rate_per_100py": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+}
+"""Exact incidence rates per endpoint and group (unsuppressed; not for sharing)."""
+
+KDIGO_GRID_COUNTS: Final[dict[str, pl.DataType]] = {
+    "g_category": pl.String(),
+    "a_category": pl.String(),
+    "n": pl.Int64(),
+    "risk": pl.String(),
+}
+"""Patients per KDIGO G x A cell at baseline, with the cell's prognosis level."""
+
+TRANSITION_COUNTS: Final[dict[str, pl.DataType]] = {
+    "axis": pl.String(),
+    "from_category": pl.String(),
+    "to_category": pl.String(),
+    "n": pl.Int64(),
+    "rate_per_100_person_years": pl.Float64(),
+}
+"""Transitions between sustained categories (G on the primary equation, and A)."""
+
+SLOPE_SUMMARY: Final[dict[str, pl.DataType]] = {
+    "model": pl.String(),  # "one_slope" or "two_slope"
+    "contrast": pl.String(),  # a group, or "<group> - <reference>"
+    "quantity": pl.String(),  # slope, acute_change, chronic_slope, total_slope_<T>y
+    "estimate": pl.Float64(),
+    "se": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+    "p": pl.Float64(),
+}
+"""Slope-model contrasts per group and between groups."""
+
+TRAJECTORIES: Final[dict[str, pl.DataType]] = {
+    "model": pl.String(),
+    "group": pl.String(),
+    "years": pl.Float64(),
+    "mean": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+}
+"""Model-based mean eGFR trajectories per group."""
+
 DAYS_PER_YEAR: Final = 365.25

@@ -9,6 +9,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from kidneycohort.errors import InputDataError
 from kidneycohort.pipeline import StepContext, StepRegistry
+from kidneycohort.run_folder import RunFile
 
 
 class ScaleOptions(BaseModel):
@@ -25,12 +26,28 @@ class CountOptions(BaseModel):
     by: str = "patient_id"
 
 
+SCALED_LABS = {
+    "patient_id": pl.String(),
+    "sample_date": pl.Date(),
+    "analyte": pl.String(),
+    "value": pl.Float64(),
+}
+
+
 def build_test_registry() -> StepRegistry:
-    """Steps: scale (raw_labs -> labs), count (labs -> tables/lab_counts), boom, warn."""
+    """Steps: scale (raw_labs -> scaled_labs), count (-> tables/lab_counts), boom, warn.
+
+    The steps declare their own run-folder files, as a step outside the library must.
+    """
     registry = StepRegistry()
 
     @registry.register(
-        "scale", needs=["raw_labs"], makes=["labs"], section="scale", options=ScaleOptions
+        "scale",
+        needs=["raw_labs"],
+        makes=["scaled_labs"],
+        section="scale",
+        options=ScaleOptions,
+        files=[RunFile("scaled_labs", "per_patient", SCALED_LABS, "Rescaled lab values.")],
     )
     def scale(ctx: StepContext) -> dict[str, pl.DataFrame]:
         """Keep chosen analytes and multiply their values."""
@@ -56,34 +73,38 @@ def build_test_registry() -> StepRegistry:
             "analyte",
             (pl.col("value").cast(pl.Float64) * opts.factor).alias("value"),
         )
-        return {"labs": labs}
+        return {"scaled_labs": labs}
 
     @registry.register(
         "count",
-        needs=["labs"],
+        needs=["scaled_labs"],
         makes=["tables/lab_counts", "models/lab_means"],
         section="count",
         options=CountOptions,
+        files=[
+            RunFile("tables/lab_counts", "shared_table", None, "Rows per patient."),
+            RunFile("models/lab_means", "model", None, "Mean value per patient."),
+        ],
     )
     def count(ctx: StepContext) -> dict[str, pl.DataFrame]:
         """Rows and mean value per patient."""
-        labs = ctx.tables["labs"]
+        labs = ctx.tables["scaled_labs"]
         by = ctx.options.by  # type: ignore[union-attr]
         counts = labs.group_by(by).agg(pl.len().alias("n")).sort(by)
         means = labs.group_by(by).agg(pl.col("value").mean().alias("mean")).sort(by)
         return {"tables/lab_counts": counts, "models/lab_means": means}
 
-    @registry.register("boom", needs=["labs"], makes=["never"])
+    @registry.register("boom", needs=["scaled_labs"], makes=["never"])
     def boom(ctx: StepContext) -> dict[str, pl.DataFrame]:
         """Fail on purpose (an interrupted run)."""
         raise RuntimeError("step failed on purpose")
 
-    @registry.register("bad_data", needs=["labs"], makes=["never2"])
+    @registry.register("bad_data", needs=["scaled_labs"], makes=["never2"])
     def bad_data(ctx: StepContext) -> dict[str, pl.DataFrame]:
         """Raise a user-facing input error."""
         raise InputDataError("labs: column 'value' holds 'abc'; fix the extract")
 
-    @registry.register("warn", needs=["labs"], makes=["nothing_written"])
+    @registry.register("warn", needs=["scaled_labs"], makes=["nothing_written"])
     def warn(ctx: StepContext) -> dict[str, object]:
         """Issue a warning the runner must capture."""
         import warnings
@@ -91,7 +112,7 @@ def build_test_registry() -> StepRegistry:
         from kidneycohort.errors import StatisticalWarning
 
         warnings.warn("few events: estimate unstable", StatisticalWarning, stacklevel=1)
-        return {"nothing_written": ctx.tables["labs"].height}
+        return {"nothing_written": ctx.tables["scaled_labs"].height}
 
     return registry
 

@@ -21,6 +21,7 @@ from lifelines import AalenJohansenFitter, CoxPHFitter, KaplanMeierFitter
 from lifelines.statistics import proportional_hazard_test
 
 from kidneycohort._frames import conform
+from kidneycohort.run_folder import FILES
 from kidneycohort.schemas import BASELINE, EGFR, ENDPOINTS, LABS, REJECTED, SLOPES, TRANSITIONS
 
 PRIMARY = "ckd_epi_2021_cr"
@@ -49,6 +50,15 @@ def g_category(expr: pl.Expr) -> pl.Expr:
     for cut, name in G_CUTS[1:]:
         out = out.when(expr >= cut).then(pl.lit(name))
     return out.otherwise(None)
+
+
+def _to_contract(file: str, df: pl.DataFrame) -> pl.DataFrame:
+    """``df`` in the declared layout of run-folder file ``file`` (missing columns null)."""
+    entry = FILES[file.removesuffix(".parquet")]
+    if entry.schema is None:
+        return df
+    extra = [c for c in entry.optional if c in df.columns]
+    return conform(df, entry.schema).hstack(df.select(extra))
 
 
 def _small(n: pl.Expr) -> pl.Expr:
@@ -483,8 +493,8 @@ def build_run_folder(
     files.update(models)
     (run / "models").mkdir(exist_ok=True)
     for name, df in files.items():
-        if name not in omit:
-            df.write_parquet(run / name)
+        if name not in omit and name != "stages.parquet":  # stages stay in memory
+            _to_contract(name, df).write_parquet(run / name)
     if "rejected_rows.csv" not in omit:
         conform(rejected, REJECTED).write_csv(run / "rejected_rows.csv")
 
@@ -583,11 +593,11 @@ def build_run_folder(
         },
         "baseline": {"method": "value at randomisation", "window_days": 90},
         "slopes": {
-            "knot_years": KNOT,
             "min_values": 3,
             "min_span_years": 1.0,
-            "rapid_decline_per_year": -5.0,
+            "rapid_decline_per_year": 5.0,
         },
+        "slope_model": {"knot_years": KNOT},
         "endpoints": {
             "definitions": [
                 {"name": "egfr_decline_40pct", "decline_pct": 40, "confirm_after_days": 28},
@@ -603,8 +613,13 @@ def build_run_folder(
         "config": config,
         "overrides": ["slopes.knot_years=0.25"],
         "inputs": [
-            {"path": "patients.csv", "sha256": "a" * 64, "rows": n_patients},
-            {"path": "labs.csv", "sha256": "b" * 64, "rows": accounting[0]["rows_read"]},
+            {"table": "patients", "path": "patients.csv", "sha256": "a" * 64, "rows": n_patients},
+            {
+                "table": "labs",
+                "path": "labs.csv",
+                "sha256": "b" * 64,
+                "rows": accounting[0]["rows_read"],
+            },
         ],
         "packages": {"python": "3.11", "polars": pl.__version__, "numpy": np.__version__},
         "seed": seed,
@@ -617,7 +632,7 @@ def build_run_folder(
         ],
         "warnings": [
             f"egfr: {egfr['egfr'].null_count()} values not computable (creatinine_missing)",
-            f"patient {patients['patient_id'][0]} has a sample on {dt.date(2019, 5, 2).isoformat()} before index",
+            f"labs: a sample on {dt.date(2019, 5, 2).isoformat()} is before index",
         ],
         "study": {
             "name": config["study"]["name"],

@@ -87,7 +87,7 @@ def test_unknown_recipe_suggests(tmp_path: Path) -> None:
 def test_step_needing_a_table_no_earlier_step_makes(tmp_path: Path) -> None:
     config = write_study(tmp_path, ["count", "scale"])
     with pytest.raises(
-        ConfigError, match=r"step 'count' needs table 'labs' which no earlier step makes"
+        ConfigError, match=r"step 'count' needs table 'scaled_labs' which no earlier step makes"
     ):
         _load(config)
 
@@ -171,7 +171,7 @@ def test_run_writes_folder_manifest_and_values(tmp_path: Path) -> None:
     run = tmp_path / "out" / "run"
     assert result.run_dir == run.resolve()
     for rel in (
-        "labs.parquet",
+        "scaled_labs.parquet",
         "tables/lab_counts.csv",
         "tables/lab_counts.md",
         "tables/tables.xlsx",
@@ -181,7 +181,7 @@ def test_run_writes_folder_manifest_and_values(tmp_path: Path) -> None:
         "warnings.txt",
     ):
         assert (run / rel).is_file(), rel
-    labs = pl.read_parquet(run / "labs.parquet")
+    labs = pl.read_parquet(run / "scaled_labs.parquet")
     # recipe default factor 2.0 on the 4 creatinine rows: 1.0, 1.2, 0.8, 2.0 -> doubled
     assert sorted(labs["value"].to_list()) == pytest.approx([1.6, 2.0, 2.4, 4.0])
     manifest = json.loads((run / "manifest.json").read_text())
@@ -205,18 +205,18 @@ def test_sha256_matches_hashlib(tmp_path: Path) -> None:
     study = _load(write_study(tmp_path, ["scale"]))
     manifest = run_pipeline(study).manifest
     want = hashlib.sha256((tmp_path / "data" / "labs.csv").read_bytes()).hexdigest()
-    assert next(i for i in manifest["inputs"] if i["table"] == "labs")["sha256"] == want
+    assert next(i for i in manifest.inputs if i.table == "labs").sha256 == want
 
 
 def test_existing_folder_is_not_overwritten_without_force(tmp_path: Path) -> None:
     study = _load(write_study(tmp_path, ["scale", "count"]))
     run_pipeline(study)
-    before = (tmp_path / "out" / "run" / "labs.parquet").read_bytes()
+    before = (tmp_path / "out" / "run" / "scaled_labs.parquet").read_bytes()
     with pytest.raises(ConfigError, match=r"already exists.*--force"):
         run_pipeline(study)
     study = _load(tmp_path / "study.yaml", ["scale.factor=10"])
     run_pipeline(study, force=True)
-    after = (tmp_path / "out" / "run" / "labs.parquet").read_bytes()
+    after = (tmp_path / "out" / "run" / "scaled_labs.parquet").read_bytes()
     assert before != after
 
 
@@ -225,7 +225,7 @@ def test_two_runs_give_identical_files(tmp_path: Path) -> None:
     a = run_pipeline(study, out_dir=tmp_path / "a").run_dir
     b = run_pipeline(study, out_dir=tmp_path / "b").run_dir
     for rel in (
-        "labs.parquet",
+        "scaled_labs.parquet",
         "tables/lab_counts.csv",
         "tables/tables.xlsx",
         "models/lab_means.parquet",
@@ -270,7 +270,7 @@ def test_warnings_are_captured_into_the_run_folder(tmp_path: Path) -> None:
     assert result.warnings == ["StatisticalWarning: few events: estimate unstable"]
     text = (result.run_dir / "warnings.txt").read_text()
     assert "few events" in text
-    assert result.manifest["warnings"] == result.warnings
+    assert result.manifest.warnings == result.warnings
 
 
 def test_run_folder_tables_equal_the_step_results(tmp_path: Path) -> None:
@@ -312,6 +312,8 @@ def test_a_step_reading_the_folder_sees_the_finished_tables(tmp_path: Path) -> N
         seen["files"] = sorted(
             p.relative_to(ctx.run_dir).as_posix() for p in ctx.run_dir.rglob("*")
         )
+        assert ctx.folder is not None
+        seen["steps"] = [s.name for s in ctx.folder.manifest.steps]
         return {"looked": pl.DataFrame({"n": [len(seen["files"])]})}
 
     config = write_study(tmp_path, ["scale", "count", "look"], extra="  markdown: false\n")
@@ -322,4 +324,6 @@ def test_a_step_reading_the_folder_sees_the_finished_tables(tmp_path: Path) -> N
     assert "tables/tables.xlsx" in seen["files"]
     assert "tables/lab_counts.csv" in seen["files"]
     assert not any(f.endswith(".md") for f in seen["files"])
-    assert "manifest.json" in seen["files"]  # the manifest so far, for the report
+    # no manifest.json until the run is complete; the step gets the manifest so far
+    assert "manifest.json" not in seen["files"]
+    assert seen["steps"] == ["read", "scale", "count"]

@@ -127,8 +127,10 @@ def test_no_patient_identifiers_or_individual_dates(full: dict) -> None:
     endpoints = pl.read_parquet(run / "endpoints.parquet", columns=["start_date", "end_date"])
     dates |= {str(d) for c in endpoints.columns for d in endpoints[c].unique()}
     assert [d for d in dates if d in html] == []
-    # the manifest warning that named a patient and a date is printed redacted
-    assert "patient [id removed] has a sample on [date removed] before index" in html
+    # a manifest warning that names a date is printed with the date removed
+    assert "labs: a sample on [date removed] is before index" in html
+    # nothing is redacted by text replacement: ids never reach the page
+    assert "[id removed]" not in html
 
 
 def test_small_cells_are_protected(full: dict) -> None:
@@ -219,13 +221,18 @@ def test_minimal_folder_renders(tmp_path: Path) -> None:
 
 def test_identifier_tables_and_unknown_equations(tmp_path: Path) -> None:
     (tmp_path / "tables").mkdir()
-    pl.DataFrame({"patient_id": ["Z-9"], "egfr": [40.0]}).write_csv(tmp_path / "tables/listing.csv")
+    # an undeclared file is never read; a declared table with an identifier column is
+    # listed but not printed
+    pl.DataFrame({"patient_id": ["Z-8"]}).write_csv(tmp_path / "tables/listing.csv")
+    pl.DataFrame({"patient_id": ["Z-9"], "egfr": [40.0]}).write_csv(
+        tmp_path / "tables/endpoint_table.csv"
+    )
     manifest = {
         "study": {"name": "T", "equations": ["made_up_eq"], "primary_equation": "made_up_eq"}
     }
     (tmp_path / "manifest.json").write_text(json.dumps(manifest), encoding="utf-8")
     html = write_report(tmp_path).read_text(encoding="utf-8")
-    assert "Z-9" not in html
+    assert "Z-9" not in html and "Z-8" not in html
     assert "Not printed: it has the column &#39;patient_id&#39;." in html
     assert "not in the kidneycohort registry" in html
 

@@ -16,20 +16,9 @@ from kidneycohort.kdigo._categories import (
     gfr_category_expr,
     kdigo_risk_expr,
 )
+from kidneycohort.schemas import BASELINE_CATEGORIES
 
 # ---- baseline categories (one row per patient) -------------------------------------------
-BASELINE_CATEGORIES: Final[dict[str, pl.DataType]] = {
-    "patient_id": pl.String(),
-    "equation": pl.String(),
-    "baseline_egfr": pl.Float64(),
-    "g_category": pl.String(),
-    "g_reason": pl.String(),
-    "baseline_uacr_mg_g": pl.Float64(),
-    "a_category": pl.String(),
-    "a_reason": pl.String(),
-    "risk": pl.String(),
-}
-"""Layout of :func:`baseline_categories` output."""
 
 
 BASELINE_CATEGORY_REASONS: Final[dict[str, str]] = {

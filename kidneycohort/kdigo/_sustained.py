@@ -19,26 +19,10 @@ from kidneycohort.kdigo._categories import (
     albuminuria_category_expr,
     gfr_category_expr,
 )
+from kidneycohort.schemas import STAGES
 from kidneycohort.uacr import uacr_timeline
 from kidneycohort.units import UACR_MG_G_PER_MG_MMOL
 from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, usable_egfr
-
-STAGES: Final[dict[str, pl.DataType]] = {
-    "patient_id": pl.String(),
-    "equation": pl.String(),
-    "axis": pl.String(),
-    "stage_number": pl.Int32(),
-    "category": pl.String(),
-    "start_date": pl.Date(),
-    "start_years": pl.Float64(),
-    "confirmed_date": pl.Date(),
-    "end_date": pl.Date(),
-    "end_years": pl.Float64(),
-    "n_results": pl.Int32(),
-    "is_last": pl.Boolean(),
-}
-"""Layout of :func:`sustained_stages` output (see the module docstring)."""
-
 
 _KEYS: Final = ["patient_id", "_eq", "axis"]
 

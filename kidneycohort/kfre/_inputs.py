@@ -166,7 +166,7 @@ def kfre_at_baseline(
     Returns
     -------
     polars.DataFrame
-        One row per patient of ``cohort``: ``patient_id``, the group column, ``equation``,
+        One row per patient of ``cohort``: ``patient_id``, ``equation``,
         the inputs (``at_years``, ``age_years``, ``sex``, ``egfr``, ``egfr_years``,
         ``uacr_mg_g``, ``uacr_years``), ``kfre_2y``, ``kfre_5y``, ``kfre_region``,
         ``kfre_applicable``, ``kfre_reason``.
@@ -209,7 +209,6 @@ def kfre_at_baseline(
     group = [group_column] if group_column is not None and group_column in out.columns else []
     return out.select(
         "patient_id",
-        *group,
         "equation",
         "at_years",
         "age_years",
@@ -223,4 +222,5 @@ def kfre_at_baseline(
         "kfre_region",
         "kfre_applicable",
         "kfre_reason",
+        *group,
     )

@@ -17,6 +17,7 @@ from typing import Any
 from pydantic import BaseModel
 
 from kidneycohort.errors import ConfigError, did_you_mean
+from kidneycohort.run_folder import FILES, RunFile, RunFolder
 
 logger = logging.getLogger(__name__)
 
@@ -46,6 +47,9 @@ class StepContext:
         add up to each table's ``rows_rejected``.
     merged_by_reason : list of dict
         Counts of rows merged into another row, by reason (``table, reason, rows``).
+    folder : RunFolder or None
+        For a step that reads the folder (``reads_folder``): the run folder as written so
+        far, with the run's manifest up to this step.
     """
 
     tables: dict[str, Any]
@@ -56,6 +60,7 @@ class StepContext:
     accounting: list[dict[str, Any]] = field(default_factory=list)
     accounting_by_reason: list[dict[str, Any]] = field(default_factory=list)
     merged_by_reason: list[dict[str, Any]] = field(default_factory=list)
+    folder: RunFolder | None = None
 
 
 StepFunction = Callable[[StepContext], Mapping[str, Any]]
@@ -75,7 +80,7 @@ class Step:
         Tables that must exist before the step runs.
     makes : tuple of str
         Tables the step returns. Names that are run-folder files (see
-        :mod:`kidneycohort.pipeline.run_folder`) are written as soon as the step ends.
+        :mod:`kidneycohort.run_folder`) are written as soon as the step ends.
     section : str or None
         The config section holding this step's options (several steps may share one).
     options : type of pydantic.BaseModel or None
@@ -94,6 +99,10 @@ class Step:
     reads_folder : bool
         The step reads the finished table files (e.g. the report): the runner writes
         ``tables/tables.xlsx`` and applies the output options before it runs.
+    files : tuple of RunFile
+        Run-folder files this step adds to the contract (:data:`kidneycohort.run_folder.FILES`),
+        for steps outside the library; a name in ``makes`` that contains ``/`` must be
+        declared in the contract or here.
     """
 
     name: str
@@ -107,6 +116,7 @@ class Step:
     extra_sections: Mapping[str, type[BaseModel]] = field(default_factory=dict)
     check: Callable[[Any], None] | None = None
     reads_folder: bool = False
+    files: tuple[RunFile, ...] = ()
 
     def section_models(self) -> dict[str, type[BaseModel] | None]:
         """Every config section this step reads -> the model validating it."""
@@ -132,6 +142,16 @@ class StepRegistry:
         """Register ``step``; a second step of the same name is a programming error."""
         if step.name in self._steps:
             raise ValueError(f"step '{step.name}' is already registered")
+        declared = {f.name for f in step.files}
+        for entry in step.files:
+            if entry.name in FILES:
+                raise ValueError(f"step '{step.name}': file '{entry.name}' is already declared")
+        for name in step.makes:
+            if "/" in name and name not in FILES and name not in declared:
+                raise ValueError(
+                    f"step '{step.name}': '{name}' is not a declared run-folder file; "
+                    "declare it with files=[RunFile(...)]"
+                )
         sections = self.sections()
         for name, model in step.section_models().items():
             if name in sections and sections[name] is not model:
@@ -155,6 +175,7 @@ class StepRegistry:
         extra_sections: Mapping[str, type[BaseModel]] | None = None,
         check: Callable[[Any], None] | None = None,
         reads_folder: bool = False,
+        files: Iterable[RunFile] = (),
     ) -> Callable[[StepFunction], StepFunction]:
         """Decorator form of :meth:`add`."""
 
@@ -172,6 +193,7 @@ class StepRegistry:
                     extra_sections=dict(extra_sections or {}),
                     check=check,
                     reads_folder=reads_folder,
+                    files=tuple(files),
                 )
             )
             return func

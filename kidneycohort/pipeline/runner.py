@@ -11,7 +11,8 @@ from __future__ import annotations
 import logging
 import time
 import warnings
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
@@ -19,11 +20,26 @@ from typing import Any, Protocol
 import polars as pl
 
 from kidneycohort.errors import KidneyCohortError
-from kidneycohort.pipeline import manifest as manifest_mod
-from kidneycohort.pipeline import run_folder
+from kidneycohort.pipeline import placement
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.registry import Step, StepContext
 from kidneycohort.pipeline.sources import input_records, read_sources
+from kidneycohort.run_folder import (
+    FILES,
+    AccountingRecord,
+    Manifest,
+    ReasonCount,
+    RunFile,
+    RunFolder,
+    StepRecord,
+    StudyFacts,
+    output_records,
+    package_versions,
+    write_manifest,
+    write_table,
+    write_workbook,
+)
+from kidneycohort.run_folder._manifest import own_version, utc_now_text
 
 logger = logging.getLogger("kidneycohort.pipeline")
 
@@ -70,7 +86,7 @@ class RunResult:
         The run folder, in place.
     tables : dict
         Every table the run held at the end (including in-memory ones).
-    manifest : dict
+    manifest : Manifest
         The manifest as written.
     warnings : list of str
         The warnings captured during the run.
@@ -78,7 +94,7 @@ class RunResult:
 
     run_dir: Path
     tables: dict[str, Any]
-    manifest: dict[str, Any]
+    manifest: Manifest
     warnings: list[str] = field(default_factory=list)
 
 
@@ -92,19 +108,70 @@ def _format_warning(w: warnings.WarningMessage) -> str:
     return f"{w.category.__name__}: {w.message}"
 
 
-def _study_summary(config: StudyConfig) -> dict[str, Any]:
+def _study_facts(config: StudyConfig) -> StudyFacts:
     from kidneycohort.pipeline.steps import primary_equation, study_equations
 
     equations = study_equations(config.sections)
-    return {
-        "name": config.study.name,
-        "description": config.study.description,
-        "recipe": config.recipe.name,
-        "primary_equation": primary_equation(config.sections, study=config.study)
+    return StudyFacts(
+        name=config.study.name,
+        description=config.study.description,
+        recipe=config.recipe.name,
+        primary_equation=primary_equation(config.sections, study=config.study)
         if equations or config.study.primary_equation
         else None,
-        "equations": equations,
-    }
+        equations=equations,
+    )
+
+
+@dataclass
+class _RunState:
+    """What a run has gathered so far; :meth:`manifest` describes it at any moment."""
+
+    config: StudyConfig
+    tables: dict[str, Any] = field(default_factory=dict)
+    inputs: list[dict[str, Any]] = field(default_factory=list)
+    steps: list[StepRecord] = field(default_factory=list)
+    accounting: list[dict[str, Any]] = field(default_factory=list)
+    by_reason: list[dict[str, Any]] = field(default_factory=list)
+    merged: list[dict[str, Any]] = field(default_factory=list)
+    caught: list[warnings.WarningMessage] = field(default_factory=list)
+
+    def manifest(self) -> Manifest:
+        config = self.config
+        return Manifest(
+            kidneycohort_version=own_version(),
+            created_utc=utc_now_text(),
+            config=config.resolved(),
+            overrides=list(config.overrides),
+            inputs=self.inputs,  # type: ignore[arg-type]
+            packages=package_versions(),
+            seed=config.study.seed,
+            accounting=[AccountingRecord.model_validate(a) for a in self.accounting],
+            accounting_by_reason=[ReasonCount.model_validate(r) for r in self.by_reason],
+            merged_by_reason=[ReasonCount.model_validate(r) for r in self.merged],
+            steps=list(self.steps),
+            warnings=[_format_warning(w) for w in self.caught],
+            study=_study_facts(config),
+        )
+
+
+@contextmanager
+def _run_log(run_dir: Path) -> Iterator[None]:
+    """Log the package at INFO (or lower) into ``run_dir/run.log`` while the run lasts."""
+    handler = logging.FileHandler(run_dir / "run.log", encoding="utf-8")
+    handler.setFormatter(logging.Formatter(_LOG_FORMAT))
+    handler.setLevel(logging.DEBUG)
+    package_logger = logging.getLogger("kidneycohort")
+    old_level = package_logger.level
+    package_logger.addHandler(handler)
+    if package_logger.getEffectiveLevel() > logging.INFO:
+        package_logger.setLevel(logging.INFO)
+    try:
+        yield
+    finally:
+        handler.close()
+        package_logger.removeHandler(handler)
+        package_logger.setLevel(old_level)
 
 
 def run_pipeline(
@@ -146,111 +213,83 @@ def run_pipeline(
     target = Path(out_dir) if out_dir is not None else Path(config.output.dir or "run")
     target = target.resolve()
     progress = progress or _Silent()
-    tmp = run_folder.prepare(target, force)
-
-    handler = logging.FileHandler(tmp / "run.log", encoding="utf-8")
-    handler.setFormatter(logging.Formatter(_LOG_FORMAT))
-    handler.setLevel(logging.DEBUG)
-    package_logger = logging.getLogger("kidneycohort")
-    old_level = package_logger.level
-    package_logger.addHandler(handler)
-    if package_logger.getEffectiveLevel() > logging.INFO:
-        package_logger.setLevel(logging.INFO)
-
-    captured: list[warnings.WarningMessage] = []
-    step_records: list[dict[str, Any]] = []
-    accounting: list[dict[str, Any]] = []
-    by_reason: list[dict[str, Any]] = []
-    merged: list[dict[str, Any]] = []
-    tables: dict[str, Any] = {}
-    inputs: list[dict[str, Any]] = []
-    ok = False
+    tmp = placement.prepare(target, force)
+    state = _RunState(config)
     try:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            logger.info(
-                "study '%s', recipe '%s': %d steps -> %s",
-                config.study.name,
-                config.recipe.name,
-                len(config.steps),
-                target,
+        with _run_log(tmp):
+            _execute(state, tmp, progress, reader or read_sources)
+            final = state.manifest()
+            warning_lines = list(final.warnings)
+            (tmp / "warnings.txt").write_text(
+                "".join(line + "\n" for line in warning_lines), encoding="utf-8"
             )
-            progress.start(["read"] + [s.name for s in config.steps])
-            progress.step_started("read")
-            started = time.perf_counter()
-            tables.update((reader or read_sources)(config))
-            inputs = input_records(config, tables)
-            seconds = time.perf_counter() - started
-            step_records.append(
-                {
-                    "name": "read",
-                    "seconds": round(seconds, 3),
-                    "rows_out": _rows(tables.get("raw_labs")),
-                }
-            )
-            logger.info(
-                "step read: %s rows of labs in %.2f s", _rows(tables.get("raw_labs")), seconds
-            )
-            progress.step_finished("read", seconds, _rows(tables.get("raw_labs")))
-
-            def manifest_now() -> dict[str, Any]:
-                return manifest_mod.build_manifest(
-                    config=config.resolved(),
-                    overrides=config.overrides,
-                    inputs=inputs,
-                    seed=config.study.seed,
-                    accounting=accounting,
-                    accounting_by_reason=by_reason,
-                    merged_by_reason=merged,
-                    steps=step_records,
-                    warnings=[_format_warning(w) for w in caught],
-                    study=_study_summary(config),
-                )
-
-            for step in config.steps:
-                if step.reads_folder:
-                    _finish_tables(tmp, tables, config)
-                record = _run_step(step, config, tables, tmp, progress)
-                step_records.append(record.pop("_record"))
-                accounting.extend(record["accounting"])
-                by_reason.extend(record["accounting_by_reason"])
-                merged.extend(record["merged_by_reason"])
-                # steps after this one (figures, report) read the folder as it stands
-                manifest_mod.write_manifest(tmp, manifest_now())
-            _finish_tables(tmp, tables, config)
-            captured = list(caught)
-            for w in captured:
-                logger.warning("%s", _format_warning(w))
-            final = manifest_now()
-        warning_lines = [_format_warning(w) for w in captured]
-        (tmp / "warnings.txt").write_text(
-            "".join(line + "\n" for line in warning_lines), encoding="utf-8"
-        )
-        final["outputs"] = manifest_mod.output_records(tmp)
-        manifest_mod.write_manifest(tmp, final)
-        logger.info("run complete: %s", target)
-        ok = True
+            # the manifest is written last: a folder with one is a finished run
+            final.outputs = output_records(tmp)
+            write_manifest(tmp, final)
+            logger.info("run complete: %s", target)
     except BaseException as exc:
-        logger.error("run failed: %s: %s", type(exc).__name__, exc, exc_info=True)
-        handler.close()
-        package_logger.removeHandler(handler)
-        (tmp / "error.txt").write_text(f"{type(exc).__name__}: {exc}\n", encoding="utf-8")
-        manifest_path = tmp / "manifest.json"
-        if manifest_path.exists():
-            manifest_path.unlink()
-        failed = run_folder.abandon(tmp, target)
-        progress.finish(False)
-        if isinstance(exc, Exception):
-            exc.log_path = str(failed / "run.log")  # type: ignore[attr-defined]
+        _fail(tmp, target, exc, progress)
         raise
-    finally:
-        if ok:
-            handler.close()
-            package_logger.removeHandler(handler)
-        package_logger.setLevel(old_level)
-    run_folder.commit(tmp, target)
+    placement.commit(tmp, target)
     progress.finish(True)
-    return RunResult(run_dir=target, tables=tables, manifest=final, warnings=warning_lines)
+    return RunResult(run_dir=target, tables=state.tables, manifest=final, warnings=warning_lines)
+
+
+def _fail(tmp: Path, target: Path, exc: BaseException, progress: ProgressObserver) -> None:
+    """Keep the failed run's log and error beside the target; never a manifest."""
+    with _run_log(tmp):
+        logger.error("run failed: %s: %s", type(exc).__name__, exc, exc_info=exc)
+    (tmp / "error.txt").write_text(f"{type(exc).__name__}: {exc}\n", encoding="utf-8")
+    (tmp / "manifest.json").unlink(missing_ok=True)
+    failed = placement.abandon(tmp, target)
+    progress.finish(False)
+    if isinstance(exc, Exception):
+        exc.log_path = str(failed / "run.log")  # type: ignore[attr-defined]
+
+
+def _execute(
+    state: _RunState,
+    run_dir: Path,
+    progress: ProgressObserver,
+    reader: Callable[[StudyConfig], Mapping[str, Any]],
+) -> None:
+    """Read the sources, then run every step, gathering what the manifest records."""
+    config = state.config
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        logger.info(
+            "study '%s', recipe '%s': %d steps -> %s",
+            config.study.name,
+            config.recipe.name,
+            len(config.steps),
+            run_dir,
+        )
+        progress.start(["read"] + [s.name for s in config.steps])
+        progress.step_started("read")
+        started = time.perf_counter()
+        state.tables.update(reader(config))
+        state.inputs = input_records(config, state.tables)
+        seconds = time.perf_counter() - started
+        rows = _rows(state.tables.get("raw_labs"))
+        state.steps.append(StepRecord(name="read", seconds=round(seconds, 3), rows_out=rows))
+        logger.info("step read: %s rows of labs in %.2f s", rows, seconds)
+        progress.step_finished("read", seconds, rows)
+        for step in config.steps:
+            folder = None
+            if step.reads_folder:
+                _finish_tables(run_dir, state.tables, config)
+                state.caught = list(caught)
+                folder = RunFolder(run_dir, manifest=state.manifest())
+            _run_step(step, state, run_dir, progress, folder)
+        _finish_tables(run_dir, state.tables, config)
+        state.caught = list(caught)
+    for w in state.caught:
+        logger.warning("%s", _format_warning(w))
+
+
+def run_files(config: StudyConfig) -> dict[str, RunFile]:
+    """The run-folder contract plus the files the recipe's own steps declare."""
+    return {**FILES, **{f.name: f for step in config.steps for f in step.files}}
 
 
 # Per-patient files that carry the patient's group, so that figures and tables by arm
@@ -265,7 +304,7 @@ def _finish_tables(run_dir: Path, tables: Mapping[str, Any], config: StudyConfig
     (the workbook is byte-identical for the same tables).
     """
     if config.output.xlsx:
-        run_folder.write_workbook(run_dir, tables)
+        write_workbook(run_dir, tables, run_files(config))
     if not config.output.markdown:
         for md in (run_dir / "tables").glob("*.md"):
             md.unlink()
@@ -290,11 +329,12 @@ def _with_group(name: str, table: Any, tables: Mapping[str, Any]) -> Any:
 
 def _run_step(
     step: Step,
-    config: StudyConfig,
-    tables: dict[str, Any],
+    state: _RunState,
     run_dir: Path,
     progress: ProgressObserver,
-) -> dict[str, Any]:
+    folder: RunFolder | None,
+) -> None:
+    config, tables = state.config, state.tables
     progress.step_started(step.name)
     started = time.perf_counter()
     given = {n: tables[n] for n in step.needs}
@@ -305,6 +345,7 @@ def _run_step(
         sections={"study": config.study, **config.sections},
         run_dir=run_dir,
         seed=config.study.seed,
+        folder=folder,
     )
     logger.debug("step %s: starting with %s", step.name, sorted(given))
     try:
@@ -322,14 +363,12 @@ def _run_step(
         )
     for name in step.makes:
         tables[name] = made[name]
-        run_folder.write_table(run_dir, name, _with_group(name, made[name], tables))
+        write_table(run_dir, name, _with_group(name, made[name], tables), run_files(config))
     seconds = time.perf_counter() - started
     rows_out = _rows(made[step.makes[0]]) if step.makes else None
     logger.info("step %s: %s rows in %.2f s", step.name, rows_out, seconds)
     progress.step_finished(step.name, seconds, rows_out)
-    return {
-        "_record": {"name": step.name, "seconds": round(seconds, 3), "rows_out": rows_out},
-        "accounting": context.accounting,
-        "accounting_by_reason": context.accounting_by_reason,
-        "merged_by_reason": context.merged_by_reason,
-    }
+    state.steps.append(StepRecord(name=step.name, seconds=round(seconds, 3), rows_out=rows_out))
+    state.accounting.extend(context.accounting)
+    state.by_reason.extend(context.accounting_by_reason)
+    state.merged.extend(context.merged_by_reason)

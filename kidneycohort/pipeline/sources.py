@@ -10,7 +10,7 @@ import polars as pl
 from kidneycohort.errors import InputDataError
 from kidneycohort.io import FileSource, read_source
 from kidneycohort.pipeline.config import StudyConfig
-from kidneycohort.pipeline.manifest import sha256_of
+from kidneycohort.run_folder import sha256_of
 
 # config table -> (run table name, reader kind)
 SOURCE_TABLES = {

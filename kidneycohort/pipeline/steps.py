@@ -7,7 +7,7 @@ run folder equals the stage function's result on the same inputs.
 
 Table names: ``patients``, ``raw_labs``, ``events`` (read from the sources);
 ``cohort`` and ``cohort_events`` (harmonised patients and events); run-folder tables
-as named in :mod:`kidneycohort.pipeline.run_folder`.
+as named in :mod:`kidneycohort.run_folder`.
 """
 
 from __future__ import annotations
@@ -475,7 +475,8 @@ def _add_report(registry: StepRegistry) -> None:
     )
     def report_step(ctx: StepContext) -> dict[str, Any]:
         """Render the self-contained report of the run folder."""
-        path = write_report(ctx.run_dir)
+        assert ctx.folder is not None
+        path = write_report(ctx.folder)
         return {"report_file": pl.DataFrame({"file": [path.name]}, schema={"file": pl.String})}
 
 
@@ -563,33 +564,21 @@ def _add_slope_model(registry: StepRegistry) -> None:
         }
 
 
-class FiguresSection(BaseModel):
-    """Figure options (config key ``figures``): the parameters of ``write_figures``."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    formats: list[str] = Field(
-        default_factory=lambda: ["png", "svg"],
-        description="File formats of every figure (matplotlib names).",
-    )
-    dpi: int = Field(150, ge=50, le=1200, description="Resolution of raster formats.")
-
-
 def _add_figures(registry: StepRegistry) -> None:
-    from kidneycohort.plots import write_figures
+    from kidneycohort.plots import FigureRule, write_figures
 
     @registry.register(
         "figures",
         makes=["figure_files"],
         section="figures",
-        options=FiguresSection,
+        options=FigureRule,
+        reads_folder=True,
         description="Every figure the run folder has data for, into figures/ (kidneycohort.plots).",
     )
     def figures_step(ctx: StepContext) -> dict[str, Any]:
         """Draw the figures from the run folder as written so far."""
-        opts = ctx.options
-        assert isinstance(opts, FiguresSection)
-        files = write_figures(ctx.run_dir, formats=opts.formats, dpi=opts.dpi)
+        assert ctx.folder is not None
+        files = write_figures(ctx.folder, rule=ctx.options)  # type: ignore[arg-type]
         names = [p.relative_to(ctx.run_dir).as_posix() for p in files]
         return {"figure_files": pl.DataFrame({"file": names}, schema={"file": pl.String})}
 

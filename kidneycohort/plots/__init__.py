@@ -66,10 +66,7 @@ from kidneycohort.plots._trajectories import (
 )
 from kidneycohort.plots._write import (
     FIGURE_TITLES,
-    patient_flow,
-    patient_groups,
-    read_manifest,
-    small_cell_threshold_of,
+    FigureRule,
     write_figures,
 )
 
@@ -81,6 +78,7 @@ __all__ = [
     "KDIGO_RISK_COLOURS",
     "OKABE_ITO",
     "RAPID_DECLINE_PER_YEAR",
+    "FigureRule",
     "attrition_boxes",
     "attrition_figure",
     "egfr_time_bins",
@@ -91,12 +89,8 @@ __all__ = [
     "kdigo_grid_cells",
     "kdigo_grid_figure",
     "model_trajectory_figure",
-    "patient_flow",
-    "patient_groups",
-    "read_manifest",
     "slope_distribution",
     "slope_distribution_figure",
-    "small_cell_threshold_of",
     "survival_figure",
     "survival_steps",
     "transition_cells",

@@ -27,8 +27,8 @@ from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.plots._style import (
-    _BASE_SIZE,
-    _check_threshold,
+    BASE_SIZE,
+    check_threshold,
 )
 
 
@@ -61,7 +61,7 @@ def attrition_boxes(
     InputDataError
         Accounting that does not add up, or reasons that do not sum to the rejected rows.
     """
-    threshold = _check_threshold(small_cell_threshold)
+    threshold = check_threshold(small_cell_threshold)
     acc = _records(accounting, "accounting")
     require_columns(acc, ("table", "rows_read", "rows_used", "rows_rejected"), "accounting")
     if "rows_merged" not in acc.columns:
@@ -248,7 +248,7 @@ def attrition_figure(
         )
         .drop_nulls()
     )
-    plot = ggplot() + theme_void(base_size=_BASE_SIZE)
+    plot = ggplot() + theme_void(base_size=BASE_SIZE)
     if chain.height:
         plot += geom_segment(
             chain.to_pandas(),
@@ -292,7 +292,7 @@ def attrition_figure(
     plot += scale_y_continuous(limits=(y_lo, y_hi), expand=(0, 0))
     plot += theme(
         figure_size=((x_hi - x_lo) * _INCH_PER_X + 0.3, (y_hi - y_lo) * _INCH_PER_Y + 0.7),
-        plot_title=element_text(size=_BASE_SIZE + 2, weight="bold", margin={"b": 6}),
+        plot_title=element_text(size=BASE_SIZE + 2, weight="bold", margin={"b": 6}),
         plot_margin=0.02,
     )
     plot += labs(title="Data flow: rows read, excluded and analysed")

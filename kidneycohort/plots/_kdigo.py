@@ -34,8 +34,8 @@ from kidneycohort.plots._style import (
     KDIGO_RISK_LABELS,
     KDIGO_RISK_LEVELS,
     OKABE_ITO,
-    _check_threshold,
-    _theme,
+    base_theme,
+    check_threshold,
 )
 
 
@@ -51,7 +51,7 @@ def kdigo_grid_cells(
     polars.DataFrame
         ``g_category``, ``a_category``, ``n``, ``risk``, ``label``.
     """
-    threshold = _check_threshold(small_cell_threshold)
+    threshold = check_threshold(small_cell_threshold)
     df = to_polars(grid, "kdigo_grid")
     require_columns(df, ("g_category", "a_category", "n"), "kdigo_grid")
     for column, allowed in (("g_category", G_CATEGORIES), ("a_category", A_CATEGORIES)):
@@ -114,7 +114,7 @@ def kdigo_grid_figure(
     a_labels = [f"{a}\n{A_RANGES[a]}" for a in A_CATEGORIES]
     plot = (
         ggplot(cells.to_pandas(), aes("a_category", "g_category"))
-        + _theme()
+        + base_theme()
         + geom_tile(aes(fill="risk"), colour="white", size=1.5)
         + geom_text(aes(label="label"), size=11)
         + scale_fill_manual(
@@ -155,7 +155,7 @@ def transition_cells(
         ``axis``, ``from_category``, ``to_category``, ``n``, ``fill``, ``label``,
         ``share_of_from`` (row percentage of the from-category).
     """
-    threshold = _check_threshold(small_cell_threshold)
+    threshold = check_threshold(small_cell_threshold)
     df = to_polars(transition_counts, "transition_counts")
     require_columns(df, ("from_category", "to_category", "n"), "transition_counts")
     known = {*G_CATEGORIES, *A_CATEGORIES}
@@ -217,7 +217,7 @@ def transition_heatmap_figure(
     -------
     plotnine.ggplot
     """
-    threshold = _check_threshold(small_cell_threshold)
+    threshold = check_threshold(small_cell_threshold)
     cells = transition_cells(transition_counts, small_cell_threshold=threshold)
     top = float(cells["fill"].max() or 0.0)
     cells = cells.with_columns(
@@ -229,7 +229,7 @@ def transition_heatmap_figure(
     order = [c for c in (*G_CATEGORIES, *A_CATEGORIES) if c in present]
     plot = (
         ggplot(cells.to_pandas(), aes("to_category", "from_category"))
-        + _theme()
+        + base_theme()
         + geom_tile(aes(fill="fill"), colour="white", size=1)
         + geom_text(aes(label="label", colour="text_colour"), size=9)
         + scale_color_identity()

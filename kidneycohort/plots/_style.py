@@ -105,10 +105,10 @@ RAPID_DECLINE_PER_YEAR: Final = -5.0
 ALL_PATIENTS: Final = "All patients"
 
 
-_BASE_SIZE: Final = 10
+BASE_SIZE: Final = 10
 
 
-_FIG_SIZE: Final = (7.5, 4.6)
+FIG_SIZE: Final = (7.5, 4.6)
 
 
 def group_palette(groups: Iterable[Any]) -> dict[str, str]:
@@ -131,17 +131,17 @@ def group_palette(groups: Iterable[Any]) -> dict[str, str]:
     return {g: GROUP_COLOURS[i % len(GROUP_COLOURS)] for i, g in enumerate(names)}
 
 
-def _theme() -> theme:
-    return theme_bw(base_size=_BASE_SIZE) + theme(
-        figure_size=_FIG_SIZE,
+def base_theme() -> theme:
+    return theme_bw(base_size=BASE_SIZE) + theme(
+        figure_size=FIG_SIZE,
         legend_position="bottom",
-        plot_title=element_text(size=_BASE_SIZE + 2, weight="bold"),
-        plot_caption=element_text(size=_BASE_SIZE - 2, ha="left"),
+        plot_title=element_text(size=BASE_SIZE + 2, weight="bold"),
+        plot_caption=element_text(size=BASE_SIZE - 2, ha="left"),
         panel_grid_minor=element_blank(),
     )
 
 
-def _check_threshold(threshold: int) -> int:
+def check_threshold(threshold: int) -> int:
     if not isinstance(threshold, int | np.integer) or threshold < 0:
         raise InputDataError(
             f"small_cell_threshold: expected a non-negative integer, got {threshold!r}; "
@@ -150,7 +150,7 @@ def _check_threshold(threshold: int) -> int:
     return int(threshold)
 
 
-def _pick(df: pl.DataFrame, column: str, value: str | None, name: str) -> pl.DataFrame:
+def pick(df: pl.DataFrame, column: str, value: str | None, name: str) -> pl.DataFrame:
     """Keep the rows of one ``column`` value; ``None`` is fine when there is one value."""
     if column not in df.columns:
         return df
@@ -169,7 +169,7 @@ def _pick(df: pl.DataFrame, column: str, value: str | None, name: str) -> pl.Dat
     return df.filter(pl.col(column) == value)
 
 
-def _with_groups(df: pl.DataFrame, groups: FrameLike | None, name: str) -> pl.DataFrame:
+def with_groups(df: pl.DataFrame, groups: FrameLike | None, name: str) -> pl.DataFrame:
     """Attach a string ``group`` column from ``groups`` (patient_id, group) or the data."""
     if groups is not None:
         g = to_polars(groups, "groups")
@@ -189,7 +189,7 @@ def _with_groups(df: pl.DataFrame, groups: FrameLike | None, name: str) -> pl.Da
     return df.with_columns(pl.col("group").cast(pl.String).fill_null("no group"))
 
 
-def _palette_for(df: pl.DataFrame, palette: Mapping[str, str] | None) -> dict[str, str]:
+def palette_for(df: pl.DataFrame, palette: Mapping[str, str] | None) -> dict[str, str]:
     present = df["group"].unique().to_list() if "group" in df.columns else []
     base = dict(palette) if palette else {}
     extra = group_palette(g for g in present if g not in base)
@@ -198,11 +198,11 @@ def _palette_for(df: pl.DataFrame, palette: Mapping[str, str] | None) -> dict[st
     return base
 
 
-def _wrap(text: str, width: int = 110) -> str:
+def wrap(text: str, width: int = 110) -> str:
     return "\n".join(textwrap.wrap(text, width))
 
 
-def _egfr_unit(df: pl.DataFrame) -> str:
+def egfr_unit(df: pl.DataFrame) -> str:
     if "egfr_unit" in df.columns:
         units = df["egfr_unit"].drop_nulls().unique().to_list()
         if units == ["mL/min"]:

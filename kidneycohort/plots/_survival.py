@@ -34,12 +34,12 @@ from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_tex
 from kidneycohort.errors import InputDataError
 from kidneycohort.labels import display_label
 from kidneycohort.plots._style import (
-    _FIG_SIZE,
+    FIG_SIZE,
     OKABE_ITO,
-    _check_threshold,
-    _palette_for,
-    _pick,
-    _theme,
+    base_theme,
+    check_threshold,
+    palette_for,
+    pick,
 )
 
 _MEASURE_LABEL: Final = {
@@ -71,7 +71,7 @@ def survival_steps(curves: FrameLike, *, endpoint: str | None = None) -> pl.Data
     """
     df = to_polars(curves, "survival_curves")
     require_columns(df, ("group", "years", "estimate"), "survival_curves")
-    df = _pick(df, "endpoint", endpoint, "survival_curves")
+    df = pick(df, "endpoint", endpoint, "survival_curves")
     if "measure" not in df.columns:
         df = df.with_columns(measure=pl.lit("survival"))
     measures = df["measure"].drop_nulls().unique().to_list()
@@ -153,10 +153,10 @@ def survival_figure(
     -------
     plotnine.ggplot
     """
-    threshold = _check_threshold(small_cell_threshold)
+    threshold = check_threshold(small_cell_threshold)
     steps = survival_steps(curves, endpoint=endpoint)
     measure = steps["measure"].drop_nulls().first() if steps.height else "survival"
-    colours = _palette_for(steps, palette)
+    colours = palette_for(steps, palette)
     if endpoint is None:
         raw = to_polars(curves, "survival_curves")
         endpoint = (
@@ -164,7 +164,7 @@ def survival_figure(
             if "endpoint" in raw.columns and raw.height
             else ""
         )
-    plot = ggplot() + _theme()
+    plot = ggplot() + base_theme()
     band = steps.filter(
         pl.col("lower").is_not_null()
         & pl.col("upper").is_not_null()
@@ -322,7 +322,7 @@ def forest_figure(hazard_ratios: FrameLike) -> ggplot:
     rows = forest_rows(hazard_ratios)
     drawn = rows.filter(pl.col("estimable"))
     order = rows["label"].to_list()[::-1]
-    plot = ggplot(drawn.to_pandas(), aes(y="label")) + _theme()
+    plot = ggplot(drawn.to_pandas(), aes(y="label")) + base_theme()
     plot += geom_vline(xintercept=1, linetype="dashed", colour="#555555")
     if drawn.height:
         plot += geom_segment(
@@ -340,7 +340,7 @@ def forest_figure(hazard_ratios: FrameLike) -> ggplot:
         )
     plot += scale_y_discrete(limits=order)
     plot += scale_x_log10()
-    plot += theme(figure_size=(_FIG_SIZE[0], max(2.2, 1.2 + 0.38 * max(rows.height, 1))))
+    plot += theme(figure_size=(FIG_SIZE[0], max(2.2, 1.2 + 0.38 * max(rows.height, 1))))
     plot += labs(
         x="Hazard ratio (95% CI), log scale",
         y="",

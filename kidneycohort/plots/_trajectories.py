@@ -37,13 +37,13 @@ from kidneycohort.plots._style import (
     EGFR_UNIT_LABEL,
     RAPID_DECLINE_PER_YEAR,
     SLOPE_UNIT_LABEL,
-    _check_threshold,
-    _egfr_unit,
-    _palette_for,
-    _pick,
-    _theme,
-    _with_groups,
-    _wrap,
+    base_theme,
+    check_threshold,
+    egfr_unit,
+    palette_for,
+    pick,
+    with_groups,
+    wrap,
 )
 
 logger = logging.getLogger(__name__)
@@ -101,8 +101,8 @@ def egfr_time_bins(
         raise InputDataError(f"bin_years: expected a positive width in years, got {bin_years!r}")
     if not 0 < confidence < 1:
         raise InputDataError(f"confidence: expected a level in (0, 1), got {confidence!r}")
-    df = _pick(df, "equation", equation, "egfr")
-    df = _with_groups(df, groups, "egfr")
+    df = pick(df, "equation", equation, "egfr")
+    df = with_groups(df, groups, "egfr")
     usable = pl.col("egfr").is_not_null() & pl.col("egfr").is_not_nan()
     usable = usable & pl.col("years_from_index").is_not_null()
     n_unusable = df.height - df.filter(usable).height
@@ -186,11 +186,11 @@ def egfr_trajectory_figure(
     -------
     plotnine.ggplot
     """
-    threshold = _check_threshold(small_cell_threshold)
-    df = _pick(to_polars(egfr, "egfr"), "equation", equation, "egfr")
+    threshold = check_threshold(small_cell_threshold)
+    df = pick(to_polars(egfr, "egfr"), "equation", equation, "egfr")
     bins = egfr_time_bins(df, groups, bin_years=bin_years)
-    df = _with_groups(df, groups, "egfr")
-    colours = _palette_for(df, palette)
+    df = with_groups(df, groups, "egfr")
+    colours = palette_for(df, palette)
     shown = bins.filter(pl.col("n_patients") > threshold)
     ribbon = shown.filter(pl.col("lower").is_not_null() & pl.col("upper").is_not_null())
     lines = _sample_patients(
@@ -207,7 +207,7 @@ def egfr_trajectory_figure(
         f"faint lines: up to {sample_patients} randomly chosen patients per group. "
         f"Bins with fewer than {threshold + 1} patients are not shown."
     )
-    plot = ggplot() + _theme()
+    plot = ggplot() + base_theme()
     if lines.height:
         plot += geom_line(
             lines.to_pandas(),
@@ -231,9 +231,9 @@ def egfr_trajectory_figure(
     plot += scale_fill_manual(values=colours, name="Group")
     plot += labs(
         x="Years from index",
-        y=f"eGFR ({_egfr_unit(df)})",
+        y=f"eGFR ({egfr_unit(df)})",
         title="eGFR over time",
-        caption=_wrap(caption),
+        caption=wrap(caption),
     )
     return plot
 
@@ -273,8 +273,8 @@ def model_trajectory_figure(
         "model", "group", "years"
     )
     df = df.filter(pl.col("mean").is_not_null() & pl.col("mean").is_not_nan())
-    colours = _palette_for(df, palette)
-    plot = ggplot(df.to_pandas(), aes("years", "mean", colour="group")) + _theme()
+    colours = palette_for(df, palette)
+    plot = ggplot(df.to_pandas(), aes("years", "mean", colour="group")) + base_theme()
     if {"lower", "upper"} <= set(df.columns):
         band = df.filter(
             pl.col("lower").is_not_null()
@@ -309,7 +309,7 @@ def model_trajectory_figure(
         x="Years from index",
         y=f"Fitted eGFR ({EGFR_UNIT_LABEL})",
         title="Fitted mean eGFR trajectories",
-        caption=_wrap(caption),
+        caption=wrap(caption),
     )
     return plot
 
@@ -339,8 +339,8 @@ def slope_distribution(
     """
     df = to_polars(slopes, "slopes")
     require_columns(df, ("patient_id", "slope_per_year"), "slopes")
-    df = _pick(df, "equation", equation, "slopes")
-    df = _with_groups(df, groups, "slopes")
+    df = pick(df, "equation", equation, "slopes")
+    df = with_groups(df, groups, "slopes")
     usable = pl.col("slope_per_year").is_not_null() & pl.col("slope_per_year").is_not_nan()
     if "eligible" in df.columns:
         usable = usable & pl.col("eligible").fill_null(False)
@@ -384,21 +384,21 @@ def slope_distribution_figure(
     -------
     plotnine.ggplot
     """
-    threshold = _check_threshold(small_cell_threshold)
-    df = _pick(to_polars(slopes, "slopes"), "equation", equation, "slopes")
+    threshold = check_threshold(small_cell_threshold)
+    df = pick(to_polars(slopes, "slopes"), "equation", equation, "slopes")
     summary = slope_distribution(df, groups, rapid_decline_threshold=rapid_decline_threshold)
-    df = _with_groups(df, groups, "slopes")
+    df = with_groups(df, groups, "slopes")
     usable = pl.col("slope_per_year").is_not_null() & pl.col("slope_per_year").is_not_nan()
     if "eligible" in df.columns:
         usable = usable & pl.col("eligible").fill_null(False)
     values = df.filter(usable).select("group", "slope_per_year")
-    colours = _palette_for(df, palette)
+    colours = palette_for(df, palette)
     axis_labels = {
         row["group"]: f"{row['group']}\n(n={small_count_text(row['n'], threshold)})"
         for row in summary.select("group", "n").to_dicts()
     }
     order = sorted(axis_labels)
-    plot = ggplot(values.to_pandas(), aes("group", "slope_per_year")) + _theme()
+    plot = ggplot(values.to_pandas(), aes("group", "slope_per_year")) + base_theme()
     # a violin needs a spread; a group of one patient gets its box (a line) only
     spread = (
         values.group_by("group")

@@ -1,12 +1,21 @@
-"""The self-contained HTML report of a run folder (``report.html``)."""
+"""The self-contained HTML report of a run folder (``report.html``).
 
-from kidneycohort.report.build import (
-    SECTIONS,
-    build_report_context,
-    methods_from_config,
-    render_report,
-    write_report,
-)
+The page is rendered with Jinja2 from ``templates/report.html.j2``. Figures are embedded
+as base64 PNG data URIs and the CSS is inline, so the file opens offline with no server
+and fetches nothing. It is built from aggregates only (:func:`build_report_context`): no
+patient identifier or individual date is ever handed to the template.
+
+Sections (always all eleven, in this order; a section whose files the recipe did not
+make says so): summary, data and attrition, eGFR equations, baseline characteristics,
+trajectories and slopes, KDIGO categories and transitions, endpoints and survival,
+tables, methods, cautions, provenance.
+"""
+
+from __future__ import annotations
+
+from kidneycohort.report._context import SECTIONS, build_report_context
+from kidneycohort.report._methods import methods_from_config
+from kidneycohort.report._render import render_report, write_report
 
 __all__ = [
     "SECTIONS",

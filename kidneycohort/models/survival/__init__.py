@@ -15,9 +15,6 @@ polars tables with the column names the figures and tables read:
 from __future__ import annotations
 
 from kidneycohort.models.survival._by_endpoint import (
-    AT_RISK_BY_ENDPOINT,
-    CURVES_BY_ENDPOINT,
-    HAZARD_RATIOS,
     evaluable_rows,
     hazard_ratio_table,
     survival_curves_by_endpoint,
@@ -37,9 +34,6 @@ from kidneycohort.models.survival._rule import (
 )
 
 __all__ = [
-    "AT_RISK_BY_ENDPOINT",
-    "CURVES_BY_ENDPOINT",
-    "HAZARD_RATIOS",
     "CoxModel",
     "CumulativeIncidence",
     "KaplanMeier",

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Callable
-from typing import Any, Final, TypeVar
+from typing import Any, TypeVar
 
 import polars as pl
 
@@ -26,48 +26,15 @@ from kidneycohort.errors import ConfigError, ConvergenceError, StatisticalWarnin
 from kidneycohort.models.survival._cox import CoxModel
 from kidneycohort.models.survival._curves import CumulativeIncidence, KaplanMeier
 from kidneycohort.models.survival._rule import SurvivalRule
+from kidneycohort.schemas import AT_RISK, HAZARD_RATIOS, SURVIVAL_CURVES
 
 __all__ = [
-    "AT_RISK_BY_ENDPOINT",
-    "CURVES_BY_ENDPOINT",
-    "HAZARD_RATIOS",
     "evaluable_rows",
     "hazard_ratio_table",
     "survival_curves_by_endpoint",
 ]
 
 Fitted = TypeVar("Fitted")
-
-HAZARD_RATIOS: Final[dict[str, pl.DataType]] = {
-    "endpoint": pl.String(),
-    "term": pl.String(),
-    "subgroup": pl.String(),  # null for the whole cohort; "column=level" otherwise
-    "hr": pl.Float64(),
-    "hr_lower": pl.Float64(),
-    "hr_upper": pl.Float64(),
-    "p": pl.Float64(),
-    "ph_p": pl.Float64(),
-}
-"""Layout of :func:`hazard_ratio_table` (``models/hazard_ratios``)."""
-
-CURVES_BY_ENDPOINT: Final[dict[str, pl.DataType]] = {
-    "endpoint": pl.String(),
-    "group": pl.String(),
-    "years": pl.Float64(),
-    "estimate": pl.Float64(),
-    "lower": pl.Float64(),
-    "upper": pl.Float64(),
-    "measure": pl.String(),
-}
-"""Layout of the curves of :func:`survival_curves_by_endpoint` (``models/survival_curves``)."""
-
-AT_RISK_BY_ENDPOINT: Final[dict[str, pl.DataType]] = {
-    "endpoint": pl.String(),
-    "group": pl.String(),
-    "years": pl.Float64(),
-    "n_at_risk": pl.Int64(),
-}
-"""Layout of the numbers at risk of :func:`survival_curves_by_endpoint` (``models/at_risk``)."""
 
 
 def evaluable_rows(endpoints: FrameLike) -> pl.DataFrame:
@@ -122,8 +89,8 @@ def survival_curves_by_endpoint(
     Returns
     -------
     tuple of polars.DataFrame
-        Curves (:data:`CURVES_BY_ENDPOINT`) and numbers at risk
-        (:data:`AT_RISK_BY_ENDPOINT`).
+        Curves (:data:`~kidneycohort.schemas.SURVIVAL_CURVES`) and numbers at risk
+        (:data:`~kidneycohort.schemas.AT_RISK`).
     """
     resolved = resolve_rules(SurvivalRule, rule, options, "survival_curves_by_endpoint")
     estimator = CumulativeIncidence if competing else KaplanMeier
@@ -136,8 +103,8 @@ def survival_curves_by_endpoint(
     curves = [f.curves_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
     at_risk = [f.at_risk_.select(pl.lit(n).alias("endpoint"), pl.all()) for n, f in fits]
     return (
-        pl.concat(curves) if curves else pl.DataFrame(schema=CURVES_BY_ENDPOINT),
-        pl.concat(at_risk) if at_risk else pl.DataFrame(schema=AT_RISK_BY_ENDPOINT),
+        pl.concat(curves) if curves else pl.DataFrame(schema=SURVIVAL_CURVES),
+        pl.concat(at_risk) if at_risk else pl.DataFrame(schema=AT_RISK),
     )
 
 
@@ -186,7 +153,7 @@ def hazard_ratio_table(
     Returns
     -------
     polars.DataFrame
-        :data:`HAZARD_RATIOS`: one row per endpoint, term and subgroup (``subgroup`` null
+        :data:`~kidneycohort.schemas.HAZARD_RATIOS`: one row per endpoint, term and subgroup (``subgroup`` null
         for the whole cohort, ``"column=level"`` otherwise), with the
         proportional-hazards test p of the term (``ph_p``).
 
