@@ -44,12 +44,18 @@ DESIGNS = {
         ("intercept", "t", "act", "act_t", "age", "female", "site_b", "site_c"),
         ("intercept", "t"),
     ),
-    "unbalanced_visits": Design("unbalanced_visits", ("intercept", "t", "act", "act_t"), ("intercept", "t")),
+    "unbalanced_visits": Design(
+        "unbalanced_visits", ("intercept", "t", "act", "act_t"), ("intercept", "t")
+    ),
     "single_value_patients": Design(
         "single_value_patients", ("intercept", "t", "act", "act_t"), ("intercept", "t")
     ),
-    "diagonal": Design("diagonal", ("intercept", "t", "act", "act_t"), ("intercept", "t"), "diagonal"),
-    "random_intercept": Design("random_intercept", ("intercept", "t", "act", "act_t"), ("intercept",)),
+    "diagonal": Design(
+        "diagonal", ("intercept", "t", "act", "act_t"), ("intercept", "t"), "diagonal"
+    ),
+    "random_intercept": Design(
+        "random_intercept", ("intercept", "t", "act", "act_t"), ("intercept",)
+    ),
 }
 
 
@@ -157,9 +163,7 @@ def statsmodels_reference(frame: pl.DataFrame, design: Design, reml: bool):
 def dietox() -> pd.DataFrame:
     """Pig weights (Lauridsen et al. 1999; R package geepack), 72 pigs x 12 weeks, as
     shipped offline in statsmodels' own test files."""
-    path = (
-        Path(statsmodels.__file__).parent / "regression" / "tests" / "results" / "dietox.csv"
-    )
+    path = Path(statsmodels.__file__).parent / "regression" / "tests" / "results" / "dietox.csv"
     return pd.read_csv(path)
 
 

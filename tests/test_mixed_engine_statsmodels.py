@@ -47,9 +47,7 @@ def test_fixed_effects_and_standard_errors_match(paired_fits) -> None:
     # statsmodels' own bse_fe (joint observed information of fixed effects and
     # covariance parameters) is a different quantity: within 5 % on these designs (up to
     # 3 % for the two-slope design, whose acute slope is weakly determined)
-    np.testing.assert_allclose(
-        np.sqrt(np.diag(ours.fixed_covariance)), reference.bse_fe, rtol=5e-2
-    )
+    np.testing.assert_allclose(np.sqrt(np.diag(ours.fixed_covariance)), reference.bse_fe, rtol=5e-2)
 
 
 def test_variance_components_and_likelihood_match(paired_fits) -> None:
