@@ -69,13 +69,13 @@ def check_estimable(blocks: PatientBlocks, *, reml: bool) -> None:
         blocks.fixed_cross.sum(axis=0),
         blocks.fixed_names,
         "fixed effects",
-        "a group or category with no patients?",
+        "no variation, or a group or category with no patients",
     )
     _check_columns(
         blocks.random_cross.sum(axis=-1),
         blocks.random_names,
         "random effects",
-        "an effect that never applies",
+        "no variation",
     )
     parameters = len(blocks.fixed_names) if reml else 0
     if blocks.n_observations - parameters < 1:
