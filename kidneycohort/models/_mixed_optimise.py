@@ -27,6 +27,8 @@ __all__ = ["FitConvergence", "OptimisationFailed", "minimise_deviance"]
 BOUNDARY = 1e-4
 _NEWTON_STEPS = 12
 _EIGEN_FLOOR = 1e-10
+# relative size of rounding in a deviance summed over many patients
+_ROUNDING = 1e-12
 
 
 class OptimisationFailed(RuntimeError):
@@ -120,20 +122,39 @@ def _newton_direction(
     return step, decrement
 
 
+def _projected_norm(evaluation: Evaluation, x: np.ndarray, lower: np.ndarray) -> float:
+    free = ~_held_at_bound(x, evaluation.gradient, lower)
+    return float(np.abs(evaluation.gradient[free]).max()) if free.any() else 0.0
+
+
+def _better(
+    candidate: Evaluation, trial: np.ndarray, current: Evaluation, x: np.ndarray, lower: np.ndarray
+) -> bool:
+    """A lower deviance; or, next to the optimum where deviance changes are lost in
+    rounding (sums over all patients), a change within rounding and a smaller gradient."""
+    if candidate.value < current.value:
+        return True
+    rounding = _ROUNDING * max(1.0, abs(current.value))
+    return candidate.value - current.value <= rounding and _projected_norm(
+        candidate, trial, lower
+    ) < _projected_norm(current, x, lower)
+
+
 def _newton_polish(
     counter: _Counter, x: np.ndarray, lower: np.ndarray, upper: np.ndarray, tolerance: float
 ) -> tuple[np.ndarray, Evaluation, float, int]:
     current = counter(x)
     decrement = np.inf
     steps = 0
-    for steps in range(1, _NEWTON_STEPS + 1):  # noqa: B007 - the count is reported
+    while steps < _NEWTON_STEPS:
+        steps += 1
         free = ~_held_at_bound(x, current.gradient, lower)
         direction, decrement = _newton_direction(_hessian(counter, x), current.gradient, free)
         improved = False
         for length in (1.0, 0.5, 0.25, 0.125, 1 / 16, 1 / 64):
             trial = np.clip(x + length * direction, lower, upper)
             candidate = counter(trial)
-            if candidate.value <= current.value:
+            if _better(candidate, trial, current, x, lower):
                 x, current, improved = trial, candidate, True
                 break
         if decrement <= tolerance or not improved:
@@ -188,8 +209,7 @@ def minimise_deviance(
     x, evaluation, decrement, steps = _newton_polish(
         counter, search.x, lower, upper, tolerance * deviance.n
     )
-    free = ~_held_at_bound(x, evaluation.gradient, lower)
-    gradient_norm = float(np.abs(evaluation.gradient[free]).max()) if free.any() else 0.0
+    gradient_norm = _projected_norm(evaluation, x, lower)
     report = FitConvergence(
         converged=bool(decrement <= tolerance * deviance.n),
         iterations=int(search.nit) + steps,
