@@ -172,7 +172,10 @@ def _boundary(deviance: ProfiledDeviance, x: np.ndarray) -> tuple[str, ...]:
         if np.sqrt(relative_variance[k]) <= BOUNDARY:
             notes.append(f"variance of '{name}' at zero")
         else:
-            notes.append(f"random-effects covariance singular at '{name}' (correlation of +/-1)")
+            notes.append(
+                f"random-effects covariance singular at '{name}' (it is a linear combination "
+                "of the effects before it: a correlation of +/-1 for two effects)"
+            )
     return tuple(notes)
 
 
