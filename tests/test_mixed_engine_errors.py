@@ -211,7 +211,8 @@ def test_a_singular_fit_is_reported_not_refitted() -> None:
     assert fit.structure == "unstructured"
     assert fit.convergence.converged
     assert fit.convergence.boundary == (
-        "random-effects covariance singular at 't' (correlation of +/-1)",
+        "random-effects covariance singular at 't' (it is a linear combination of the "
+        "effects before it: a correlation of +/-1 for two effects)",
     )
     assert fit.deviance <= 709.428093 + 1e-6
     components = fit.variance_components_table()
