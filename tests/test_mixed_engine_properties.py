@@ -18,7 +18,8 @@ from kidneycohort.models._mixed_blocks import (
     combine_blocks,
     patient_blocks_from_frame,
 )
-from kidneycohort.models._mixed_engine import MixedModelFit, fit_mixed_model
+from kidneycohort.models._mixed_engine import fit_mixed_model
+from kidneycohort.models._mixed_result import MixedModelFit
 from tests._mixed_engine_fixtures import simulate_values
 
 DESIGN = {

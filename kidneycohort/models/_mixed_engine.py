@@ -47,7 +47,12 @@ from pydantic import Field
 from kidneycohort._frames import FrameLike
 from kidneycohort._rules import RuleModel, resolve_rules
 from kidneycohort.errors import ConvergenceError, StatisticalWarning
-from kidneycohort.models._mixed_blocks import PatientBlocks, patient_blocks_from_frame
+from kidneycohort.models._mixed_blocks import (
+    PatientBlocks,
+    combine_blocks,
+    patient_blocks,
+    patient_blocks_from_frame,
+)
 from kidneycohort.models._mixed_checks import check_estimable
 from kidneycohort.models._mixed_objective import Covariance, ProfiledDeviance
 from kidneycohort.models._mixed_optimise import (
@@ -55,16 +60,28 @@ from kidneycohort.models._mixed_optimise import (
     OptimisationFailed,
     minimise_deviance,
 )
-from kidneycohort.models._mixed_result import MixedModelFit
+from kidneycohort.models._mixed_result import (
+    LikelihoodRatioTest,
+    MixedModelFit,
+    likelihood_ratio_test,
+)
 
 logger = logging.getLogger(__name__)
 
+# the engine's whole public surface, gathered for the package that will export it
 __all__ = [
+    "LikelihoodRatioTest",
+    "MixedModelFit",
     "MixedModelOptions",
+    "PatientBlocks",
     "RandomEffectsStep",
+    "combine_blocks",
     "fallback_steps",
     "fit_mixed_model",
     "fit_patient_mixed_model",
+    "likelihood_ratio_test",
+    "patient_blocks",
+    "patient_blocks_from_frame",
 ]
 
 
