@@ -265,6 +265,8 @@ def print_results(results: list[dict]) -> None:
 
 
 def print_growth(results: list[dict]) -> None:
+    """Slope of log time on log patients over all sizes, and between the two largest
+    (small fits are dominated by fixed costs, so the second shows the growth at scale)."""
     keys = sorted({(r["model"], r["engine"]) for r in results})
     for model, engine in keys:
         points = [
@@ -274,9 +276,12 @@ def print_growth(results: list[dict]) -> None:
         ]
         if len(points) > 1:
             size, seconds = np.log(np.array(points, dtype=float)).T
+            overall = np.polyfit(size, seconds, 1)[0]
+            last = (seconds[-1] - seconds[-2]) / (size[-1] - size[-2])
             print(
-                f"{model:<11} {engine:<12} time grows as patients^{np.polyfit(size, seconds, 1)[0]:.2f}"
-                f" ({points[0][0]} to {points[-1][0]} patients)"
+                f"{model:<11} {engine:<12} time grows as patients^{overall:.2f} from "
+                f"{points[0][0]} to {points[-1][0]} patients; patients^{last:.2f} from "
+                f"{points[-2][0]} to {points[-1][0]}"
             )
 
 
