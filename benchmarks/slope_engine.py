@@ -46,7 +46,7 @@ STATSMODELS_MAX = {"one_slope": 20_000, "two_slopes": 20_000}
 ENGINE_RUN = """
 import json, sys, time, warnings
 import polars as pl
-from kidneycohort.models._mixed_engine import fit_patient_mixed_model
+from kidneycohort.models.mixed._engine import fit_patient_mixed_model
 rows = pl.read_parquet(sys.argv[1])
 fixed, random = json.loads(sys.argv[2]), json.loads(sys.argv[3])
 with warnings.catch_warnings(record=True) as caught:

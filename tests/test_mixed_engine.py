@@ -15,8 +15,8 @@ import polars as pl
 import pytest
 from scipy import optimize
 
-from kidneycohort.models._mixed_engine import fit_patient_mixed_model
-from kidneycohort.models._mixed_result import likelihood_ratio_test
+from kidneycohort.models.mixed._engine import fit_patient_mixed_model
+from kidneycohort.models.mixed._result import likelihood_ratio_test
 from tests._mixed_engine_fixtures import (
     design_matrix,
     dietox,

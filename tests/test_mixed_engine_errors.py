@@ -8,9 +8,9 @@ import polars as pl
 import pytest
 
 from kidneycohort.errors import ConfigError, ConvergenceError, InputDataError, StatisticalWarning
-from kidneycohort.models._mixed_blocks import combine_blocks, patient_blocks_from_frame
-from kidneycohort.models._mixed_engine import (
-    MixedModelOptions,
+from kidneycohort.models.mixed._blocks import combine_blocks, patient_blocks_from_frame
+from kidneycohort.models.mixed._engine import (
+    MixedModelRule,
     RandomEffectsStep,
     fallback_steps,
     fit_mixed_model,
@@ -127,8 +127,8 @@ def test_bad_options_are_config_errors(values) -> None:
         ConfigError, match=r"fit_mixed_model.method: .*'reml' or 'ml' \(got 'remll'\)"
     ):
         _fit(values, method="remll")
-    with pytest.raises(ConfigError, match=r"MixedModelOptions.covariance: .*'unstructured'"):
-        MixedModelOptions(covariance="full")
+    with pytest.raises(ConfigError, match=r"MixedModelRule.covariance: .*'unstructured'"):
+        MixedModelRule(covariance="full")
     with pytest.raises(ConfigError, match=r"unknown rule 'methd' \(did you mean 'method'\?\)"):
         _fit(values, methd="ml")
     with pytest.raises(ConfigError, match=r"fit_mixed_model.confidence"):
@@ -225,6 +225,6 @@ def test_a_singular_fit_is_reported_not_refitted() -> None:
 
 def test_fit_from_blocks_accepts_options_object(values) -> None:
     blocks = patient_blocks_from_frame(values, **ONE_SLOPE)
-    fit = fit_mixed_model(blocks, MixedModelOptions(method="ml", confidence=0.9))
+    fit = fit_mixed_model(blocks, MixedModelRule(method="ml", confidence=0.9))
     assert (fit.method, fit.confidence) == ("ml", 0.9)
     assert fit.attempts == ("unstructured: converged",)

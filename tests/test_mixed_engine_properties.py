@@ -13,13 +13,13 @@ from hypothesis import Phase, given, settings
 from hypothesis import strategies as st
 
 from kidneycohort.errors import StatisticalWarning
-from kidneycohort.models._mixed_blocks import (
+from kidneycohort.models.mixed._blocks import (
     PatientBlocks,
     combine_blocks,
     patient_blocks_from_frame,
 )
-from kidneycohort.models._mixed_engine import fit_mixed_model
-from kidneycohort.models._mixed_result import MixedModelFit
+from kidneycohort.models.mixed._engine import fit_mixed_model
+from kidneycohort.models.mixed._result import MixedModelFit
 from tests._mixed_engine_fixtures import simulate_values
 
 DESIGN = {

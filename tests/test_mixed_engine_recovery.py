@@ -25,8 +25,8 @@ from scipy import stats
 
 from kidneycohort.egfr import compute_egfr
 from kidneycohort.errors import StatisticalWarning
-from kidneycohort.harmonize import harmonize
-from kidneycohort.models._mixed_engine import fit_patient_mixed_model
+from kidneycohort.harmonize import harmonize_tables
+from kidneycohort.models.mixed._engine import fit_patient_mixed_model
 from kidneycohort.schemas import DAYS_PER_YEAR
 from kidneycohort.synthetic import generate_cohort, load_scenario
 
@@ -57,7 +57,7 @@ def _truth(patients: pl.DataFrame, knot: float) -> dict[str, float]:
 def _rows(seed: int, knot: float) -> tuple[pl.DataFrame, dict[str, float]]:
     scenario = load_scenario(SCENARIO)
     cohort = generate_cohort(scenario, patients=300, seed=seed)
-    harmonised = harmonize(cohort.labs, cohort.patients, cohort.events)
+    harmonised = harmonize_tables(cohort.labs, cohort.patients, cohort.events)
     egfr = compute_egfr(harmonised.labs, harmonised.patients, ["ckd_epi_2021_cr"])
     active = pl.col("group") == "active"
     t1 = pl.min_horizontal("years_from_index", pl.lit(knot))

@@ -9,10 +9,10 @@ import pytest
 from scipy import linalg, stats
 
 from kidneycohort.errors import InputDataError
-from kidneycohort.models._mixed_blocks import patient_blocks_from_frame
-from kidneycohort.models._mixed_engine import fit_patient_mixed_model
-from kidneycohort.models._mixed_objective import ProfiledDeviance
-from kidneycohort.models._mixed_result import likelihood_ratio_test
+from kidneycohort.models.mixed._blocks import patient_blocks_from_frame
+from kidneycohort.models.mixed._engine import fit_patient_mixed_model
+from kidneycohort.models.mixed._objective import ProfiledDeviance
+from kidneycohort.models.mixed._result import likelihood_ratio_test
 from tests._mixed_engine_fixtures import DESIGNS, design_data, design_matrix, simulate_values
 
 ONE_SLOPE = DESIGNS["one_slope"]

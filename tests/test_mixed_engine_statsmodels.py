@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from kidneycohort.models._mixed_engine import fit_patient_mixed_model
+from kidneycohort.models.mixed._engine import fit_patient_mixed_model
 from tests._mixed_engine_fixtures import DESIGNS, design_data, statsmodels_reference
 
 CASES = [(name, method) for name in DESIGNS for method in ("reml", "ml")]

@@ -11,8 +11,8 @@ by REML or ML with any fixed-effect design (groups x time, spline pieces, covari
 site), random effects on any of the per-patient columns, an unstructured or diagonal
 :math:`G` and optionally a residual variance per group of patients. The likelihood,
 its analytic gradient and :math:`\operatorname{Var}(\hat\beta)` are computed exactly
-from per-patient blocks (:mod:`~kidneycohort.models._mixed_blocks`) with
-:math:`\beta` and :math:`\sigma^2` profiled out (:mod:`~kidneycohort.models._mixed_objective`,
+from per-patient blocks (:mod:`~kidneycohort.models.mixed._blocks`) with
+:math:`\beta` and :math:`\sigma^2` profiled out (:mod:`~kidneycohort.models.mixed._objective`,
 Bates et al. [1]_, section 3; Henderson [2]_; Laird & Ware [3]_), so the cost is linear
 in patients and no n x n matrix is ever formed.
 
@@ -47,20 +47,20 @@ from pydantic import Field
 from kidneycohort._frames import FrameLike
 from kidneycohort._rules import RuleModel, resolve_rules
 from kidneycohort.errors import ConvergenceError, StatisticalWarning
-from kidneycohort.models._mixed_blocks import (
+from kidneycohort.models.mixed._blocks import (
     PatientBlocks,
     combine_blocks,
     patient_blocks,
     patient_blocks_from_frame,
 )
-from kidneycohort.models._mixed_checks import check_estimable
-from kidneycohort.models._mixed_objective import Covariance, ProfiledDeviance
-from kidneycohort.models._mixed_optimise import (
+from kidneycohort.models.mixed._checks import check_estimable
+from kidneycohort.models.mixed._objective import Covariance, ProfiledDeviance
+from kidneycohort.models.mixed._optimise import (
     FitConvergence,
     OptimisationFailed,
     minimise_deviance,
 )
-from kidneycohort.models._mixed_result import (
+from kidneycohort.models.mixed._result import (
     LikelihoodRatioTest,
     MixedModelFit,
     likelihood_ratio_test,
@@ -72,7 +72,7 @@ logger = logging.getLogger(__name__)
 __all__ = [
     "LikelihoodRatioTest",
     "MixedModelFit",
-    "MixedModelOptions",
+    "MixedModelRule",
     "PatientBlocks",
     "RandomEffectsStep",
     "combine_blocks",
@@ -85,7 +85,7 @@ __all__ = [
 ]
 
 
-class MixedModelOptions(RuleModel):
+class MixedModelRule(RuleModel):
     """Options of the mixed-model engine."""
 
     method: Literal["reml", "ml"] = Field(
@@ -143,7 +143,7 @@ def _result(
     deviance: ProfiledDeviance,
     x: np.ndarray,
     convergence: FitConvergence,
-    options: MixedModelOptions,
+    rule: MixedModelRule,
     step: RandomEffectsStep,
     attempts: list[str],
 ) -> MixedModelFit:
@@ -158,7 +158,7 @@ def _result(
     spread = {f"{name}_se": conditional_sd[k] for k, name in enumerate(blocks.random_names)}
     ratios = np.exp(2.0 * deviance.log_ratios(x))
     return MixedModelFit(
-        method=options.method,
+        method=rule.method,
         covariance=step.covariance,
         structure=step.label,
         fixed_names=blocks.fixed_names,
@@ -173,7 +173,7 @@ def _result(
         n_parameters=deviance.p + deviance.n_parameters + 1,
         n_observations=blocks.n_observations,
         n_patients=blocks.n_patients,
-        confidence=options.confidence,
+        confidence=rule.confidence,
         convergence=convergence,
         attempts=tuple(attempts),
         random_effects=pl.DataFrame({"patient_id": blocks.patient_ids, **effects, **spread}),
@@ -188,17 +188,17 @@ def _result(
 
 
 def _attempt(
-    blocks: PatientBlocks, step: RandomEffectsStep, options: MixedModelOptions
+    blocks: PatientBlocks, step: RandomEffectsStep, rule: MixedModelRule
 ) -> tuple[ProfiledDeviance, np.ndarray | None, FitConvergence | None, str | None]:
     deviance = ProfiledDeviance(
         blocks,
         covariance=step.covariance,
-        reml=options.method == "reml",
-        residual_by_group=options.residual_variance_by_group,
+        reml=rule.method == "reml",
+        residual_by_group=rule.residual_variance_by_group,
     )
     try:
         x, _, report = minimise_deviance(
-            deviance, tolerance=options.tolerance, max_iterations=options.max_iterations
+            deviance, tolerance=rule.tolerance, max_iterations=rule.max_iterations
         )
     except OptimisationFailed as error:
         return deviance, None, None, str(error)
@@ -215,7 +215,7 @@ def _attempt(
 
 def fit_mixed_model(
     blocks: PatientBlocks,
-    options: MixedModelOptions | None = None,
+    rule: MixedModelRule | None = None,
     *,
     steps: Sequence[RandomEffectsStep] | None = None,
     **overrides: Any,
@@ -227,7 +227,7 @@ def fit_mixed_model(
     blocks : PatientBlocks
         From :func:`patient_blocks`, :func:`patient_blocks_from_frame` or
         :func:`combine_blocks`.
-    options : MixedModelOptions, optional
+    rule : MixedModelRule, optional
         Defaults: REML, unstructured, one residual variance, 95 % limits, fallback on.
     steps : sequence of RandomEffectsStep, optional
         An explicit fallback sequence instead of :func:`fallback_steps`.
@@ -245,7 +245,7 @@ def fit_mixed_model(
     ConvergenceError
         When no step of the fallback sequence converges.
     """
-    settings = resolve_rules(MixedModelOptions, options, overrides, "fit_mixed_model")
+    settings = resolve_rules(MixedModelRule, rule, overrides, "fit_mixed_model")
     sequence = list(
         steps
         or fallback_steps(blocks.random_names, settings.covariance, fallback=settings.fallback)
@@ -292,7 +292,7 @@ def fit_patient_mixed_model(
     random: Sequence[str],
     patient: str = "patient_id",
     residual_variance_by: str | None = None,
-    options: MixedModelOptions | None = None,
+    rule: MixedModelRule | None = None,
     steps: Sequence[RandomEffectsStep] | None = None,
     **overrides: Any,
 ) -> MixedModelFit:
@@ -311,7 +311,7 @@ def fit_patient_mixed_model(
         Column of the patient id.
     residual_variance_by
         Column of a patient attribute (e.g. the arm) with one residual variance per level.
-    options, steps, **overrides
+    rule, steps, **overrides
         As in :func:`fit_mixed_model`.
 
     Examples
@@ -338,4 +338,4 @@ def fit_patient_mixed_model(
         patient=patient,
         residual_group=residual_variance_by,
     )
-    return fit_mixed_model(blocks, options, steps=steps, **overrides)
+    return fit_mixed_model(blocks, rule, steps=steps, **overrides)

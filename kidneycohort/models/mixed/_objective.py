@@ -66,8 +66,8 @@ from typing import Literal
 
 import numpy as np
 
-from kidneycohort.models._mixed_blocks import PatientBlocks
-from kidneycohort.models._mixed_linalg import (
+from kidneycohort.models.mixed._blocks import PatientBlocks
+from kidneycohort.models.mixed._linalg import (
     backward_solve,
     batched_cholesky,
     contract_columns,

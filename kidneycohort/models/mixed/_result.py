@@ -29,8 +29,8 @@ import polars as pl
 from scipy import stats
 
 from kidneycohort.errors import InputDataError
-from kidneycohort.models._mixed_objective import PatientPredictions
-from kidneycohort.models._mixed_optimise import FitConvergence
+from kidneycohort.models.mixed._objective import PatientPredictions
+from kidneycohort.models.mixed._optimise import FitConvergence
 
 __all__ = ["LikelihoodRatioTest", "MixedModelFit", "likelihood_ratio_test"]
 

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
-from kidneycohort.models._mixed_objective import Evaluation, ProfiledDeviance
+from kidneycohort.models.mixed._objective import Evaluation, ProfiledDeviance
 
 logger = logging.getLogger(__name__)
 

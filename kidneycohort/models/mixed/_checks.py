@@ -12,7 +12,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from kidneycohort.errors import InputDataError
-from kidneycohort.models._mixed_blocks import PatientBlocks
+from kidneycohort.models.mixed._blocks import PatientBlocks
 
 __all__ = ["check_estimable"]
 

@@ -62,7 +62,7 @@ class PatientBlocks:
     """Sufficient statistics of the mixed model, per patient and per residual group.
 
     Per-patient arrays are component-major (last axis = patient), see
-    :mod:`kidneycohort.models._mixed_linalg`.
+    :mod:`kidneycohort.models.mixed._linalg`.
 
     Attributes
     ----------
