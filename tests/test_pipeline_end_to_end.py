@@ -291,18 +291,41 @@ def test_adam_dataset_equals_the_export_of_the_endpoints(demo) -> None:
 
     run, _, _ = demo
     cfg = json.loads((run / "manifest.json").read_text())["config"]
-    endpoints = pl.read_parquet(run / "endpoints.parquet").drop("group")
+    endpoints = pl.read_parquet(run / "endpoints.parquet")
+    subjects = (
+        endpoints.select("patient_id", "group")
+        .unique()
+        .join(
+            pl.read_parquet(run / "endpoints.parquet")
+            .group_by("patient_id")
+            .agg(pl.col("start_date").first().alias("index_date")),
+            on="patient_id",
+        )
+    )
     definitions = EndpointsSection(**cfg["endpoints"]).definitions
-    want = to_adam_tte(endpoints, definitions, study_id=cfg["study"]["name"])
+    reference = cfg["survival"]["reference_group"]
+    arms = [reference, *sorted(set(subjects["group"].drop_nulls()) - {reference})]
+    want = to_adam_tte(
+        endpoints.drop("group"),
+        definitions,
+        subjects=subjects,
+        arm_order=arms,
+        study_id=cfg["study"]["name"],
+    )
     got = pl.read_parquet(run / "adam_tte.parquet")
     assert_frame_equal(got.sort("PARAMCD", "USUBJID"), want.sort("PARAMCD", "USUBJID"))
     csv = pl.read_csv(run / "adam_tte.csv", try_parse_dates=True)
     assert csv.height == got.height and csv.columns == got.columns
-    # one row per evaluable patient-endpoint; CNSR is 0 for an event (ADaM BDS-TTE)
-    evaluable = endpoints.filter(pl.col("event").is_not_null())
-    assert got.height == evaluable.height
-    assert int((got["CNSR"] == 0).sum()) == int(evaluable["event"].sum())
+    # every randomised subject in every parameter (not-evaluable ones censored at the
+    # origin); CNSR is 0 for an event (ADaM BDS-TTE)
+    randomised = endpoints.filter(pl.col("start_date").is_not_null())
+    assert got.height == randomised.height
+    per_param = got.group_by("PARAMCD").len()["len"].unique().to_list()
+    assert per_param == [randomised["patient_id"].n_unique()]
+    assert int((got["CNSR"] == 0).sum()) == int(endpoints["event"].fill_null(0).sum())
     assert got["STUDYID"].unique().to_list() == ["Harbour Kidney Outcomes Trial (synthetic demo)"]
+    assert set(got["TRTP"].unique().to_list()) == {"placebo", "active"}
+    assert got.filter(pl.col("TRTP") == "placebo")["TRTPN"].unique().to_list() == [1]
     # AVAL in days counts the origin day: ADT - STARTDT + 1
     days = (got["ADT"] - got["STARTDT"]).dt.total_days() + 1
     assert (got["AVAL"] == days.cast(pl.Float64)).all()

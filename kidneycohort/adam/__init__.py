@@ -1,0 +1,28 @@
+"""CDISC ADaM analysis datasets: ADSL, the eGFR BDS dataset ADEGFR, and ADTTE.
+
+Each dataset comes with variable metadata (label, type, length, origin) checked against
+the ADaM Implementation Guide and the SAS transport v5 limits, and can be written as SAS
+transport (XPT v5) and CDISC Dataset-JSON v1.1 with a spec sheet.
+"""
+
+from kidneycohort.adam._metadata import (
+    ADAM_IG_LABELS,
+    AdamDataset,
+    Variable,
+    check_dataset,
+    spec_sheet,
+)
+from kidneycohort.adam._subjects import subject_facts
+from kidneycohort.adam._tte import ADAM_TTE_COLUMNS, adtte_dataset, to_adam_tte
+
+__all__ = [
+    "ADAM_IG_LABELS",
+    "ADAM_TTE_COLUMNS",
+    "AdamDataset",
+    "Variable",
+    "adtte_dataset",
+    "check_dataset",
+    "spec_sheet",
+    "subject_facts",
+    "to_adam_tte",
+]
