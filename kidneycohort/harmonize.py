@@ -58,6 +58,8 @@ REASON_CODES: Final[dict[str, str]] = {
     "missing_patient_id": "the row has no patient identifier",
     "missing_date": "the row has no sample or event date",
     "unparseable_date": "the date text does not fit the column's date format",
+    "partial_date": "the date is a partial ISO 8601 date (year, or year and month) and the "
+    "source's imputation rule leaves it unimputed",
     "unknown_patient": "the patient identifier is not in the patients table",
     "patient_rejected": "the patient's own row in the patients table was rejected",
     "before_birth": "the date is before the patient's birth date",
@@ -67,6 +69,7 @@ REASON_CODES: Final[dict[str, str]] = {
     "unknown_analyte": "the analyte name or LOINC code is not creatinine, cystatin C or "
     "UACR and is not in the analyte map",
     "missing_value": "the result is empty",
+    "not_done": "the laboratory reports the test as not done (e.g. SDTM LBSTAT = NOT DONE)",
     "not_a_result": "the result text is not a number (e.g. 'see comment', 'haemolysed')",
     "qualified_value": "the result carries '<' or '>' and the rules reject qualified values",
     "missing_unit": "no unit was reported and the source gives no default",
@@ -520,6 +523,10 @@ def _finish_patients(used: pl.DataFrame) -> pl.DataFrame:
 # labs
 
 
+# A partial ISO 8601 date: year, or year and month (SDTM --DTC convention).
+_PARTIAL_DATE: Final = r"^\d{4}(?:-\d{2})?$"
+# A result reported as not done ("NOT DONE", "not done: haemolysed", ...).
+_NOT_DONE: Final = r"(?i)^not\s+done\b"
 _NUMBER: Final = r"[+-]?(?:\d+(?:[.,]\d*)?|[.,]\d+)(?:[eE][+-]?\d+)?"
 _RESULT_PATTERN: Final = (
     r"(?i)^(?P<q><=|>=|<|>|≤|≥)?\s*(?P<num>" + _NUMBER + r")\s*"
@@ -662,7 +669,11 @@ def _prepare_labs(
         base_data.select("_value_text")
         .unique()
         .drop_nulls()
-        .with_columns(number.alias("_number"), parsed_qualifier.alias("_parsed_qualifier"))
+        .with_columns(
+            number.alias("_number"),
+            parsed_qualifier.alias("_parsed_qualifier"),
+            pl.col("_value_text").str.contains(_NOT_DONE).alias("_not_done"),
+        )
     )
     code_lookup = (
         base_data.select("_analyte_raw", "_unit_text")
@@ -691,6 +702,11 @@ def _prepare_labs(
     checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
         (
+            pl.col("_date_as_read").str.contains(_PARTIAL_DATE),
+            "partial_date",
+            pl.format("sample_date '{}' is a partial date", pl.col("_date_as_read")),
+        ),
+        (
             pl.col("_date_as_read").is_not_null(),
             "unparseable_date",
             pl.format("sample_date '{}' does not parse", pl.col("_date_as_read")),
@@ -703,6 +719,11 @@ def _prepare_labs(
                 "analyte '{}' is not creatinine, cystatin_c or uacr",
                 pl.col("_analyte_raw").fill_null(""),
             ),
+        ),
+        (
+            pl.col("_not_done"),
+            "not_done",
+            pl.format("reported as '{}'", pl.col("_value_text")),
         ),
         (pl.col("_value_text").is_null(), "missing_value", pl.lit("value is empty")),
         (
