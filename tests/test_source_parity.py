@@ -108,7 +108,7 @@ def test_layouts_give_identical_tables(
     tables = READERS[layout](written, monkeypatch)
     got = derive(tables.patients, tables.labs, tables.events)
     for name, want in from_parquet.items():
-        assert_frame_equal(got[name], want, check_exact=True, obj=name)
+        assert_frame_equal(got[name], want, check_exact=True)
     assert from_parquet["egfr"].height > 5000  # a real cohort, not an empty comparison
     assert int(from_parquet["endpoints"]["event"].fill_null(0).sum()) > 0
 
@@ -120,4 +120,4 @@ def test_omop_in_postgresql_gives_identical_tables(
     tables = read_omop(OmopSource(connection_env="KC_PARITY_URI", **OMOP))
     got = derive(tables.patients, tables.labs, tables.events)
     for name, want in from_parquet.items():
-        assert_frame_equal(got[name], want, check_exact=True, obj=name)
+        assert_frame_equal(got[name], want, check_exact=True)
