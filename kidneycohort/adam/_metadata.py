@@ -87,6 +87,7 @@ ADAM_IG_LABELS: Final[dict[str, str]] = {
     "AVISIT": "Analysis Visit",  # pilot
     "AVISITN": "Analysis Visit (N)",  # pilot
     "ASEQ": "Analysis Sequence Number",
+    "DTYPE": "Derivation Type",
     "STARTDT": "Time to Event Origin Date for Subject",  # pilot
     "CNSR": "Censor",  # pilot
     "EVNTDESC": "Event or Censoring Description",  # pilot
