@@ -51,11 +51,16 @@ def read_back_xpt(path: Path, dataset: AdamDataset) -> pl.DataFrame:
 def check_xpt_round_trip(path: Path, dataset: AdamDataset) -> None:
     """Raise :class:`InputDataError` when pandas reads ``path`` back differently.
 
-    Text must match exactly (SAS stores missing text as blank, read back as missing);
-    numbers to a relative 1e-12 (IBM hexadecimal floating point keeps 53-56 bits).
+    Text must match exactly up to trailing blanks (SAS pads text with blanks and stores
+    missing text as blank, read back as missing); numbers to a relative 1e-12 (IBM
+    hexadecimal floating point keeps 53-56 bits).
     """
     got = read_back_xpt(path, dataset)
-    want = dataset.data
+    texts = [v.name for v in dataset.variables if v.kind == "text"]
+    want = dataset.data.with_columns(
+        pl.when(pl.col(c).str.strip_chars_end() != "").then(pl.col(c).str.strip_chars_end())
+        for c in texts
+    )
     if got.height != want.height or got.columns != want.columns:
         raise InputDataError(
             f"{path.name}: read back {got.height} rows x {got.width} columns, wrote "
