@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import pandas as pd
 import polars as pl
 import pytest
 import yaml
@@ -313,7 +314,13 @@ def test_adam_dataset_equals_the_export_of_the_endpoints(demo) -> None:
         study_id=cfg["study"]["name"],
     )
     got = pl.read_parquet(run / "adam_tte.parquet")
-    assert_frame_equal(got.sort("PARAMCD", "USUBJID"), want.sort("PARAMCD", "USUBJID"))
+    # the run also points eGFR-dated rows at their ADEGFR record (SRCSEQ)
+    assert_frame_equal(
+        got.drop("SRCSEQ").sort("PARAMCD", "USUBJID"),
+        want.drop("SRCSEQ").sort("PARAMCD", "USUBJID"),
+    )
+    from_egfr = got.filter(pl.col("SRCDOM") == "ADEGFR")
+    assert from_egfr.height and from_egfr["SRCSEQ"].null_count() == 0
     csv = pl.read_csv(run / "adam_tte.csv", try_parse_dates=True)
     assert csv.height == got.height and csv.columns == got.columns
     # every randomised subject in every parameter (not-evaluable ones censored at the
@@ -329,6 +336,27 @@ def test_adam_dataset_equals_the_export_of_the_endpoints(demo) -> None:
     # AVAL in days counts the origin day: ADT - STARTDT + 1
     days = (got["ADT"] - got["STARTDT"]).dt.total_days() + 1
     assert (got["AVAL"] == days.cast(pl.Float64)).all()
+
+
+def test_adam_files_in_the_run_folder(demo) -> None:
+    from kidneycohort.io.cdisc_files import read_dataset_json
+
+    run = demo[0]
+    names = {p.name for p in (run / "adam").iterdir()}
+    assert names == {f"{d}.{x}" for d in ("adsl", "adegfr", "adtte") for x in ("xpt", "json")} | {
+        "spec.csv"
+    }
+    adsl, meta = read_dataset_json(run / "adam" / "adsl.json")
+    endpoints = pl.read_parquet(run / "endpoints.parquet")
+    assert adsl.height == endpoints["patient_id"].n_unique()
+    assert meta["name"] == "ADSL" and meta["records"] == adsl.height
+    spec = pl.read_csv(run / "adam" / "spec.csv")
+    assert set(spec["dataset"].unique()) == {"ADSL", "ADEGFR", "ADTTE"}
+    assert (spec["variable"].str.len_chars() <= 8).all()
+    assert (spec["label"].str.len_chars() <= 40).all()
+    adtte = pl.read_parquet(run / "adam_tte.parquet")
+    back = pd.read_sas(run / "adam" / "adtte.xpt", format="xport", encoding="utf-8")
+    assert len(back) == adtte.height
 
 
 def test_shared_tables_print_no_small_counts(demo) -> None:
