@@ -60,6 +60,20 @@ def fresh_database(prefix: str) -> Iterator[str]:
         _admin(uri, f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
 
 
+def libpq_environment(uri: str) -> dict[str, str]:
+    """The process environment with ``uri``'s parts as libpq variables (PGHOST, ...), so
+    that no password is ever on a command line or in a failing command's message."""
+    parts = urllib.parse.urlparse(uri)
+    return {
+        **os.environ,
+        "PGHOST": parts.hostname or "",
+        "PGPORT": str(parts.port or 5432),
+        "PGUSER": urllib.parse.unquote(parts.username or ""),
+        "PGPASSWORD": urllib.parse.unquote(parts.password or ""),
+        "PGDATABASE": parts.path.lstrip("/"),
+    }
+
+
 def load_omop_folder(folder: Path, uri: str) -> None:
     """Load a synthetic ``omop/`` folder with its documented one-line psql command."""
     psql = shutil.which("psql")
@@ -67,9 +81,12 @@ def load_omop_folder(folder: Path, uri: str) -> None:
         if os.environ.get("CI", "").lower() == "true":
             pytest.fail("CI=true but psql is not installed")
         pytest.skip("psql (PostgreSQL client) is not installed")
-    subprocess.run(
-        [psql, uri, "-q", "-v", "ON_ERROR_STOP=1", "-f", "load_postgresql.sql"],
+    done = subprocess.run(
+        [psql, "-q", "-v", "ON_ERROR_STOP=1", "-f", "load_postgresql.sql"],
         cwd=folder,
-        check=True,
+        env=libpq_environment(uri),
         capture_output=True,
+        text=True,
     )
+    if done.returncode != 0:
+        pytest.fail(f"psql could not load {folder}: {done.stderr.strip()}")

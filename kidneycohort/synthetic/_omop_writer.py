@@ -340,6 +340,8 @@ def _full(name: str, frame: pl.DataFrame) -> pl.DataFrame:
         "date": pl.Date,
         "timestamp": pl.Datetime("us"),
     }
+    if frame.width == 0:
+        return pl.DataFrame(schema={c: kinds.get(k, pl.String) for c, k, _ in CDM_TABLES[name]})
     return frame.select(
         (pl.col(c) if c in frame.columns else pl.lit(None)).cast(kinds.get(k, pl.String)).alias(c)
         for c, k, _ in CDM_TABLES[name]

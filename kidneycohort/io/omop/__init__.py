@@ -8,10 +8,12 @@ as Arrow batches and maps it onto the tables the harmonise stage reads.
 
 from kidneycohort.io.omop._connect import OmopConnection, quote_identifier, quote_literal
 from kidneycohort.io.omop._read import OmopTables, read_omop
+from kidneycohort.io.omop._results import RESULT_TABLES, write_results
 from kidneycohort.io.omop._spec import CodeSet, CohortGroups, EventConcepts, OmopSource
 from kidneycohort.io.omop._vocabulary import Vocabulary, resolve_vocabulary
 
 __all__ = [
+    "RESULT_TABLES",
     "CodeSet",
     "CohortGroups",
     "EventConcepts",
@@ -23,4 +25,5 @@ __all__ = [
     "quote_literal",
     "read_omop",
     "resolve_vocabulary",
+    "write_results",
 ]
