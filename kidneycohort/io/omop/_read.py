@@ -40,7 +40,6 @@ from kidneycohort.io.omop._vocabulary import (
     UCUM,
     Vocabulary,
     check_unit_codes,
-    other_unit_codes,
     resolve_vocabulary,
 )
 
@@ -86,47 +85,46 @@ def _person_key(spec: OmopSource, frame: pl.DataFrame) -> pl.Expr:
 
 # ---- labs ------------------------------------------------------------------------------
 def _stream_measurements(con: OmopConnection, vocab: Vocabulary) -> pl.DataFrame:
-    sql = _sql.measurement_sql(con.spec, vocab.labs)
+    """Stream MEASUREMENT and map each Arrow batch as it arrives: client memory holds the
+    canonical rows read so far and one raw batch."""
+    sql = _sql.measurement_sql(con.spec, vocab.labs, vocab.units)
     parts: list[pl.DataFrame] = []
     for batch in con.batches(sql, "MEASUREMENT"):
         frame = pl.from_arrow(batch)
         assert isinstance(frame, pl.DataFrame)
-        parts.append(frame)
+        parts.append(map_measurements(frame, con.spec, vocab))
     if not parts:
-        return con.frame(sql, "MEASUREMENT")
-    return pl.concat(parts, how="vertical_relaxed", rechunk=False)
+        return map_measurements(con.frame(sql, "MEASUREMENT"), con.spec, vocab)
+    return pl.concat(parts, how="vertical_relaxed")
 
 
-def _unit_lookup(con: OmopConnection, vocab: Vocabulary, raw: pl.DataFrame) -> pl.DataFrame:
-    """unit concept id -> UCUM code (or null) and the reason when it has none."""
-    seen = raw.select(pl.col("unit_concept_id").unique().drop_nulls())["unit_concept_id"]
-    others = [int(c) for c in seen.to_list() if int(c) not in vocab.units]
-    found = other_unit_codes(con, others)
-    rows = [{"unit_concept_id": c, "_ucum": u, "_why": None} for c, u in vocab.units.items()]
-    known = {int(r[0]): (r[1], r[2]) for r in found.iter_rows()}
-    for concept in others:
-        vocabulary, code = known.get(concept, (None, None))
-        if vocabulary == UCUM:
-            rows.append({"unit_concept_id": concept, "_ucum": code, "_why": None})
-        elif concept == 0:
-            rows.append({"unit_concept_id": 0, "_ucum": None, "_why": "unit concept 0 (unmapped)"})
-        else:
-            where = f"vocabulary {vocabulary}" if vocabulary else "not in CONCEPT"
-            rows.append(
-                {
-                    "unit_concept_id": concept,
-                    "_ucum": None,
-                    "_why": f"unit concept {concept} ({where}) has no UCUM code",
-                }
-            )
-    return pl.DataFrame(
-        rows, schema={"unit_concept_id": pl.Int64, "_ucum": pl.String, "_why": pl.String}
+def _unit_columns(vocab: Vocabulary) -> tuple[pl.Expr, pl.Expr]:
+    """(UCUM code, why there is none) of each row's unit concept.
+
+    A configured unit concept gives its UCUM code; another concept of the UCUM vocabulary
+    gives its code (the harmonise stage then judges the unit); concept 0, a concept of
+    another vocabulary or one missing from CONCEPT has no UCUM code.
+    """
+    concept = pl.col("unit_concept_id")
+    configured = concept.replace_strict(vocab.units, default=None, return_dtype=pl.String)
+    other_ucum = pl.when(pl.col("unit_vocabulary") == UCUM).then(pl.col("unit_code"))
+    ucum = pl.coalesce(configured, other_ucum)
+    where = (
+        pl.when(pl.col("unit_vocabulary").is_not_null())
+        .then(pl.format("vocabulary {}", pl.col("unit_vocabulary")))
+        .otherwise(pl.lit("not in CONCEPT"))
     )
+    why = (
+        pl.when(ucum.is_not_null() | concept.is_null())
+        .then(pl.lit(None, pl.String))
+        .when(concept == 0)
+        .then(pl.lit("unit concept 0 (unmapped)"))
+        .otherwise(pl.format("unit concept {} ({}) has no UCUM code", concept, where))
+    )
+    return ucum, why
 
 
-def map_measurements(
-    raw: pl.DataFrame, spec: OmopSource, vocab: Vocabulary, units: pl.DataFrame
-) -> pl.DataFrame:
+def map_measurements(raw: pl.DataFrame, spec: OmopSource, vocab: Vocabulary) -> pl.DataFrame:
     """MEASUREMENT rows -> canonical raw labs (``schemas.RAW_LABS`` + bookkeeping)."""
     value_number = pl.col("value_as_number")
     source_text = pl.col("value_source_value").str.strip_chars()
@@ -161,7 +159,8 @@ def map_measurements(
                 pl.format("visit concept {} not in visit_settings", pl.col("visit_concept_id")),
             )
         )
-    return raw.join(units, on="unit_concept_id", how="left").select(
+    ucum, why = _unit_columns(vocab)
+    return raw.with_columns(ucum.alias("_ucum"), why.alias("_why")).select(
         _person_key(spec, raw),
         pl.coalesce(
             pl.col("measurement_datetime").cast(pl.Datetime("us")),
@@ -412,11 +411,8 @@ def read_omop(source: OmopSource | Mapping[str, Any]) -> OmopTables:
         if not vocab.labs:
             raise ConfigError("data.source.labs: no LOINC codes given")
         patients, _ = _patients(con, vocab)
-        raw = _stream_measurements(con, vocab)
-        units = _unit_lookup(con, vocab, raw)
+        labs = _stream_measurements(con, vocab)
         events = _events(con, vocab)
-    labs = map_measurements(raw, spec, vocab, units)
-    del raw
     report = _report(labs, patients, events)
     logger.info(
         "%s: %d persons, %d lab results, %d events read in %.1f s",

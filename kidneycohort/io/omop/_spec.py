@@ -188,11 +188,17 @@ class OmopSource(RuleModel):
     )
     first_date: dt.date | None = Field(None, description="Read records on or after this day.")
     last_date: dt.date | None = Field(None, description="Read records on or before this day.")
+    results_schema: str | None = Field(
+        None,
+        description="Optional: after a successful run, write its eGFR, baseline, slopes and "
+        "endpoints to this schema of the same database (replacing the study's previous rows "
+        "in one transaction).",
+    )
     batch_rows: int = Field(
         250_000, ge=1_000, description="Rows per Arrow batch streamed from the database."
     )
 
-    @field_validator("cdm_schema", "vocabulary_schema")
+    @field_validator("cdm_schema", "vocabulary_schema", "results_schema")
     @classmethod
     def _identifier(cls, value: str | None) -> str | None:
         if value is not None and not IDENTIFIER.match(value):

@@ -113,8 +113,9 @@ def date_clause(spec: OmopSource, column: str) -> str:
     return out
 
 
-def measurement_sql(spec: OmopSource, concepts: Iterable[int]) -> str:
-    """Lab results of the configured concepts, with the visit's concept when needed."""
+def measurement_sql(spec: OmopSource, concepts: Iterable[int], units: Iterable[int]) -> str:
+    """Lab results of the configured concepts, with the visit's concept when needed and,
+    for a unit concept outside the configured ``units``, its vocabulary and code."""
     visit = ""
     visit_column = ""
     if spec.read_settings:
@@ -128,6 +129,11 @@ def measurement_sql(spec: OmopSource, concepts: Iterable[int]) -> str:
     if spec.patient_id == "person_source_value":
         person = f" LEFT JOIN {table(spec, 'person')} p ON p.person_id = m.person_id"
         person_column = ", p.person_source_value"
+    vocabulary = f"{quote_identifier(spec.vocabulary_schema_name)}.{quote_identifier('concept')}"
+    unit = (
+        f" LEFT JOIN {vocabulary} uc ON uc.concept_id = m.unit_concept_id "
+        f"AND m.unit_concept_id NOT IN ({_ids(units)})"
+    )
     return (
         "SELECT CAST(m.measurement_id AS BIGINT) AS measurement_id, "
         "CAST(m.person_id AS BIGINT) AS person_id, "
@@ -136,9 +142,10 @@ def measurement_sql(spec: OmopSource, concepts: Iterable[int]) -> str:
         "CAST(m.operator_concept_id AS BIGINT) AS operator_concept_id, "
         "CAST(m.value_as_number AS FLOAT8) AS value_as_number, "
         "CAST(m.unit_concept_id AS BIGINT) AS unit_concept_id, "
-        "m.unit_source_value, m.value_source_value"
+        "m.unit_source_value, m.value_source_value, "
+        "uc.vocabulary_id AS unit_vocabulary, uc.concept_code AS unit_code"
         f"{visit_column}{person_column} "
-        f"FROM {table(spec, 'measurement')} m{visit}{person} "
+        f"FROM {table(spec, 'measurement')} m{unit}{visit}{person} "
         f"WHERE m.measurement_concept_id IN ({_ids(concepts)})"
         f"{date_clause(spec, 'm.measurement_date')}"
         f"{persons_clause(spec, 'm.person_id')}"

@@ -196,20 +196,3 @@ def resolve_vocabulary(con: OmopConnection) -> Vocabulary:
         events=events,
         kidney_death=kidney_death,
     )
-
-
-def other_unit_codes(con: OmopConnection, concept_ids: Iterable[int]) -> pl.DataFrame:
-    """``concept_id, vocabulary_id, concept_code`` of unit concepts outside the configured
-    set (to tell a UCUM unit the study does not list from a concept with no UCUM code)."""
-    ids = sorted({int(c) for c in concept_ids if c is not None and int(c) != 0})
-    if not ids:
-        return pl.DataFrame(
-            schema={"concept_id": pl.Int64, "vocabulary_id": pl.String, "concept_code": pl.String}
-        )
-    schema = quote_identifier(con.spec.vocabulary_schema_name)
-    sql = (
-        "SELECT CAST(concept_id AS BIGINT) AS concept_id, vocabulary_id, concept_code "
-        f"FROM {schema}.{quote_identifier('concept')} "
-        f"WHERE concept_id IN ({', '.join(str(i) for i in ids)})"
-    )
-    return con.frame(sql, "CONCEPT")
