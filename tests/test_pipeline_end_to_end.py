@@ -93,6 +93,7 @@ def test_manifest_contents_and_accounting(demo) -> None:
         "schema_version",
         "kidneycohort_version",
         "created_utc",
+        "run_id",
         "config",
         "overrides",
         "inputs",
@@ -140,7 +141,7 @@ def test_same_inputs_give_byte_identical_tables(demo, tmp_path: Path) -> None:
         assert (runs[0] / rel).read_bytes() == (runs[1] / rel).read_bytes(), rel
     a = json.loads((runs[0] / "manifest.json").read_text())
     b = json.loads((runs[1] / "manifest.json").read_text())
-    for key in ("created_utc", "steps"):  # timestamps and timings
+    for key in ("created_utc", "run_id", "steps"):  # timestamps, run ids and timings
         a.pop(key), b.pop(key)
     # the report carries its creation time; data outputs carry rows and hashes
     for m in (a, b):

@@ -66,19 +66,21 @@ def build_manifest(
     warnings: Sequence[str],
     study: Mapping[str, Any],
     created_utc: dt.datetime | None = None,
+    run_id: str = "",
 ) -> dict[str, Any]:
     """Assemble the manifest mapping in the run-folder contract's key order.
 
     ``accounting_by_reason`` lists rejected rows only (they add up to ``rows_rejected``);
     ``merged_by_reason`` lists rows merged into another (they add up to ``rows_merged``).
     ``outputs`` is left empty here; the runner fills it from :func:`output_records` once
-    every file is written.
+    every file is written. ``run_id`` identifies the run (e.g. in a results database).
     """
     created = created_utc or dt.datetime.now(dt.UTC)
     return {
         "schema_version": SCHEMA_VERSION,
         "kidneycohort_version": _own_version(),
         "created_utc": created.strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "run_id": run_id,
         "config": dict(config),
         "overrides": list(overrides),
         "inputs": [dict(i) for i in inputs],

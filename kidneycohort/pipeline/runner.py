@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import logging
 import time
+import uuid
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -24,6 +25,7 @@ from kidneycohort.pipeline import run_folder
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.registry import Step, StepContext
 from kidneycohort.pipeline.sources import input_records, read_sources
+from kidneycohort.pipeline.standard_sources import write_results_after_run
 
 logger = logging.getLogger("kidneycohort.pipeline")
 
@@ -164,6 +166,7 @@ def run_pipeline(
     merged: list[dict[str, Any]] = []
     tables: dict[str, Any] = {}
     inputs: list[dict[str, Any]] = []
+    run_id = uuid.uuid4().hex
     ok = False
     try:
         with warnings.catch_warnings(record=True) as caught:
@@ -205,6 +208,7 @@ def run_pipeline(
                     steps=step_records,
                     warnings=[_format_warning(w) for w in caught],
                     study=_study_summary(config),
+                    run_id=run_id,
                 )
 
             for step in config.steps:
@@ -249,6 +253,8 @@ def run_pipeline(
             package_logger.removeHandler(handler)
         package_logger.setLevel(old_level)
     run_folder.commit(tmp, target)
+    # an OMOP source may take the finished run's outputs back (results_schema)
+    write_results_after_run(config.data.source, target)
     progress.finish(True)
     return RunResult(run_dir=target, tables=tables, manifest=final, warnings=warning_lines)
 
