@@ -17,8 +17,8 @@ in a fresh child process, so its peak memory (``ru_maxrss``) covers that read on
 * ``postgresql``: :func:`kidneycohort.io.omop.read_omop` (concept resolution, SQL
   selection, Arrow batches through ADBC, mapping to canonical raw labs);
 * ``parquet``: :func:`kidneycohort.io.read_labs` on the canonical file, collected;
-* with ``--clients``: the measurement query alone through three Arrow-native PostgreSQL
-  clients (ADBC, connectorx, psycopg ``COPY ... TO STDOUT`` into pyarrow's CSV reader),
+* with ``--clients`` (needs ``pip install connectorx 'psycopg[binary]'``): the
+  measurement query alone through three Arrow-native PostgreSQL clients (ADBC, connectorx, psycopg ``COPY ... TO STDOUT`` into pyarrow's CSV reader),
   each to one Arrow table -- the measurement behind the choice of ADBC.
 
 About 3 % of results are text in ``value_source_value`` with an empty number, 2 % carry
