@@ -159,9 +159,11 @@ def _print_sources(fmt: str) -> None:
 @click.option(
     "--format",
     "fmt",
-    type=click.Choice(["parquet", "csv", "duckdb"]),
+    type=click.Choice(["parquet", "csv", "duckdb", "omop", "sdtm"]),
     default="parquet",
     show_default=True,
+    help="omop: also an OMOP CDM v5.4 database in omop/ (DuckDB file, CSV, psql load "
+    "script); sdtm: also CDISC SDTM datasets in sdtm/ (XPT and Dataset-JSON).",
 )
 @_guarded
 def synth_cmd(

@@ -41,16 +41,22 @@ def test_layout_and_codes(endpoints: pl.DataFrame) -> None:
     assert adam.schema == pl.Schema(ADAM_TTE_COLUMNS)
     assert set(adam["PARAMCD"].unique()) == {"DEC40", "LT15", "KFRT", "KDEATH", "KIDCOMP"}
     assert adam["PARAMCD"].str.len_chars().max() <= 8  # ADaM: PARAMCD at most 8 characters
-    # one row per subject per parameter; q06 has no baseline and leaves the decline/composite
+    # one row per subject per parameter; q06 has no baseline: kept, censored at the origin
     assert adam.group_by("USUBJID", "PARAMCD").len()["len"].max() == 1
     dec = adam.filter(pl.col("PARAMCD") == "DEC40").sort("USUBJID")
-    assert dec["USUBJID"].to_list() == ["q01", "q02", "q03", "q04", "q05"]
+    assert dec["USUBJID"].to_list() == ["q01", "q02", "q03", "q04", "q05", "q06"]
     # CNSR: 0 event, 1 censored (ADaM BDS-TTE convention)
-    assert dec["CNSR"].to_list() == [0, 1, 0, 1, 1]
-    # AVAL = ADT - STARTDT + 1 days: day 180 -> 181, day 400 -> 401, day 211 -> 212
-    assert dec["AVAL"].to_list() == [181.0, 401.0, 181.0, 212.0, 181.0]
-    assert dec["ADT"].to_list() == [INDEX + dt.timedelta(days=d) for d in (180, 400, 180, 211, 180)]
-    assert dec["CMPEVFL"].to_list() == ["N", "N", "N", "Y", "N"]
+    assert dec["CNSR"].to_list() == [0, 1, 0, 1, 1, 1]
+    # AVAL = ADT - STARTDT + 1 days: day 180 -> 181, day 400 -> 401, day 211 -> 212; q06 at
+    # its origin -> 1
+    assert dec["AVAL"].to_list() == [181.0, 401.0, 181.0, 212.0, 181.0, 1.0]
+    assert dec["ADT"].to_list() == [
+        INDEX + dt.timedelta(days=d) for d in (180, 400, 180, 211, 180, 0)
+    ]
+    assert (
+        dec["CNSDTDSC"][5] == "origin date: not evaluable, no baseline eGFR for the study equation"
+    )
+    assert dec["CMPEVFL"].to_list() == ["N", "N", "N", "Y", "N", "N"]
     assert dec["CNSDTDSC"].to_list()[1:2] == ["last eGFR assessment"]
     assert dec["CNSDTDSC"].to_list()[3] == "death (competing event)"
     assert dec["CNSDTDSC"][0] is None
@@ -62,11 +68,11 @@ def test_layout_and_codes(endpoints: pl.DataFrame) -> None:
 def test_years_and_day_counting(endpoints: pl.DataFrame) -> None:
     years = to_adam_tte(endpoints, DEFS, time_unit="years").filter(pl.col("PARAMCD") == "DEC40")
     assert years["AVAL"].to_list() == pytest.approx(
-        [180 / 365.25, 400 / 365.25, 180 / 365.25, 211 / 365.25, 180 / 365.25]
+        [180 / 365.25, 400 / 365.25, 180 / 365.25, 211 / 365.25, 180 / 365.25, 0.0]
     )
     assert years["PARAM"][0].endswith("(years)")
     plain = to_adam_tte(endpoints, DEFS, count_start_day=False).filter(pl.col("PARAMCD") == "DEC40")
-    assert plain["AVAL"].to_list() == [180.0, 400.0, 180.0, 211.0, 180.0]
+    assert plain["AVAL"].to_list() == [180.0, 400.0, 180.0, 211.0, 180.0, 0.0]
 
 
 def test_kaplan_meier_and_aalen_johansen_read_the_export(endpoints: pl.DataFrame) -> None:
@@ -76,7 +82,9 @@ def test_kaplan_meier_and_aalen_johansen_read_the_export(endpoints: pl.DataFrame
     S = 1 - 2/5 = 0.6, unchanged by later censoring. Aalen-Johansen: decline CIF = 0.4;
     the competing death at 212 with two at risk and S(212-) = 0.6 gives CIF = 0.6 * 1/2 = 0.3.
     """
-    dec = to_adam_tte(endpoints, DEFS).filter(pl.col("PARAMCD") == "DEC40")
+    dec = to_adam_tte(endpoints, DEFS).filter(
+        (pl.col("PARAMCD") == "DEC40") & (pl.col("USUBJID") != "q06")
+    )
     t = dec["AVAL"].to_numpy()
     km = KaplanMeierFitter().fit(t, event_observed=1 - dec["CNSR"].to_numpy())
     assert km.survival_function_at_times(400).iloc[0] == pytest.approx(0.6, abs=1e-12)

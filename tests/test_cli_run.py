@@ -104,8 +104,8 @@ def test_run_writes_the_folder_and_records_overrides(tmp_path: Path) -> None:
     labs = manifest["accounting"][0]
     assert labs["table"] == "labs" and labs["rows_read"] == 3
     assert labs["rows_used"] + labs["rows_rejected"] + labs["rows_merged"] == 3
-    # the text result is rejected with a reason and listed in rejected_rows.csv
-    assert "not_a_result" in (run / "rejected_rows.csv").read_text()
+    # the "not done" result is rejected with its reason and listed in rejected_rows.csv
+    assert "not_done" in (run / "rejected_rows.csv").read_text()
 
 
 def test_second_run_needs_force(tmp_path: Path) -> None:

@@ -94,6 +94,10 @@ REASON_CASES: dict[str, tuple[str, dict]] = {
     ),
     "unknown_analyte": ("labs", {"labs": lab(analyte="2161-8")}),  # urine creatinine
     "missing_value": ("labs", {"labs": lab(value="  ")}),
+    # SDTM: LBSTAT = "NOT DONE" rows reach harmonise with this result text
+    "not_done": ("labs", {"labs": lab(value="NOT DONE: haemolysed")}),
+    # ISO 8601 partial date (SDTM --DTC), left unimputed by the source's rule
+    "partial_date": ("labs", {"labs": pl.concat([lab(), lab(date="2020-06", value="1.3")])}),
     "not_a_result": ("labs", {"labs": lab(value="haemolysed")}),
     "qualified_value": (
         "labs",

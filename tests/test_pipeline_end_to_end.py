@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import pandas as pd
 import polars as pl
 import pytest
 import yaml
@@ -92,6 +93,7 @@ def test_manifest_contents_and_accounting(demo) -> None:
         "schema_version",
         "kidneycohort_version",
         "created_utc",
+        "run_id",
         "config",
         "overrides",
         "inputs",
@@ -139,7 +141,7 @@ def test_same_inputs_give_byte_identical_tables(demo, tmp_path: Path) -> None:
         assert (runs[0] / rel).read_bytes() == (runs[1] / rel).read_bytes(), rel
     a = json.loads((runs[0] / "manifest.json").read_text())
     b = json.loads((runs[1] / "manifest.json").read_text())
-    for key in ("created_utc", "steps"):  # timestamps and timings
+    for key in ("created_utc", "run_id", "steps"):  # timestamps, run ids and timings
         a.pop(key), b.pop(key)
     # the report carries its creation time; data outputs carry rows and hashes
     for m in (a, b):
@@ -291,21 +293,71 @@ def test_adam_dataset_equals_the_export_of_the_endpoints(demo) -> None:
 
     run, _, _ = demo
     cfg = json.loads((run / "manifest.json").read_text())["config"]
-    endpoints = pl.read_parquet(run / "endpoints.parquet").drop("group")
+    endpoints = pl.read_parquet(run / "endpoints.parquet")
+    subjects = (
+        endpoints.select("patient_id", "group")
+        .unique()
+        .join(
+            pl.read_parquet(run / "endpoints.parquet")
+            .group_by("patient_id")
+            .agg(pl.col("start_date").first().alias("index_date")),
+            on="patient_id",
+        )
+    )
     definitions = EndpointsSection(**cfg["endpoints"]).definitions
-    want = to_adam_tte(endpoints, definitions, study_id=cfg["study"]["name"])
+    reference = cfg["survival"]["reference_group"]
+    arms = [reference, *sorted(set(subjects["group"].drop_nulls()) - {reference})]
+    want = to_adam_tte(
+        endpoints.drop("group"),
+        definitions,
+        subjects=subjects,
+        arm_order=arms,
+        study_id=cfg["study"]["name"],
+    )
     got = pl.read_parquet(run / "adam_tte.parquet")
-    assert_frame_equal(got.sort("PARAMCD", "USUBJID"), want.sort("PARAMCD", "USUBJID"))
+    # the run also points eGFR-dated rows at their ADEGFR record (SRCSEQ)
+    assert_frame_equal(
+        got.drop("SRCSEQ").sort("PARAMCD", "USUBJID"),
+        want.drop("SRCSEQ").sort("PARAMCD", "USUBJID"),
+    )
+    from_egfr = got.filter(pl.col("SRCDOM") == "ADEGFR")
+    assert from_egfr.height and from_egfr["SRCSEQ"].null_count() == 0
     csv = pl.read_csv(run / "adam_tte.csv", try_parse_dates=True)
     assert csv.height == got.height and csv.columns == got.columns
-    # one row per evaluable patient-endpoint; CNSR is 0 for an event (ADaM BDS-TTE)
-    evaluable = endpoints.filter(pl.col("event").is_not_null())
-    assert got.height == evaluable.height
-    assert int((got["CNSR"] == 0).sum()) == int(evaluable["event"].sum())
+    # every randomised subject in every parameter (not-evaluable ones censored at the
+    # origin); CNSR is 0 for an event (ADaM BDS-TTE)
+    randomised = endpoints.filter(pl.col("start_date").is_not_null())
+    assert got.height == randomised.height
+    per_param = got.group_by("PARAMCD").len()["len"].unique().to_list()
+    assert per_param == [randomised["patient_id"].n_unique()]
+    assert int((got["CNSR"] == 0).sum()) == int(endpoints["event"].fill_null(0).sum())
     assert got["STUDYID"].unique().to_list() == ["Harbour Kidney Outcomes Trial (synthetic demo)"]
+    assert set(got["TRTP"].unique().to_list()) == {"placebo", "active"}
+    assert got.filter(pl.col("TRTP") == "placebo")["TRTPN"].unique().to_list() == [1]
     # AVAL in days counts the origin day: ADT - STARTDT + 1
     days = (got["ADT"] - got["STARTDT"]).dt.total_days() + 1
     assert (got["AVAL"] == days.cast(pl.Float64)).all()
+
+
+def test_adam_files_in_the_run_folder(demo) -> None:
+    from kidneycohort.io.cdisc_files import read_dataset_json
+
+    run = demo[0]
+    names = {p.name for p in (run / "adam").iterdir()}
+    assert names == {f"{d}.{x}" for d in ("adsl", "adegfr", "adtte") for x in ("xpt", "json")} | {
+        "spec.csv"
+    }
+    adsl, meta = read_dataset_json(run / "adam" / "adsl.json")
+    endpoints = pl.read_parquet(run / "endpoints.parquet")
+    assert adsl.height == endpoints["patient_id"].n_unique()
+    assert meta["name"] == "ADSL" and meta["records"] == adsl.height
+    spec = pl.read_csv(run / "adam" / "spec.csv")
+    assert set(spec["dataset"].unique()) == {"ADSL", "ADEGFR", "ADTTE"}
+    assert (spec["variable"].str.len_chars() <= 8).all()
+    assert (spec["label"].str.len_chars() <= 40).all()
+    adtte = pl.read_parquet(run / "adam_tte.parquet")
+    back = pd.read_sas(run / "adam" / "adtte.xpt", format="xport", encoding="utf-8")
+    assert len(back) == adtte.height
 
 
 def test_shared_tables_print_no_small_counts(demo) -> None:

@@ -27,6 +27,7 @@ References
 from __future__ import annotations
 
 from kidneycohort.endpoints._definitions import (
+    NOT_EVALUABLE_REASONS,
     Composite,
     Death,
     EgfrBelow,
@@ -43,6 +44,7 @@ from kidneycohort.endpoints._derive import (
 )
 
 __all__ = [
+    "NOT_EVALUABLE_REASONS",
     "Composite",
     "Death",
     "EgfrBelow",

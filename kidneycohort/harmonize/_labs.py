@@ -30,6 +30,10 @@ from kidneycohort.io.maps import (
 )
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
 
+# A partial ISO 8601 date: year, or year and month (SDTM --DTC convention).
+_PARTIAL_DATE: Final = r"^\d{4}(?:-\d{2})?$"
+# A result reported as not done ("NOT DONE", "not done: haemolysed", ...).
+_NOT_DONE: Final = r"(?i)^not\s+done\b"
 _NUMBER: Final = r"[+-]?(?:\d+(?:[.,]\d*)?|[.,]\d+)(?:[eE][+-]?\d+)?"
 
 
@@ -174,7 +178,11 @@ def _prepare_labs(
         base_data.select("_value_text")
         .unique()
         .drop_nulls()
-        .with_columns(number.alias("_number"), parsed_qualifier.alias("_parsed_qualifier"))
+        .with_columns(
+            number.alias("_number"),
+            parsed_qualifier.alias("_parsed_qualifier"),
+            pl.col("_value_text").str.contains(_NOT_DONE).alias("_not_done"),
+        )
     )
     code_lookup = (
         base_data.select("_analyte_raw", "_unit_text")
@@ -203,6 +211,11 @@ def _prepare_labs(
     checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
         (
+            pl.col("_date_as_read").str.contains(_PARTIAL_DATE),
+            "partial_date",
+            pl.format("sample_date '{}' is a partial date", pl.col("_date_as_read")),
+        ),
+        (
             pl.col("_date_as_read").is_not_null(),
             "unparseable_date",
             pl.format("sample_date '{}' does not parse", pl.col("_date_as_read")),
@@ -215,6 +228,11 @@ def _prepare_labs(
                 "analyte '{}' is not creatinine, cystatin_c or uacr",
                 pl.col("_analyte_raw").fill_null(""),
             ),
+        ),
+        (
+            pl.col("_not_done"),
+            "not_done",
+            pl.format("reported as '{}'", pl.col("_value_text")),
         ),
         (pl.col("_value_text").is_null(), "missing_value", pl.lit("value is empty")),
         (

@@ -17,6 +17,8 @@ REASON_CODES: Final[dict[str, str]] = {
     "missing_patient_id": "the row has no patient identifier",
     "missing_date": "the row has no sample or event date",
     "unparseable_date": "the date text does not fit the column's date format",
+    "partial_date": "the date is a partial ISO 8601 date (year, or year and month) and the "
+    "source's imputation rule leaves it unimputed",
     "unknown_patient": "the patient identifier is not in the patients table",
     "patient_rejected": "the patient's own row in the patients table was rejected",
     "before_birth": "the date is before the patient's birth date",
@@ -26,6 +28,7 @@ REASON_CODES: Final[dict[str, str]] = {
     "unknown_analyte": "the analyte name or LOINC code is not creatinine, cystatin C or "
     "UACR and is not in the analyte map",
     "missing_value": "the result is empty",
+    "not_done": "the laboratory reports the test as not done (e.g. SDTM LBSTAT = NOT DONE)",
     "not_a_result": "the result text is not a number (e.g. 'see comment', 'haemolysed')",
     "qualified_value": "the result carries '<' or '>' and the rules reject qualified values",
     "missing_unit": "no unit was reported and the source gives no default",

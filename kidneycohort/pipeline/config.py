@@ -23,12 +23,14 @@ from pathlib import Path
 from typing import Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from kidneycohort._rules import error_facts, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
 from kidneycohort.io.maps import FileSource
 from kidneycohort.pipeline.registry import Step, StepRegistry, default_registry
+from kidneycohort.pipeline.standard_sources import StandardSource
+from kidneycohort.pipeline.standard_sources import anchor as anchor_source
 
 FIXED_SECTIONS = ("study", "data", "output")
 
@@ -60,16 +62,32 @@ class DataSection(_Strict):
 
     Each entry is a :class:`kidneycohort.io.FileSource` (the readers' own option model),
     or a list of them for a table split over several files (e.g. one lab extract per
-    site). Paths are relative to the config file.
+    site). Paths are relative to the config file. Instead of the files, ``source`` names
+    a database or dataset folder in a standard layout (OMOP CDM, CDISC SDTM).
     """
 
-    patients: FileSource = Field(description="One row per patient.")
-    labs: FileSource | list[FileSource] = Field(
-        description="Long lab results (one row per result); a list stacks several files."
+    patients: FileSource | None = Field(None, description="One row per patient.")
+    labs: FileSource | list[FileSource] | None = Field(
+        None, description="Long lab results (one row per result); a list stacks several files."
     )
     events: FileSource | list[FileSource] | None = Field(
         None, description="Optional long events: dialysis, transplant, death, ..."
     )
+    source: StandardSource | None = Field(
+        None,
+        description="A source in a standard layout instead of the files: `kind: omop` (an "
+        "OMOP CDM v5.4 database, PostgreSQL or DuckDB) or `kind: sdtm` (CDISC SDTM "
+        "datasets); see kidneycohort.io.omop.OmopSource and kidneycohort.io.sdtm.SdtmSource.",
+    )
+
+    @model_validator(mode="after")
+    def _files_or_source(self) -> DataSection:
+        files = self.patients is not None or self.labs is not None or self.events is not None
+        if self.source is not None and files:
+            raise ValueError("give either source or the patients/labs/events files, not both")
+        if self.source is None and (self.patients is None or self.labs is None):
+            raise ValueError("patients and labs are required (or a source)")
+        return self
 
     def specs(self, table: str) -> list[FileSource]:
         """The sources of ``table`` ("patients", "labs" or "events") as a list."""
@@ -294,10 +312,12 @@ def _pick_model(candidates: Sequence[type[BaseModel]], item: Any) -> type[BaseMo
         return None
     matches = []
     for model in unique:
+        # tag fields: a Literal of one value (a discriminator such as ``kind``)
         tags = {
             name: typing.get_args(info.annotation)
             for name, info in model.model_fields.items()
             if typing.get_origin(info.annotation) is Literal
+            and len(typing.get_args(info.annotation)) == 1
         }
         if tags and all(name in item and item[name] in allowed for name, allowed in tags.items()):
             matches.append(model)
@@ -407,7 +427,7 @@ def check_chain(steps: Sequence[Step], available: Iterable[str], where: str) -> 
 def source_tables(data: DataSection) -> list[str]:
     """Tables available before the first step: one per configured data source."""
     names = ["patients", "raw_labs"]
-    if data.specs("events"):
+    if data.source is not None or data.specs("events"):
         names.append("events")
     return names
 
@@ -420,6 +440,8 @@ def _anchor_paths(data: DataSection, config_dir: Path) -> DataSection:
         return spec.model_copy(update={"path": str((config_dir / path).resolve())})
 
     update: dict[str, Any] = {}
+    if data.source is not None:
+        update["source"] = anchor_source(data.source, config_dir)
     for table in ("patients", "labs", "events"):
         value = getattr(data, table)
         if isinstance(value, list):

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import logging
 import time
+import uuid
 import warnings
 from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
@@ -24,6 +25,7 @@ from kidneycohort.pipeline import placement
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.registry import Step, StepContext
 from kidneycohort.pipeline.sources import input_records, read_sources
+from kidneycohort.pipeline.standard_sources import write_results_after_run
 from kidneycohort.run_folder import (
     FILES,
     AccountingRecord,
@@ -135,12 +137,14 @@ class _RunState:
     by_reason: list[dict[str, Any]] = field(default_factory=list)
     merged: list[dict[str, Any]] = field(default_factory=list)
     caught: list[warnings.WarningMessage] = field(default_factory=list)
+    run_id: str = field(default_factory=lambda: uuid.uuid4().hex)
 
     def manifest(self) -> Manifest:
         config = self.config
         return Manifest(
             kidneycohort_version=own_version(),
             created_utc=utc_now_text(),
+            run_id=self.run_id,
             config=config.resolved(),
             overrides=list(config.overrides),
             inputs=self.inputs,  # type: ignore[arg-type]
@@ -231,6 +235,8 @@ def run_pipeline(
         _fail(tmp, target, exc, progress)
         raise
     placement.commit(tmp, target)
+    # an OMOP source may take the finished run's outputs back (results_schema)
+    write_results_after_run(config.data.source, target)
     progress.finish(True)
     return RunResult(run_dir=target, tables=state.tables, manifest=final, warnings=warning_lines)
 

@@ -10,6 +10,9 @@ import polars as pl
 from kidneycohort.errors import InputDataError
 from kidneycohort.io import FileSource, read_source
 from kidneycohort.pipeline.config import StudyConfig
+from kidneycohort.pipeline.standard_sources import check_source
+from kidneycohort.pipeline.standard_sources import input_records as standard_input_records
+from kidneycohort.pipeline.standard_sources import read_source as read_standard_source
 from kidneycohort.run_folder import sha256_of
 
 # config table -> (run table name, reader kind)
@@ -45,6 +48,8 @@ def check_inputs(config: StudyConfig) -> dict[str, list[str]]:
     :class:`~kidneycohort.errors.InputDataError` naming the config field (``data.labs``),
     the file and the column.
     """
+    if config.data.source is not None:
+        return check_source(config.data.source)
     out: dict[str, list[str]] = {}
     for table in SOURCE_TABLES:
         specs = config.data.specs(table)
@@ -62,6 +67,8 @@ def check_inputs(config: StudyConfig) -> dict[str, list[str]]:
 
 def read_sources(config: StudyConfig) -> dict[str, pl.DataFrame]:
     """Read the configured sources into ``patients``, ``raw_labs`` (and ``events``)."""
+    if config.data.source is not None:
+        return read_standard_source(config.data.source)
     check_inputs(config)
     out: dict[str, pl.DataFrame] = {}
     for table, (name, _) in SOURCE_TABLES.items():
@@ -73,6 +80,8 @@ def read_sources(config: StudyConfig) -> dict[str, pl.DataFrame]:
 
 def input_records(config: StudyConfig, tables: dict[str, Any]) -> list[dict[str, Any]]:
     """Manifest ``inputs``: path, SHA-256 and data rows of every source file."""
+    if config.data.source is not None:
+        return standard_input_records(config.data.source, tables)
     records = []
     for table, (name, _) in SOURCE_TABLES.items():
         read = tables.get(name)

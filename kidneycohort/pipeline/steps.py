@@ -412,58 +412,6 @@ def _add_kfre(registry: StepRegistry) -> None:
         return {"kfre": rows, "tables/kfre_summary": summary}
 
 
-class AdamSection(BaseModel):
-    """ADaM time-to-event export (config key ``adam``): the parameters of ``to_adam_tte``."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    study_id: str | None = Field(None, description="STUDYID of every row; default `study.name`.")
-    time_unit: Literal["days", "years"] = Field("days", description="Unit of AVAL.")
-    count_start_day: bool = Field(
-        True, description="In days, count the origin date as day 1 (AVAL = ADT - STARTDT + 1)."
-    )
-
-
-def _add_adam(registry: StepRegistry) -> None:
-    from kidneycohort.adam import to_adam_tte
-
-    @registry.register(
-        "adam_export",
-        needs=["endpoints"],
-        makes=["adam_tte"],
-        section="adam",
-        options=AdamSection,
-        description="The endpoints as a CDISC ADaM time-to-event dataset (adam_tte.csv/.parquet).",
-    )
-    def adam_step(ctx: StepContext) -> dict[str, Any]:
-        """ADaM BDS-TTE rows of every evaluable endpoint row (kidneycohort.adam)."""
-        opts = ctx.options
-        assert isinstance(opts, AdamSection)
-        endpoints = ctx.sections.get("endpoints")
-        if not isinstance(endpoints, EndpointsSection):
-            raise ConfigError("adam: the ADaM export needs the 'endpoints' section; add it")
-        study = ctx.sections.get("study")
-        study_id = opts.study_id if opts.study_id is not None else getattr(study, "name", "")
-        table = ctx.tables["endpoints"]
-        skipped = table.filter(pl.col("event").is_null())
-        if skipped.height:
-            # not-evaluable rows stay in endpoints.parquet with their reason
-            by_reason = skipped.group_by("reason").len().sort("reason")
-            logger.info(
-                "ADaM export: not-evaluable rows by reason, kept in endpoints.parquet: %s",
-                ", ".join(f"{r}: {n}" for r, n in by_reason.rows()),
-            )
-        return {
-            "adam_tte": to_adam_tte(
-                table,
-                endpoints.definitions,
-                study_id=str(study_id),
-                time_unit=opts.time_unit,
-                count_start_day=opts.count_start_day,
-            )
-        }
-
-
 def _add_report(registry: StepRegistry) -> None:
     from kidneycohort.report import write_report
 
@@ -686,6 +634,12 @@ def _add_tables(registry: StepRegistry) -> None:
             spec=ctx.options,  # type: ignore[arg-type]
         )
         return out
+
+
+def _add_adam(registry: StepRegistry) -> None:
+    from kidneycohort.pipeline.adam_step import add_adam_step
+
+    add_adam_step(registry)
 
 
 _STAGES = (

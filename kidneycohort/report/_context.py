@@ -291,7 +291,7 @@ def _provenance(run: RunFolder) -> dict[str, Any]:
         "overrides": list(manifest.overrides),
         "inputs": [
             {
-                "path": Path(i.path).name,
+                "path": Path(i.path).name if i.path else i.table,
                 "sha256": (i.sha256 or "")[:16],
                 "rows": f"{i.rows:,}" if i.rows is not None else "",
             }

@@ -63,10 +63,14 @@ class _Record(BaseModel):
 
 
 class InputRecord(_Record):
-    """One input file: the config table it fed, its path, SHA-256 and rows."""
+    """One input: the config table it fed, its path (none for a database), SHA-256, rows.
+
+    A database source records its engine, schemas and the name of the variable or
+    service holding the connection (never the connection itself) as further fields.
+    """
 
     table: str
-    path: str
+    path: str | None = None
     sha256: str | None = None
     rows: int | None = None
 
@@ -125,6 +129,7 @@ class Manifest(BaseModel):
     schema_version: str = SCHEMA_VERSION
     kidneycohort_version: str = ""
     created_utc: str = ""
+    run_id: str = ""
     config: dict[str, Any] = Field(default_factory=dict)
     overrides: list[str] = Field(default_factory=list)
     inputs: list[InputRecord] = Field(default_factory=list)

@@ -21,8 +21,8 @@ from kidneycohort.synthetic.cohort import SyntheticCohort, generate_cohort
 
 logger = logging.getLogger(__name__)
 
-Format = Literal["parquet", "csv", "duckdb"]
-FORMATS: tuple[str, ...] = ("parquet", "csv", "duckdb")
+Format = Literal["parquet", "csv", "duckdb", "omop", "sdtm"]
+FORMATS: tuple[str, ...] = ("parquet", "csv", "duckdb", "omop", "sdtm")
 PARQUET_OPTIONS: dict[str, Any] = {
     "compression": "zstd",
     "compression_level": 3,
@@ -54,7 +54,8 @@ def write_cohort(
     """Generate the scenario's cohort and write it to ``out_dir``.
 
     Writes ``patients``, ``labs`` and ``events`` (``.parquet``/``.csv``, or one
-    ``cohort.duckdb``) and ``truth/`` (``patients``, ``samples``, ``events``,
+    ``cohort.duckdb``; ``omop`` adds an OMOP CDM database in ``omop/`` and ``sdtm`` CDISC
+    SDTM datasets in ``sdtm/``, each beside the canonical Parquet files) and ``truth/`` (``patients``, ``samples``, ``events``,
     ``defects``, ``defect_counts.json``, ``scenario.yaml``).
 
     Returns
@@ -93,7 +94,11 @@ def write_frames(cohort: SyntheticCohort, out: Path, fmt: str) -> list[Path]:
     """Write an already generated cohort (see :func:`write_cohort`); returns the files."""
     files: list[Path] = []
     tables = {"patients": cohort.patients, "labs": cohort.labs, "events": cohort.events}
-    if fmt == "duckdb":
+    if fmt in ("omop", "sdtm"):
+        # the standard layouts; the canonical Parquet files are written beside them
+        files += _write_standard_layout(cohort, out, fmt)
+        files += [write_table(frame, out / name, "parquet") for name, frame in tables.items()]
+    elif fmt == "duckdb":
         files.append(_write_duckdb(tables, out / "cohort.duckdb"))
     else:
         files += [write_table(frame, out / name, fmt) for name, frame in tables.items()]
@@ -107,6 +112,16 @@ def write_frames(cohort: SyntheticCohort, out: Path, fmt: str) -> list[Path]:
         encoding="utf-8",
     )
     return [*files, counts, resolved]
+
+
+def _write_standard_layout(cohort: SyntheticCohort, out: Path, fmt: str) -> list[Path]:
+    if fmt == "omop":
+        from kidneycohort.synthetic._omop_writer import write_omop
+
+        return write_omop(cohort, out)[0]
+    from kidneycohort.synthetic._sdtm_writer import write_sdtm
+
+    return write_sdtm(cohort, out)[0]
 
 
 def _write_duckdb(tables: dict[str, pl.DataFrame], path: Path) -> Path:

@@ -1,0 +1,162 @@
+"""The ADaM export as a pipeline step (config key ``adam``).
+
+A thin adapter, like the steps in :mod:`kidneycohort.pipeline.steps`: it hands the
+harmonised patients, eGFR, baseline and endpoints to the builders of
+:mod:`kidneycohort.adam` and returns ``adam_tte`` (written as ``adam_tte.csv`` /
+``.parquet``); ADSL, ADEGFR and ADTTE go to ``adam/`` in the run folder as SAS transport
+v5 and Dataset-JSON v1.1 files with ``adam/spec.csv``.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Any, Literal
+
+import polars as pl
+from pydantic import BaseModel, ConfigDict, Field
+
+from kidneycohort.adam import VisitWindow, default_visit_windows
+from kidneycohort.errors import ConfigError
+from kidneycohort.pipeline.registry import StepContext, StepRegistry
+
+logger = logging.getLogger(__name__)
+
+
+class AdamSection(BaseModel):
+    """ADaM export (config key ``adam``): the parameters of the ADaM dataset builders."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    study_id: str | None = Field(None, description="STUDYID of every row; default `study.name`.")
+    time_unit: Literal["days", "years"] = Field("days", description="Unit of ADTTE.AVAL.")
+    count_start_day: bool = Field(
+        True, description="In days, count the origin date as day 1 (AVAL = ADT - STARTDT + 1)."
+    )
+    visit_windows: list[VisitWindow] = Field(
+        default_factory=default_visit_windows,
+        description="ADEGFR analysis visits (name, target_day, first_day, last_day in study "
+        "days, day 1 = index date); default every 3 months to month 36, +/- 45 days.",
+    )
+    paramcds: dict[str, str] = Field(
+        default_factory=dict,
+        description="Equation -> ADEGFR PARAMCD, for equations without a built-in code or "
+        "to override one.",
+    )
+    files: bool = Field(
+        True, description="Write ADSL, ADEGFR and ADTTE as XPT and Dataset-JSON to adam/."
+    )
+
+
+def _group_and_order(ctx: StepContext, cohort: pl.DataFrame) -> tuple[pl.DataFrame, list[str]]:
+    """The cohort with ``group`` taken from the survival section's group column, and the
+    arm order: the reference group first, then the others in text order."""
+    from kidneycohort.models.survival import SurvivalRule
+
+    survival = ctx.sections.get("survival")
+    spec = survival if isinstance(survival, SurvivalRule) else SurvivalRule()
+    column = spec.group_column
+    if column not in cohort.columns:
+        raise ConfigError(
+            f"adam: the treatment column '{column}' (survival.group_column) is not in the "
+            "patients table; map it in data.patients.columns"
+        )
+    subjects = cohort.with_columns(pl.col(column).cast(pl.String).alias("group"))
+    arms = sorted(subjects["group"].drop_nulls().unique().to_list())
+    if spec.reference_group in arms:
+        arms.remove(spec.reference_group)
+        arms.insert(0, spec.reference_group)
+    return subjects, arms
+
+
+def _kidney_failure_dates(endpoints: pl.DataFrame, definitions: list[Any]) -> pl.DataFrame:
+    """First kidney-failure date per patient as the endpoint rules counted it."""
+    names = [d.name for d in definitions if d.kind == "kidney_failure"]
+    return (
+        endpoints.filter(pl.col("endpoint").is_in(names) & (pl.col("event") == 1))
+        .group_by("patient_id")
+        .agg(pl.col("end_date").min().alias("kidney_failure_date"))
+    )
+
+
+def _albuminuria(ctx: StepContext, equation: str) -> pl.DataFrame | None:
+    categories = ctx.tables.get("baseline_categories")
+    if not isinstance(categories, pl.DataFrame) or "a_category" not in categories.columns:
+        return None
+    if "equation" in categories.columns:
+        categories = categories.filter(pl.col("equation") == equation)
+    return categories.select("patient_id", "a_category").unique("patient_id", keep="first")
+
+
+def add_adam_step(registry: StepRegistry) -> None:
+    """Register ``adam_export`` in ``registry``."""
+
+    @registry.register(
+        "adam_export",
+        needs=["endpoints", "cohort", "egfr", "baseline"],
+        optional_needs=["baseline_categories"],
+        makes=["adam_tte", "adam_datasets"],
+        section="adam",
+        options=AdamSection,
+        description="CDISC ADaM datasets: ADTTE (adam_tte.csv/.parquet) and ADSL, ADEGFR, "
+        "ADTTE as XPT and Dataset-JSON in adam/ with a spec sheet.",
+    )
+    def adam_step(ctx: StepContext) -> dict[str, Any]:
+        """ADSL, ADEGFR and ADTTE (every randomised subject, with treatment and flags)."""
+        from kidneycohort.adam import adegfr_dataset, adsl_dataset, adtte_dataset, write_adam
+        from kidneycohort.adam._bds import paramcd
+        from kidneycohort.pipeline.steps import EndpointsSection, primary_equation
+
+        opts = ctx.options
+        assert isinstance(opts, AdamSection)
+        endpoints = ctx.sections.get("endpoints")
+        if not isinstance(endpoints, EndpointsSection):
+            raise ConfigError("adam: the ADaM export needs the 'endpoints' section; add it")
+        study = ctx.sections.get("study")
+        study_id = str(opts.study_id if opts.study_id is not None else getattr(study, "name", ""))
+        table = ctx.tables["endpoints"]
+        skipped = table.filter(pl.col("event").is_null())
+        if skipped.height:
+            by_reason = skipped.group_by("reason").len().sort("reason")
+            logger.info(
+                "ADaM export: not-evaluable rows censored at their origin, by reason: %s",
+                ", ".join(f"{r}: {n}" for r, n in by_reason.rows()),
+            )
+        subjects, arms = _group_and_order(ctx, ctx.tables["cohort"])
+        equation = primary_equation(ctx.sections, ctx.tables)
+        egfr_ds = adegfr_dataset(
+            ctx.tables["egfr"],
+            ctx.tables["baseline"],
+            subjects,
+            visit_windows=opts.visit_windows,
+            paramcds=opts.paramcds,
+            arm_order=arms,
+            study_id=study_id,
+        )
+        # SRCSEQ of eGFR-dated ADTTE rows: the collected records of the primary equation
+        primary = egfr_ds.data.filter(
+            (pl.col("PARAMCD") == paramcd(equation, opts.paramcds)) & pl.col("DTYPE").is_null()
+        )
+        tte = adtte_dataset(
+            table,
+            endpoints.definitions,
+            subjects=subjects,
+            egfr_records=primary,
+            arm_order=arms,
+            study_id=study_id,
+            time_unit=opts.time_unit,
+            count_start_day=opts.count_start_day,
+        )
+        adsl = adsl_dataset(
+            subjects,
+            ctx.tables["baseline"],
+            equation=equation,
+            data_cut=endpoints.data_cut,
+            kidney_failure_dates=_kidney_failure_dates(table, list(endpoints.definitions)),
+            albuminuria_categories=_albuminuria(ctx, equation),
+            arm_order=arms,
+            study_id=study_id,
+        )
+        datasets = [adsl, egfr_ds, tte]
+        if opts.files:
+            write_adam(datasets, ctx.run_dir / "adam", study_oid=study_id)
+        return {"adam_tte": tte.data, "adam_datasets": datasets}
