@@ -11,7 +11,7 @@ import pytest
 
 from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.kdigo import kdigo_grid_counts
-from kidneycohort.kfre import kfre_at_baseline, kfre_summary_table
+from kidneycohort.kfre import KfreRule, kfre_at_baseline, kfre_summary_table
 from kidneycohort.tables import TableRule
 
 
@@ -161,7 +161,7 @@ def test_kfre_summary_protects_small_cells_and_their_complements() -> None:
         numbers = counts[column].str.extract(r"^(\d+)", 1).cast(pl.Int64).drop_nulls()
         assert not numbers.is_between(1, 10).any()
     # suppression switched off prints everything
-    plain = kfre_summary_table(rows, spec=TableRule(small_cell_threshold=0))
+    plain = kfre_summary_table(rows, table_rule=TableRule(small_cell_threshold=0))
     assert _cell(plain, "KFRE applicable", "x") == "5 (14.3%)"
 
 
@@ -169,8 +169,8 @@ def test_kfre_summary_without_groups_and_bad_input() -> None:
     rows = _rows({"x": 40}, {"x": 12}).drop("group")
     table = kfre_summary_table(rows)
     assert table.columns == ["characteristic", "statistic", "level", "Overall"]
-    with pytest.raises(ConfigError, match=r"kfre\.thresholds_2y: 10"):
-        kfre_summary_table(rows, thresholds_2y=[10])
+    with pytest.raises(ConfigError, match=r"KfreRule\.thresholds_2y: 10.0 is not a fraction"):
+        KfreRule(thresholds_2y=[10])
     with pytest.raises(InputDataError, match="kfre_5y"):
         kfre_summary_table(rows.drop("kfre_5y"))
     with pytest.raises(InputDataError, match="unknown code 'egfr_high'"):

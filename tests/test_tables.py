@@ -75,7 +75,7 @@ def test_baseline_table_counts_percentages_and_suppression() -> None:
 
 
 def test_baseline_table_without_suppression_shows_everything() -> None:
-    table = baseline_characteristics_table(_patients(), spec=TableRule(small_cell_threshold=0))
+    table = baseline_characteristics_table(_patients(), rule=TableRule(small_cell_threshold=0))
     sex = table.filter(pl.col("characteristic") == "Sex")
     assert sex["active"].to_list() == ["25 (83.3%)", "5 (16.7%)"]
 

@@ -30,7 +30,7 @@ def test_missing_baseline_is_one_row_with_the_hand_count() -> None:
         }
     )
     table = baseline_characteristics_table(
-        patients, baseline, spec=TableRule(small_cell_threshold=0)
+        patients, baseline, rule=TableRule(small_cell_threshold=0)
     )
     missing = table.filter(
         pl.col("characteristic").str.starts_with("Baseline eGFR") & (pl.col("level") == "missing")

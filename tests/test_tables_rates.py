@@ -53,7 +53,7 @@ def test_rates_ratios_and_differences_by_hand() -> None:
 def test_small_counts_hide_everything_that_reveals_them() -> None:
     # 3 events (1..10 is a small cell, common practice in data-use agreements)
     endpoints, patients = _endpoints({"a": (50, 3, 2.0), "b": (100, 20, 2.0)})
-    table = rate_comparison_table(endpoints, patients, reference_group="b", spec=TableRule())
+    table = rate_comparison_table(endpoints, patients, reference_group="b", rule=TableRule())
     a = table.filter(pl.col("group") == "a").row(0, named=True)
     assert a["events"] == "<11"
     assert a["rate_per_100py"] == a["rate_ratio"] == a["rate_difference_per_100py"] == "<11"

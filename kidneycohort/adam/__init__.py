@@ -20,6 +20,7 @@ from kidneycohort.adam._metadata import (
     check_dataset,
     spec_sheet,
 )
+from kidneycohort.adam._rule import AdamRule
 from kidneycohort.adam._subjects import subject_facts
 from kidneycohort.adam._tte import ADAM_TTE_COLUMNS, adtte_dataset, to_adam_tte
 
@@ -28,6 +29,7 @@ __all__ = [
     "ADAM_TTE_COLUMNS",
     "PARAMCD_BY_EQUATION",
     "AdamDataset",
+    "AdamRule",
     "Variable",
     "VisitWindow",
     "adegfr_dataset",

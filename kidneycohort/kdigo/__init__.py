@@ -79,6 +79,7 @@ from __future__ import annotations
 from kidneycohort.kdigo._baseline import (
     BASELINE_CATEGORIES,
     BASELINE_CATEGORY_REASONS,
+    KdigoGridRule,
     baseline_categories,
     kdigo_grid_counts,
 )
@@ -122,6 +123,7 @@ __all__ = [
     "RISK_GRID",
     "RISK_LEVELS",
     "STAGES",
+    "KdigoGridRule",
     "SustainRule",
     "albuminuria_category",
     "albuminuria_category_expr",

@@ -5,8 +5,11 @@ from __future__ import annotations
 from typing import Final
 
 import polars as pl
+from pydantic import Field
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._rules import RuleModel
+from kidneycohort.baseline import BaselineRule
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo._categories import (
     A_CATEGORIES,
@@ -17,6 +20,22 @@ from kidneycohort.kdigo._categories import (
     kdigo_risk_expr,
 )
 from kidneycohort.schemas import BASELINE_CATEGORIES
+
+
+class KdigoGridRule(RuleModel):
+    """The KDIGO grid at baseline (config key ``kdigo_grid``).
+
+    The G category comes from the baseline eGFR of the primary equation (the
+    ``baseline`` rule); the A category from a baseline UACR chosen by ``uacr_baseline``
+    (:func:`kidneycohort.baseline.uacr_baseline`).
+    """
+
+    uacr_baseline: BaselineRule = Field(
+        default_factory=lambda: BaselineRule(method="mean_in_window", mean_type="geometric"),
+        description="How the baseline UACR is chosen; default the geometric mean of the "
+        "values in the year before index (UACR is right-skewed and varies day to day).",
+    )
+
 
 # ---- baseline categories (one row per patient) -------------------------------------------
 

@@ -60,6 +60,7 @@ from kidneycohort.kfre._inputs import (
     kfre_at_baseline,
     kfre_inputs,
 )
+from kidneycohort.kfre._rule import KfreRule
 from kidneycohort.kfre._summary import (
     kfre_summary_table,
 )
@@ -73,6 +74,7 @@ __all__ = [
     "KFRE_SUMMARY_REASONS",
     "MIN_AGE_YEARS",
     "ON_KFRT",
+    "KfreRule",
     "Region",
     "add_kfre_risk",
     "kfre_at_baseline",

@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
-from typing import Final
+from typing import Any, Final
 
 import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import InputDataError, did_you_mean
-from kidneycohort.kfre._equation import KFRE_REASONS, Region, add_kfre_risk
+from kidneycohort.kfre._equation import KFRE_REASONS, add_kfre_risk
+from kidneycohort.kfre._rule import KfreRule
 from kidneycohort.schemas import DAYS_PER_YEAR
 from kidneycohort.uacr import uacr_timeline
 from kidneycohort.value_filter import ValueFilterRule, usable_egfr
@@ -131,10 +133,10 @@ def kfre_at_baseline(
     cohort: FrameLike,
     *,
     equation: str,
-    region: Region = "north_american",
-    lookback_days: float = 365.0,
+    rule: KfreRule | None = None,
     value_filter: ValueFilterRule | None = None,
     group_column: str | None = "group",
+    **options: Any,
 ) -> pl.DataFrame:
     """Two- and five-year KFRE risk of each patient at the index date.
 
@@ -158,7 +160,10 @@ def kfre_at_baseline(
         ``egfr.parquet`` rows, harmonised labs (UACR in mg/g) and harmonised patients.
     equation : str
         The eGFR equation (the study's primary one).
-    region, lookback_days, value_filter
+    rule : KfreRule, optional
+        Region of the baseline survivals and the look-back; keyword ``options`` override
+        its fields.
+    value_filter
         Passed to the KFRE functions.
     group_column : str or None
         A ``cohort`` column copied to the output (the grouping of :func:`kfre_summary_table`).
@@ -171,6 +176,7 @@ def kfre_at_baseline(
         ``uacr_mg_g``, ``uacr_years``), ``kfre_2y``, ``kfre_5y``, ``kfre_region``,
         ``kfre_applicable``, ``kfre_reason``.
     """
+    resolved = resolve_rules(KfreRule, rule, options, "kfre_at_baseline")
     pts = to_polars(cohort, "cohort")
     require_columns(pts, ("patient_id",), "cohort")
     inputs = kfre_inputs(
@@ -179,10 +185,10 @@ def kfre_at_baseline(
         pts,
         equation,
         at_years=0.0,
-        lookback_days=lookback_days,
+        lookback_days=resolved.lookback_days,
         value_filter=value_filter,
     )
-    risk = add_kfre_risk(inputs, region=region)
+    risk = add_kfre_risk(inputs, region=resolved.region)
     pts = pts.with_columns(pl.col("patient_id").cast(pl.String))
     extra = [pl.col("patient_id")]
     if group_column is not None and group_column in pts.columns:

@@ -2,14 +2,14 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 from typing import Final
 
 import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
-from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
+from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kfre._inputs import KFRE_SUMMARY_REASONS
+from kidneycohort.kfre._rule import KfreRule
 from kidneycohort.tables import TableRule, suppression_label
 
 _DASH: Final = "–"
@@ -69,9 +69,8 @@ def kfre_summary_table(
     kfre_rows: FrameLike,
     *,
     group_column: str | None = "group",
-    thresholds_2y: Sequence[float] = (0.10, 0.40),
-    thresholds_5y: Sequence[float] = (0.03, 0.05),
-    spec: TableRule | None = None,
+    rule: KfreRule | None = None,
+    table_rule: TableRule | None = None,
 ) -> pl.DataFrame:
     """KFRE risk at baseline by group: applicability, median [IQR] risk, risk above thresholds.
 
@@ -87,7 +86,7 @@ def kfre_summary_table(
     risk 3-5 % for referral to kidney care, 2-year risk above 10 % for multidisciplinary
     care and above 40 % for planning kidney replacement therapy); they are parameters.
 
-    Small cells: counts from 1 to ``spec.small_cell_threshold`` print as ``"<11"`` with
+    Small cells: counts from 1 to ``table_rule.small_cell_threshold`` print as ``"<11"`` with
     no percentage, a median or quartiles of so few patients print as the same label,
     and complementary cells that would reveal a hidden one are hidden too (``"*"``).
 
@@ -97,9 +96,9 @@ def kfre_summary_table(
         :func:`kfre_at_baseline` output (``kfre_2y``, ``kfre_5y``, ``kfre_reason``).
     group_column : str or None
         Column to split by; None (or absent) gives the overall column only.
-    thresholds_2y, thresholds_5y : sequence of float
-        Risk thresholds as fractions in (0, 1).
-    spec : TableRule, optional
+    rule : KfreRule, optional
+        Its ``thresholds_2y`` and ``thresholds_5y`` (fractions) are counted.
+    table_rule : TableRule, optional
         Suppression threshold and decimals.
 
     Returns
@@ -110,17 +109,13 @@ def kfre_summary_table(
     Raises
     ------
     InputDataError
-        A missing column. :class:`ConfigError` for a threshold outside (0, 1).
+        A missing column.
     """
-    spec = spec or TableRule()
+    spec = table_rule or TableRule()
+    rule = rule or KfreRule()
+    thresholds_2y, thresholds_5y = rule.thresholds_2y, rule.thresholds_5y
     df = to_polars(kfre_rows, "kfre")
     require_columns(df, ("patient_id", "kfre_2y", "kfre_5y", "kfre_reason"), "kfre")
-    for name, values in (("thresholds_2y", thresholds_2y), ("thresholds_5y", thresholds_5y)):
-        bad = [v for v in values if not 0 < float(v) < 1]
-        if bad:
-            raise ConfigError(
-                f"kfre.{name}: {bad[0]!r} is not a risk fraction in (0, 1); write 10 % as 0.1"
-            )
     unknown = sorted(set(df["kfre_reason"].drop_nulls().to_list()) - set(KFRE_SUMMARY_REASONS))
     if unknown:
         raise InputDataError(

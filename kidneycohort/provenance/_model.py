@@ -147,7 +147,7 @@ def read_code_location(code: str) -> Any:
 
 def _attribute(obj: Any, name: str, code: str) -> Any:
     if isinstance(obj, type) and issubclass(obj, BaseModel) and name in obj.model_fields:
-        return obj.model_fields[name].default
+        return obj.model_fields[name].get_default(call_default_factory=True)
     try:
         return getattr(obj, name)
     except AttributeError:

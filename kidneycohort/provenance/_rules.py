@@ -122,7 +122,7 @@ KFRE: Final[tuple[Constant, ...]] = (
     *(
         Constant(
             f"kfre.decision.{years}y.{index}",
-            f"kidneycohort.kfre:kfre_summary_table(thresholds_{years}y)[{index}]",
+            f"kidneycohort.kfre:KfreRule.thresholds_{years}y[{index}]",
             "probability",
             "kdigo_2024_ckd",
             "KFRE risk thresholds for referral and planning (location not re-read)",

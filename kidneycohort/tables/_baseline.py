@@ -42,7 +42,7 @@ def baseline_characteristics_table(
     group_column: str = "group",
     covariates: Sequence[str] = (),
     equation: str | None = None,
-    spec: TableRule | None = None,
+    rule: TableRule | None = None,
 ) -> pl.DataFrame:
     r"""Baseline characteristics by group (and overall).
 
@@ -50,7 +50,7 @@ def baseline_characteristics_table(
     ``baseline`` (``schemas.BASELINE``; mean (SD)); UACR (median [IQR], from
     ``categories.uacr_mg_g``); KDIGO G and A categories (n (%), from ``categories``);
     and each of ``covariates``: text and booleans as n (%) per level, numbers as mean (SD)
-    or, when :math:`|\text{skewness}|` exceeds ``spec.skew_threshold``, median [IQR].
+    or, when :math:`|\text{skewness}|` exceeds ``rule.skew_threshold``, median [IQR].
     Missing values get a ``missing`` level (n (%)). Percentages are of the group's N.
 
     Returns
@@ -58,7 +58,7 @@ def baseline_characteristics_table(
     polars.DataFrame
         ``characteristic, statistic, level``, one text column per group, and ``Overall``.
     """
-    spec = spec or TableRule()
+    rule = rule or TableRule()
     people = to_polars(patients, "patients")
     require_columns(people, ("patient_id", group_column), "patients")
     if people["patient_id"].is_duplicated().any():
@@ -141,7 +141,7 @@ def baseline_characteristics_table(
             skew = values.skew() if values.len() > 2 else 0.0
             kind = (
                 "median"
-                if skew is not None and math.isfinite(skew) and abs(skew) > spec.skew_threshold
+                if skew is not None and math.isfinite(skew) and abs(skew) > rule.skew_threshold
                 else "mean"
             )
             numeric.append(
@@ -178,7 +178,7 @@ def baseline_characteristics_table(
             pl.lit("n").alias("statistic"),
             pl.lit("").alias("level"),
             "_group",
-            _count_text(pl.col("_n"), spec).alias("text"),
+            _count_text(pl.col("_n"), rule).alias("text"),
             pl.lit(0).alias("_order"),
         )
     ]
@@ -194,7 +194,7 @@ def baseline_characteristics_table(
             pl.col("value").quantile(0.75, interpolation="linear").alias("_q3"),
             (pl.col("value").is_null() | pl.col("value").is_nan()).sum().alias("_missing"),
         )
-        d = spec.decimals
+        d = rule.decimals
         if kind == "mean":
             text = pl.concat_str(
                 [
@@ -225,8 +225,8 @@ def baseline_characteristics_table(
                 "_group",
                 pl.when(pl.col("_k") == 0)
                 .then(pl.lit(_DASH))
-                .when(_is_small(pl.col("_k"), spec))
-                .then(pl.lit(f"n {suppression_label(spec)}"))
+                .when(_is_small(pl.col("_k"), rule))
+                .then(pl.lit(f"n {suppression_label(rule)}"))
                 .otherwise(text)
                 .alias("text"),
                 pl.lit(order).alias("_order"),
@@ -246,7 +246,7 @@ def baseline_characteristics_table(
                     sizes,
                     characteristic,
                     order,
-                    spec,
+                    rule,
                     levels=["recorded", _MISSING_LEVEL],
                 ).filter(pl.col("level") == _MISSING_LEVEL)
             )
@@ -255,7 +255,7 @@ def baseline_characteristics_table(
         joined = with_overall.join(frame, on="patient_id", how="left").with_columns(
             pl.col("value").fill_null(_MISSING_LEVEL)
         )
-        long_rows.append(_category_block(joined, sizes, characteristic, order, spec, levels=levels))
+        long_rows.append(_category_block(joined, sizes, characteristic, order, rule, levels=levels))
         order += 1
 
     long = pl.concat(long_rows, how="diagonal_relaxed").with_columns(
@@ -280,7 +280,7 @@ def _category_block(
     sizes: pl.DataFrame,
     characteristic: str,
     order: int,
-    spec: TableRule,
+    rule: TableRule,
     *,
     levels: Sequence[str] | None,
 ) -> pl.DataFrame:
@@ -307,8 +307,8 @@ def _category_block(
     )
     counts = counts.with_columns(
         (
-            _is_small(pl.col("_count"), spec)
-            | (_is_small(pl.col("_n"), spec) & (pl.col("_count") > 0))
+            _is_small(pl.col("_count"), rule)
+            | (_is_small(pl.col("_n"), rule) & (pl.col("_count") > 0))
         ).alias("_primary")
     )
     counts = _complementary(counts)
@@ -329,8 +329,8 @@ def _category_block(
     counts = _complementary(counts.drop("_hidden", "_group_hidden"))
     percent = pl.col("_count") / pl.col("_n") * 100
     text = (
-        pl.when(_is_small(pl.col("_count"), spec) & pl.col("_hidden"))
-        .then(pl.lit(suppression_label(spec)))
+        pl.when(_is_small(pl.col("_count"), rule) & pl.col("_hidden"))
+        .then(pl.lit(suppression_label(rule)))
         .when(pl.col("_hidden"))
         .then(pl.lit(_COMPLEMENTARY_LABEL))
         .otherwise(
@@ -338,7 +338,7 @@ def _category_block(
                 [
                     pl.col("_count").cast(pl.String),
                     pl.lit(" ("),
-                    _format_fixed(percent, spec.decimals),
+                    _format_fixed(percent, rule.decimals),
                     pl.lit("%)"),
                 ]
             )

@@ -45,37 +45,37 @@ class TableRule(RuleModel):
     )
 
 
-def suppression_label(spec: TableRule | None = None) -> str:
+def suppression_label(rule: TableRule | None = None) -> str:
     """The text shown for a suppressed count, e.g. ``"<11"``."""
-    spec = spec or TableRule()
-    return f"<{spec.small_cell_threshold + 1}"
+    rule = rule or TableRule()
+    return f"<{rule.small_cell_threshold + 1}"
 
 
-def suppression_footnote(spec: TableRule | None = None) -> str:
+def suppression_footnote(rule: TableRule | None = None) -> str:
     """Footnote explaining small-cell suppression, for every aggregate table."""
-    spec = spec or TableRule()
-    if spec.small_cell_threshold == 0:
+    rule = rule or TableRule()
+    if rule.small_cell_threshold == 0:
         return "No small-cell suppression applied."
-    label = suppression_label(spec)
+    label = suppression_label(rule)
     return (
-        f"Counts from 1 to {spec.small_cell_threshold} are shown as '{label}'; percentages and "
+        f"Counts from 1 to {rule.small_cell_threshold} are shown as '{label}'; percentages and "
         "rates that would reveal them are suppressed, and where a suppressed count could be "
         "recovered from the other counts of its block or from the overall column, further "
         "counts are suppressed too (shown as '*')."
     )
 
 
-def _is_small(count: pl.Expr, spec: TableRule) -> pl.Expr:
-    return (count >= 1) & (count <= spec.small_cell_threshold)
+def _is_small(count: pl.Expr, rule: TableRule) -> pl.Expr:
+    return (count >= 1) & (count <= rule.small_cell_threshold)
 
 
-def _count_text(count: pl.Expr, spec: TableRule, hide: pl.Expr | None = None) -> pl.Expr:
-    hidden = _is_small(count, spec) if hide is None else hide
+def _count_text(count: pl.Expr, rule: TableRule, hide: pl.Expr | None = None) -> pl.Expr:
+    hidden = _is_small(count, rule) if hide is None else hide
     return (
         pl.when(count.is_null())
         .then(pl.lit(_DASH))
         .when(hidden)
-        .then(pl.lit(suppression_label(spec)))
+        .then(pl.lit(suppression_label(rule)))
         .otherwise(count.cast(pl.Int64).cast(pl.String))
     )
 
@@ -100,14 +100,14 @@ def _format_fixed(expr: pl.Expr, decimals: int) -> pl.Expr:
     )
 
 
-def _p_text(expr: pl.Expr, spec: TableRule) -> pl.Expr:
-    floor = 10.0 ** (-spec.p_decimals)
+def _p_text(expr: pl.Expr, rule: TableRule) -> pl.Expr:
+    floor = 10.0 ** (-rule.p_decimals)
     return (
         pl.when(expr.is_null() | expr.is_nan())
         .then(pl.lit(_DASH))
         .when(expr < floor)
-        .then(pl.lit(f"<{floor:.{spec.p_decimals}f}"))
-        .otherwise(_format_fixed(expr, spec.p_decimals))
+        .then(pl.lit(f"<{floor:.{rule.p_decimals}f}"))
+        .otherwise(_format_fixed(expr, rule.p_decimals))
     )
 
 
@@ -125,14 +125,14 @@ def _interval(estimate: pl.Expr, lower: pl.Expr, upper: pl.Expr, decimals: int) 
 
 
 def suppress_small_counts(
-    frame: FrameLike, count_columns: Sequence[str], *, spec: TableRule | None = None
+    frame: FrameLike, count_columns: Sequence[str], *, rule: TableRule | None = None
 ) -> pl.DataFrame:
     """Return ``frame`` with each of ``count_columns`` as text, counts from 1 to the
     threshold replaced by the suppression label (``"<11"``)."""
-    spec = spec or TableRule()
+    rule = rule or TableRule()
     table = to_polars(frame, "table")
     require_columns(table, count_columns, "table")
-    return table.with_columns(_count_text(pl.col(c), spec).alias(c) for c in count_columns)
+    return table.with_columns(_count_text(pl.col(c), rule).alias(c) for c in count_columns)
 
 
 def _complementary(counts: pl.DataFrame) -> pl.DataFrame:

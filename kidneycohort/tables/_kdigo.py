@@ -38,7 +38,7 @@ def _one_row_per_patient(categories: pl.DataFrame, equation: str | None) -> pl.D
 
 
 def kdigo_grid_table(
-    categories: FrameLike, *, equation: str | None = None, spec: TableRule | None = None
+    categories: FrameLike, *, equation: str | None = None, rule: TableRule | None = None
 ) -> pl.DataFrame:
     """Number of patients in each KDIGO GFR x albuminuria cell (KDIGO 2012 / 2024 grid).
 
@@ -52,7 +52,7 @@ def kdigo_grid_table(
         included) plus any ``missing`` cells; ``n`` is null where suppressed and
         ``n_display`` is the text to show (``"<11"``).
     """
-    spec = spec or TableRule()
+    rule = rule or TableRule()
     kdigo = _one_row_per_patient(to_polars(categories, "categories"), equation)
     require_columns(kdigo, ("g_category", "a_category"), "categories")
     _check_levels(kdigo, "g_category", G_CATEGORIES)
@@ -77,8 +77,8 @@ def kdigo_grid_table(
     return counted.select(
         "g_category",
         "a_category",
-        pl.when(_is_small(pl.col("n"), spec)).then(None).otherwise(pl.col("n")).alias("n"),
-        _count_text(pl.col("n"), spec).alias("n_display"),
+        pl.when(_is_small(pl.col("n"), rule)).then(None).otherwise(pl.col("n")).alias("n"),
+        _count_text(pl.col("n"), rule).alias("n_display"),
     )
 
 
@@ -87,7 +87,7 @@ def transition_table(
     *,
     axis: str = "G",
     equation: str | None = None,
-    spec: TableRule | None = None,
+    rule: TableRule | None = None,
 ) -> pl.DataFrame:
     """Counts of category transitions (``schemas.TRANSITIONS`` rows) on one axis.
 
@@ -98,7 +98,7 @@ def transition_table(
         distinct categories of the axis (zeros included); ``n`` counts transitions,
         ``n_patients`` patients with at least one; both null where suppressed.
     """
-    spec = spec or TableRule()
+    rule = rule or TableRule()
     table = to_polars(transitions, "transitions")
     require_columns(table, ("patient_id", "axis", "from_category", "to_category"), "transitions")
     if axis not in ("G", "A"):
@@ -128,13 +128,13 @@ def transition_table(
         on=["from_category", "to_category"],
         how="left",
     ).with_columns(pl.col("n", "n_patients").fill_null(0))
-    hidden = _is_small(pl.col("n"), spec) | _is_small(pl.col("n_patients"), spec)
+    hidden = _is_small(pl.col("n"), rule) | _is_small(pl.col("n_patients"), rule)
     return counted.select(
         "from_category",
         "to_category",
         pl.when(hidden).then(None).otherwise(pl.col("n")).alias("n"),
         pl.when(hidden).then(None).otherwise(pl.col("n_patients")).alias("n_patients"),
-        _count_text(pl.col("n"), spec, hide=hidden).alias("n_display"),
+        _count_text(pl.col("n"), rule, hide=hidden).alias("n_display"),
     )
 
 

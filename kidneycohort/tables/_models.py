@@ -37,7 +37,7 @@ def endpoint_table(
     covariates: Sequence[str] = (),
     strata: Sequence[str] = (),
     endpoint: str | Sequence[str] | None = None,
-    spec: TableRule | None = None,
+    rule: TableRule | None = None,
 ) -> pl.DataFrame:
     r"""Endpoint table: per endpoint and group, N, events n (%), person-years, rate per
     100 person-years (exact 95 % CI), hazard ratio (95 % CI) and p.
@@ -57,7 +57,7 @@ def endpoint_table(
         ``endpoint, group, n_patients, events, person_years, rate_per_100py,
         hazard_ratio, p`` as text.
     """
-    spec = spec or TableRule()
+    rule = rule or TableRule()
     frame = _with_group(endpoints, patients, group_column)
     rates = incidence_rates(frame, group_column="group", endpoint=endpoint)
     counts = frame.group_by("endpoint", "group").agg(pl.len().cast(pl.Int64).alias("n_patients"))
@@ -110,31 +110,31 @@ def endpoint_table(
         )
     )
     table = table.join(hazards, on=["endpoint", "group"], how="left")
-    hide_events = _is_small(pl.col("events"), spec) | _is_small(pl.col("n_patients"), spec)
+    hide_events = _is_small(pl.col("events"), rule) | _is_small(pl.col("n_patients"), rule)
     percent = pl.col("events") / pl.col("n_patients") * 100
     return table.sort("endpoint", pl.col("group") != reference, "group").select(
         "endpoint",
         "group",
-        _count_text(pl.col("n_patients"), spec).alias("n_patients"),
+        _count_text(pl.col("n_patients"), rule).alias("n_patients"),
         pl.when(hide_events)
-        .then(_count_text(pl.col("events"), spec, hide=hide_events & (pl.col("events") > 0)))
+        .then(_count_text(pl.col("events"), rule, hide=hide_events & (pl.col("events") > 0)))
         .otherwise(
             pl.concat_str(
                 [
-                    _count_text(pl.col("events"), spec),
+                    _count_text(pl.col("events"), rule),
                     pl.lit(" ("),
-                    _format_fixed(percent, spec.decimals),
+                    _format_fixed(percent, rule.decimals),
                     pl.lit("%)"),
                 ]
             )
         )
         .alias("events"),
-        _format_fixed(pl.col("person_years"), spec.decimals).alias("person_years"),
+        _format_fixed(pl.col("person_years"), rule.decimals).alias("person_years"),
         pl.when(hide_events & (pl.col("events") > 0))
-        .then(pl.lit(suppression_label(spec)))
+        .then(pl.lit(suppression_label(rule)))
         .otherwise(
             _interval(
-                pl.col("rate_per_100py"), pl.col("lower"), pl.col("upper"), spec.estimate_decimals
+                pl.col("rate_per_100py"), pl.col("lower"), pl.col("upper"), rule.estimate_decimals
             )
         )
         .alias("rate_per_100py"),
@@ -143,17 +143,17 @@ def endpoint_table(
         .when(pl.col("hr").is_null())
         .then(pl.lit(_DASH))
         .otherwise(
-            _interval(pl.col("hr"), pl.col("hr_lower"), pl.col("hr_upper"), spec.estimate_decimals)
+            _interval(pl.col("hr"), pl.col("hr_lower"), pl.col("hr_upper"), rule.estimate_decimals)
         )
         .alias("hazard_ratio"),
         pl.when(pl.col("group") == reference)
         .then(pl.lit(""))
-        .otherwise(_p_text(pl.col("p"), spec))
+        .otherwise(_p_text(pl.col("p"), rule))
         .alias("p"),
     )
 
 
-def slope_table(model: SlopeModel, *, spec: TableRule | None = None) -> pl.DataFrame:
+def slope_table(model: SlopeModel, *, rule: TableRule | None = None) -> pl.DataFrame:
     """Slope table of a fitted :class:`~kidneycohort.models.mixed.SlopeModel`: per group
     and per difference, acute change, chronic and total slopes with SE, 95 % CI and p.
 
@@ -163,24 +163,24 @@ def slope_table(model: SlopeModel, *, spec: TableRule | None = None) -> pl.DataF
         ``contrast, quantity, n_patients, estimate, se, ci_95, p`` as text; ``n_patients``
         is the group's size (both groups' for a difference), small counts suppressed.
     """
-    spec = spec or TableRule()
+    rule = rule or TableRule()
     if not hasattr(model, "group_sizes_"):
         raise InputDataError(
             "slope_table: the model is not fitted; call .fit(egfr, patients) first"
         )
     sizes = dict(model.group_sizes_.select("group", "n_patients").rows())
     summary = model.summary()
-    label = suppression_label(spec)
+    label = suppression_label(rule)
 
     def size_text(count: int) -> str:
-        return label if 1 <= count <= spec.small_cell_threshold else str(count)
+        return label if 1 <= count <= rule.small_cell_threshold else str(count)
 
     size_by_contrast = {g: size_text(n) for g, n in sizes.items()}
     for group in model.groups_[1:]:
         size_by_contrast[f"{group} - {model.reference_group_}"] = (
             f"{size_text(sizes[group])} vs {size_text(sizes[model.reference_group_])}"
         )
-    d = spec.estimate_decimals
+    d = rule.estimate_decimals
     return summary.select(
         "contrast",
         "quantity",
@@ -192,7 +192,7 @@ def slope_table(model: SlopeModel, *, spec: TableRule | None = None) -> pl.DataF
         pl.concat_str(
             [_format_fixed(pl.col("lower"), d), pl.lit(" to "), _format_fixed(pl.col("upper"), d)]
         ).alias("ci_95"),
-        _p_text(pl.col("p"), spec).alias("p"),
+        _p_text(pl.col("p"), rule).alias("p"),
     )
 
 
@@ -203,7 +203,7 @@ def rate_comparison_table(
     group_column: str = "group",
     reference_group: str | None = None,
     confidence: float = 0.95,
-    spec: TableRule | None = None,
+    rule: TableRule | None = None,
 ) -> pl.DataFrame:
     r"""Incidence rates per 100 person-years with rate ratios and differences, for sharing.
 
@@ -231,7 +231,7 @@ def rate_comparison_table(
     """
     from kidneycohort.models.rates import incidence_rates, rate_difference, rate_ratio
 
-    spec = spec or TableRule()
+    rule = rule or TableRule()
     rates = incidence_rates(endpoints, patients, group_column=group_column, confidence=confidence)
     groups = sorted(rates["group"].drop_nulls().unique().to_list())
     reference = reference_group if reference_group is not None else (groups[0] if groups else None)
@@ -261,21 +261,21 @@ def rate_comparison_table(
             pl.lit(None, dtype=pl.Float64).alias(c)
             for c in ("rate_ratio", "rr_lower", "rr_upper", "rd", "rd_lower", "rd_upper")
         )
-    small = _is_small(pl.col("events"), spec)
+    small = _is_small(pl.col("events"), rule)
     reference_small = (
         (small & (pl.col("group") == reference)).any().over("endpoint")
         if reference is not None
         else pl.lit(False)
     )
-    label = pl.lit(suppression_label(spec))
-    d = spec.estimate_decimals
+    label = pl.lit(suppression_label(rule))
+    d = rule.estimate_decimals
     is_reference = pl.col("group") == reference
     comparison_hidden = small | reference_small
     return table.sort(key).select(
         "endpoint",
         "group",
-        _count_text(pl.col("events"), spec).alias("events"),
-        _format_fixed(pl.col("person_years"), spec.decimals).alias("person_years"),
+        _count_text(pl.col("events"), rule).alias("events"),
+        _format_fixed(pl.col("person_years"), rule.decimals).alias("person_years"),
         pl.when(small)
         .then(label)
         .otherwise(_interval(pl.col("rate_per_100py"), pl.col("lower"), pl.col("upper"), d))

@@ -1,6 +1,6 @@
 """The ADaM export as a pipeline step (config key ``adam``).
 
-A thin adapter, like the steps in :mod:`kidneycohort.pipeline.steps`: it hands the
+A thin adapter, like the other steps: it hands the
 harmonised patients, eGFR, baseline and endpoints to the builders of
 :mod:`kidneycohort.adam` and returns ``adam_tte`` (written as ``adam_tte.csv`` /
 ``.parquet``); ADSL, ADEGFR and ADTTE go to ``adam/`` in the run folder as SAS transport
@@ -10,41 +10,15 @@ v5 and Dataset-JSON v1.1 files with ``adam/spec.csv``.
 from __future__ import annotations
 
 import logging
-from typing import Any, Literal
+from typing import Any
 
 import polars as pl
-from pydantic import BaseModel, ConfigDict, Field
 
-from kidneycohort.adam import VisitWindow, default_visit_windows
+from kidneycohort.adam import AdamRule
 from kidneycohort.errors import ConfigError
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 
 logger = logging.getLogger(__name__)
-
-
-class AdamSection(BaseModel):
-    """ADaM export (config key ``adam``): the parameters of the ADaM dataset builders."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    study_id: str | None = Field(None, description="STUDYID of every row; default `study.name`.")
-    time_unit: Literal["days", "years"] = Field("days", description="Unit of ADTTE.AVAL.")
-    count_start_day: bool = Field(
-        True, description="In days, count the origin date as day 1 (AVAL = ADT - STARTDT + 1)."
-    )
-    visit_windows: list[VisitWindow] = Field(
-        default_factory=default_visit_windows,
-        description="ADEGFR analysis visits (name, target_day, first_day, last_day in study "
-        "days, day 1 = index date); default every 3 months to month 36, +/- 45 days.",
-    )
-    paramcds: dict[str, str] = Field(
-        default_factory=dict,
-        description="Equation -> ADEGFR PARAMCD, for equations without a built-in code or "
-        "to override one.",
-    )
-    files: bool = Field(
-        True, description="Write ADSL, ADEGFR and ADTTE as XPT and Dataset-JSON to adam/."
-    )
 
 
 def _group_and_order(ctx: StepContext, cohort: pl.DataFrame) -> tuple[pl.DataFrame, list[str]]:
@@ -87,7 +61,7 @@ def _albuminuria(ctx: StepContext, equation: str) -> pl.DataFrame | None:
     return categories.select("patient_id", "a_category").unique("patient_id", keep="first")
 
 
-def add_adam_step(registry: StepRegistry) -> None:
+def add_adam(registry: StepRegistry) -> None:
     """Register ``adam_export`` in ``registry``."""
 
     @registry.register(
@@ -96,7 +70,7 @@ def add_adam_step(registry: StepRegistry) -> None:
         optional_needs=["baseline_categories"],
         makes=["adam_tte", "adam_datasets"],
         section="adam",
-        options=AdamSection,
+        options=AdamRule,
         description="CDISC ADaM datasets: ADTTE (adam_tte.csv/.parquet) and ADSL, ADEGFR, "
         "ADTTE as XPT and Dataset-JSON in adam/ with a spec sheet.",
     )
@@ -104,10 +78,11 @@ def add_adam_step(registry: StepRegistry) -> None:
         """ADSL, ADEGFR and ADTTE (every randomised subject, with treatment and flags)."""
         from kidneycohort.adam import adegfr_dataset, adsl_dataset, adtte_dataset, write_adam
         from kidneycohort.adam._bds import paramcd
-        from kidneycohort.pipeline.steps import EndpointsSection, primary_equation
+        from kidneycohort.pipeline.steps._derive import EndpointsSection
+        from kidneycohort.pipeline.steps._facts import primary_equation
 
         opts = ctx.options
-        assert isinstance(opts, AdamSection)
+        assert isinstance(opts, AdamRule)
         endpoints = ctx.sections.get("endpoints")
         if not isinstance(endpoints, EndpointsSection):
             raise ConfigError("adam: the ADaM export needs the 'endpoints' section; add it")

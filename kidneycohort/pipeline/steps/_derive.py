@@ -1,0 +1,227 @@
+"""Per-patient derivation steps: baseline, slopes, endpoints, KDIGO stages and grid, KFRE."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+import polars as pl
+from pydantic import Field
+
+from kidneycohort._rules import RuleModel
+from kidneycohort.endpoints import EndpointDefinition, EndpointRule
+from kidneycohort.pipeline.registry import StepContext, StepRegistry
+from kidneycohort.pipeline.steps._facts import group_column, primary_equation, section
+from kidneycohort.value_filter import ValueFilterRule
+
+__all__ = [
+    "EndpointsSection",
+    "add_baseline_and_slopes",
+    "add_endpoints",
+    "add_kdigo",
+    "add_kdigo_grid",
+    "add_kfre",
+]
+
+
+def add_baseline_and_slopes(registry: StepRegistry) -> None:
+    """Steps ``baseline`` and ``slopes``."""
+    from kidneycohort.baseline import BaselineRule, egfr_baseline
+    from kidneycohort.slopes import SlopeRule, egfr_slopes
+
+    @registry.register(
+        "baseline",
+        needs=["egfr"],
+        makes=["baseline"],
+        section="baseline",
+        options=BaselineRule,
+        extra_sections={"value_filter": ValueFilterRule},
+        description="Baseline eGFR per patient and equation (kidneycohort.baseline).",
+    )
+    def baseline_step(ctx: StepContext) -> dict[str, Any]:
+        """Baseline eGFR per patient and equation."""
+        value_filter = ctx.sections.get("value_filter")
+        baseline = egfr_baseline(ctx.tables["egfr"], rule=ctx.options, value_filter=value_filter)  # type: ignore[arg-type]
+        return {"baseline": baseline}
+
+    @registry.register(
+        "slopes",
+        needs=["egfr"],
+        makes=["slopes"],
+        section="slopes",
+        options=SlopeRule,
+        extra_sections={"value_filter": ValueFilterRule},
+        description="Per-patient least-squares eGFR slopes (kidneycohort.slopes).",
+    )
+    def slopes_step(ctx: StepContext) -> dict[str, Any]:
+        """Per-patient eGFR slopes."""
+        value_filter = ctx.sections.get("value_filter")
+        slopes = egfr_slopes(ctx.tables["egfr"], rule=ctx.options, value_filter=value_filter)  # type: ignore[arg-type]
+        return {"slopes": slopes}
+
+
+class EndpointsSection(RuleModel):
+    """Endpoint definitions, their default rule and the data cut (config key ``endpoints``).
+
+    A part of the study config only (no stage function takes it whole): the keys are
+    the arguments of :func:`kidneycohort.endpoints.derive_endpoints`, ``definitions``
+    and ``rule`` its own models. The endpoints are derived on the study's primary
+    equation.
+    """
+
+    definitions: list[EndpointDefinition] = Field(
+        min_length=1,
+        description="Endpoint definitions, each with a `kind` (egfr_decline, egfr_below, "
+        "kidney_failure, death, kidney_death, composite) and that kind's keys.",
+    )
+    rule: EndpointRule = Field(
+        default_factory=EndpointRule,
+        description="Confirmation and timing rule used by every definition without its own.",
+    )
+    data_cut: dt.date = Field(
+        description="Data-cut date: nothing after it is used; every endpoint is censored at it."
+    )
+
+
+def add_endpoints(registry: StepRegistry) -> None:
+    """Step ``endpoints``: time-to-event rows per patient and definition."""
+    from kidneycohort.endpoints import derive_endpoints
+
+    @registry.register(
+        "endpoints",
+        needs=["egfr", "baseline", "cohort"],
+        optional_needs=["cohort_events"],
+        makes=["endpoints"],
+        section="endpoints",
+        options=EndpointsSection,
+        description="Time-to-event rows per patient and endpoint (kidneycohort.endpoints).",
+    )
+    def endpoints_step(ctx: StepContext) -> dict[str, Any]:
+        """Time-to-event rows, one per patient per endpoint definition."""
+        opts = ctx.options
+        assert isinstance(opts, EndpointsSection)
+        table = derive_endpoints(
+            ctx.tables["egfr"],
+            ctx.tables["baseline"],
+            ctx.tables["cohort"],
+            ctx.tables.get("cohort_events"),
+            opts.definitions,
+            equation=primary_equation(ctx.sections, ctx.tables),
+            data_cut=opts.data_cut,
+            rule=opts.rule,
+        )
+        return {"endpoints": table}
+
+
+def add_kdigo(registry: StepRegistry) -> None:
+    """Step ``kdigo``: sustained KDIGO stages, transitions and their counts."""
+    from kidneycohort.kdigo import SustainRule, sustained_stages, transition_matrix, transitions
+
+    @registry.register(
+        "kdigo",
+        needs=["egfr", "labs", "cohort"],
+        makes=["stages", "transitions", "transition_matrix", "models/transition_counts"],
+        section="sustain",
+        options=SustainRule,
+        extra_sections={"value_filter": ValueFilterRule},
+        description="Sustained KDIGO G and A stages and their transitions (kidneycohort.kdigo).",
+    )
+    def kdigo_step(ctx: StepContext) -> dict[str, Any]:
+        """Sustained KDIGO stages, transitions and transition counts."""
+        stages = sustained_stages(
+            ctx.tables["egfr"],
+            ctx.tables["labs"],
+            ctx.tables["cohort"],
+            rule=ctx.options,  # type: ignore[arg-type]
+            value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
+        )
+        matrix = transition_matrix(stages)
+        primary = primary_equation(ctx.sections, ctx.tables)
+        # the figure reads one matrix per axis: G on the primary equation, and A
+        counts = matrix.filter(
+            ((pl.col("axis") == "G") & (pl.col("equation") == primary)) | (pl.col("axis") == "A")
+        ).select(
+            "axis",
+            "from_category",
+            "to_category",
+            pl.col("n_transitions").alias("n"),
+            "rate_per_100_person_years",
+        )
+        return {
+            "stages": stages,
+            "transitions": transitions(stages),
+            "transition_matrix": matrix,
+            "models/transition_counts": counts,
+        }
+
+
+def add_kdigo_grid(registry: StepRegistry) -> None:
+    """Step ``kdigo_grid``: KDIGO G and A categories at baseline and the grid counts."""
+    from kidneycohort.baseline import uacr_baseline
+    from kidneycohort.kdigo import KdigoGridRule, baseline_categories, kdigo_grid_counts
+    from kidneycohort.tables import TableRule, kdigo_grid_table
+
+    @registry.register(
+        "kdigo_grid",
+        needs=["baseline", "labs", "cohort"],
+        makes=["baseline_categories", "models/kdigo_grid", "tables/kdigo_grid"],
+        section="kdigo_grid",
+        options=KdigoGridRule,
+        extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
+        description="Baseline KDIGO G x A category per patient and the prognosis grid counts.",
+    )
+    def kdigo_grid_step(ctx: StepContext) -> dict[str, Any]:
+        """Baseline G and A categories per patient; patients per KDIGO grid cell."""
+        opts = ctx.options
+        assert isinstance(opts, KdigoGridRule)
+        uacr = uacr_baseline(
+            ctx.tables["labs"],
+            ctx.tables["cohort"],
+            rule=opts.uacr_baseline,
+            value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
+        )
+        categories = baseline_categories(
+            ctx.tables["baseline"], uacr, equation=primary_equation(ctx.sections, ctx.tables)
+        )
+        return {
+            "baseline_categories": categories,
+            "models/kdigo_grid": kdigo_grid_counts(categories),
+            "tables/kdigo_grid": kdigo_grid_table(
+                categories, rule=section(ctx, "tables", TableRule)
+            ),
+        }
+
+
+def add_kfre(registry: StepRegistry) -> None:
+    """Step ``kfre``: KFRE risk at baseline and its summary table."""
+    from kidneycohort.kfre import KfreRule, kfre_at_baseline, kfre_summary_table
+    from kidneycohort.tables import TableRule
+
+    @registry.register(
+        "kfre",
+        needs=["egfr", "labs", "cohort"],
+        makes=["kfre", "tables/kfre_summary"],
+        section="kfre",
+        options=KfreRule,
+        extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
+        description="2- and 5-year KFRE risk per patient at baseline, with applicability.",
+    )
+    def kfre_step(ctx: StepContext) -> dict[str, Any]:
+        """KFRE risk at the index date and its distribution by group."""
+        group = group_column(ctx)
+        rows = kfre_at_baseline(
+            ctx.tables["egfr"],
+            ctx.tables["labs"],
+            ctx.tables["cohort"],
+            equation=primary_equation(ctx.sections, ctx.tables),
+            rule=ctx.options,  # type: ignore[arg-type]
+            value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
+            group_column=group,
+        )
+        summary = kfre_summary_table(
+            rows,
+            group_column=group,
+            rule=ctx.options,  # type: ignore[arg-type]
+            table_rule=section(ctx, "tables", TableRule),
+        )
+        return {"kfre": rows, "tables/kfre_summary": summary}

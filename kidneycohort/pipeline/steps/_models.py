@@ -1,0 +1,100 @@
+"""Model steps: Kaplan–Meier, Aalen–Johansen and Cox per endpoint; the eGFR slope model."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import polars as pl
+
+from kidneycohort.pipeline.registry import StepContext, StepRegistry
+from kidneycohort.pipeline.steps._facts import primary_equation
+
+__all__ = ["add_slope_model", "add_survival"]
+
+
+def add_survival(registry: StepRegistry) -> None:
+    """Steps ``kaplan_meier``, ``cumulative_incidence`` and ``cox``."""
+    from kidneycohort.models.survival import (
+        SurvivalRule,
+        hazard_ratio_table,
+        survival_curves_by_endpoint,
+    )
+
+    def curves(ctx: StepContext, competing: bool) -> dict[str, Any]:
+        curves, at_risk = survival_curves_by_endpoint(
+            ctx.tables["endpoints"],
+            ctx.tables["cohort"],
+            competing=competing,
+            rule=ctx.options,  # type: ignore[arg-type]
+        )
+        return {"models/survival_curves": curves, "models/at_risk": at_risk}
+
+    @registry.register(
+        "kaplan_meier",
+        needs=["endpoints", "cohort"],
+        makes=["models/survival_curves", "models/at_risk"],
+        section="survival",
+        options=SurvivalRule,
+        description="Kaplan–Meier curves per endpoint and group (kidneycohort.models.survival).",
+    )
+    def kaplan_meier_step(ctx: StepContext) -> dict[str, Any]:
+        """Kaplan–Meier curves and numbers at risk per endpoint and group."""
+        return curves(ctx, competing=False)
+
+    @registry.register(
+        "cumulative_incidence",
+        needs=["endpoints", "cohort"],
+        makes=["models/survival_curves", "models/at_risk"],
+        section="survival",
+        options=SurvivalRule,
+        description="Aalen–Johansen cumulative incidence with death competing, per endpoint.",
+    )
+    def cumulative_incidence_step(ctx: StepContext) -> dict[str, Any]:
+        """Aalen–Johansen cumulative incidence per endpoint and group."""
+        return curves(ctx, competing=True)
+
+    @registry.register(
+        "cox",
+        needs=["endpoints", "cohort"],
+        makes=["models/hazard_ratios"],
+        section="survival",
+        options=SurvivalRule,
+        description="Cox hazard ratios per endpoint with the proportional-hazards test.",
+    )
+    def cox_step(ctx: StepContext) -> dict[str, Any]:
+        """Cox hazard ratios (group, covariates, strata; subgroups) per endpoint."""
+        table = hazard_ratio_table(
+            ctx.tables["endpoints"],
+            ctx.tables["cohort"],
+            rule=ctx.options,  # type: ignore[arg-type]
+        )
+        return {"models/hazard_ratios": table}
+
+
+def add_slope_model(registry: StepRegistry) -> None:
+    """Step ``slope_model``: the linear mixed model of eGFR by group."""
+    from kidneycohort.models.mixed import SlopeModel, SlopeModelRule
+
+    @registry.register(
+        "slope_model",
+        needs=["egfr", "cohort"],
+        makes=["models/trajectories", "models/slope_summary", "slope_model_fit"],
+        section="slope_model",
+        options=SlopeModelRule,
+        description="Linear mixed model of eGFR (one slope or two slopes with a knot) by group.",
+    )
+    def slope_model_step(ctx: StepContext) -> dict[str, Any]:
+        """Mixed-model mean trajectories and slope contrasts (kidneycohort.models.mixed)."""
+        rule = ctx.options
+        assert isinstance(rule, SlopeModelRule)
+        if rule.equation is None:
+            rule = rule.model_copy(update={"equation": primary_equation(ctx.sections, ctx.tables)})
+        model = SlopeModel(rule).fit(ctx.tables["egfr"], ctx.tables["cohort"])
+        name = "two_slope" if rule.knot_years is not None else "one_slope"
+        return {
+            "models/trajectories": model.trajectories_.select(
+                pl.lit(name).alias("model"), pl.all()
+            ),
+            "models/slope_summary": model.summary().select(pl.lit(name).alias("model"), pl.all()),
+            "slope_model_fit": model,
+        }

@@ -1,0 +1,83 @@
+"""Steps that prepare the data: harmonise the sources, compute eGFR."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import polars as pl
+
+from kidneycohort import schemas
+from kidneycohort.pipeline.registry import StepContext, StepRegistry
+from kidneycohort.pipeline.steps._facts import check_primary, records
+
+__all__ = ["add_egfr", "add_harmonize"]
+
+
+def add_harmonize(registry: StepRegistry) -> None:
+    """Step ``harmonize``: raw tables -> labs, patients, events, rejected rows."""
+    from kidneycohort.harmonize import HarmonizeRule, harmonize_tables
+
+    @registry.register(
+        "harmonize",
+        needs=["raw_labs", "patients"],
+        optional_needs=["events"],
+        makes=["labs", "rejected_rows", "cohort", "cohort_events"],
+        section="harmonize",
+        options=HarmonizeRule,
+        description="Raw labs -> labs in standard units; every unused row with a reason.",
+    )
+    def harmonize_step(ctx: StepContext) -> dict[str, Any]:
+        """Harmonise labs, patients and events (kidneycohort.harmonize)."""
+        result = harmonize_tables(
+            ctx.tables["raw_labs"],
+            ctx.tables["patients"],
+            ctx.tables.get("events"),
+            rule=ctx.options,  # type: ignore[arg-type]
+        )
+        ctx.accounting.extend(
+            records(
+                result.accounting,
+                ("table", "rows_read", "rows_used", "rows_rejected", "rows_merged"),
+            )
+        )
+        by_reason = result.accounting_by_reason
+        ctx.accounting_by_reason.extend(
+            records(by_reason.filter(pl.col("outcome") == "rejected"), ("table", "reason", "rows"))
+        )
+        ctx.merged_by_reason.extend(
+            records(by_reason.filter(pl.col("outcome") == "merged"), ("table", "reason", "rows"))
+        )
+        # rejected_rows.csv lists every input row not used as it stands: rejected rows
+        # and rows merged into another (duplicates, same-day results), by reason code
+        unused = pl.concat(
+            [
+                result.rejected.select(list(schemas.REJECTED)),
+                result.merged.select(list(schemas.REJECTED)),
+            ],
+            how="vertical_relaxed",
+        )
+        return {
+            "labs": result.labs,
+            "rejected_rows": unused,
+            "cohort": result.patients,
+            "cohort_events": result.events,
+        }
+
+
+def add_egfr(registry: StepRegistry) -> None:
+    """Step ``egfr``: every chosen equation for every sample."""
+    from kidneycohort.egfr import EgfrRule, compute_egfr
+
+    @registry.register(
+        "egfr",
+        needs=["labs", "cohort"],
+        makes=["egfr"],
+        section="egfr",
+        options=EgfrRule,
+        check=check_primary,
+        description="eGFR by each chosen equation for every sample (kidneycohort.egfr).",
+    )
+    def egfr_step(ctx: StepContext) -> dict[str, Any]:
+        """eGFR by each chosen equation for every creatinine / cystatin C sample."""
+        egfr = compute_egfr(ctx.tables["labs"], ctx.tables["cohort"], rule=ctx.options)  # type: ignore[arg-type]
+        return {"egfr": egfr}
