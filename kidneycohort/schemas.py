@@ -274,4 +274,29 @@ TRAJECTORIES: Final[dict[str, pl.DataType]] = {
 }
 """Model-based mean eGFR trajectories per group."""
 
+MODEL_SLOPES: Final[dict[str, pl.DataType]] = {
+    "patient_id": pl.String(),
+    "group": pl.String(),
+    "quantity": pl.String(),  # "chronic_slope" (two-slope model) or "slope"
+    "estimate": pl.Float64(),  # mL/min/1.73 m2 per year, shrunken towards the group mean
+    "se": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+}
+"""Per-patient model-based eGFR slopes (:meth:`kidneycohort.models.SlopeModel.patient_slopes`)."""
+
+SLOPE_MODEL_FIT: Final[dict[str, pl.DataType]] = {
+    "model": pl.String(),
+    "engine": pl.String(),
+    "structure": pl.String(),  # random-effects structure accepted (after any fallback)
+    "converged": pl.Boolean(),
+    "iterations": pl.Int64(),
+    "gradient_norm": pl.Float64(),
+    "log_likelihood": pl.Float64(),
+    "n_patients": pl.Int64(),
+    "n_values": pl.Int64(),
+    "description": pl.String(),  # one sentence for the methods text
+}
+"""How the slope model was fitted (one row)."""
+
 DAYS_PER_YEAR: Final = 365.25

@@ -13,7 +13,7 @@ import pytest
 import statsmodels
 
 from kidneycohort.errors import ConfigError, ConvergenceError, InputDataError, StatisticalWarning
-from kidneycohort.models.mixed import SlopeModel, SlopeModelRule
+from kidneycohort.models.mixed import SlopeModel, SlopeModelRule, _fitters
 from tests._models_fixtures import TwoSlopeTruth, simulate_two_slope_trial
 
 
@@ -109,8 +109,7 @@ def test_quantities_are_linear_contrasts_of_the_fixed_effects(
 ) -> None:
     model, _ = trial
     names = model.fixed_effect_names_
-    beta = np.asarray(model.result_.fe_params)
-    covariance = np.asarray(model.result_.cov_params())[: len(names), : len(names)]
+    beta, covariance = model.fit_.beta, model.fit_.fixed_covariance
     c = np.zeros(len(names))
     # difference in 3-year total slope: (0.25 b1 + 2.75 b2) / 3, active minus placebo
     c[names.index("active: acute_slope")] += 0.25 / 3
@@ -142,18 +141,18 @@ def test_trajectories_follow_the_spline(trial: tuple[SlopeModel, TwoSlopeTruth])
 def test_fallback_structure_is_announced(
     monkeypatch: pytest.MonkeyPatch, few_pigs: pl.DataFrame
 ) -> None:
-    original = SlopeModel._fit_structure
+    original = _fitters._statsmodels_structure
 
-    def unstructured_fails(self, endog, exog, codes, pieces, structure):
+    def unstructured_fails(endog, exog, codes, pieces, structure):
         if structure == "unstructured":
             return None, [
                 "The Hessian matrix at the estimated parameter values is not positive definite."
             ]
-        return original(self, endog, exog, codes, pieces, structure)
+        return original(endog, exog, codes, pieces, structure)
 
-    monkeypatch.setattr(SlopeModel, "_fit_structure", unstructured_fails)
+    monkeypatch.setattr(_fitters, "_statsmodels_structure", unstructured_fails)
     with pytest.warns(StatisticalWarning, match="refitting with 'diagonal'"):
-        model = SlopeModel(knot_years=None).fit(few_pigs)
+        model = SlopeModel(knot_years=None, engine="statsmodels").fit(few_pigs)
     assert model.random_effects_structure_ == "diagonal"
     assert model.fit_messages_[0].startswith("unstructured: The Hessian")
     assert "cov(intercept, slope)" not in dict(model.variance_components_.rows()) or dict(
@@ -165,12 +164,48 @@ def test_no_converging_structure_raises(
     monkeypatch: pytest.MonkeyPatch, few_pigs: pl.DataFrame
 ) -> None:
     monkeypatch.setattr(
-        SlopeModel, "_fit_structure", lambda *args: (None, ["fit error: singular matrix"])
+        _fitters, "_statsmodels_structure", lambda *args: (None, ["fit error: singular matrix"])
     )
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", StatisticalWarning)
         with pytest.raises(ConvergenceError, match="no random-effects structure converged"):
-            SlopeModel(knot_years=None).fit(few_pigs)
+            SlopeModel(knot_years=None, engine="statsmodels").fit(few_pigs)
+
+
+def test_exact_engine_equals_statsmodels_on_the_pig_data(dietox: pl.DataFrame) -> None:
+    """The default exact engine and statsmodels MixedLM (the reference library) give the
+    same REML fit of the pig-weight data: fixed effects, their covariance, variances."""
+    exact = SlopeModel(knot_years=None).fit(dietox)
+    reference = SlopeModel(knot_years=None, engine="statsmodels").fit(dietox)
+    assert exact.engine_ == "exact" and reference.engine_ == "statsmodels"
+    np.testing.assert_allclose(exact.fit_.beta, reference.fit_.beta, rtol=1e-5)
+    np.testing.assert_allclose(
+        exact.variance_components_["estimate"],
+        reference.variance_components_["estimate"],
+        rtol=2e-3,
+    )
+    assert "REML" in exact.describe() and "converged" in exact.describe()
+
+
+def test_patient_slopes_are_the_group_slope_plus_the_predicted_random_slope(
+    dietox: pl.DataFrame,
+) -> None:
+    """Per-patient model slopes: fixed slope + BLUP of the random slope, the quantity
+    statsmodels reports as ``fe_params + random_effects`` (reference library), to 1e-3."""
+    model = SlopeModel(knot_years=None).fit(dietox)
+    slopes = model.patient_slopes()
+    assert slopes.columns == ["patient_id", "group", "quantity", "estimate", "se", "lower", "upper"]
+    assert slopes.height == model.n_patients_ and set(slopes["quantity"]) == {"slope"}
+    reference = SlopeModel(knot_years=None, engine="statsmodels").fit(dietox).result_
+    blup = {str(k): float(np.asarray(v)[1]) for k, v in reference.random_effects.items()}
+    fixed_slope = float(np.asarray(reference.fe_params)[1])
+    got = dict(slopes.select("patient_id", "estimate").rows())
+    for pig, value in got.items():
+        assert value == pytest.approx(fixed_slope + blup[pig], abs=1e-3)
+    # shrinkage: the model slopes vary less than the per-pig least-squares slopes
+    assert (slopes["se"] > 0).all()
+    with pytest.raises(InputDataError, match="engine='exact'"):
+        SlopeModel(knot_years=None, engine="statsmodels").fit(dietox).patient_slopes()
 
 
 def test_rows_not_used_are_reported(few_pigs: pl.DataFrame) -> None:

@@ -55,6 +55,11 @@ COHORT_FILES = [
     "models/hazard_ratios.parquet",
     "models/transition_counts.parquet",
     "models/kdigo_grid.parquet",
+    # the mean eGFR slope by exposure group (exact mixed-model engine)
+    "models/trajectories.parquet",
+    "models/slope_summary.parquet",
+    "models/slope_model_fit.parquet",
+    "model_slopes.parquet",
     *[
         f"tables/{name}.{ext}"
         for name in (
@@ -64,6 +69,7 @@ COHORT_FILES = [
             "transition_matrix",
             "kdigo_grid",
             "kfre_summary",
+            "slope_table",
         )
         for ext in ("csv", "md")
     ],
@@ -85,10 +91,30 @@ def test_every_file_of_the_cohort_recipe(cohort_run) -> None:
     assert not missing
     # trial-only outputs are absent
     assert not (run / "adam_tte.csv").exists()
-    assert not (run / "models/trajectories.parquet").exists()
     manifest = json.loads((run / "manifest.json").read_text())
     assert manifest["study"]["recipe"] == "cohort_progression"
     assert [s["name"] for s in manifest["steps"]][1:] == manifest["config"]["recipe_steps"]
+
+
+def test_cohort_slope_model_equals_a_direct_fit(cohort_run) -> None:
+    # the mean slope by exposure group: one slope per patient (no knot), the exact engine;
+    # the same model fitted directly on the run's eGFR gives the same contrasts
+    from kidneycohort.models.mixed import SlopeModel
+
+    run, _ = cohort_run
+    fit = pl.read_parquet(run / "models/slope_model_fit.parquet").row(0, named=True)
+    assert (fit["model"], fit["engine"], fit["converged"]) == ("one_slope", "exact", True)
+    egfr = pl.read_parquet(run / "egfr.parquet")
+    groups = pl.read_parquet(run / "baseline.parquet").select("patient_id", "group").unique()
+    manifest = json.loads((run / "manifest.json").read_text())
+    rule = manifest["config"]["slope_model"]
+    direct = SlopeModel(**{**rule, "equation": manifest["study"]["primary_equation"]}).fit(
+        egfr, groups
+    )
+    written = pl.read_parquet(run / "models/slope_summary.parquet").drop("model")
+    assert written["estimate"].to_list() == pytest.approx(direct.summary()["estimate"].to_list())
+    slopes = pl.read_parquet(run / "model_slopes.parquet")
+    assert slopes.height == direct.n_patients_ and slopes["se"].min() > 0
 
 
 def test_accounting_adds_up(cohort_run) -> None:

@@ -208,6 +208,11 @@ def _slope_lines(run: RunFolder, threshold: int) -> list[str]:
             f"(IQR {row['q1']:.2f} to {row['q3']:.2f}; n={row['n']:,})."
             for row in dist.filter(pl.col("n") > threshold).to_dicts()
         ]
+    fit = run.table_or_none("models/slope_model_fit")
+    if fit is not None:
+        lines += [
+            f"Slope model ({row['engine']} engine): {row['description']}" for row in fit.to_dicts()
+        ]
     summary = run.table_or_none("models/slope_summary")
     if summary is not None:
         # the between-group differences are the key results of a trial; per-group

@@ -97,6 +97,12 @@ FILES: Final[dict[str, RunFile]] = _files(
     RunFile(
         "slopes", "per_patient", schemas.SLOPES, "Per-patient least-squares eGFR slopes.", _GROUP
     ),
+    RunFile(
+        "model_slopes",
+        "per_patient",
+        schemas.MODEL_SLOPES,
+        "Per-patient model-based eGFR slopes (shrunken, with SE) from the slope model.",
+    ),
     RunFile("stages", "per_patient", schemas.STAGES, "Sustained KDIGO category stages."),
     RunFile("transitions", "per_patient", schemas.TRANSITIONS, "Transitions between stages."),
     RunFile(
@@ -128,6 +134,12 @@ FILES: Final[dict[str, RunFile]] = _files(
     ),
     RunFile("models/slope_summary", "model", schemas.SLOPE_SUMMARY, "Slope-model contrasts."),
     RunFile("models/trajectories", "model", schemas.TRAJECTORIES, "Slope-model mean trajectories."),
+    RunFile(
+        "models/slope_model_fit",
+        "model",
+        schemas.SLOPE_MODEL_FIT,
+        "How the slope model was fitted: engine, structure, convergence.",
+    ),
     *(
         RunFile(f"tables/{name}", "shared_table", None, text)
         for name, text in (

@@ -48,6 +48,11 @@ class SlopeModelRule(RuleModel):
         description="Random-effects structure to try first; simpler ones follow on non-convergence.",
     )
     confidence: float = Field(0.95, gt=0, lt=1, description="Confidence level.")
+    engine: Literal["exact", "statsmodels"] = Field(
+        "exact",
+        description="Fitting engine: the exact per-patient-block REML engine of this package "
+        "(fast, memory linear in patients), or statsmodels MixedLM (for cross-checks).",
+    )
     trajectory_step_years: float = Field(
         0.25, gt=0, description="Spacing (years) of the model-based mean trajectories."
     )

@@ -3,43 +3,24 @@
 from __future__ import annotations
 
 import logging
-import warnings
 from typing import Any, Self
 
 import numpy as np
 import polars as pl
 from scipy import stats
-from statsmodels.regression.mixed_linear_model import MixedLM, MixedLMParams
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import (
-    ConvergenceError,
     InputDataError,
-    StatisticalWarning,
     did_you_mean,
 )
-from kidneycohort.models._design import capture_warnings, encode_covariates
+from kidneycohort.models._design import encode_covariates
+from kidneycohort.models.mixed._fitters import fit_exact, fit_statsmodels
 from kidneycohort.models.mixed._rule import TRAJECTORY_COLUMNS, SlopeModelRule
+from kidneycohort.schemas import SLOPE_MODEL_FIT
 
 logger = logging.getLogger(__name__)
-
-
-# What each structure falls back to when its fit does not converge (stated, in order).
-_FALLBACK: dict[str, tuple[str, ...]] = {
-    "unstructured": ("unstructured", "diagonal", "intercept_and_slope", "intercept"),
-    "diagonal": ("diagonal", "intercept_and_slope", "intercept"),
-    "intercept_and_slope": ("intercept_and_slope", "intercept"),
-    "intercept": ("intercept",),
-}
-
-
-# Messages that make a fit unusable; statsmodels' "Retrying ... with <optimizer>" notes
-# are not failures by themselves (the next optimizer may converge).
-_FAILURE_WORDS = ("not positive definite", "gradient optimization failed", "fit error")
-
-
-_OPTIMIZERS = ["lbfgs", "bfgs", "cg"]
 
 
 class SlopeModel:
@@ -293,44 +274,28 @@ class SlopeModel:
         endog = rows["egfr"].to_numpy()
         patient_codes = rows["patient_id"].cast(pl.String).to_numpy()
 
-        self.fit_messages_: list[str] = []
-        attempts = _FALLBACK[spec.random_effects]
-        for position, structure in enumerate(attempts):
-            result, messages = self._fit_structure(endog, exog, patient_codes, pieces, structure)
-            self.fit_messages_.extend(f"{structure}: {m}" for m in messages)
-            failed = (
-                result is None
-                or not result.converged
-                or any(word in m.lower() for m in messages for word in _FAILURE_WORDS)
+        if spec.engine == "exact":
+            fit = fit_exact(
+                endog,
+                exog,
+                patient_codes,
+                pieces,
+                names,
+                self.slope_terms_,
+                spec.random_effects,
+                spec.confidence,
             )
-            if not failed:
-                break
-            if position + 1 < len(attempts):
-                warnings.warn(
-                    f"SlopeModel: the '{structure}' random-effects fit did not converge "
-                    f"({'; '.join(messages) or 'optimizer did not converge'}); refitting with "
-                    f"'{attempts[position + 1]}' random effects. To keep '{structure}', try more "
-                    "values per patient, max_years to trim sparse late follow-up, or fewer covariates",
-                    StatisticalWarning,
-                    stacklevel=2,
-                )
         else:
-            raise ConvergenceError(
-                "SlopeModel: no random-effects structure converged "
-                f"({'; '.join(self.fit_messages_[-3:])}); check the eGFR values for outliers and "
-                "units, trim follow-up with max_years, or reduce covariates"
+            fit = fit_statsmodels(
+                endog, exog, patient_codes, pieces, self.slope_terms_, spec.random_effects
             )
-        if any("boundary" in m.lower() or "singular" in m.lower() for m in messages):
-            warnings.warn(
-                f"SlopeModel: the '{structure}' fit has a random-effects variance at or near zero "
-                "(boundary of the parameter space); fixed effects are reported, but a simpler "
-                "random-effects structure may fit as well",
-                StatisticalWarning,
-                stacklevel=2,
-            )
-        self.result_ = result
-        self.random_effects_structure_ = structure
+        self.fit_ = fit
+        self.engine_ = fit.engine
+        self.result_ = fit.statsmodels_result
+        self.fit_messages_ = fit.messages
+        self.random_effects_structure_ = fit.structure
         self.converged_ = True
+        self._patient_groups = patient_level.select(pl.col("patient_id").cast(pl.String), "_group")
         self._collect(spec, time)
         return self
 
@@ -340,48 +305,11 @@ class SlopeModel:
             return [time]
         return [np.minimum(time, knot), np.maximum(time - knot, 0.0)]
 
-    def _fit_structure(
-        self,
-        endog: np.ndarray,
-        exog: np.ndarray,
-        patient_codes: np.ndarray,
-        pieces: list[np.ndarray],
-        structure: str,
-    ) -> tuple[object | None, list[str]]:
-        ones = np.ones_like(endog)
-        if structure in ("unstructured", "diagonal"):
-            exog_re = np.column_stack([ones, *pieces])
-        elif structure == "intercept_and_slope":
-            # one random slope on time since index when the spline slopes cannot be separated
-            exog_re = np.column_stack([ones, np.sum(pieces, axis=0)])
-        else:
-            exog_re = ones[:, None]
-        model = MixedLM(endog, exog, groups=patient_codes, exog_re=exog_re)
-        free = None
-        if structure == "diagonal":
-            free = MixedLMParams.from_components(np.ones(exog.shape[1]), np.eye(exog_re.shape[1]))
-        result = None
-        with capture_warnings() as captured:
-            try:
-                with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                    result = model.fit(reml=True, free=free, method=_OPTIMIZERS)
-            except (np.linalg.LinAlgError, ValueError) as error:
-                result = None
-                failure = f"fit error: {error}"
-            else:
-                failure = None
-        messages = list(dict.fromkeys(captured.convergence))
-        if failure:
-            messages.append(failure)
-        return result, messages
-
     # ---- results ----------------------------------------------------------------------
 
     def _collect(self, spec: SlopeModelRule, time: np.ndarray) -> None:
-        result = self.result_
-        k_fe = len(self.fixed_effect_names_)
-        beta = np.asarray(result.fe_params, dtype=float)
-        covariance = np.asarray(result.cov_params(), dtype=float)[:k_fe, :k_fe]
+        fit = self.fit_
+        beta, covariance = fit.beta, fit.fixed_covariance
         self._beta, self._covariance = beta, covariance
         z = stats.norm.ppf(0.5 + spec.confidence / 2)
         se = np.sqrt(np.diag(covariance))
@@ -397,21 +325,14 @@ class SlopeModel:
                 "p": p,
             }
         )
-        re_names = {
-            "unstructured": ["intercept", *self.slope_terms_],
-            "diagonal": ["intercept", *self.slope_terms_],
-            "intercept_and_slope": ["intercept", "slope"],
-            "intercept": ["intercept"],
-        }[self.random_effects_structure_]
-        cov_re = np.asarray(result.cov_re, dtype=float)
+        names = fit.random_names
         components, estimates = [], []
-        for i, a in enumerate(re_names):
+        for i, a in enumerate(names):
             for j in range(i + 1):
-                b = re_names[j]
-                components.append(f"var({a})" if i == j else f"cov({b}, {a})")
-                estimates.append(cov_re[i, j])
+                components.append(f"var({a})" if i == j else f"cov({names[j]}, {a})")
+                estimates.append(float(fit.random_covariance[i, j]))
         components.append("var(residual)")
-        estimates.append(float(result.scale))
+        estimates.append(fit.residual_variance)
         self.variance_components_ = pl.DataFrame({"component": components, "estimate": estimates})
 
         self._contrasts = self._quantity_contrasts(spec)
@@ -511,6 +432,82 @@ class SlopeModel:
                 )
             )
         return pl.concat(frames).select(TRAJECTORY_COLUMNS)
+
+    def patient_slopes(self) -> pl.DataFrame:
+        r"""Per-patient model-based eGFR slopes (the chronic slope with a knot), shrunken
+        towards the group mean, with their prediction-error SE.
+
+        .. math:: \tilde s_i = \hat\beta_{g(i)} + \hat b_i, \qquad
+            \operatorname{SE}(\tilde s_i) \text{ from Henderson's mixed-model equations}
+
+        (the SE counts the uncertainty of :math:`\hat\beta`; Henderson 1975,
+        doi:10.2307/2529430). Needs ``engine="exact"``.
+
+        Returns
+        -------
+        polars.DataFrame
+            ``patient_id, group, quantity, estimate, se, lower, upper`` (``quantity`` is
+            ``chronic_slope`` or ``slope``; mL/min/1.73 m² per year).
+        """
+        if not hasattr(self, "fit_"):
+            raise InputDataError("SlopeModel: call .fit(egfr, patients) first")
+        exact = self.fit_.exact
+        if exact is None:
+            raise InputDataError(
+                "SlopeModel: per-patient model slopes need engine='exact' (the statsmodels "
+                "engine is kept for cross-checks of the fixed effects)"
+            )
+        term = self.slope_terms_[-1]
+        order = exact.random_effects.select(pl.col("patient_id").cast(pl.String)).join(
+            self._patient_groups, on="patient_id", how="left", maintain_order="left"
+        )
+        fixed = np.zeros((order.height, len(self.fixed_effect_names_)))
+        for group in self.groups_:
+            fixed[(order["_group"] == group).to_numpy(), self._index(group, term)] = 1.0
+        # with one random slope on time (a fallback), it shifts every slope term alike
+        table = exact.patient_contrast(fixed, {term: 1.0, "slope": 1.0})
+        return table.select(
+            "patient_id",
+            order["_group"].alias("group"),
+            pl.lit(term).alias("quantity"),
+            "estimate",
+            "se",
+            "lower",
+            "upper",
+        )
+
+    def describe(self) -> str:
+        """One sentence for the methods text: what was fitted, by which engine, how it ended."""
+        if not hasattr(self, "fit_"):
+            raise InputDataError("SlopeModel: call .fit(egfr, patients) first")
+        if self.fit_.exact is not None:
+            return self.fit_.exact.describe()
+        return (
+            f"Linear mixed model fitted by REML with statsmodels MixedLM, "
+            f"{self.random_effects_structure_} random effects per patient; "
+            f"{self.n_patients_} patients, {self.n_observations_} values."
+        )
+
+    def fit_record(self, model: str) -> pl.DataFrame:
+        """One row (``schemas.SLOPE_MODEL_FIT``) saying how the model was fitted."""
+        if not hasattr(self, "fit_"):
+            raise InputDataError("SlopeModel: call .fit(egfr, patients) first")
+        exact = self.fit_.exact
+        return pl.DataFrame(
+            {
+                "model": [model],
+                "engine": [self.engine_],
+                "structure": [self.random_effects_structure_],
+                "converged": [exact.convergence.converged if exact is not None else True],
+                "iterations": [exact.convergence.iterations if exact is not None else None],
+                "gradient_norm": [exact.convergence.gradient_norm if exact is not None else None],
+                "log_likelihood": [self.fit_.log_likelihood],
+                "n_patients": [self.n_patients_],
+                "n_values": [self.n_observations_],
+                "description": [self.describe()],
+            },
+            schema=SLOPE_MODEL_FIT,
+        )
 
     def summary(self) -> pl.DataFrame:
         """One row per group (and per difference ``<group> - <reference>``) and quantity:

@@ -8,6 +8,7 @@ import polars as pl
 
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 from kidneycohort.pipeline.steps._facts import primary_equation
+from kidneycohort.schemas import MODEL_SLOPES
 
 __all__ = ["add_slope_model", "add_survival"]
 
@@ -78,7 +79,13 @@ def add_slope_model(registry: StepRegistry) -> None:
     @registry.register(
         "slope_model",
         needs=["egfr", "cohort"],
-        makes=["models/trajectories", "models/slope_summary", "slope_model_fit"],
+        makes=[
+            "models/trajectories",
+            "models/slope_summary",
+            "models/slope_model_fit",
+            "model_slopes",
+            "slope_model_fit",
+        ],
         section="slope_model",
         options=SlopeModelRule,
         description="Linear mixed model of eGFR (one slope or two slopes with a knot) by group.",
@@ -96,5 +103,10 @@ def add_slope_model(registry: StepRegistry) -> None:
                 pl.lit(name).alias("model"), pl.all()
             ),
             "models/slope_summary": model.summary().select(pl.lit(name).alias("model"), pl.all()),
+            "models/slope_model_fit": model.fit_record(name),
+            # per-patient model slopes need the exact engine's Henderson equations
+            "model_slopes": model.patient_slopes()
+            if model.engine_ == "exact"
+            else pl.DataFrame(schema=MODEL_SLOPES),
             "slope_model_fit": model,
         }

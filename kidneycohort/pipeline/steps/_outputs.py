@@ -98,11 +98,11 @@ def add_tables(registry: StepRegistry) -> None:
     @registry.register(
         "cohort_tables",
         optional_needs=["baseline_categories"],
-        needs=["endpoints", "cohort", "baseline", "transitions"],
-        makes=[*_COMMON, "tables/transition_matrix"],
+        needs=["endpoints", "cohort", "baseline", "transitions", "slope_model_fit"],
+        makes=[*_COMMON, "tables/transition_matrix", "tables/slope_table"],
         section="tables",
         options=TableRule,
-        description="Endpoint, baseline, incidence-rate and G-transition tables (kidneycohort.tables).",
+        description="Endpoint, baseline, incidence-rate, G-transition and slope tables.",
     )
     def cohort_tables_step(ctx: StepContext) -> dict[str, Any]:
         """The cohort's endpoint, baseline, incidence and transition tables."""
@@ -113,6 +113,7 @@ def add_tables(registry: StepRegistry) -> None:
             equation=primary_equation(ctx.sections, ctx.tables),
             rule=ctx.options,  # type: ignore[arg-type]
         )
+        out["tables/slope_table"] = slope_table(ctx.tables["slope_model_fit"], rule=ctx.options)  # type: ignore[arg-type]
         return out
 
 
