@@ -7,7 +7,6 @@ import statistics
 import pandas as pd
 import polars as pl
 import pytest
-from _derivation_fixtures import EQ, egfr_table, patients_table, random_cohort, seeds, uacr_labs
 from hypothesis import given, settings
 from polars.testing import assert_frame_equal
 from scipy import stats
@@ -16,6 +15,14 @@ from kidneycohort import schemas
 from kidneycohort.baseline import BaselineRule, egfr_baseline, uacr_baseline
 from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.value_filter import ValueFilterRule
+from tests._fixtures.derivations import (
+    EQ,
+    egfr_table,
+    patients_table,
+    random_cohort,
+    seeds,
+    uacr_labs,
+)
 
 # patient a: one value before the window, four in it, one after index
 TIMELINE = [

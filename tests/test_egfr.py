@@ -14,7 +14,7 @@ from kidneycohort import equations, schemas
 from kidneycohort.egfr import EGFR_REASON_CODES, AgeBand, EgfrRule, compute_egfr, egfr_wide
 from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.harmonize import harmonize_tables
-from tests import _harmonize_fixtures as fx
+from tests._fixtures import harmonize as fx
 
 
 def labs_of(rows: list[tuple[str, dt.date, str, float]]) -> pl.DataFrame:

@@ -4,14 +4,14 @@ from __future__ import annotations
 
 import re
 from importlib import resources
-from pathlib import Path
 
 from click.testing import CliRunner
 
 import kidneycohort as kc
 from kidneycohort.cli import cli
+from tests._fixtures import REPO_ROOT
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = REPO_ROOT
 
 
 def test_py_typed_is_shipped() -> None:

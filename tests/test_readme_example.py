@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import re
-from pathlib import Path
 
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1]
+from tests._fixtures import REPO_ROOT
+
+ROOT = REPO_ROOT
 
 
 def test_readme_python_example_runs(monkeypatch: pytest.MonkeyPatch, capsys) -> None:

@@ -6,7 +6,6 @@ import numpy as np
 import polars as pl
 import pytest
 import statsmodels.api as sm
-from _derivation_fixtures import EQ, egfr_table, random_cohort, seeds
 from hypothesis import given, settings
 from polars.testing import assert_frame_equal
 
@@ -14,6 +13,8 @@ from kidneycohort import schemas
 from kidneycohort.errors import ConfigError
 from kidneycohort.slopes import SlopeRule, egfr_slopes
 from kidneycohort.value_filter import ValueFilterRule
+from tests._fixtures import REPO_ROOT
+from tests._fixtures.derivations import EQ, egfr_table, random_cohort, seeds
 
 
 def test_slopes_equal_numpy_polyfit_and_statsmodels_ols():
@@ -149,12 +150,11 @@ def test_recovery_of_true_arm_slopes_on_the_synthetic_trial():
     match our slopes, and the arm difference must match the true slope difference.
     """
     yaml = pytest.importorskip("yaml")
-    from pathlib import Path
 
     from kidneycohort.equations import evaluate
     from kidneycohort.synthetic import generate_cohort
 
-    path = Path(__file__).resolve().parents[1] / "synthetic" / "trial_two_arm.yaml"
+    path = REPO_ROOT / "synthetic" / "trial_two_arm.yaml"
     scenario = yaml.safe_load(path.read_text())
     scenario["noise_off"] = True
     cohort = generate_cohort(scenario, patients=400, seed=7)

@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import polars as pl
 import pytest
-from _derivation_fixtures import egfr_table, random_cohort, seeds
 from hypothesis import given, settings
 from polars.testing import assert_frame_equal
 
 from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, flag_aki
+from tests._fixtures.derivations import egfr_table, random_cohort, seeds
 
 
 def _flags(rows, **rule):
