@@ -14,6 +14,7 @@ naming the file and the dotted field, the value got and what to do.
 from __future__ import annotations
 
 import copy
+import os
 import types
 import typing
 from collections.abc import Iterable, Mapping, Sequence
@@ -23,9 +24,9 @@ from pathlib import Path
 from typing import Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from kidneycohort._rules import error_facts, validate_config
+from kidneycohort._rules import rule_error_message, short_repr, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
 from kidneycohort.io.maps import FileSource
 from kidneycohort.pipeline.registry import Step, StepRegistry, default_registry
@@ -324,30 +325,28 @@ def _pick_model(candidates: Sequence[type[BaseModel]], item: Any) -> type[BaseMo
     return matches[0] if len(matches) == 1 else None
 
 
-def _short(value: Any, limit: int = 60) -> str:
-    text = repr(value)
-    return text if len(text) <= limit else text[: limit - 3] + "..."
-
-
 def validate_section(model: type[BaseModel], data: Any, where: str) -> BaseModel:
     """Build ``model`` from ``data``; a failure becomes a one-line :class:`ConfigError`."""
     if data is None:
         data = {}
     if not isinstance(data, Mapping):
-        raise ConfigError(f"{where}: expected a section (mapping), got {_short(data)}")
+        raise ConfigError(f"{where}: expected a section (mapping), got {short_repr(data)}")
     check_keys(data, model, where)
-    return validate_config(model.model_validate, dict(data), where, message=_section_error)
+    return validate_config(
+        model.model_validate,
+        dict(data),
+        where,
+        message=lambda exc, at: rule_error_message(at, exc, schema=model),
+    )
 
 
-def _section_error(exc: ValidationError, where: str) -> str:
-    """``where.field: problem, got value (+n more)``; a missing key says to add it."""
-    facts = error_facts(None, exc)
-    field_name = f"{where}.{facts.path}" if facts.loc else where
-    missing = facts.kind == "missing"
-    message = "required key missing; add it" if missing else facts.message
-    got = "" if missing else f", got {_short(facts.got)}"
-    tail = f" (+{facts.count - 1} more)" if facts.count > 1 else ""
-    return f"{field_name}: {message}{got}{tail}"
+def absolute(path: str | Path) -> Path:
+    """``path`` made absolute with ``..`` taken lexically, symbolic links kept.
+
+    Paths in a config are relative to the config file as the user sees it: a config
+    reached through a linked folder keeps its neighbours (``../data``) of that folder.
+    """
+    return Path(os.path.abspath(path))
 
 
 # ---- recipes ----------------------------------------------------------------------------
@@ -369,7 +368,7 @@ def find_recipe(recipe: str, config_dir: Path) -> Path:
     repository layout), then among the recipes shipped with the package.
     """
     if recipe.endswith((".yaml", ".yml")):
-        path = (config_dir / recipe).resolve()
+        path = absolute(config_dir / recipe)
         if not path.is_file():
             raise ConfigError(f"study.recipe: recipe file '{recipe}' not found in {config_dir}")
         return path
@@ -437,7 +436,7 @@ def _anchor_paths(data: DataSection, config_dir: Path) -> DataSection:
         path = Path(spec.path)
         if path.is_absolute():
             return spec
-        return spec.model_copy(update={"path": str((config_dir / path).resolve())})
+        return spec.model_copy(update={"path": str(absolute(config_dir / path))})
 
     update: dict[str, Any] = {}
     if data.source is not None:
@@ -490,13 +489,13 @@ def load_config(
     if raw is None:
         if path is None:
             raise ConfigError("no config given: pass a YAML file path")
-        config_path: Path | None = Path(path).resolve()
+        config_path: Path | None = absolute(path)
         data = read_yaml(config_path)
         config_dir = config_path.parent
     else:
         config_path = None
         data = copy.deepcopy(dict(raw))
-        config_dir = (base_dir or Path.cwd()).resolve()
+        config_dir = absolute(base_dir or Path.cwd())
     data = apply_overrides(data, overrides)
     label = config_path.name if config_path else "config"
 
@@ -539,17 +538,17 @@ def load_config(
         merged = deep_merge(recipe.defaults.get(name, {}), data.get(name) or {})
         if model is None:
             if merged:
-                raise ConfigError(f"{name}: this step takes no options, got {_short(merged)}")
+                raise ConfigError(f"{name}: this step takes no options, got {short_repr(merged)}")
             continue
         sections[name] = validate_section(model, merged, name)
 
     # data paths and the output folder are relative to the config file
     data_section = _anchor_paths(data_section, config_dir)
     if output.dir is not None and not output.dir.is_absolute():
-        output.dir = (config_dir / output.dir).resolve()
+        output.dir = absolute(config_dir / output.dir)
     elif output.dir is None:
         stem = config_path.stem if config_path else study.name.replace(" ", "_")
-        output.dir = (config_dir / "runs" / stem).resolve()
+        output.dir = absolute(config_dir / "runs" / stem)
 
     check_chain(steps, source_tables(data_section), f"recipe '{recipe.name}'")
     resolved = StudyConfig(

@@ -20,6 +20,7 @@ anchoring file paths to the config folder, and writing results back after a run.
 from __future__ import annotations
 
 import logging
+import os
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -44,10 +45,10 @@ def anchor(source: OmopSource | SdtmSource, config_dir: Path) -> OmopSource | Sd
     if isinstance(source, SdtmSource):
         folder = Path(source.folder)
         if not folder.is_absolute():
-            return source.model_copy(update={"folder": str((config_dir / folder).resolve())})
+            return source.model_copy(update={"folder": os.path.abspath(config_dir / folder)})
         return source
     if source.path is not None and not Path(source.path).is_absolute():
-        return source.model_copy(update={"path": str((config_dir / source.path).resolve())})
+        return source.model_copy(update={"path": os.path.abspath(config_dir / source.path)})
     return source
 
 
