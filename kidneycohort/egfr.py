@@ -30,6 +30,7 @@ partition of patients gives the same rows.
 from __future__ import annotations
 
 import logging
+from collections.abc import Sequence
 from typing import Any, Final
 
 import numpy as np
@@ -40,7 +41,9 @@ from kidneycohort import equations as eq
 from kidneycohort import schemas, units
 from kidneycohort._frames import conform, require_columns, to_polars
 from kidneycohort._rules import RuleModel, resolve_rules
+from kidneycohort.ages import age_on_expr
 from kidneycohort.errors import InputDataError, did_you_mean
+from kidneycohort.vocabulary import sex_expr, unknown_sex_error
 
 logger = logging.getLogger(__name__)
 
@@ -337,7 +340,7 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
 def compute_egfr(
     labs: Any,
     patients: Any,
-    equations: list[str] | None = None,
+    equations: str | Sequence[str] | None = None,
     *,
     rule: EgfrRule | None = None,
     measurements: Any | None = None,
@@ -355,7 +358,7 @@ def compute_egfr(
         Patients (``schemas.PATIENTS``): ``sex``, ``birth_date`` or ``age_at_index``
         with ``index_date``, optional ``height_cm``, ``weight_kg``, ``black_race``.
     equations
-        Equation ids (shortcut for ``rule.equations``).
+        An equation id, or several (shortcut for ``rule.equations``).
     rule
         :class:`EgfrRule`; keyword ``rule_fields`` override its fields.
     measurements
@@ -396,21 +399,59 @@ def compute_egfr(
     """
     overrides = dict(rule_fields)
     if equations is not None:
-        overrides["equations"] = list(equations)
+        # one id given as text is one equation, not a list of its characters
+        overrides["equations"] = [equations] if isinstance(equations, str) else list(equations)
     resolved = resolve_egfr_rule(rule, overrides)
+    table, people, body = _inputs(labs, patients, measurements)
+    specs = {e: eq.get_equation(e) for e in resolved.all_equations()}
+    frames = _sample_frames(table, {s.kind for s in specs.values()}, resolved)
+    needs_body = any({"height_cm", "weight_kg"} & set(s.inputs) for s in specs.values())
+    out: list[pl.DataFrame] = []
+    for kind, samples in frames.items():
+        ids = [e for e, s in specs.items() if s.kind == kind]
+        if not ids:
+            continue
+        enriched = _enrich(samples, people, body if needs_body else None, resolved)
+        for equation_id in ids:
+            rows = _rows_in_age_bands(enriched, equation_id, resolved)
+            if rows.height:
+                out.append(conform(_evaluate(rows, equation_id, resolved), schemas.EGFR))
+    # blocks per equation (rule order), each in labs order: no sort of millions of rows
+    result = pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)
+    logger.info(
+        "egfr: %d rows, %d computed, equations %s",
+        result.height,
+        result["egfr"].is_not_null().sum(),
+        list(specs),
+    )
+    return egfr_wide(result) if wide else result
+
+
+def _inputs(
+    labs: Any, patients: Any, measurements: Any | None
+) -> tuple[pl.DataFrame, pl.DataFrame, pl.DataFrame | None]:
+    """Labs, patients (one row each, sex in the vocabulary) and body-size measurements."""
     table = to_polars(labs, "labs")
     require_columns(table, ("patient_id", "sample_date", "analyte", "value"), "labs")
     table = conform(table, schemas.LABS)
     people = to_polars(patients, "patients")
     require_columns(people, schemas.PATIENTS_REQUIRED, "patients")
     people = conform(people, schemas.PATIENTS).unique("patient_id", keep="first")
+    coded = people.select(sex_expr(pl.col("sex")).alias("_sex"), "sex")
+    unknown = coded.filter(pl.col("_sex").is_null() & pl.col("sex").is_not_null())["sex"]
+    unknown = unknown.filter(unknown.str.strip_chars() != "")
+    if unknown.len():
+        raise unknown_sex_error("patients.sex", unknown.unique().to_list())
+    people = people.with_columns(coded["_sex"].alias("sex"))
     body = None
     if measurements is not None:
         body = to_polars(measurements, "measurements")
         require_columns(body, ("patient_id", "measurement_date"), "measurements")
+    return table, people, body
 
-    specs = {e: eq.get_equation(e) for e in resolved.all_equations()}
-    kinds = {s.kind for s in specs.values()}
+
+def _sample_frames(table: pl.DataFrame, kinds: set[str], rule: EgfrRule) -> dict[str, pl.DataFrame]:
+    """The samples each kind of equation reads (combined: paired creatinine and cystatin C)."""
     cr = _samples(table, "creatinine", "creatinine_mg_dl")
     cys = _samples(table, "cystatin_c", "cystatin_c_mg_l")
     frames: dict[str, pl.DataFrame] = {}
@@ -420,69 +461,50 @@ def compute_egfr(
     if "cystatin_c" in kinds:
         frames["cystatin_c"] = cys.with_columns(pl.lit(None, pl.Float64).alias("creatinine_mg_dl"))
     if "combined" in kinds:
-        frames["combined"] = _pair(cr, cys, resolved.pairing_window_days)
+        frames["combined"] = _pair(cr, cys, rule.pairing_window_days)
+    return frames
 
-    needs_body = any({"height_cm", "weight_kg"} & set(s.inputs) for s in specs.values())
-    start, end = resolved.window_start_years, resolved.window_end_years
-    out: list[pl.DataFrame] = []
-    for kind, samples in frames.items():
-        ids = [e for e, s in specs.items() if s.kind == kind]
-        if not ids:
-            continue
-        if "_pair_reason" not in samples.columns:
-            samples = samples.with_columns(pl.lit(None, pl.String).alias("_pair_reason"))
-        enriched = samples.join(
-            people, on="patient_id", how="left", maintain_order="left"
-        ).with_columns(
-            pl.coalesce(
-                (pl.col("sample_date") - pl.col("birth_date")).dt.total_days()
-                / schemas.DAYS_PER_YEAR,
-                pl.col("age_at_index")
-                + (pl.col("sample_date") - pl.col("index_date")).dt.total_days()
-                / schemas.DAYS_PER_YEAR,
-            ).alias("age_years"),
-            (
-                (pl.col("sample_date") - pl.col("index_date")).dt.total_days()
-                / schemas.DAYS_PER_YEAR
-            ).alias("years_from_index"),
-        )
-        outside = pl.lit(False)
-        if start is not None:
-            outside = outside | (pl.col("years_from_index") < start).fill_null(True)
-        if end is not None:
-            outside = outside | (pl.col("years_from_index") > end).fill_null(True)
-        enriched = enriched.with_columns(
-            pl.when(outside).then(pl.lit("outside_measurement_window")).alias("_window_reason")
-        )
-        if needs_body:
-            enriched = _attach_measurements(enriched, body, resolved.body_size_window_days)
-            # a measurement near the sample wins over the patients table's value
-            enriched = enriched.with_columns(
-                pl.coalesce(f"_measured_{c}", c).alias(c)
-                for c in ("height_cm", "weight_kg")
-                if f"_measured_{c}" in enriched.columns
-            )
-        for equation_id in ids:
-            if resolved.by_age is None:
-                rows = enriched
-            else:
-                bands = [b for b in resolved.by_age if equation_id in b.equations]
-                keep = pl.col("age_years").is_null()
-                for band in bands:
-                    keep = keep | _in_band(pl.col("age_years"), band)
-                rows = enriched.filter(keep)
-            if rows.height == 0:
-                continue
-            out.append(conform(_evaluate(rows, equation_id, resolved), schemas.EGFR))
-    # blocks per equation (rules order), each in labs order: no sort of millions of rows
-    result = pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)
-    logger.info(
-        "egfr: %d rows, %d computed, equations %s",
-        result.height,
-        result["egfr"].is_not_null().sum(),
-        list(specs),
+
+def _enrich(
+    samples: pl.DataFrame, people: pl.DataFrame, body: pl.DataFrame | None, rule: EgfrRule
+) -> pl.DataFrame:
+    """Samples with the patient's facts, exact age, time from index, window and body size."""
+    if "_pair_reason" not in samples.columns:
+        samples = samples.with_columns(pl.lit(None, pl.String).alias("_pair_reason"))
+    enriched = samples.join(people, on="patient_id", how="left", maintain_order="left")
+    enriched = enriched.with_columns(
+        age_on_expr(people.columns, pl.col("sample_date")).alias("age_years"),
+        (
+            (pl.col("sample_date") - pl.col("index_date")).dt.total_days() / schemas.DAYS_PER_YEAR
+        ).alias("years_from_index"),
     )
-    return egfr_wide(result) if wide else result
+    outside = pl.lit(False)
+    if rule.window_start_years is not None:
+        outside = outside | (pl.col("years_from_index") < rule.window_start_years).fill_null(True)
+    if rule.window_end_years is not None:
+        outside = outside | (pl.col("years_from_index") > rule.window_end_years).fill_null(True)
+    enriched = enriched.with_columns(
+        pl.when(outside).then(pl.lit("outside_measurement_window")).alias("_window_reason")
+    )
+    if body is None:
+        return enriched
+    enriched = _attach_measurements(enriched, body, rule.body_size_window_days)
+    # a measurement near the sample wins over the patients table's value
+    return enriched.with_columns(
+        pl.coalesce(f"_measured_{c}", c).alias(c)
+        for c in ("height_cm", "weight_kg")
+        if f"_measured_{c}" in enriched.columns
+    )
+
+
+def _rows_in_age_bands(enriched: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataFrame:
+    """With age bands, the samples whose age falls in a band that uses ``equation_id``."""
+    if rule.by_age is None:
+        return enriched
+    keep = pl.col("age_years").is_null()
+    for band in (b for b in rule.by_age if equation_id in b.equations):
+        keep = keep | _in_band(pl.col("age_years"), band)
+    return enriched.filter(keep)
 
 
 def egfr_wide(egfr: pl.DataFrame) -> pl.DataFrame:

@@ -313,3 +313,47 @@ def test_bad_input() -> None:
         compute_egfr(good, ADULT, pairing_window=3)
     with pytest.raises(InputDataError, match="labs: missing required column 'analyte'"):
         compute_egfr(good.drop("analyte"), ADULT)
+
+
+def _one_sample(**patient: object) -> tuple[pl.DataFrame, pl.DataFrame]:
+    labs = pl.DataFrame(
+        {
+            "patient_id": ["a"],
+            "sample_date": [dt.date(2020, 1, 1)],
+            "analyte": ["creatinine"],
+            "value": [0.9],
+            "unit": ["mg/dL"],
+        }
+    )
+    people = pl.DataFrame({"patient_id": ["a"], **{k: [v] for k, v in patient.items()}})
+    return labs, people
+
+
+def test_one_equation_given_as_text_is_one_equation() -> None:
+    labs, people = _one_sample(sex="male", birth_date=dt.date(1980, 1, 1))
+    out = compute_egfr(labs, people, "ckd_epi_2021_cr")
+    assert out["equation"].to_list() == ["ckd_epi_2021_cr"]
+    # CKD-EPI 2021 at creatinine 0.9, male, exactly 40 (the doctest of compute_egfr)
+    assert out["egfr"][0] == pytest.approx(110.7, abs=0.05)
+
+
+def test_sex_codes_of_the_vocabulary_and_unknown_codes() -> None:
+    # one sex vocabulary for every public function: "M"/"F" work as in harmonise
+    labs, people = _one_sample(sex="M", birth_date=dt.date(1980, 1, 1))
+    coded = compute_egfr(labs, people, "ckd_epi_2021_cr")["egfr"][0]
+    labs, people = _one_sample(sex="male", birth_date=dt.date(1980, 1, 1))
+    assert coded == compute_egfr(labs, people, "ckd_epi_2021_cr")["egfr"][0]
+    labs, people = _one_sample(sex="2", birth_date=dt.date(1980, 1, 1))
+    with pytest.raises(InputDataError, match=r"patients.sex: sex code\(s\) '2' not recognised"):
+        compute_egfr(labs, people, "ckd_epi_2021_cr")
+
+
+def test_age_from_dates_wins_over_an_empty_age_column() -> None:
+    # an age_at_index column that exists but is empty must not hide the dates' age
+    labs, people = _one_sample(
+        sex="male", birth_date=dt.date(1980, 1, 1), index_date=dt.date(2019, 1, 1)
+    )
+    people = people.with_columns(age_at_index=pl.lit(None, pl.Float64))
+    out = compute_egfr(labs, people, "ckd_epi_2021_cr")
+    assert out["age_years"][0] == pytest.approx(40.0, abs=1e-9)
+    assert out["egfr"][0] == pytest.approx(110.7, abs=0.05)

@@ -27,6 +27,7 @@ from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.adam._metadata import AdamDataset, Variable, make_dataset, standard
 from kidneycohort.adam._subjects import subject_facts
+from kidneycohort.ages import age_at_index_expr
 from kidneycohort.kdigo import gfr_category_expr
 
 
@@ -153,10 +154,7 @@ def adsl_dataset(
             pl.col("patient_id").cast(pl.String), pl.col("a_category").alias("ACATBL")
         )
         frame = frame.join(categories, on="patient_id", how="left")
-    age_days = (pl.col("index_date") - pl.col("birth_date")).dt.total_days()
-    age = pl.coalesce(
-        (age_days / schemas.DAYS_PER_YEAR).floor(), pl.col("age_at_index").cast(pl.Float64).floor()
-    ).cast(pl.Int64)
+    age = age_at_index_expr(frame.columns).floor().cast(pl.Int64)
     rows = frame.select(
         pl.lit(study_id, pl.String).alias("STUDYID"),
         pl.col("patient_id").alias("USUBJID"),

@@ -43,7 +43,6 @@ from kidneycohort.equations._core import (
     OK,
     OUTSIDE_DOMAIN,
     REASON_CODES,
-    UNKNOWN_SEX,
     ArrayLike,
     EquationSpec,
     FloatArray,
@@ -78,7 +77,6 @@ __all__ = [
     "OUTSIDE_DOMAIN",
     "REASON_CODES",
     "REGISTRY",
-    "UNKNOWN_SEX",
     "EquationResult",
     "EquationSpec",
     "bsa_dubois",
@@ -178,7 +176,7 @@ def evaluate(
     age : array-like
         Age in years (every equation checks its validated range).
     sex : array-like of str, optional
-        ``"female"`` / ``"male"``; other values give NaN (reason ``unknown_sex``).
+        the sex vocabulary of :mod:`kidneycohort.vocabulary` (``female``/``male``, ``f``/``m``, ...); another code is an error naming it.
     height_cm, weight_kg : array-like, optional
         For the height-based children's equations and Cockcroft–Gault.
     black_race : array-like of bool, optional
@@ -236,7 +234,7 @@ def evaluate_with_reason(
     """Like :func:`evaluate`, plus a reason code per element.
 
     Reason codes (first that applies): ``missing_input``, ``nonpositive_value``,
-    ``invalid_value`` (infinite value or negative age), ``unknown_sex``,
+    ``invalid_value`` (infinite value or negative age),
     ``age_below_validated_range``, ``age_above_validated_range``,
     ``outside_equation_domain`` (e.g. Cockcroft–Gault at age 140+); ``""`` where the
     value was computed.

@@ -20,7 +20,8 @@ import numpy as np
 import numpy.typing as npt
 import polars as pl
 
-from kidneycohort.errors import EquationWarning, InputDataError
+from kidneycohort.errors import DataQualityWarning, EquationWarning, InputDataError
+from kidneycohort.vocabulary import SEX_CODES, fold_code, sex_expr, unknown_sex_error
 
 logger = logging.getLogger("kidneycohort.equations")
 
@@ -38,7 +39,6 @@ OK: Final = ""
 MISSING_INPUT: Final = "missing_input"
 NONPOSITIVE_VALUE: Final = "nonpositive_value"
 INVALID_VALUE: Final = "invalid_value"
-UNKNOWN_SEX: Final = "unknown_sex"
 AGE_BELOW: Final = "age_below_validated_range"
 AGE_ABOVE: Final = "age_above_validated_range"
 OUTSIDE_DOMAIN: Final = "outside_equation_domain"
@@ -47,7 +47,6 @@ REASON_CODES: Final = (
     MISSING_INPUT,
     NONPOSITIVE_VALUE,
     INVALID_VALUE,
-    UNKNOWN_SEX,
     AGE_BELOW,
     AGE_ABOVE,
     OUTSIDE_DOMAIN,
@@ -167,15 +166,18 @@ def _not_numeric(name: str, example: list[Any]) -> str:
 def sex_codes(sex: ArrayLike) -> tuple[BoolArray, BoolArray, BoolArray]:
     """Vectorised reading of ``sex``: returns (female, known, missing) boolean arrays.
 
-    ``"female"`` and ``"male"`` are recognised after trimming and lower-casing; a null,
-    NaN or empty string is *missing*; anything else is *unknown* (neither known nor
-    missing). Scalars give 0-d arrays. Exact spellings take a fast path; only the other
-    elements are folded.
+    The project's sex vocabulary is accepted (``female``/``male``, ``f``/``m``,
+    ``woman``/``man``, any case); a null, NaN or empty string is *missing*; any other
+    code raises :class:`~kidneycohort.errors.InputDataError` naming it. Scalars give 0-d
+    arrays. Exact spellings take a fast path; only the other elements are folded.
     """
     if sex is None or isinstance(sex, str):
-        text = "" if sex is None else sex.strip().lower()
-        female = np.array(text == "female")
-        return female, female | np.array(text == "male"), np.array(text == "")
+        text = "" if sex is None else fold_code(sex)
+        if text and text not in SEX_CODES:
+            raise unknown_sex_error("sex", [sex])
+        code = SEX_CODES.get(text, "")
+        female = np.array(code == "female")
+        return female, female | np.array(code == "male"), np.array(text == "")
     if isinstance(sex, float) and np.isnan(sex):
         return np.array(False), np.array(False), np.array(True)
     values: Any
@@ -205,18 +207,26 @@ def sex_codes(sex: ArrayLike) -> tuple[BoolArray, BoolArray, BoolArray]:
 
 
 def _fold_sex(values: Any) -> tuple[BoolArray, BoolArray, BoolArray]:
-    """Slow path for the elements that are not exactly ``"female"`` / ``"male"``."""
+    """Slow path for the elements that are not exactly ``"female"`` / ``"male"``: the
+    project's sex vocabulary (:data:`kidneycohort.vocabulary.SEX_CODES`); a code outside
+    it is an error naming it."""
     if isinstance(values, pl.Series):
         series = values
     else:
         import pandas as pd
 
         series = pl.from_pandas(pd.Series(np.ravel(values), dtype=object).astype("string"))
-    folded = series.str.strip_chars().str.to_lowercase()
-    female = (folded == "female").fill_null(False).to_numpy()
-    male = (folded == "male").fill_null(False).to_numpy()
-    missing = (folded.is_null() | (folded == "")).fill_null(True).to_numpy()
-    return female, male, missing
+    frame = pl.DataFrame({"raw": series})
+    folded = frame.select(
+        sex_expr(pl.col("raw")).alias("sex"),
+        (pl.col("raw").is_null() | (pl.col("raw").str.strip_chars() == "")).alias("missing"),
+    )
+    unknown = frame.filter(folded["sex"].is_null() & ~folded["missing"])["raw"]
+    if unknown.len():
+        raise unknown_sex_error("sex", unknown.unique().to_list())
+    female = (folded["sex"] == "female").fill_null(False).to_numpy()
+    male = (folded["sex"] == "male").fill_null(False).to_numpy()
+    return female, male, folded["missing"].to_numpy()
 
 
 def black_codes(black_race: ArrayLike) -> tuple[BoolArray, BoolArray]:
@@ -239,59 +249,77 @@ class Prepared:
     masks: dict[str, BoolArray]
 
 
-def prepare(
-    spec: EquationSpec,
-    given: Mapping[str, ArrayLike],
-    *,
-    apply_age_range: bool,
-    apply_race_coefficient: bool,
-) -> Prepared:
-    """Coerce and broadcast the inputs ``spec`` needs and find the non-computable ones."""
+# A value far outside the plausible range of the unit the argument names, but inside it
+# once read in the other common unit, is most likely a unit slip (common practice; the
+# ranges are the harmonise stage's plausibility limits).
+_UNIT_SLIPS: Final = {
+    # argument: (plausible low, high in its unit, other unit, factor to its unit)
+    "creatinine_mg_dl": (0.1, 30.0, "umol/L", 1.0 / 88.4),
+    "cystatin_c_mg_l": (0.2, 10.0, "nmol/L", 1.0 / 75.0),  # 1 mg/L ~ 75 nmol/L (from memory)
+}
+
+
+def _warn_unit_slip(name: str, values: FloatArray) -> None:
+    """Warn once when values look like they were given in the other common unit."""
+    if name not in _UNIT_SLIPS:
+        return
+    low, high, other, factor = _UNIT_SLIPS[name]
+    with np.errstate(invalid="ignore"):
+        slipped = (values > high) & (values * factor >= low) & (values * factor <= high)
+    if np.any(slipped):
+        example = float(np.ravel(values)[np.ravel(slipped)][0])
+        unit = name.rsplit("_", 2)[-2] + "/" + name.rsplit("_", 1)[-1]
+        warnings.warn(
+            DataQualityWarning(
+                f"{name}: {int(np.sum(slipped))} value(s) (e.g. {example:g}) are implausible in "
+                f"{unit.replace('mg/dl', 'mg/dL')} but plausible in {other} "
+                f"({example:g} {other} = {example * factor:.3g} {unit.replace('mg/dl', 'mg/dL')}); "
+                f"convert {other} values before passing them"
+            ),
+            stacklevel=5,
+        )
+
+
+def _coerce(
+    spec: EquationSpec, given: Mapping[str, ArrayLike]
+) -> tuple[dict[str, Any], dict[str, BoolArray], bool]:
+    """The inputs ``spec`` needs as arrays (``sex`` as ``female``) and the missing-sex mask."""
     raw: dict[str, Any] = {}
     masks: dict[str, BoolArray] = {}
-    scalar = True
     for name in spec.inputs:
         value = given.get(name)
         if name == "sex":
-            female, known, missing = sex_codes(value)
+            female, _, missing = sex_codes(value)
             raw["female"] = female
-            masks[UNKNOWN_SEX] = ~known & ~missing
             masks["_missing_sex"] = missing
-            scalar = scalar and female.ndim == 0
         else:
-            arr = as_float_array(value, name)
-            raw[name] = arr
-            scalar = scalar and arr.ndim == 0
-    use_race = spec.race_coefficient and apply_race_coefficient
-    if use_race:
-        if given.get("black_race") is None:
-            raise InputDataError(
-                f"{spec.id}: apply_race_coefficient=True needs black_race (booleans per "
-                "patient); pass black_race or leave the race coefficient off"
-            )
-        warnings.warn(
-            EquationWarning(
-                f"{spec.id}: applying the legacy coefficient for Black race; current "
-                "guidance (KDIGO 2024) recommends the race-free CKD-EPI 2021 equations"
-            ),
-            stacklevel=4,
-        )
-        black, black_missing = black_codes(given.get("black_race"))
-        raw["black"] = black
-        masks["_missing_race"] = black_missing
-        scalar = scalar and black.ndim == 0
-    names = list(raw)
-    try:
-        broadcast = np.broadcast_arrays(*raw.values(), *masks.values())
-    except ValueError:
-        shapes = {k: np.shape(v) for k, v in raw.items()}
-        raise InputDataError(
-            f"{spec.id}: inputs have different lengths {shapes}; pass arrays of one length (or scalars)"
-        ) from None
-    arrays = dict(zip(names, broadcast[: len(names)], strict=True))
-    masks = dict(zip(masks, broadcast[len(names) :], strict=True))
-    shape = broadcast[0].shape if broadcast else ()
+            raw[name] = as_float_array(value, name)
+            _warn_unit_slip(name, raw[name])
+    scalar = all(np.ndim(v) == 0 for v in raw.values())
+    return raw, masks, scalar
 
+
+def _race_inputs(spec: EquationSpec, given: Mapping[str, ArrayLike]) -> tuple[Any, BoolArray]:
+    """The legacy race term: only on explicit request, with an EquationWarning."""
+    if given.get("black_race") is None:
+        raise InputDataError(
+            f"{spec.id}: apply_race_coefficient=True needs black_race (booleans per "
+            "patient); pass black_race or leave the race coefficient off"
+        )
+    warnings.warn(
+        EquationWarning(
+            f"{spec.id}: applying the legacy coefficient for Black race; current "
+            "guidance (KDIGO 2024) recommends the race-free CKD-EPI 2021 equations"
+        ),
+        stacklevel=5,
+    )
+    return black_codes(given.get("black_race"))
+
+
+def _value_masks(
+    spec: EquationSpec, arrays: Mapping[str, Any], shape: tuple[int, ...]
+) -> dict[str, BoolArray]:
+    """Missing, non-positive and invalid (infinite, negative age) elements."""
     missing = np.zeros(shape, dtype=bool)
     nonpositive = np.zeros(shape, dtype=bool)
     invalid = np.zeros(shape, dtype=bool)
@@ -305,13 +333,37 @@ def prepare(
             nonpositive |= arr <= 0
         elif name == "age":
             invalid |= arr < 0
-    if "_missing_sex" in masks:
-        missing |= masks.pop("_missing_sex")
-    if "_missing_race" in masks:
-        missing |= masks.pop("_missing_race")
-    out_masks = {MISSING_INPUT: missing, NONPOSITIVE_VALUE: nonpositive, INVALID_VALUE: invalid}
-    if UNKNOWN_SEX in masks:
-        out_masks[UNKNOWN_SEX] = masks[UNKNOWN_SEX]
+    return {MISSING_INPUT: missing, NONPOSITIVE_VALUE: nonpositive, INVALID_VALUE: invalid}
+
+
+def prepare(
+    spec: EquationSpec,
+    given: Mapping[str, ArrayLike],
+    *,
+    apply_age_range: bool,
+    apply_race_coefficient: bool,
+) -> Prepared:
+    """Coerce and broadcast the inputs ``spec`` needs and find the non-computable ones."""
+    raw, masks, scalar = _coerce(spec, given)
+    use_race = spec.race_coefficient and apply_race_coefficient
+    if use_race:
+        raw["black"], masks["_missing_race"] = _race_inputs(spec, given)
+        scalar = scalar and np.ndim(raw["black"]) == 0
+    names = list(raw)
+    try:
+        broadcast = np.broadcast_arrays(*raw.values(), *masks.values())
+    except ValueError:
+        shapes = {k: np.shape(v) for k, v in raw.items()}
+        raise InputDataError(
+            f"{spec.id}: inputs have different lengths {shapes}; pass arrays of one length (or scalars)"
+        ) from None
+    arrays = dict(zip(names, broadcast[: len(names)], strict=True))
+    masks = dict(zip(masks, broadcast[len(names) :], strict=True))
+    shape = broadcast[0].shape if broadcast else ()
+    out_masks = _value_masks(spec, arrays, shape)
+    for name in ("_missing_sex", "_missing_race"):
+        if name in masks:
+            out_masks[MISSING_INPUT] |= masks[name]
     if apply_age_range:
         age = arrays["age"]
         out_masks[AGE_BELOW] = age < spec.min_age

@@ -23,10 +23,9 @@ from kidneycohort.harmonize._rows import (
 from kidneycohort.harmonize._rule import HarmonizeRule
 from kidneycohort.io.maps import (
     DEFAULT_EVENT_CODES,
-    fold_code,
-    fold_code_expr,
 )
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
+from kidneycohort.vocabulary import fold_code, fold_code_expr
 
 
 def _clean_events(

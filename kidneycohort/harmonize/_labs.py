@@ -25,10 +25,9 @@ from kidneycohort.harmonize._rule import HarmonizeRule
 from kidneycohort.io.loinc import LOINC_TO_ANALYTE
 from kidneycohort.io.maps import (
     DEFAULT_ANALYTE_NAMES,
-    fold_code,
-    fold_code_expr,
 )
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
+from kidneycohort.vocabulary import fold_code, fold_code_expr
 
 # A partial ISO 8601 date: year, or year and month (SDTM --DTC convention).
 _PARTIAL_DATE: Final = r"^\d{4}(?:-\d{2})?$"

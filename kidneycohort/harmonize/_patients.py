@@ -20,12 +20,8 @@ from kidneycohort.harmonize._rows import (
     _with_row_identity,
 )
 from kidneycohort.harmonize._rule import HarmonizeRule
-from kidneycohort.io.maps import (
-    DEFAULT_SEX_CODES,
-    fold_code,
-    fold_code_expr,
-)
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
+from kidneycohort.vocabulary import fold_code_expr, sex_expr, unknown_sex_error
 
 _PATIENT_DATES: Final = {c: t for c, t in schemas.PATIENTS.items() if t.is_temporal()}
 
@@ -57,19 +53,23 @@ def _clean_patients(
     frame = parse_date_columns(frame, _PATIENT_DATES, name="patients", date_format=rule.date_format)
     names = frame.collect_schema().names()
     schema = frame.collect_schema()
-    sex_map = {**DEFAULT_SEX_CODES, **{fold_code(k): v for k, v in rule.sex_codes.items()}}
     exprs: list[pl.Expr] = [_text("patient_id").alias("patient_id")]
     notes: list[pl.Expr] = [pl.col("assumption")]
     bad_number: list[str] = []
     if "sex" in names:
-        folded = fold_code_expr(pl.col("sex"))
-        mapped = folded.replace_strict(sex_map, default=None, return_dtype=pl.String)
-        exprs.append(mapped.alias("sex"))
-        notes.append(
-            pl.when(mapped.is_null() & _text("sex").is_not_null()).then(
-                pl.lit("sex code not recognised, set missing")
-            )
+        mapped = sex_expr(pl.col("sex"), rule.sex_codes)
+        # an unknown code is an error naming it (one sex vocabulary), not a missing sex
+        unknown = (
+            frame.select(_text("sex").alias("code"), mapped.alias("mapped"))
+            .filter(pl.col("mapped").is_null() & pl.col("code").is_not_null())
+            .select("code")
+            .unique()
+            .head(6)
+            .collect()
         )
+        if unknown.height:
+            raise unknown_sex_error("patients.sex", unknown["code"].to_list())
+        exprs.append(mapped.alias("sex"))
     for column in _PATIENT_NUMBERS:
         if column in names and not schema[column].is_numeric():
             number = (

@@ -13,10 +13,10 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Final, Literal
 
-import polars as pl
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from kidneycohort.errors import ConfigError
+from kidneycohort.vocabulary import SEX_CODES
 
 TableKind = Literal["labs", "patients", "events"]
 
@@ -48,14 +48,7 @@ DEFAULT_ANALYTE_NAMES: Final[dict[str, str]] = {
     "u albumin/creatinine": "uacr",
 }
 
-DEFAULT_SEX_CODES: Final[dict[str, str]] = {
-    "female": "female",
-    "f": "female",
-    "woman": "female",
-    "male": "male",
-    "m": "male",
-    "man": "male",
-}
+DEFAULT_SEX_CODES: Final[dict[str, str]] = SEX_CODES
 
 DEFAULT_EVENT_CODES: Final[dict[str, str]] = {
     "dialysis": "dialysis",
@@ -70,20 +63,6 @@ DEFAULT_EVENT_CODES: Final[dict[str, str]] = {
     "kidney death": "kidney_death",
     "renal death": "kidney_death",
 }
-
-
-def fold_code_expr(expr: pl.Expr) -> pl.Expr:
-    """Fold a code for lookup: strip, lower case, runs of space/underscore/hyphen -> ' '."""
-    return (
-        expr.cast(pl.String).str.strip_chars().str.to_lowercase().str.replace_all(r"[\s_\-]+", " ")
-    )
-
-
-def fold_code(code: str) -> str:
-    """Python twin of :func:`fold_code_expr` for map keys given in a config."""
-    import re
-
-    return re.sub(r"[\s_\-]+", " ", str(code).strip().lower())
 
 
 _FORMATS: Final = {

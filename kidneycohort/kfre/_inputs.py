@@ -8,6 +8,7 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort._rules import resolve_rules
+from kidneycohort.ages import age_at_index_expr, has_age
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kfre._equation import KFRE_REASONS, add_kfre_risk
 from kidneycohort.kfre._rule import KfreRule
@@ -63,17 +64,12 @@ def kfre_inputs(
         at = to_polars(at_years, "at_years")
         require_columns(at, ("patient_id", "at_years"), "at_years")
         at = at.select(pl.col("patient_id").cast(pl.String), pl.col("at_years").cast(pl.Float64))
-    if "age_at_index" in pts.columns:
-        age_at_index = pl.col("age_at_index").cast(pl.Float64)
-    elif "birth_date" in pts.columns and "index_date" in pts.columns:
-        age_at_index = (
-            pl.col("index_date").cast(pl.Date) - pl.col("birth_date").cast(pl.Date)
-        ).dt.total_days() / DAYS_PER_YEAR
-    else:
+    if not has_age(pts.columns):
         raise InputDataError(
             "patients: missing column 'age_at_index' (or 'birth_date' with 'index_date') "
             "needed for the KFRE age"
         )
+    age_at_index = age_at_index_expr(pts.columns)
     out = at.join(
         pts.select("patient_id", "sex", _age0=age_at_index), on="patient_id", how="left"
     ).with_columns(age_years=pl.col("_age0") + pl.col("at_years"))

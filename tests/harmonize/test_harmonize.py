@@ -301,12 +301,21 @@ def test_accounting_columns_contract() -> None:
 
 
 def test_patients_cleaned_and_covariates_kept() -> None:
-    patients = fx.patients().with_columns(pl.col("sex").replace({"F": "U"}))
+    patients = fx.patients()
     out = harmonize_tables(lab(patient="P2"), patients)
     assert out.patients["patient_id"].to_list() == ["P1", "P2", "P3", "P4", "P5", "P6"]
-    assert out.patients["sex"].to_list() == [None, "male", "male", "female", "female", None]
+    assert out.patients["sex"].to_list() == ["female", "male", "male", "female", "female", None]
     assert out.patients["arm"].to_list() == ["A", "B", "A", "B", "A", "B"]
-    assert out.assumptions.filter(pl.col("table") == "patients")["rows"].to_list() == [1]
+
+
+def test_unknown_sex_code_is_an_error_naming_it() -> None:
+    # one sex vocabulary: a code outside it is an error, never a silently missing sex
+    patients = fx.patients().with_columns(pl.col("sex").replace({"F": "U"}))
+    with pytest.raises(InputDataError, match=r"patients.sex: sex code\(s\) 'U' not recognised"):
+        harmonize_tables(lab(patient="P2"), patients)
+    # mapped in the options, the code is accepted
+    out = harmonize_tables(lab(patient="P2"), patients, sex_codes={"U": "female"})
+    assert out.patients["sex"][0] == "female"
 
 
 def test_site_sex_codes() -> None:

@@ -14,7 +14,7 @@ from kidneycohort.harmonize import REASON_CODES, harmonize_tables
 PATIENTS = pl.DataFrame(
     {
         "patient_id": ["A", "B", "C", "D", "D", "E"],
-        "sex": ["female", "M", "F", "male", "female", "x"],
+        "sex": ["female", "M", "F", "male", "female", None],
         "birth_date": [
             "1950-01-01",
             "1980-06-30",

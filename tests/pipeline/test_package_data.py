@@ -13,6 +13,7 @@ from tests._fixtures import REPO_ROOT
 ROOT = REPO_ROOT
 SHIPPED = builtin_config_dir().parent
 
+
 @pytest.mark.parametrize(
     ("folder", "shipped"),
     [("pipelines", "recipes"), ("configs", "configs"), ("synthetic", "scenarios")],
