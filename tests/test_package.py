@@ -66,3 +66,12 @@ def test_no_public_function_shares_a_module_name() -> None:
     assert sorted(set(kc.__all__)) == sorted(kc.__all__)
     missing = [name for name in kc.__all__ if not hasattr(kc, name)]
     assert missing == []
+
+
+def test_no_library_module_is_over_600_lines() -> None:
+    # modules of readable size: a concept that grows splits into a package of modules
+    sizes = {
+        str(p.relative_to(ROOT)): len(p.read_text(encoding="utf-8").splitlines())
+        for p in (ROOT / "kidneycohort").rglob("*.py")
+    }
+    assert {k: v for k, v in sizes.items() if v > 600} == {}

@@ -214,6 +214,14 @@ def check_dataset(dataset: AdamDataset) -> None:
         raise InputDataError(
             f"{where}: columns {dataset.data.columns} differ from metadata {names}"
         )
+    _check_variables(where, dataset)
+    _check_values(where, dataset, names)
+    if dataset.keys and dataset.data.select(dataset.keys).is_duplicated().any():
+        raise InputDataError(f"{where}: more than one row per key {', '.join(dataset.keys)}")
+
+
+def _check_variables(where: str, dataset: AdamDataset) -> None:
+    """Variable names and labels (SAS TS-140 XPORT v5; ADaM IG v1.3 standard labels)."""
     for v in dataset.variables:
         if not _NAME.match(v.name):
             raise InputDataError(
@@ -226,8 +234,11 @@ def check_dataset(dataset: AdamDataset) -> None:
                 f"{where}.{v.name}: label '{v.label}' differs from the ADaM IG label "
                 f"'{ADAM_IG_LABELS[v.name]}'"
             )
-    lengths = text_lengths(dataset)
-    for name, length in lengths.items():
+
+
+def _check_values(where: str, dataset: AdamDataset, names: list[str]) -> None:
+    """Text lengths (200 bytes), flag values and PARAMCD lengths."""
+    for name, length in text_lengths(dataset).items():
         if length > MAX_TEXT_BYTES:
             raise InputDataError(
                 f"{where}.{name}: a value of {length} bytes exceeds the 200-byte limit of "
@@ -246,8 +257,6 @@ def check_dataset(dataset: AdamDataset) -> None:
             raise InputDataError(
                 f"{where}.PARAMCD: '{long['PARAMCD'][0]}' is longer than 8 characters (ADaM IG)"
             )
-    if dataset.keys and dataset.data.select(dataset.keys).is_duplicated().any():
-        raise InputDataError(f"{where}: more than one row per key {', '.join(dataset.keys)}")
 
 
 def _check_text(where: str, text: str, limit: int) -> None:

@@ -426,33 +426,41 @@ def usual_kidney_composite(
     return [*parts, composite]
 
 
-def _resolve_order(definitions: Sequence[EndpointDefinition]) -> None:
+def _unique_names(definitions: Sequence[EndpointDefinition]) -> None:
     names = [d.name for d in definitions]
-    seen: set[str] = set()
-    for d in definitions:
-        if d.name in seen:
-            raise ConfigError(
-                f"endpoints: name {d.name!r} is used twice; give each definition its own name"
-            )
-        seen.add(d.name)
+    twice = [n for n in dict.fromkeys(names) if names.count(n) > 1]
+    if twice:
+        raise ConfigError(
+            f"endpoints: name {twice[0]!r} is used twice; give each definition its own name"
+        )
     codes = [d.paramcd for d in definitions]
-    for code in codes:
-        if codes.count(code) > 1:
-            raise ConfigError(
-                f"endpoints: paramcd {code!r} is used by more than one definition; set paramcd explicitly"
-            )
+    twice = [c for c in dict.fromkeys(codes) if codes.count(c) > 1]
+    if twice:
+        raise ConfigError(
+            f"endpoints: paramcd {twice[0]!r} is used by more than one definition; "
+            "set paramcd explicitly"
+        )
+
+
+def _known_components(definitions: Sequence[EndpointDefinition]) -> None:
+    names = [d.name for d in definitions]
     for d in definitions:
-        if isinstance(d, Composite):
-            for c in d.components:
-                if c not in seen:
-                    raise ConfigError(
-                        f"endpoints.{d.name}.components: unknown endpoint {c!r}"
-                        f"{did_you_mean(c, names)}; components name other definitions"
-                    )
-                if c == d.name:
-                    raise ConfigError(
-                        f"endpoints.{d.name}.components: a composite cannot contain itself"
-                    )
+        for c in d.components if isinstance(d, Composite) else ():
+            if c not in names:
+                raise ConfigError(
+                    f"endpoints.{d.name}.components: unknown endpoint {c!r}"
+                    f"{did_you_mean(c, names)}; components name other definitions"
+                )
+            if c == d.name:
+                raise ConfigError(
+                    f"endpoints.{d.name}.components: a composite cannot contain itself"
+                )
+
+
+def _resolve_order(definitions: Sequence[EndpointDefinition]) -> None:
+    """Unique names and codes, known components, and no cycle among composites."""
+    _unique_names(definitions)
+    _known_components(definitions)
     # cycle check over composites (a composite of composites is allowed)
     graph = {d.name: list(d.components) if isinstance(d, Composite) else [] for d in definitions}
     state: dict[str, int] = {}

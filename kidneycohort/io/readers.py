@@ -298,6 +298,22 @@ def read_source(
         raise InputDataError(f"unknown table kind {kind!r}{did_you_mean(kind, SCHEMAS)}")
     name = str(spec.path)
     frame = scan_source(spec)
+    have = _mapped_columns(frame, spec, kind, name)
+    frame = frame.rename(spec.columns).with_columns(_defaults(spec, have))
+    value_maps = {
+        column: mapping
+        for column, mapping in spec.values.items()
+        if column in frame.collect_schema()
+    }
+    if value_maps:
+        frame = frame.with_columns(
+            pl.col(c).cast(pl.String).str.strip_chars().replace(m) for c, m in value_maps.items()
+        )
+    return parse_date_columns(frame, SCHEMAS[kind], name=name, date_format=spec.date_format)
+
+
+def _mapped_columns(frame: pl.LazyFrame, spec: FileSource, kind: str, name: str) -> list[str]:
+    """The columns after the column map; the map and the required columns checked."""
     have = [c for c in frame.collect_schema().names() if c != "source_row"]
     for source_column in spec.columns:
         if source_column not in have:
@@ -305,7 +321,6 @@ def read_source(
                 f"{name}: column map names '{source_column}', not in the file"
                 f"{suggest_column(source_column, have)}"
             )
-    frame = frame.rename(spec.columns)
     have = [spec.columns.get(c, c) for c in have]
     for column in REQUIRED[kind]:
         if column not in have and column not in spec.defaults:
@@ -313,7 +328,12 @@ def read_source(
                 f"{name}: missing required column '{column}'"
                 f"{suggest_column(column, have)}; map it in columns"
             )
-    target = SCHEMAS[kind]
+    return have
+
+
+def _defaults(spec: FileSource, have: list[str]) -> list[pl.Expr]:
+    """``source``, the source's defaults where a value is empty, and the ``assumption``
+    that records each default used."""
     exprs: list[pl.Expr] = [pl.lit(spec.source_name(), pl.String).alias("source")]
     assumptions: list[pl.Expr] = []
     for column, default in spec.defaults.items():
@@ -335,17 +355,7 @@ def read_source(
         exprs.append(pl.when(joined != "").then(joined).alias("assumption"))
     else:
         exprs.append(pl.lit(None, pl.String).alias("assumption"))
-    frame = frame.with_columns(exprs)
-    value_maps = {
-        column: mapping
-        for column, mapping in spec.values.items()
-        if column in frame.collect_schema()
-    }
-    if value_maps:
-        frame = frame.with_columns(
-            pl.col(c).cast(pl.String).str.strip_chars().replace(m) for c, m in value_maps.items()
-        )
-    return parse_date_columns(frame, target, name=name, date_format=spec.date_format)
+    return exprs
 
 
 def read_labs(spec: FileSource | str | Path, **fields: Any) -> pl.LazyFrame:

@@ -65,6 +65,48 @@ def _protect(counts: pl.DataFrame, spec: TableRule) -> pl.DataFrame:
     return out.drop("_rank")
 
 
+CountRow = tuple[str, str, str, str, pl.Expr, str | None, str]
+"""(row id, characteristic, statistic, level, count expression, block, denominator)."""
+
+
+def _count_rows(
+    reasons: list[str], thresholds_2y: list[float], thresholds_5y: list[float], ok: pl.Expr
+) -> list[CountRow]:
+    rows: list[CountRow] = [
+        ("n", "N", "n", "", pl.len(), None, ""),
+        ("applicable", "KFRE applicable", "n (%)", "yes", ok.sum(), "n", "of_n"),
+    ]
+    for reason in reasons:
+        rows.append(
+            (
+                f"reason_{reason}",
+                "KFRE not applicable",
+                "n (%)",
+                reason,
+                (pl.col("kfre_reason") == reason).sum(),
+                "n",
+                "of_n",
+            )
+        )
+    for horizon, column, thresholds in (
+        (2, "kfre_2y", thresholds_2y),
+        (5, "kfre_5y", thresholds_5y),
+    ):
+        for t in thresholds:
+            rows.append(
+                (
+                    f"over_{horizon}_{t}",
+                    f"{horizon}-year kidney failure risk >= {_percent(float(t))}",
+                    "n (% of applicable)",
+                    "",
+                    (ok & (pl.col(column) >= float(t))).sum(),
+                    None,
+                    "of_applicable",
+                )
+            )
+    return rows
+
+
 def kfre_summary_table(
     kfre_rows: FrameLike,
     *,
@@ -133,39 +175,7 @@ def kfre_summary_table(
     ok = pl.col("kfre_reason").is_null()
     reasons = [r for r in KFRE_SUMMARY_REASONS if (df["kfre_reason"] == r).any()]
 
-    # counts: (row id, label parts, block, numerator, denominator kind)
-    count_rows: list[tuple[str, str, str, str, pl.Expr, str | None, str]] = [
-        ("n", "N", "n", "", pl.len(), None, ""),
-        ("applicable", "KFRE applicable", "n (%)", "yes", ok.sum(), "n", "of_n"),
-    ]
-    for reason in reasons:
-        count_rows.append(
-            (
-                f"reason_{reason}",
-                "KFRE not applicable",
-                "n (%)",
-                reason,
-                (pl.col("kfre_reason") == reason).sum(),
-                "n",
-                "of_n",
-            )
-        )
-    for horizon, column, thresholds in (
-        (2, "kfre_2y", thresholds_2y),
-        (5, "kfre_5y", thresholds_5y),
-    ):
-        for t in thresholds:
-            count_rows.append(
-                (
-                    f"over_{horizon}_{t}",
-                    f"{horizon}-year kidney failure risk >= {_percent(float(t))}",
-                    "n (% of applicable)",
-                    "",
-                    (ok & (pl.col(column) >= float(t))).sum(),
-                    None,
-                    "of_applicable",
-                )
-            )
+    count_rows = _count_rows(reasons, thresholds_2y, thresholds_5y, ok)
     aggs = [expr.cast(pl.Int64).alias(row) for row, *_rest, expr, _b, _d in count_rows]
     stats = both.group_by("_group").agg(
         *aggs,

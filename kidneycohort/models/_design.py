@@ -10,9 +10,17 @@ from dataclasses import dataclass, field
 
 import polars as pl
 
+from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
 
-__all__ = ["CapturedWarnings", "capture_warnings", "encode_covariates", "split_complete_cases"]
+__all__ = [
+    "WHOLE_COHORT",
+    "CapturedWarnings",
+    "capture_warnings",
+    "encode_covariates",
+    "split_complete_cases",
+    "with_group",
+]
 
 _CONVERGENCE_WORDS = ("converge", "boundary", "hessian", "singular", "positive definite", "delta")
 
@@ -117,3 +125,63 @@ def capture_warnings() -> Iterator[CapturedWarnings]:
                 record.lineno,
                 module=_module_of(record.filename),
             )
+
+
+WHOLE_COHORT = "all"
+"""The one group of an analysis without a group column."""
+
+
+def with_group(
+    endpoints: FrameLike, patients: FrameLike | None, group_column: str | None
+) -> pl.DataFrame:
+    """Validated endpoint rows with a ``group`` column (``"all"`` without a group column):
+    the group of the endpoints table, else of the patients table."""
+    frame = to_polars(endpoints, "endpoints")
+    require_columns(frame, ("patient_id", "endpoint", "years", "event"), "endpoints")
+    if group_column is None:
+        frame = frame.with_columns(pl.lit(WHOLE_COHORT).alias("group"))
+    elif group_column in frame.columns:
+        frame = frame.with_columns(pl.col(group_column).cast(pl.String).alias("group"))
+    elif patients is not None:
+        people = to_polars(patients, "patients")
+        require_columns(people, ("patient_id", group_column), "patients")
+        duplicated = people.filter(pl.col("patient_id").is_duplicated())
+        if duplicated.height:
+            raise InputDataError(
+                f"patients: patient_id '{duplicated['patient_id'][0]}' appears more than once; "
+                "give one row per patient"
+            )
+        frame = frame.drop("group", strict=False).join(
+            people.select(
+                pl.col("patient_id").cast(frame.schema["patient_id"]),
+                pl.col(group_column).cast(pl.String).alias("group"),
+            ),
+            on="patient_id",
+            how="left",
+        )
+    else:
+        frame = frame.with_columns(pl.lit(WHOLE_COHORT).alias("group"))
+    missing_group = frame.filter(pl.col("group").is_null())
+    if missing_group.height:
+        raise InputDataError(
+            f"endpoints: patient '{missing_group['patient_id'][0]}' has no '{group_column}' "
+            f"({missing_group.height} rows); add the patient to patients or fill its group"
+        )
+    bad_years = frame.filter(
+        pl.col("years").is_null() | ~pl.col("years").is_finite() | (pl.col("years") < 0)
+    )
+    if bad_years.height:
+        raise InputDataError(
+            f"endpoints: column 'years' of patient '{bad_years['patient_id'][0]}' is "
+            f"{bad_years['years'][0]} ({bad_years.height} rows); follow-up must be a "
+            "non-negative number of years"
+        )
+    bad_event = frame.filter(
+        ~pl.col("event").cast(pl.Int64, strict=False).is_in([0, 1]) | pl.col("event").is_null()
+    )
+    if bad_event.height:
+        raise InputDataError(
+            f"endpoints: column 'event' of patient '{bad_event['patient_id'][0]}' is "
+            f"{bad_event['event'][0]!r}; expected 1 (event) or 0 (censored)"
+        )
+    return frame.with_columns(pl.col("event").cast(pl.Int8))

@@ -22,8 +22,9 @@ from kidneycohort.pipeline.config import (
     OutputSection,
     Recipe,
     StudySection,
-    _models_in,
 )
+from kidneycohort.pipeline.config._keys import _models_in
+from kidneycohort.pipeline.config._sections import STUDY_FACTS
 from kidneycohort.pipeline.registry import StepRegistry, default_registry
 
 
@@ -80,7 +81,10 @@ def _cell(text: str) -> str:
 
 
 def model_table(
-    model: type[BaseModel], prefix: str, documented: dict[type, str] | None = None
+    model: type[BaseModel],
+    prefix: str,
+    documented: dict[type, str] | None = None,
+    skip: frozenset[str] = frozenset(),
 ) -> list[str]:
     """Markdown rows for ``model``'s fields, then sub-tables for nested models.
 
@@ -96,6 +100,8 @@ def model_table(
     nested: list[tuple[str, type[BaseModel]]] = []
     for name, info in model.model_fields.items():
         key = info.alias or name
+        if name in skip:
+            continue
         lines.append(
             f"| `{prefix}.{key}` | {_cell(_type_name(info.annotation))} | "
             f"{_cell(_default(info))} | {_cell(info.description or '')} |"
@@ -168,7 +174,15 @@ def config_reference(registry: StepRegistry | None = None) -> str:
             lines += ["This section takes no options.", ""]
             continue
         doc = (model.__doc__ or "").strip().split("\n\n")[0]
-        lines += [" ".join(doc.split()), "", *model_table(model, name, documented)]
+        facts = frozenset(STUDY_FACTS) & set(model.model_fields)
+        lines += [" ".join(doc.split()), ""]
+        if facts:
+            lines += [
+                f"Study-wide facts ({', '.join(sorted(facts))}) are not keys here: they are "
+                "set once under `study` and filled in for this section.",
+                "",
+            ]
+        lines += model_table(model, name, documented, skip=frozenset(STUDY_FACTS))
     lines += [
         "## Steps",
         "",

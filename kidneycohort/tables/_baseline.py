@@ -8,6 +8,7 @@ from collections.abc import Sequence
 import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort.ages import age_at_index_expr, has_age
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
 from kidneycohort.tables._format import (
@@ -23,15 +24,184 @@ from kidneycohort.tables._format import (
 )
 from kidneycohort.tables._kdigo import _one_row_per_patient
 
+Characteristic = tuple[str, pl.DataFrame, str]
+"""(name, frame of ``patient_id, value``, kind): kind ``mean``/``median`` for numbers."""
+Category = tuple[str, pl.DataFrame, Sequence[str] | None]
+"""(name, frame of ``patient_id, value``, known levels in order or None)."""
 
-def _age(people: pl.DataFrame) -> pl.Expr | None:
-    if "age_at_index" in people.columns:
-        return pl.col("age_at_index").cast(pl.Float64)
-    if "birth_date" in people.columns and "index_date" in people.columns:
-        return (
-            pl.col("index_date").cast(pl.Date) - pl.col("birth_date").cast(pl.Date)
-        ).dt.total_days() / 365.25
-    return None
+
+def _values(people: pl.DataFrame, expr: pl.Expr, dtype: type[pl.DataType]) -> pl.DataFrame:
+    return people.select(pl.col("patient_id").cast(pl.String), expr.cast(dtype).alias("value"))
+
+
+def _patient_rows(people: pl.DataFrame) -> tuple[list[Characteristic], list[Category]]:
+    """Age (from the dates when known, else ``age_at_index``) and sex."""
+    numeric: list[Characteristic] = []
+    categorical: list[Category] = []
+    if has_age(people.columns):
+        age = age_at_index_expr(people.columns)
+        numeric.append(("Age, years", _values(people, age, pl.Float64), "mean"))
+    if "sex" in people.columns:
+        categorical.append(("Sex", _values(people, pl.col("sex"), pl.String), None))
+    return numeric, categorical
+
+
+def _baseline_rows(baseline: FrameLike) -> list[Characteristic]:
+    values = to_polars(baseline, "baseline")
+    require_columns(values, ("patient_id", "equation", "baseline_egfr"), "baseline")
+    out: list[Characteristic] = []
+    for name in sorted(values["equation"].drop_nulls().unique().to_list()):
+        part = values.filter(pl.col("equation") == name)
+        out.append(
+            (
+                f"Baseline eGFR ({name}), mL/min/1.73 m²",
+                _values(part, pl.col("baseline_egfr"), pl.Float64),
+                "mean",
+            )
+        )
+    return out
+
+
+def _kdigo_rows(
+    categories: FrameLike, equation: str | None
+) -> tuple[list[Characteristic], list[Category]]:
+    kdigo = _one_row_per_patient(to_polars(categories, "categories"), equation)
+    numeric: list[Characteristic] = []
+    categorical: list[Category] = []
+    if "uacr_mg_g" in kdigo.columns:
+        numeric.append(("UACR, mg/g", _values(kdigo, pl.col("uacr_mg_g"), pl.Float64), "median"))
+    for column, name, levels in (
+        ("g_category", "KDIGO GFR category", G_CATEGORIES),
+        ("a_category", "KDIGO albuminuria category", A_CATEGORIES),
+    ):
+        if column in kdigo.columns:
+            categorical.append((name, _values(kdigo, pl.col(column), pl.String), levels))
+    return numeric, categorical
+
+
+def _covariate_rows(
+    people: pl.DataFrame, covariates: Sequence[str], rule: TableRule
+) -> tuple[list[Characteristic], list[Category]]:
+    """Numbers as mean (SD), or median [IQR] when skewed; text and booleans as levels."""
+    numeric: list[Characteristic] = []
+    categorical: list[Category] = []
+    for name in covariates:
+        if name not in people.columns:
+            raise InputDataError(
+                f"patients: covariate '{name}' is not a column{did_you_mean(name, people.columns)}"
+            )
+        column = people[name]
+        if not column.dtype.is_numeric():
+            categorical.append((name, _values(people, pl.col(name), pl.String), None))
+            continue
+        values = column.cast(pl.Float64).drop_nulls()
+        skew = values.skew() if values.len() > 2 else 0.0
+        skewed = skew is not None and math.isfinite(skew) and abs(skew) > rule.skew_threshold
+        numeric.append(
+            (name, _values(people, pl.col(name), pl.Float64), "median" if skewed else "mean")
+        )
+    return numeric, categorical
+
+
+def _checked_patients(patients: FrameLike, group_column: str | None) -> pl.DataFrame:
+    people = to_polars(patients, "patients")
+    require_columns(people, ("patient_id",), "patients")
+    if group_column is None:
+        return people
+    require_columns(people, (group_column,), "patients")
+    if people["patient_id"].is_duplicated().any():
+        raise InputDataError("patients: patient_id values must be unique (one row per patient)")
+    if people[group_column].null_count():
+        raise InputDataError(
+            f"patients: {people[group_column].null_count()} patients have no '{group_column}'; "
+            "fill the group or leave those patients out before tabulating"
+        )
+    return people
+
+
+def _summary_text(kind: str, decimals: int) -> tuple[pl.Expr, str]:
+    """The formatted statistic of a number and its label."""
+
+    def fixed(name: str) -> pl.Expr:
+        return _format_fixed(pl.col(name), decimals)
+
+    if kind == "mean":
+        return pl.concat_str([fixed("_mean"), pl.lit(" ("), fixed("_sd"), pl.lit(")")]), (
+            "mean (SD)"
+        )
+    text = pl.concat_str(
+        [fixed("_median"), pl.lit(" ["), fixed("_q1"), pl.lit(", "), fixed("_q3"), pl.lit("]")]
+    )
+    return text, "median [IQR]"
+
+
+def _numeric_rows(
+    with_overall: pl.DataFrame,
+    sizes: pl.DataFrame,
+    item: Characteristic,
+    order: int,
+    rule: TableRule,
+) -> list[pl.DataFrame]:
+    """The statistic row of a number, and its missing-values row when any is missing."""
+    characteristic, frame, kind = item
+    joined = with_overall.join(frame, on="patient_id", how="left")
+    value = pl.col("value")
+    stats_frame = joined.group_by("_group").agg(
+        value.drop_nans().count().alias("_k"),
+        value.mean().alias("_mean"),
+        value.std().alias("_sd"),
+        value.median().alias("_median"),
+        value.quantile(0.25, interpolation="linear").alias("_q1"),
+        value.quantile(0.75, interpolation="linear").alias("_q3"),
+        (value.is_null() | value.is_nan()).sum().alias("_missing"),
+    )
+    text, statistic = _summary_text(kind, rule.decimals)
+    rows = [
+        stats_frame.select(
+            pl.lit(characteristic).alias("characteristic"),
+            pl.lit(statistic).alias("statistic"),
+            pl.lit("").alias("level"),
+            "_group",
+            pl.when(pl.col("_k") == 0)
+            .then(pl.lit(_DASH))
+            .when(_is_small(pl.col("_k"), rule))
+            .then(pl.lit(f"n {suppression_label(rule)}"))
+            .otherwise(text)
+            .alias("text"),
+            pl.lit(order).alias("_order"),
+        )
+    ]
+    if stats_frame["_missing"].sum() > 0:
+        missing = joined.with_columns(
+            pl.when(value.is_null() | value.is_nan())
+            .then(pl.lit(_MISSING_LEVEL))
+            .otherwise(pl.lit("recorded"))
+            .alias("value")
+        )
+        block = _category_block(
+            missing, sizes, characteristic, order + 1, rule, levels=["recorded", _MISSING_LEVEL]
+        )
+        rows.append(block.filter(pl.col("level") == _MISSING_LEVEL))
+    return rows
+
+
+def _widen(long_rows: list[pl.DataFrame], columns: list[str]) -> pl.DataFrame:
+    long = pl.concat(long_rows, how="diagonal_relaxed")
+    if "_level_order" not in long.columns:  # no categorical characteristic at all
+        long = long.with_columns(pl.lit(0).alias("_level_order"))
+    long = long.with_columns(pl.col("_level_order").fill_null(0))
+    wide = long.pivot(
+        on="_group",
+        index=["_order", "_level_order", "characteristic", "statistic", "level"],
+        values="text",
+    )
+    wide = wide.sort("_order", "_level_order").drop("_order", "_level_order")
+    for column in columns:
+        if column not in wide.columns:
+            wide = wide.with_columns(pl.lit(_DASH).alias(column))
+    return wide.select("characteristic", "statistic", "level", *columns).with_columns(
+        pl.col(columns).fill_null(_DASH)
+    )
 
 
 def baseline_characteristics_table(
@@ -39,15 +209,16 @@ def baseline_characteristics_table(
     baseline: FrameLike | None = None,
     categories: FrameLike | None = None,
     *,
-    group_column: str = "group",
+    group_column: str | None = "group",
     covariates: Sequence[str] = (),
     equation: str | None = None,
     rule: TableRule | None = None,
 ) -> pl.DataFrame:
-    r"""Baseline characteristics by group (and overall).
+    r"""Baseline characteristics by group (and overall; only overall without a group column).
 
-    Rows: N; age (mean (SD)); sex (n (%)); baseline eGFR of each equation in
-    ``baseline`` (``schemas.BASELINE``; mean (SD)); UACR (median [IQR], from
+    Rows: N; age at index (mean (SD); from the birth and index dates where known, else
+    ``age_at_index``); sex (n (%)); baseline eGFR of each equation in ``baseline``
+    (``schemas.BASELINE``; mean (SD)); UACR (median [IQR], from
     ``categories.uacr_mg_g``); KDIGO G and A categories (n (%), from ``categories``);
     and each of ``covariates``: text and booleans as n (%) per level, numbers as mean (SD)
     or, when :math:`|\text{skewness}|` exceeds ``rule.skew_threshold``, median [IQR].
@@ -59,118 +230,30 @@ def baseline_characteristics_table(
         ``characteristic, statistic, level``, one text column per group, and ``Overall``.
     """
     rule = rule or TableRule()
-    people = to_polars(patients, "patients")
-    require_columns(people, ("patient_id", group_column), "patients")
-    if people["patient_id"].is_duplicated().any():
-        raise InputDataError("patients: patient_id values must be unique (one row per patient)")
-    if people[group_column].null_count():
-        raise InputDataError(
-            f"patients: {people[group_column].null_count()} patients have no '{group_column}'; "
-            "fill the group or leave those patients out before tabulating"
-        )
-    base = people.select(
-        pl.col("patient_id").cast(pl.String), pl.col(group_column).cast(pl.String).alias("_group")
-    )
-    numeric: list[
-        tuple[str, pl.DataFrame, str]
-    ] = []  # (characteristic, frame(patient_id, value), kind)
-    categorical: list[tuple[str, pl.DataFrame, Sequence[str] | None]] = []
-    age = _age(people)
-    if age is not None:
-        numeric.append(
-            (
-                "Age, years",
-                people.select(pl.col("patient_id").cast(pl.String), age.alias("value")),
-                "mean",
-            )
-        )
-    if "sex" in people.columns:
-        categorical.append(
-            (
-                "Sex",
-                people.select(
-                    pl.col("patient_id").cast(pl.String),
-                    pl.col("sex").cast(pl.String).alias("value"),
-                ),
-                None,
-            )
-        )
+    people = _checked_patients(patients, group_column)
+    numeric, categorical = _patient_rows(people)
     if baseline is not None:
-        values = to_polars(baseline, "baseline")
-        require_columns(values, ("patient_id", "equation", "baseline_egfr"), "baseline")
-        for name in sorted(values["equation"].drop_nulls().unique().to_list()):
-            part = values.filter(pl.col("equation") == name).select(
-                pl.col("patient_id").cast(pl.String),
-                pl.col("baseline_egfr").cast(pl.Float64).alias("value"),
-            )
-            numeric.append((f"Baseline eGFR ({name}), mL/min/1.73 m²", part, "mean"))
+        numeric += _baseline_rows(baseline)
     if categories is not None:
-        kdigo = _one_row_per_patient(to_polars(categories, "categories"), equation)
-        if "uacr_mg_g" in kdigo.columns:
-            numeric.append(
-                (
-                    "UACR, mg/g",
-                    kdigo.select("patient_id", pl.col("uacr_mg_g").cast(pl.Float64).alias("value")),
-                    "median",
-                )
-            )
-        if "g_category" in kdigo.columns:
-            categorical.append(
-                (
-                    "KDIGO GFR category",
-                    kdigo.select("patient_id", pl.col("g_category").alias("value")),
-                    G_CATEGORIES,
-                )
-            )
-        if "a_category" in kdigo.columns:
-            categorical.append(
-                (
-                    "KDIGO albuminuria category",
-                    kdigo.select("patient_id", pl.col("a_category").alias("value")),
-                    A_CATEGORIES,
-                )
-            )
-    for name in covariates:
-        if name not in people.columns:
-            raise InputDataError(
-                f"patients: covariate '{name}' is not a column{did_you_mean(name, people.columns)}"
-            )
-        column = people[name]
-        if column.dtype.is_numeric():
-            values = column.cast(pl.Float64).drop_nulls()
-            skew = values.skew() if values.len() > 2 else 0.0
-            kind = (
-                "median"
-                if skew is not None and math.isfinite(skew) and abs(skew) > rule.skew_threshold
-                else "mean"
-            )
-            numeric.append(
-                (
-                    name,
-                    people.select(
-                        pl.col("patient_id").cast(pl.String),
-                        pl.col(name).cast(pl.Float64).alias("value"),
-                    ),
-                    kind,
-                )
-            )
-        else:
-            categorical.append(
-                (
-                    name,
-                    people.select(
-                        pl.col("patient_id").cast(pl.String),
-                        pl.col(name).cast(pl.String).alias("value"),
-                    ),
-                    None,
-                )
-            )
+        more_numeric, more_categorical = _kdigo_rows(categories, equation)
+        numeric += more_numeric
+        categorical += more_categorical
+    more_numeric, more_categorical = _covariate_rows(people, covariates, rule)
+    numeric += more_numeric
+    categorical += more_categorical
 
     overall = "Overall"
-    groups = sorted(base["_group"].unique().to_list())
-    if overall in groups:
-        raise InputDataError(f"patients: '{overall}' is used as a group name; rename that group")
-    with_overall = pl.concat([base, base.with_columns(pl.lit(overall).alias("_group"))])
+    if group_column is None:
+        with_overall = _values(people, pl.lit(overall), pl.String).rename({"value": "_group"})
+        groups: list[str] = []
+    else:
+        base = _values(people, pl.col(group_column), pl.String).rename({"value": "_group"})
+        groups = sorted(base["_group"].unique().to_list())
+        if overall in groups:
+            raise InputDataError(
+                f"patients: '{overall}' is used as a group name; rename that group"
+            )
+        with_overall = pl.concat([base, base.with_columns(pl.lit(overall).alias("_group"))])
     sizes = with_overall.group_by("_group").agg(pl.len().cast(pl.Int64).alias("_n"))
     long_rows = [
         sizes.select(
@@ -183,96 +266,16 @@ def baseline_characteristics_table(
         )
     ]
     order = 1
-    for characteristic, frame, kind in numeric:
-        joined = with_overall.join(frame, on="patient_id", how="left")
-        stats_frame = joined.group_by("_group").agg(
-            pl.col("value").drop_nans().count().alias("_k"),
-            pl.col("value").mean().alias("_mean"),
-            pl.col("value").std().alias("_sd"),
-            pl.col("value").median().alias("_median"),
-            pl.col("value").quantile(0.25, interpolation="linear").alias("_q1"),
-            pl.col("value").quantile(0.75, interpolation="linear").alias("_q3"),
-            (pl.col("value").is_null() | pl.col("value").is_nan()).sum().alias("_missing"),
-        )
-        d = rule.decimals
-        if kind == "mean":
-            text = pl.concat_str(
-                [
-                    _format_fixed(pl.col("_mean"), d),
-                    pl.lit(" ("),
-                    _format_fixed(pl.col("_sd"), d),
-                    pl.lit(")"),
-                ]
-            )
-            statistic = "mean (SD)"
-        else:
-            text = pl.concat_str(
-                [
-                    _format_fixed(pl.col("_median"), d),
-                    pl.lit(" ["),
-                    _format_fixed(pl.col("_q1"), d),
-                    pl.lit(", "),
-                    _format_fixed(pl.col("_q3"), d),
-                    pl.lit("]"),
-                ]
-            )
-            statistic = "median [IQR]"
-        long_rows.append(
-            stats_frame.select(
-                pl.lit(characteristic).alias("characteristic"),
-                pl.lit(statistic).alias("statistic"),
-                pl.lit("").alias("level"),
-                "_group",
-                pl.when(pl.col("_k") == 0)
-                .then(pl.lit(_DASH))
-                .when(_is_small(pl.col("_k"), rule))
-                .then(pl.lit(f"n {suppression_label(rule)}"))
-                .otherwise(text)
-                .alias("text"),
-                pl.lit(order).alias("_order"),
-            )
-        )
-        order += 1
-        if stats_frame["_missing"].sum() > 0:
-            categorical_missing = joined.with_columns(
-                pl.when(pl.col("value").is_null() | pl.col("value").is_nan())
-                .then(pl.lit(_MISSING_LEVEL))
-                .otherwise(pl.lit("recorded"))
-                .alias("value")
-            )
-            long_rows.append(
-                _category_block(
-                    categorical_missing,
-                    sizes,
-                    characteristic,
-                    order,
-                    rule,
-                    levels=["recorded", _MISSING_LEVEL],
-                ).filter(pl.col("level") == _MISSING_LEVEL)
-            )
-            order += 1
+    for item in numeric:
+        long_rows += _numeric_rows(with_overall, sizes, item, order, rule)
+        order += 2
     for characteristic, frame, levels in categorical:
         joined = with_overall.join(frame, on="patient_id", how="left").with_columns(
             pl.col("value").fill_null(_MISSING_LEVEL)
         )
         long_rows.append(_category_block(joined, sizes, characteristic, order, rule, levels=levels))
         order += 1
-
-    long = pl.concat(long_rows, how="diagonal_relaxed").with_columns(
-        pl.col("_level_order").fill_null(0)
-    )
-    wide = long.pivot(
-        on="_group",
-        index=["_order", "_level_order", "characteristic", "statistic", "level"],
-        values="text",
-    )
-    wide = wide.sort("_order", "_level_order").drop("_order", "_level_order")
-    for column in [*groups, overall]:
-        if column not in wide.columns:
-            wide = wide.with_columns(pl.lit(_DASH).alias(column))
-    return wide.select("characteristic", "statistic", "level", *groups, overall).with_columns(
-        pl.col([*groups, overall]).fill_null(_DASH)
-    )
+    return _widen(long_rows, [*groups, overall])
 
 
 def _category_block(

@@ -11,8 +11,9 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike
 from kidneycohort.errors import ConvergenceError, InputDataError, did_you_mean
+from kidneycohort.models._design import with_group
 from kidneycohort.models.mixed import SlopeModel
-from kidneycohort.models.rates import _with_group, incidence_rates
+from kidneycohort.models.rates import incidence_rates
 from kidneycohort.models.survival import CoxModel
 from kidneycohort.tables._format import (
     _DASH,
@@ -58,7 +59,7 @@ def endpoint_table(
         hazard_ratio, p`` as text.
     """
     rule = rule or TableRule()
-    frame = _with_group(endpoints, patients, group_column)
+    frame = with_group(endpoints, patients, group_column)
     rates = incidence_rates(frame, group_column="group", endpoint=endpoint)
     counts = frame.group_by("endpoint", "group").agg(pl.len().cast(pl.Int64).alias("n_patients"))
     table = rates.join(counts, on=["endpoint", "group"], how="left")

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from kidneycohort.pipeline import default_registry
+from kidneycohort.pipeline.config._sections import STUDY_FACTS
 from kidneycohort.pipeline.reference import config_reference
 from tests._fixtures import REPO_ROOT
 
@@ -19,6 +20,9 @@ def test_every_section_and_key_is_documented() -> None:
     for name, model in default_registry().sections().items():
         assert f"## `{name}`" in text
         for field, info in model.model_fields.items() if model else []:
+            if field in STUDY_FACTS:  # set once under study, never in a stage section
+                assert f"`{name}.{field}`" not in text and f"`study.{STUDY_FACTS[field]}`" in text
+                continue
             assert f"`{name}.{info.alias or field}`" in text
 
 

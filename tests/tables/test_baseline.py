@@ -40,3 +40,26 @@ def test_missing_baseline_is_one_row_with_the_hand_count() -> None:
     assert missing["a"].item() == "3 (15.0%)"
     assert missing["b"].item() == "2 (10.0%)"
     assert missing["Overall"].item() == "5 (12.5%)"
+
+
+def test_age_comes_from_the_dates_when_an_age_column_is_empty() -> None:
+    # regression: an empty age_at_index column (added by harmonise when the file has
+    # none) must not hide the ages the birth and index dates give
+    import datetime as dt
+
+    people = pl.DataFrame(
+        {
+            "patient_id": [f"p{i}" for i in range(12)],
+            "group": ["a"] * 12,
+            "birth_date": [dt.date(1950 + i, 1, 1) for i in range(12)],
+            "index_date": [dt.date(2020, 1, 1)] * 12,
+            "age_at_index": [None] * 12,
+        },
+        schema_overrides={"age_at_index": pl.Float64},
+    )
+    table = baseline_characteristics_table(people, rule=TableRule(small_cell_threshold=0))
+    age = table.filter(pl.col("characteristic") == "Age, years")
+    # mean of exact ages 70.0 .. 59.0 (days / 365.25) is 64.5; SD of 12 consecutive
+    # integers is 3.6 (numpy, ddof 1)
+    assert age["a"][0].startswith("64.5 (3.6")
+    assert table.filter(pl.col("level") == "missing").height == 0

@@ -33,7 +33,10 @@ class SlopeModelRule(RuleModel):
         default_factory=list,
         description="Patients columns adjusted for (centred, so trajectories are at their mean).",
     )
-    group_column: str = Field("group", description="Patients column naming the arm or group.")
+    group_column: str | None = Field(
+        "group",
+        description="Patients column naming the arm or group; null fits the whole cohort as one.",
+    )
     reference_group: str | None = Field(
         None, description="Group the differences are taken against (default: first, sorted)."
     )

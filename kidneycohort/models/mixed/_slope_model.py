@@ -133,65 +133,19 @@ class SlopeModel:
     def _rows(
         self, egfr: FrameLike, patients: FrameLike | None, spec: SlopeModelRule
     ) -> pl.DataFrame:
-        values = to_polars(egfr, "egfr")
-        require_columns(values, ("patient_id", "years_from_index", "egfr"), "egfr")
-        if "equation" in values.columns:
-            equations = sorted(values["equation"].drop_nulls().unique().to_list())
-            if spec.equation is not None:
-                if spec.equation not in equations:
-                    raise InputDataError(
-                        f"egfr: equation '{spec.equation}' is not in the table (equations: "
-                        f"{equations}){did_you_mean(spec.equation, equations)}"
-                    )
-                values = values.filter(pl.col("equation") == spec.equation)
-            elif len(equations) > 1:
-                raise InputDataError(
-                    f"egfr: the table holds {len(equations)} equations {equations}; pass "
-                    "equation=... to model one"
-                )
-        wanted = [spec.group_column, *spec.covariates]
-        if spec.group_column in values.columns and not spec.covariates:
-            rows = values
-        else:
-            if patients is None:
-                raise InputDataError(
-                    f"patients: needed for columns {wanted} but not given; pass the patients table"
-                )
-            people = to_polars(patients, "patients")
-            require_columns(people, ("patient_id", *wanted), "patients")
-            duplicated = people.filter(pl.col("patient_id").is_duplicated())
-            if duplicated.height:
-                raise InputDataError(
-                    f"patients: patient_id '{duplicated['patient_id'][0]}' appears more than "
-                    "once; give one row per patient"
-                )
-            rows = values.drop([c for c in wanted if c in values.columns]).join(
-                people.select(pl.col("patient_id").cast(values.schema["patient_id"]), *wanted),
-                on="patient_id",
-                how="left",
-            )
-        years = pl.col("years_from_index")
-        reason = (
-            pl.when(pl.col("egfr").is_null() | pl.col("egfr").is_nan())
-            .then(pl.lit("egfr_missing"))
-            .when(years.is_null() | years.is_nan())
-            .then(pl.lit("years_missing"))
-            .when(years < 0)
-            .then(pl.lit("before_index"))
+        values = _one_equation(to_polars(egfr, "egfr"), spec.equation)
+        rows = _with_patient_columns(values, patients, spec)
+        group = (
+            pl.col(spec.group_column).cast(pl.String)
+            if spec.group_column is not None
+            else pl.lit(WHOLE_COHORT, dtype=pl.String)
         )
-        if spec.max_years is not None:
-            reason = reason.when(years > spec.max_years).then(pl.lit("after_max_years"))
-        reason = reason.when(pl.col(spec.group_column).is_null()).then(pl.lit("group_missing"))
-        for name in spec.covariates:
-            missing = pl.col(name).is_null()
-            if rows.schema[name].is_float():
-                missing = missing | pl.col(name).is_nan()
-            reason = reason.when(missing).then(pl.lit(f"missing_{name}"))
+        reason = _exclusion_reason(rows, spec)
         rows = rows.with_columns(
             pl.col("egfr").cast(pl.Float64),
-            years.cast(pl.Float64),
-            pl.col(spec.group_column).cast(pl.String).alias("_group"),
-        ).with_columns(reason.otherwise(None).alias("_reason"))
+            pl.col("years_from_index").cast(pl.Float64),
+            group.alias("_group"),
+        ).with_columns(reason.alias("_reason"))
         dropped = rows.filter(pl.col("_reason").is_not_null())
         self.excluded_rows_ = dropped.select(
             pl.col("patient_id").cast(pl.String),
@@ -521,3 +475,77 @@ class SlopeModel:
 
 def _format_years(value: float) -> str:
     return f"{value:g}"
+
+
+WHOLE_COHORT = "all"
+"""The one group of a model fitted without a group column."""
+
+
+def _one_equation(values: pl.DataFrame, equation: str | None) -> pl.DataFrame:
+    """The eGFR rows of ``equation`` (needed when the table holds several)."""
+    require_columns(values, ("patient_id", "years_from_index", "egfr"), "egfr")
+    if "equation" not in values.columns:
+        return values
+    equations = sorted(values["equation"].drop_nulls().unique().to_list())
+    if equation is not None:
+        if equation not in equations:
+            raise InputDataError(
+                f"egfr: equation '{equation}' is not in the table (equations: "
+                f"{equations}){did_you_mean(equation, equations)}"
+            )
+        return values.filter(pl.col("equation") == equation)
+    if len(equations) > 1:
+        raise InputDataError(
+            f"egfr: the table holds {len(equations)} equations {equations}; pass "
+            "equation=... to model one"
+        )
+    return values
+
+
+def _with_patient_columns(
+    values: pl.DataFrame, patients: FrameLike | None, spec: SlopeModelRule
+) -> pl.DataFrame:
+    """eGFR rows with the group and covariates, from ``patients`` when not already there."""
+    wanted = [c for c in (spec.group_column, *spec.covariates) if c is not None]
+    if all(c in values.columns for c in wanted) and not spec.covariates:
+        return values
+    if patients is None:
+        raise InputDataError(
+            f"patients: needed for columns {wanted} but not given; pass the patients table"
+        )
+    people = to_polars(patients, "patients")
+    require_columns(people, ("patient_id", *wanted), "patients")
+    duplicated = people.filter(pl.col("patient_id").is_duplicated())
+    if duplicated.height:
+        raise InputDataError(
+            f"patients: patient_id '{duplicated['patient_id'][0]}' appears more than "
+            "once; give one row per patient"
+        )
+    return values.drop([c for c in wanted if c in values.columns]).join(
+        people.select(pl.col("patient_id").cast(values.schema["patient_id"]), *wanted),
+        on="patient_id",
+        how="left",
+    )
+
+
+def _exclusion_reason(rows: pl.DataFrame, spec: SlopeModelRule) -> pl.Expr:
+    """Why an eGFR row is not used (null when it is), the first reason that applies."""
+    years = pl.col("years_from_index")
+    reason = (
+        pl.when(pl.col("egfr").is_null() | pl.col("egfr").is_nan())
+        .then(pl.lit("egfr_missing"))
+        .when(years.is_null() | years.is_nan())
+        .then(pl.lit("years_missing"))
+        .when(years < 0)
+        .then(pl.lit("before_index"))
+    )
+    if spec.max_years is not None:
+        reason = reason.when(years > spec.max_years).then(pl.lit("after_max_years"))
+    if spec.group_column is not None:
+        reason = reason.when(pl.col(spec.group_column).is_null()).then(pl.lit("group_missing"))
+    for name in spec.covariates:
+        missing = pl.col(name).is_null()
+        if rows.schema[name].is_float():
+            missing = missing | pl.col(name).is_nan()
+        reason = reason.when(missing).then(pl.lit(f"missing_{name}"))
+    return reason.otherwise(None)

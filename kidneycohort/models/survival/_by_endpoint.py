@@ -163,6 +163,14 @@ def hazard_ratio_table(
         A subgroup column that is not a patients column.
     """
     resolved = resolve_rules(SurvivalRule, rule, options, "hazard_ratio_table")
+    if resolved.group_column is None and not resolved.covariates:
+        warnings.warn(
+            "hazard ratios not estimated: with no group column and no covariates there is "
+            "nothing to compare (whole-cohort analysis)",
+            StatisticalWarning,
+            stacklevel=2,
+        )
+        return pl.DataFrame(schema=HAZARD_RATIOS)
     rows = evaluable_rows(endpoints)
     cohort = to_polars(patients, "patients")
     fits = _fit_each_endpoint(

@@ -14,8 +14,7 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike, to_polars
 from kidneycohort.errors import InputDataError, StatisticalWarning, did_you_mean
-from kidneycohort.models._design import split_complete_cases
-from kidneycohort.models.rates import _with_group
+from kidneycohort.models._design import split_complete_cases, with_group
 from kidneycohort.models.survival._rule import AT_RISK_COLUMNS
 
 logger = logging.getLogger(__name__)
@@ -71,7 +70,7 @@ def _prepare(
             on="patient_id",
             how="left",
         )
-    frame = _with_group(frame, patients, group_column)
+    frame = with_group(frame, patients, group_column)
     kept, excluded = split_complete_cases(frame, list(extra_columns))
     if excluded.height:
         logger.warning(

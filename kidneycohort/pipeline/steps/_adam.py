@@ -22,23 +22,25 @@ logger = logging.getLogger(__name__)
 
 
 def _group_and_order(ctx: StepContext, cohort: pl.DataFrame) -> tuple[pl.DataFrame, list[str]]:
-    """The cohort with ``group`` taken from the survival section's group column, and the
-    arm order: the reference group first, then the others in text order."""
-    from kidneycohort.models.survival import SurvivalRule
+    """The cohort with ``group`` from the study's group column, and the arm order: the
+    reference group first, then the others in text order."""
+    from kidneycohort.pipeline.steps._facts import group_column, reference_group
 
-    survival = ctx.sections.get("survival")
-    spec = survival if isinstance(survival, SurvivalRule) else SurvivalRule()
-    column = spec.group_column
+    column = group_column(ctx)
+    if column is None:
+        subjects = cohort.with_columns(pl.lit("all").alias("group"))
+        return subjects, ["all"]
     if column not in cohort.columns:
         raise ConfigError(
-            f"adam: the treatment column '{column}' (survival.group_column) is not in the "
-            "patients table; map it in data.patients.columns"
+            f"study.group_column: the treatment column '{column}' is not in the patients "
+            "table; map it in data.patients.columns"
         )
     subjects = cohort.with_columns(pl.col(column).cast(pl.String).alias("group"))
     arms = sorted(subjects["group"].drop_nulls().unique().to_list())
-    if spec.reference_group in arms:
-        arms.remove(spec.reference_group)
-        arms.insert(0, spec.reference_group)
+    reference = reference_group(ctx)
+    if reference in arms:
+        arms.remove(reference)
+        arms.insert(0, reference)
     return subjects, arms
 
 
@@ -79,7 +81,7 @@ def add_adam(registry: StepRegistry) -> None:
         from kidneycohort.adam import adegfr_dataset, adsl_dataset, adtte_dataset, write_adam
         from kidneycohort.adam._bds import paramcd
         from kidneycohort.pipeline.steps._derive import EndpointsSection
-        from kidneycohort.pipeline.steps._facts import primary_equation
+        from kidneycohort.pipeline.steps._facts import primary_equation, study_data_cut
 
         opts = ctx.options
         assert isinstance(opts, AdamRule)
@@ -125,7 +127,7 @@ def add_adam(registry: StepRegistry) -> None:
             subjects,
             ctx.tables["baseline"],
             equation=equation,
-            data_cut=endpoints.data_cut,
+            data_cut=study_data_cut(ctx),
             kidney_failure_dates=_kidney_failure_dates(table, list(endpoints.definitions)),
             albuminuria_categories=_albuminuria(ctx, equation),
             arm_order=arms,

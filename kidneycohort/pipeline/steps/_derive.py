@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import datetime as dt
 from typing import Any
 
 import polars as pl
@@ -11,7 +10,13 @@ from pydantic import Field
 from kidneycohort._rules import RuleModel
 from kidneycohort.endpoints import EndpointDefinition, EndpointRule
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
-from kidneycohort.pipeline.steps._facts import group_column, primary_equation, section
+from kidneycohort.pipeline.steps._facts import (
+    check_data_cut,
+    group_column,
+    primary_equation,
+    section,
+    study_data_cut,
+)
 from kidneycohort.value_filter import ValueFilterRule
 
 __all__ = [
@@ -61,12 +66,12 @@ def add_baseline_and_slopes(registry: StepRegistry) -> None:
 
 
 class EndpointsSection(RuleModel):
-    """Endpoint definitions, their default rule and the data cut (config key ``endpoints``).
+    """Endpoint definitions and their default rule (config key ``endpoints``).
 
     A part of the study config only (no stage function takes it whole): the keys are
-    the arguments of :func:`kidneycohort.endpoints.derive_endpoints`, ``definitions``
-    and ``rule`` its own models. The endpoints are derived on the study's primary
-    equation.
+    arguments of :func:`kidneycohort.endpoints.derive_endpoints`, ``definitions`` and
+    ``rule`` its own models. The endpoints are derived on the study's primary equation
+    and censored at the study's data cut (``study.data_cut``).
     """
 
     definitions: list[EndpointDefinition] = Field(
@@ -77,9 +82,6 @@ class EndpointsSection(RuleModel):
     rule: EndpointRule = Field(
         default_factory=EndpointRule,
         description="Confirmation and timing rule used by every definition without its own.",
-    )
-    data_cut: dt.date = Field(
-        description="Data-cut date: nothing after it is used; every endpoint is censored at it."
     )
 
 
@@ -94,6 +96,7 @@ def add_endpoints(registry: StepRegistry) -> None:
         makes=["endpoints"],
         section="endpoints",
         options=EndpointsSection,
+        check=check_data_cut,
         description="Time-to-event rows per patient and endpoint (kidneycohort.endpoints).",
     )
     def endpoints_step(ctx: StepContext) -> dict[str, Any]:
@@ -107,7 +110,7 @@ def add_endpoints(registry: StepRegistry) -> None:
             ctx.tables.get("cohort_events"),
             opts.definitions,
             equation=primary_equation(ctx.sections, ctx.tables),
-            data_cut=opts.data_cut,
+            data_cut=study_data_cut(ctx),
             rule=opts.rule,
         )
         return {"endpoints": table}

@@ -6,6 +6,7 @@ read here, in one place, so that every step agrees.
 
 from __future__ import annotations
 
+import datetime as dt
 from collections.abc import Mapping
 from typing import Any
 
@@ -15,11 +16,14 @@ from kidneycohort.errors import ConfigError, did_you_mean
 from kidneycohort.pipeline.registry import StepContext
 
 __all__ = [
+    "check_data_cut",
     "check_primary",
     "group_column",
     "primary_equation",
     "records",
+    "reference_group",
     "section",
+    "study_data_cut",
     "study_equations",
 ]
 
@@ -82,6 +86,26 @@ def check_primary(config: Any) -> None:
 
 def group_column(ctx: StepContext) -> str | None:
     """The patients column naming the arm or exposure group (None: the whole cohort)."""
-    from kidneycohort.models.survival import SurvivalRule
+    return getattr(ctx.sections.get("study"), "group_column", "group")
 
-    return section(ctx, "survival", SurvivalRule).group_column
+
+def reference_group(ctx: StepContext) -> str | None:
+    """The group differences and hazard ratios are taken against (None: first, sorted)."""
+    return getattr(ctx.sections.get("study"), "reference_group", None)
+
+
+def study_data_cut(ctx: StepContext) -> dt.date:
+    """The study's data cut (checked to be set before the run by :func:`check_data_cut`)."""
+    value = getattr(ctx.sections.get("study"), "data_cut", None)
+    if value is None:
+        raise ConfigError("study.data_cut: required by this recipe; add the data-cut date")
+    return value
+
+
+def check_data_cut(config: Any) -> None:
+    """Steps that censor at the data cut need ``study.data_cut``."""
+    if config.study.data_cut is None:
+        raise ConfigError(
+            "study.data_cut: required by the endpoint steps; add the date of the data cut "
+            "(nothing after it is used, every endpoint is censored at it)"
+        )

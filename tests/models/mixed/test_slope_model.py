@@ -288,3 +288,13 @@ def test_confidence_intervals_cover_the_truth_across_seeds() -> None:
             covered[quantity] += int(row["lower"][0] <= true_value <= row["upper"][0])
     assert covered["acute_change"] >= 16
     assert covered["chronic_slope"] >= 16
+
+
+def test_no_group_column_fits_the_whole_cohort(dietox: pl.DataFrame) -> None:
+    # an overall analysis is possible wherever a group is optional: without a group
+    # column the model has one group and equals the fit of a constant group column
+    plain = dietox.drop("group")
+    overall = SlopeModel(knot_years=None, group_column=None).fit(plain)
+    grouped = SlopeModel(knot_years=None).fit(plain.with_columns(group=pl.lit("all")))
+    assert overall.groups_ == ["all"]
+    np.testing.assert_allclose(overall.fit_.beta, grouped.fit_.beta, rtol=1e-10)

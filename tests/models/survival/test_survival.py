@@ -271,3 +271,18 @@ def test_event_and_competing_together_is_refused() -> None:
     bad = _competing_example().with_columns(pl.lit(1).alias("competing"))
     with pytest.raises(InputDataError, match="event = 1 and competing = 1"):
         CumulativeIncidence().fit(bad)
+
+
+def test_whole_cohort_without_a_group_column(rossi: tuple[pl.DataFrame, pl.DataFrame]) -> None:
+    # an overall analysis is possible wherever a group is optional; the curve equals
+    # lifelines' Kaplan-Meier of all 432 patients (reference library)
+    endpoints, patients = rossi
+    model = KaplanMeier(group_column=None, horizons_years=[20, 40]).fit(endpoints, patients)
+    assert set(model.curves_["group"]) == {"all"}
+    reference = KaplanMeierFitter().fit(
+        endpoints["years"].to_numpy(), endpoints["event"].to_numpy()
+    )
+    expected = reference.survival_function_at_times([20.0, 40.0]).to_numpy()
+    assert model.horizon_estimates_["estimate"].to_numpy() == pytest.approx(expected, abs=1e-9)
+    cox = CoxModel(group_column=None, covariates=["age"]).fit(endpoints, patients)
+    assert cox.summary()["term"].to_list() == ["age"]

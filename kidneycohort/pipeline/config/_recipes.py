@@ -1,0 +1,117 @@
+"""Finding and reading recipes; the whole-chain check of a recipe's steps; source paths."""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+from kidneycohort.errors import ConfigError, did_you_mean
+from kidneycohort.io.maps import FileSource
+from kidneycohort.pipeline.config._keys import absolute, validate_section
+from kidneycohort.pipeline.config._sections import DataSection, Recipe
+from kidneycohort.pipeline.config._yaml import read_yaml
+from kidneycohort.pipeline.registry import Step
+from kidneycohort.pipeline.standard_sources import anchor as anchor_source
+
+
+# ---- recipes ----------------------------------------------------------------------------
+def builtin_recipe_dir() -> Path:
+    """The recipes shipped inside the package (copies of the repository's ``pipelines/``)."""
+    return Path(str(resources.files("kidneycohort.pipeline") / "recipes"))
+
+
+def builtin_config_dir() -> Path:
+    """The study configs shipped inside the package (copies of ``configs/``)."""
+    return Path(str(resources.files("kidneycohort.pipeline") / "configs"))
+
+
+def find_recipe(recipe: str, config_dir: Path) -> Path:
+    """Locate a recipe by path or name.
+
+    A value ending in ``.yaml``/``.yml`` is a path relative to the config folder. A bare
+    name is looked for in ``pipelines/`` beside or above the config folder (the
+    repository layout), then among the recipes shipped with the package.
+    """
+    if recipe.endswith((".yaml", ".yml")):
+        path = absolute(config_dir / recipe)
+        if not path.is_file():
+            raise ConfigError(f"study.recipe: recipe file '{recipe}' not found in {config_dir}")
+        return path
+    candidates = [config_dir / "pipelines", config_dir.parent / "pipelines", builtin_recipe_dir()]
+    known: set[str] = set()
+    for folder in candidates:
+        path = folder / f"{recipe}.yaml"
+        if path.is_file():
+            return path.resolve()
+        if folder.is_dir():
+            known |= {p.stem for p in folder.glob("*.yaml")}
+    raise ConfigError(
+        f"study.recipe: unknown recipe '{recipe}'{did_you_mean(recipe, known)}; "
+        f"known recipes: {', '.join(sorted(known)) or 'none'}"
+    )
+
+
+def load_recipe(path: Path) -> Recipe:
+    """Read and validate a recipe file."""
+    raw = read_yaml(path, what="recipe")
+    return validate_section(Recipe, raw, f"recipe '{path.name}'")  # type: ignore[return-value]
+
+
+# ---- whole-chain check ------------------------------------------------------------------
+def check_chain(steps: Sequence[Step], available: Iterable[str], where: str) -> list[str]:
+    """Check that every step's needs are made by an earlier step or a data source.
+
+    Returns the table names available at the end. Raises :class:`ConfigError` naming
+    the step, the missing table and which step would make it.
+    """
+    have = list(available)
+    makers: dict[str, str] = {}
+    seen: set[str] = set()
+    for step in steps:
+        if step.name in seen:
+            raise ConfigError(f"{where}: step '{step.name}' is listed twice")
+        seen.add(step.name)
+        for need in step.needs:
+            if need not in have:
+                hint = did_you_mean(need, have)
+                raise ConfigError(
+                    f"{where}: step '{step.name}' needs table '{need}' which no earlier "
+                    f"step makes{hint}; available then: {', '.join(have) or 'none'}"
+                )
+        for made in step.makes:
+            if made in makers:
+                raise ConfigError(
+                    f"{where}: table '{made}' is made by both '{makers[made]}' and '{step.name}'"
+                )
+            makers[made] = step.name
+            have.append(made)
+    return have
+
+
+def source_tables(data: DataSection) -> list[str]:
+    """Tables available before the first step: one per configured data source."""
+    names = ["patients", "raw_labs"]
+    if data.source is not None or data.specs("events"):
+        names.append("events")
+    return names
+
+
+def _anchor_paths(data: DataSection, config_dir: Path) -> DataSection:
+    def anchor(spec: FileSource) -> FileSource:
+        path = Path(spec.path)
+        if path.is_absolute():
+            return spec
+        return spec.model_copy(update={"path": str(absolute(config_dir / path))})
+
+    update: dict[str, Any] = {}
+    if data.source is not None:
+        update["source"] = anchor_source(data.source, config_dir)
+    for table in ("patients", "labs", "events"):
+        value = getattr(data, table)
+        if isinstance(value, list):
+            update[table] = [anchor(s) for s in value]
+        elif value is not None:
+            update[table] = anchor(value)
+    return data.model_copy(update=update)
