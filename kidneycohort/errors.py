@@ -54,6 +54,10 @@ class EquationWarning(KidneyCohortWarning):
     """An equation used outside its recommended context (e.g. a race coefficient)."""
 
 
+class DisclosureWarning(KidneyCohortWarning):
+    """Small-cell protection had to hide a printed total to keep a small count hidden."""
+
+
 class DataQualityWarning(KidneyCohortWarning):
     """An assumption was applied to the data (e.g. a default unit) and recorded."""
 

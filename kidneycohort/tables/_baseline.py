@@ -9,20 +9,20 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.ages import age_at_index_expr, has_age
+from kidneycohort.disclosure import HIDDEN, CountLedger
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
 from kidneycohort.tables._format import (
-    _COMPLEMENTARY_LABEL,
     _DASH,
     _MISSING_LEVEL,
     TableRule,
-    _complementary,
-    _count_text,
     _format_fixed,
     _is_small,
     suppression_label,
 )
 from kidneycohort.tables._kdigo import _one_row_per_patient
+
+OVERALL = "Overall"
 
 Characteristic = tuple[str, pl.DataFrame, str]
 """(name, frame of ``patient_id, value``, kind): kind ``mean``/``median`` for numbers."""
@@ -178,10 +178,12 @@ def _numeric_rows(
             .otherwise(pl.lit("recorded"))
             .alias("value")
         )
-        block = _category_block(
-            missing, sizes, characteristic, order + 1, rule, levels=["recorded", _MISSING_LEVEL]
+        block = _category_counts(
+            missing, sizes, characteristic, order + 1, levels=["recorded", _MISSING_LEVEL]
         )
-        rows.append(block.filter(pl.col("level") == _MISSING_LEVEL))
+        rows.append(
+            block.filter(pl.col("level") == _MISSING_LEVEL).with_columns(_kind=pl.lit("missing"))
+        )
     return rows
 
 
@@ -242,7 +244,7 @@ def baseline_characteristics_table(
     numeric += more_numeric
     categorical += more_categorical
 
-    overall = "Overall"
+    overall = OVERALL
     if group_column is None:
         with_overall = _values(people, pl.lit(overall), pl.String).rename({"value": "_group"})
         groups: list[str] = []
@@ -261,8 +263,11 @@ def baseline_characteristics_table(
             pl.lit("n").alias("statistic"),
             pl.lit("").alias("level"),
             "_group",
-            _count_text(pl.col("_n"), rule).alias("text"),
+            pl.col("_n").alias("_count"),
+            "_n",
             pl.lit(0).alias("_order"),
+            pl.lit(0).alias("_level_order"),
+            pl.lit("n").alias("_kind"),
         )
     ]
     order = 1
@@ -273,21 +278,23 @@ def baseline_characteristics_table(
         joined = with_overall.join(frame, on="patient_id", how="left").with_columns(
             pl.col("value").fill_null(_MISSING_LEVEL)
         )
-        long_rows.append(_category_block(joined, sizes, characteristic, order, rule, levels=levels))
+        block = _category_counts(joined, sizes, characteristic, order, levels=levels)
+        long_rows.append(block.with_columns(_kind=pl.lit("category")))
         order += 1
-    return _widen(long_rows, [*groups, overall])
+    counts = pl.concat([r for r in long_rows if "_kind" in r.columns], how="diagonal_relaxed")
+    texts = [r for r in long_rows if "_kind" not in r.columns]
+    return _widen([*texts, _protected_text(counts, groups, rule)], [*groups, overall])
 
 
-def _category_block(
+def _category_counts(
     joined: pl.DataFrame,
     sizes: pl.DataFrame,
     characteristic: str,
     order: int,
-    rule: TableRule,
     *,
     levels: Sequence[str] | None,
 ) -> pl.DataFrame:
-    """n (%) per level and group with primary and secondary small-cell suppression."""
+    """Patients per level and group (every level x group, zeros included), with N."""
     present = joined["value"].unique().to_list()
     known = [
         v
@@ -308,51 +315,61 @@ def _category_block(
         .with_columns(pl.col("_count").fill_null(0))
         .join(sizes, on="_group")
     )
-    counts = counts.with_columns(
-        (
-            _is_small(pl.col("_count"), rule)
-            | (_is_small(pl.col("_n"), rule) & (pl.col("_count") > 0))
-        ).alias("_primary")
-    )
-    counts = _complementary(counts)
-    # the Overall column is the sum of the groups: hide it where a group cell is hidden
-    hidden_in_groups = (
-        counts.filter(pl.col("_group") != "Overall")
-        .group_by("value")
-        .agg(pl.col("_hidden").any().alias("_group_hidden"))
-    )
-    counts = counts.join(hidden_in_groups, on="value", how="left").with_columns(
-        pl.when(pl.col("_group") == "Overall")
-        .then(
-            pl.col("_hidden") | (pl.col("_group_hidden").fill_null(False) & (pl.col("_count") > 0))
-        )
-        .otherwise(pl.col("_hidden"))
-        .alias("_primary")
-    )
-    counts = _complementary(counts.drop("_hidden", "_group_hidden"))
-    percent = pl.col("_count") / pl.col("_n") * 100
-    text = (
-        pl.when(_is_small(pl.col("_count"), rule) & pl.col("_hidden"))
-        .then(pl.lit(suppression_label(rule)))
-        .when(pl.col("_hidden"))
-        .then(pl.lit(_COMPLEMENTARY_LABEL))
-        .otherwise(
-            pl.concat_str(
-                [
-                    pl.col("_count").cast(pl.String),
-                    pl.lit(" ("),
-                    _format_fixed(percent, rule.decimals),
-                    pl.lit("%)"),
-                ]
-            )
-        )
-    )
     return counts.select(
         pl.lit(characteristic).alias("characteristic"),
         pl.lit("n (%)").alias("statistic"),
         pl.col("value").alias("level"),
         "_group",
-        text.alias("text"),
+        "_count",
+        "_n",
         pl.lit(order).alias("_order"),
+        "_level_order",
+    )
+
+
+def _ledger(counts: pl.DataFrame, groups: list[str], threshold: int) -> CountLedger:
+    """Every printed count of people and how a reader can add them up: the levels of a
+    characteristic add up to N in each column, the groups to the Overall column."""
+    ledger = CountLedger(threshold=threshold)
+    for row in counts.iter_rows(named=True):
+        ledger.add((row["characteristic"], row["level"], row["_group"]), row["_count"])
+    if groups:
+        for (characteristic, level), _ in counts.group_by(
+            "characteristic", "level", maintain_order=True
+        ):
+            members = [(characteristic, level, g) for g in groups]
+            ledger.relate(members, (characteristic, level, OVERALL))
+    categories = counts.filter(pl.col("_kind") == "category")
+    for (characteristic, group), block in categories.group_by(
+        "characteristic", "_group", maintain_order=True
+    ):
+        members = [(characteristic, level, group) for level in block["level"]]
+        ledger.relate(members, ("N", "", group))
+    return ledger
+
+
+def _protected_text(counts: pl.DataFrame, groups: list[str], rule: TableRule) -> pl.DataFrame:
+    """The count cells as printed: ``n`` or ``n (%)``, small counts and the counts that
+    would reveal them hidden (:mod:`kidneycohort.disclosure`)."""
+    ledger = _ledger(counts, groups, rule.small_cell_threshold)
+    hidden = ledger.protect()
+    shown = [
+        ledger.display(hidden, key)
+        for key in zip(counts["characteristic"], counts["level"], counts["_group"], strict=True)
+    ]
+    visible = ~pl.col("_text").is_in([suppression_label(rule), HIDDEN])
+    percent = _format_fixed(pl.col("_count") / pl.col("_n") * 100, rule.decimals)
+    text = (
+        pl.when(visible & (pl.col("_kind") != "n"))
+        .then(pl.concat_str([pl.col("_text"), pl.lit(" ("), percent, pl.lit("%)")]))
+        .otherwise(pl.col("_text"))
+    )
+    return counts.with_columns(_text=pl.Series(shown, dtype=pl.String)).select(
+        "characteristic",
+        "statistic",
+        "level",
+        "_group",
+        text.alias("text"),
+        "_order",
         "_level_order",
     )

@@ -27,6 +27,7 @@ from kidneycohort.tables import (
     transition_table,
     write_tables,
 )
+from tests._fixtures.disclosure import disclosed_counts
 from tests._fixtures.models import simulate_two_slope_trial
 
 
@@ -59,14 +60,28 @@ def test_suppression_label_and_threshold() -> None:
 def test_baseline_table_counts_percentages_and_suppression() -> None:
     table = baseline_characteristics_table(_patients(), covariates=[])
     sex = table.filter(pl.col("characteristic") == "Sex")
-    # active: 5 male is suppressed; female 25 would reveal it (N 30 - 25), so it is
-    # suppressed too (complementary, '*'); placebo shown in full; overall 40 / 20.
-    assert sex.select("level", "active", "placebo", "Overall").rows() == [
-        ("female", "*", "15 (50.0%)", "*"),
-        ("male", "<11", "15 (50.0%)", "*"),
-    ]
+    cells = {
+        (level, group): text
+        for level, *texts in sex.select("level", "active", "placebo", "Overall").rows()
+        for group, text in zip(("active", "placebo", "Overall"), texts, strict=True)
+    }
+    # the 5 active men are a small cell (common practice: 1-10 shown as "<11")
+    assert cells[("male", "active")] == "<11"
     n_row = table.filter(pl.col("characteristic") == "N")
     assert n_row.select("active", "placebo", "Overall").rows() == [("30", "30", "60")]
+    # a reader who knows that levels add up to N and groups to Overall learns nothing
+    for group, n in (("active", "30"), ("placebo", "30"), ("Overall", "60")):
+        cells[("N", group)] = n
+    relations = [
+        ([("female", g), ("male", g)], ("N", g)) for g in ("active", "placebo", "Overall")
+    ] + [
+        ([(level, "active"), (level, "placebo")], (level, "Overall"))
+        for level in ("female", "male", "N")
+    ]
+    assert disclosed_counts(cells, relations) == {}
+    # shown counts keep their percentage of the group
+    shown = [text for text in cells.values() if "%" in text]
+    assert shown and all(text.endswith("%)") for text in shown)
     age = table.filter(pl.col("characteristic") == "Age, years")
     expected_mean = float(np.linspace(40, 80, 60)[:30].mean())
     expected_sd = float(np.linspace(40, 80, 60)[:30].std(ddof=1))
