@@ -222,8 +222,7 @@ class CountLedger:
                 return hidden
             if extra not in {m for ms, _ in self.relations for m in ms}:
                 warnings.warn(
-                    f"disclosure: a printed total ({extra!r}) is hidden to protect a small "
-                    "count",
+                    f"disclosure: a printed total ({extra!r}) is hidden to protect a small count",
                     DisclosureWarning,
                     stacklevel=2,
                 )

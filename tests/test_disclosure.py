@@ -53,9 +53,7 @@ def test_a_bridge_between_two_hidden_cycles_is_found_by_the_rank_attack() -> Non
     # two hidden 2x2 rectangles joined by one hidden cell: every row and column holds two
     # or more hidden cells, yet the joining cell is the difference of two block totals
     ledger = CountLedger(threshold=0)
-    cells = np.array(
-        [[20, 20, 0, 0], [20, 25, 20, 0], [0, 0, 20, 20], [0, 0, 20, 20]], dtype=int
-    )
+    cells = np.array([[20, 20, 0, 0], [20, 25, 20, 0], [0, 0, 20, 20], [0, 0, 20, 20]], dtype=int)
     table = _table(cells, threshold=0)
     hidden = {(0, 0), (0, 1), (1, 0), (1, 1), (1, 2), (2, 2), (2, 3), (3, 2), (3, 3)}
     assert table.recoverable(hidden) != []
