@@ -221,8 +221,12 @@ HAZARD_RATIOS: Final[dict[str, pl.DataType]] = {
     "hr_upper": pl.Float64(),
     "p": pl.Float64(),
     "ph_p": pl.Float64(),  # proportional-hazards test of the term
+    "events": pl.Int64(),  # events in the term's group (group terms only)
+    "reference_events": pl.Int64(),  # events in the reference group (group terms only)
+    "estimable": pl.Boolean(),  # the one estimability rule (models.survival)
+    "reason": pl.String(),  # why not estimable (reason code), null when estimable
 }
-"""Cox hazard ratios per endpoint, term and subgroup."""
+"""Cox hazard ratios per endpoint, term and subgroup; numbers null where not estimable."""
 
 INCIDENCE_RATES: Final[dict[str, pl.DataType]] = {
     "endpoint": pl.String(),

@@ -17,6 +17,9 @@ _DASH = "–"
 
 _MISSING_LEVEL = "missing"
 
+OVERALL = "Overall"
+"""The column (or row) of all patients, beside the groups."""
+
 
 _COMPLEMENTARY_LABEL = "*"  # hidden so that a suppressed cell cannot be recovered
 

@@ -143,16 +143,30 @@ def _kdigo() -> pl.DataFrame:
 def test_kdigo_grid_counts_every_cell() -> None:
     grid = kdigo_grid_table(_kdigo())
     assert grid.columns == ["g_category", "a_category", "n", "n_display"]
-    assert grid.height == 6 * 3 + 3  # full KDIGO grid + missing GFR category row
+    cells = grid.filter((pl.col("g_category") != "all") & (pl.col("a_category") != "all"))
+    assert cells.height == 7 * 3  # full KDIGO grid + missing GFR category row
+    # margins: 7 G rows (with missing), 3 A columns, and all patients
+    assert grid.height == 7 * 3 + 7 + 3 + 1
     cell = {(r[0], r[1]): (r[2], r[3]) for r in grid.rows()}
-    assert cell[("G2", "A1")] == (30, "30")
     assert cell[("G2", "A2")] == (None, "<11")  # 10 patients
-    assert cell[("G3a", "A2")] == (25, "25")
     assert cell[("G4", "A3")] == (None, "<11")
     assert cell[("G1", "A1")] == (0, "0")
     assert cell[("missing", "A1")] == (None, "<11")
-    shown = sum(v[0] for v in cell.values() if v[0] is not None)
-    assert shown == 30 + 25
+    assert cell[("all", "all")] == (70, "70")
+    # a reader adding up rows and columns learns none of the hidden counts
+    printed = {key: text for key, (_, text) in cell.items()}
+    g_levels = ["G1", "G2", "G3a", "G3b", "G4", "G5", "missing"]
+    a_levels = ["A1", "A2", "A3"]
+    relations = [([(g, a) for a in a_levels], (g, "all")) for g in [*g_levels, "all"]] + [
+        ([(g, a) for g in g_levels], ("all", a)) for a in a_levels
+    ]
+    assert disclosed_counts(printed, relations) == {}
+    # every shown count is the true count
+    truth = _kdigo().with_columns(pl.col("g_category").fill_null("missing"))
+    for (g, a), (n, _) in cell.items():
+        if n is not None and "all" not in (g, a):
+            expected = truth.filter((pl.col("g_category") == g) & (pl.col("a_category") == a))
+            assert n == expected.height
 
 
 def test_kdigo_grid_refuses_unknown_category() -> None:
