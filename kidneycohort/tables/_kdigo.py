@@ -15,7 +15,6 @@ from kidneycohort.tables._format import (
     OVERALL,
     TableRule,
     _count_text,
-    _is_small,
 )
 
 
@@ -153,6 +152,7 @@ def transition_table(
     axis: str = "G",
     equation: str | None = None,
     rule: TableRule | None = None,
+    disclosure: SharedDisclosure | None = None,
 ) -> pl.DataFrame:
     """Counts of category transitions (``schemas.TRANSITIONS`` rows) on one axis.
 
@@ -161,7 +161,9 @@ def transition_table(
     polars.DataFrame
         ``from_category, to_category, n, n_patients, n_display``: every ordered pair of
         distinct categories of the axis (zeros included); ``n`` counts transitions,
-        ``n_patients`` patients with at least one; both null where suppressed.
+        ``n_patients`` patients with at least one; both null where the patients are
+        a small count (:mod:`kidneycohort.disclosure`; ``disclosure`` to protect the
+        table together with other outputs).
     """
     rule = rule or TableRule()
     table = to_polars(transitions, "transitions")
@@ -193,7 +195,17 @@ def transition_table(
         on=["from_category", "to_category"],
         how="left",
     ).with_columns(pl.col("n", "n_patients").fill_null(0))
-    hidden = _is_small(pl.col("n"), rule) | _is_small(pl.col("n_patients"), rule)
+    # patients with a transition are counted; the number of transitions goes with them
+    ledger = CountLedger(threshold=rule.small_cell_threshold)
+    pairs = counted.select("from_category", "to_category", "n_patients").rows()
+    for source, target, n in pairs:
+        ledger.add(("transition", axis, f"{source} -> {target}"), n)
+    display = protect_part(ledger, disclosure, f"transition_table_{axis}")
+    shown = [
+        display(("transition", axis, f"{source} -> {target}")).isdigit()
+        for source, target, _ in pairs
+    ]
+    hidden = pl.lit(~pl.Series(shown, dtype=pl.Boolean))
     return counted.select(
         "from_category",
         "to_category",

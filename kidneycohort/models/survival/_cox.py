@@ -180,7 +180,18 @@ class CoxModel:
     ) -> pl.DataFrame:
         """lifelines' summary as one row per term, with the estimability rule applied."""
         summary = fitter.summary
-        tidy = pl.DataFrame(
+        # an unbounded fit (separation) overflows to inf; the estimability rule rejects it
+        with np.errstate(over="ignore"):
+            tidy = self._tidy_numbers(summary, names)
+        return with_estimability(
+            tidy.join(self._term_events(rows, group_column), on="term", how="left"),
+            converged=self.converged_,
+            min_events_per_group=self.rule.min_events_per_group,
+        )
+
+    @staticmethod
+    def _tidy_numbers(summary: Any, names: list[str]) -> pl.DataFrame:
+        return pl.DataFrame(
             {
                 "term": names,
                 "hr": summary.loc[names, "exp(coef)"].to_numpy(dtype=float),
@@ -194,11 +205,6 @@ class CoxModel:
                 "log_hr": summary.loc[names, "coef"].to_numpy(dtype=float),
                 "se": summary.loc[names, "se(coef)"].to_numpy(dtype=float),
             }
-        )
-        return with_estimability(
-            tidy.join(self._term_events(rows, group_column), on="term", how="left"),
-            converged=self.converged_,
-            min_events_per_group=self.rule.min_events_per_group,
         )
 
     def _term_events(self, rows: pl.DataFrame, group_column: str) -> pl.DataFrame:

@@ -162,12 +162,12 @@ def add_kdigo_grid(registry: StepRegistry) -> None:
     """Step ``kdigo_grid``: KDIGO G and A categories at baseline and the grid counts."""
     from kidneycohort.baseline import uacr_baseline
     from kidneycohort.kdigo import KdigoGridRule, baseline_categories, kdigo_grid_counts
-    from kidneycohort.tables import TableRule, kdigo_grid_table
+    from kidneycohort.tables import TableRule
 
     @registry.register(
         "kdigo_grid",
         needs=["baseline", "labs", "cohort"],
-        makes=["baseline_categories", "models/kdigo_grid", "tables/kdigo_grid"],
+        makes=["baseline_categories", "models/kdigo_grid"],
         section="kdigo_grid",
         options=KdigoGridRule,
         extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
@@ -189,9 +189,6 @@ def add_kdigo_grid(registry: StepRegistry) -> None:
         return {
             "baseline_categories": categories,
             "models/kdigo_grid": kdigo_grid_counts(categories),
-            "tables/kdigo_grid": kdigo_grid_table(
-                categories, rule=section(ctx, "tables", TableRule)
-            ),
         }
 
 
