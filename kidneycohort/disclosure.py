@@ -29,6 +29,7 @@ References
 
 from __future__ import annotations
 
+import itertools
 import warnings
 from collections.abc import Callable, Hashable, Iterable, Mapping
 from dataclasses import dataclass, field
@@ -46,6 +47,7 @@ __all__ = [
     "CountLedger",
     "SharedDisclosure",
     "protect_part",
+    "protected_flow",
     "protected_texts",
     "small_cell_text",
     "small_count_text",
@@ -120,16 +122,28 @@ class CountLedger:
     threshold: int = DEFAULT_SMALL_CELL_THRESHOLD
     counts: dict[Hashable, int] = field(default_factory=dict)
     relations: list[tuple[tuple[Hashable, ...], Hashable]] = field(default_factory=list)
+    unprinted: set[Hashable] = field(default_factory=set)
+    fixed: set[Hashable] = field(default_factory=set)
     _cache: dict[object, list[Hashable]] = field(
         default_factory=dict, init=False, repr=False, compare=False
     )
 
-    def add(self, key: Hashable, count: int) -> None:
-        """Enter a printed count; the same key entered twice must carry the same count."""
+    def add(self, key: Hashable, count: int, *, printed: bool = True, fixed: bool = False) -> None:
+        """Enter a count; the same key entered twice must carry the same count.
+
+        ``printed=False`` enters a count the output does not print but a reader can
+        derive (the patients left out between two steps of a flow): it needs protection
+        only when it is small. ``fixed=True`` enters a count printed by another output
+        that this one cannot hide (it is never chosen for complementary suppression).
+        """
         count = int(count)
         if key in self.counts and self.counts[key] != count:
             raise ValueError(f"ledger: {key!r} entered as {self.counts[key]} and as {count}")
         self.counts[key] = count
+        if not printed:
+            self.unprinted.add(key)
+        if fixed:
+            self.fixed.add(key)
 
     def relate(self, members: Iterable[Hashable], total: Hashable) -> None:
         """A reader knows that the ``members`` add up to ``total`` (all entered counts)."""
@@ -246,7 +260,7 @@ class CountLedger:
             for members, total in self.relations
             if touched & {*members, total}
             for other in (*members, total)
-            if other not in hidden
+            if other not in hidden and other not in self.fixed
         }
         if not candidates:
             return None
@@ -261,9 +275,11 @@ class CountLedger:
     def protect(self) -> set[Hashable]:
         """The counts to hide: primary suppression, then complementary suppression until
         no hidden count is recoverable (a fixed point)."""
-        hidden = self.primary()
+        hidden = self.primary() | self.unprinted
+        # an unprinted count that is not small may be derived: nothing to protect there
+        free = self.unprinted - self.primary()
         while True:
-            exposed = self.recoverable(hidden)
+            exposed = [key for key in self.recoverable(hidden) if key not in free]
             if not exposed:
                 return hidden
             extra = self._complement(exposed, hidden)
@@ -352,3 +368,34 @@ def protect_part(
             return lambda key: ledger.display(hidden, rename.get(key, key))
     own = part.protect()
     return lambda key: part.display(own, key)
+
+
+def protected_flow(
+    flow: Mapping[str, int],
+    threshold: int = DEFAULT_SMALL_CELL_THRESHOLD,
+    *,
+    shown_elsewhere: Iterable[str] = (),
+    disclosure: SharedDisclosure | None = None,
+) -> dict[str, str]:
+    """A patient flow (each step a subset of the one before) as printed.
+
+    The patients left out between two steps are not printed but are the difference of
+    two printed counts; a small difference is protected like a small count (the flow
+    step after it, or before it, is hidden), so no attrition box gives away a handful of
+    patients by subtraction. Steps in ``shown_elsewhere`` are printed by another output
+    (a table's N) and stay shown; the others are hidden around them.
+
+    >>> protected_flow({"with labs": 250, "with eGFR": 245, "analysed": 200})
+    {'with labs': '250', 'with eGFR': '*', 'analysed': '200'}
+    """
+    ledger = CountLedger(threshold=threshold)
+    names = list(flow)
+    elsewhere = set(shown_elsewhere)
+    for name in names:
+        ledger.add(("flow", name), int(flow[name]), fixed=name in elsewhere)
+    for before, after in itertools.pairwise(names):
+        left_out = ("flow left out", after)
+        ledger.add(left_out, int(flow[before]) - int(flow[after]), printed=False)
+        ledger.relate([("flow", after), left_out], ("flow", before))
+    display = protect_part(ledger, disclosure, "patient_flow")
+    return {name: display(("flow", name)) for name in names}

@@ -86,7 +86,7 @@ def _attrition(run: RunFolder, threshold: int) -> Any | None:
     return attrition_figure(
         [a.model_dump() for a in manifest.accounting],
         [r.model_dump() for r in manifest.accounting_by_reason] or None,
-        patients=run.patient_flow(run.primary_equation) or None,
+        patients=run.printed_patient_flow() or None,
         small_cell_threshold=threshold,
     )
 

@@ -12,8 +12,7 @@ from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.models._design import WHOLE_COHORT, with_group
 from kidneycohort.models.rates import incidence_rates
-from kidneycohort.models.survival import SurvivalRule, hazard_ratio_table
-from kidneycohort.models.survival._estimability import estimability_note
+from kidneycohort.models.survival import SurvivalRule, estimability_note, hazard_ratio_table
 from kidneycohort.tables._format import (
     _DASH,
     OVERALL,
