@@ -317,6 +317,22 @@ def test_no_hidden_count_of_people_can_be_recovered_across_the_run(cohort_run) -
         for what in ("n", "events"):
             relations.append(([("e", name, g, what) for g in groups], ("e", name, "Overall", what)))
 
+    kfre = read("kfre_summary")
+    block = kfre.filter(pl.col("characteristic").is_in(["KFRE applicable", "KFRE not applicable"]))
+    for row in kfre.iter_rows(named=True):
+        if row["statistic"].startswith("n"):
+            for column in columns:
+                printed[("k", row["characteristic"], row["level"] or "", column)] = row[column]
+    for column in columns:
+        members = [
+            ("k", c, level or "", column)
+            for c, level in block.select("characteristic", "level").rows()
+        ]
+        relations.append((members, ("k", "N", "", column)))
+        relations.append(([("k", "N", "", column)], ("b", "N", "", column)))
+    for key in [k for k in printed if k[0] == "k" and k[3] == "Overall"]:
+        relations.append(([(*key[:3], g) for g in groups], key))
+
     assert any(printed_count(t) is None for t in printed.values()), "nothing was hidden"
     assert disclosed_counts(printed, relations) == {}
 

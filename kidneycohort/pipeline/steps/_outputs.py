@@ -75,10 +75,29 @@ def _shared_tables(ctx: StepContext, disclosure: Any, *, cohort_tables: bool) ->
         ).with_columns(pl.lit(None, dtype=pl.String).alias("n_display"))
     )
     if cohort_tables:
+        out["tables/kfre_summary"] = _kfre_summary(ctx, survival.group_column, disclosure)
         out["tables/transition_matrix"] = tb.transition_table(
             ctx.tables["transitions"], axis="G", equation=equation, rule=rule, disclosure=disclosure
         )
     return out
+
+
+def _kfre_summary(ctx: StepContext, group: str | None, disclosure: Any) -> pl.DataFrame:
+    """The KFRE summary table, when the run computed KFRE (empty otherwise)."""
+    from kidneycohort.kfre import KfreRule, kfre_summary_table
+
+    rows = ctx.tables.get("kfre")
+    if rows is None:
+        return pl.DataFrame(
+            schema={"characteristic": pl.String, "statistic": pl.String, "level": pl.String}
+        )
+    return kfre_summary_table(
+        rows,
+        group_column=group,
+        rule=section(ctx, "kfre", KfreRule),
+        table_rule=ctx.options,
+        disclosure=disclosure,
+    )
 
 
 def _protected_tables(ctx: StepContext, *, cohort_tables: bool) -> dict[str, Any]:
@@ -138,9 +157,9 @@ def add_tables(registry: StepRegistry) -> None:
 
     @registry.register(
         "cohort_tables",
-        optional_needs=["baseline_categories", "models/hazard_ratios"],
+        optional_needs=["baseline_categories", "models/hazard_ratios", "kfre"],
         needs=["endpoints", "cohort", "baseline", "transitions", "slope_model_fit"],
-        makes=[*_COMMON, "tables/transition_matrix"],
+        makes=[*_COMMON, "tables/transition_matrix", "tables/kfre_summary"],
         section="tables",
         options=TableRule,
         description="Endpoint, baseline, incidence-rate, KDIGO grid, G-transition and slope "
