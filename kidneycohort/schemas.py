@@ -87,6 +87,7 @@ EGFR: Final[dict[str, pl.DataType]] = {
     "creatinine_mg_dl": pl.Float64(),
     "cystatin_c_mg_l": pl.Float64(),
     "setting": pl.String(),
+    "qualified": pl.Boolean(),  # a creatinine / cystatin C reported with "<" or ">"
     "egfr_reason": pl.String(),  # null when computed
 }
 

@@ -21,8 +21,14 @@ Columns added
 ``excluded`` (bool)
     The row is left out of baseline, slope and category work.
 ``exclusion_reason`` (str)
-    ``"setting_<setting>"``, ``"aki"`` or ``"aki_recovery"`` (the first that applies),
-    null when the row is used.
+    ``"setting_<setting>"``, ``"aki"``, ``"aki_recovery"`` or ``"qualified_value"`` (the
+    first that applies), null when the row is used.
+
+Qualified results: a creatinine reported as ``"<20"`` µmol/L is a detection limit, not
+a value; its eGFR (``qualified`` true in the eGFR table) would show as a spike of about
+160 if taken as exact. ``qualified_values: exclude`` (the default) leaves such rows out
+of every downstream analysis with reason ``qualified_value``; ``use`` takes the limit
+as the value (a stated substitution).
 
 AKI criteria (KDIGO 2012 AKI guideline, section 2.1.1): an increase in serum creatinine
 by at least 0.3 mg/dL within 48 hours, or to at least 1.5 times baseline known or
@@ -39,7 +45,7 @@ on any partition of patients (DESIGN.md, partition rule).
 from __future__ import annotations
 
 import logging
-from typing import Final
+from typing import Final, Literal
 
 import polars as pl
 from pydantic import Field
@@ -104,6 +110,12 @@ class ValueFilterRule(RuleModel):
         default=7.0,
         gt=0,
         description="Window (days) for the ratio criterion (KDIGO 2012: 7).",
+    )
+    qualified_values: Literal["exclude", "use"] = Field(
+        default="exclude",
+        description="eGFR from a creatinine or cystatin C reported with '<' or '>' (a "
+        "limit, not a value): 'exclude' leaves it out of baselines, slopes, stages and "
+        "endpoints (reason qualified_value); 'use' takes the limit as the value.",
     )
 
 
@@ -297,6 +309,10 @@ def apply_value_filter(egfr: FrameLike, rule: ValueFilterRule | None = None) -> 
             .then(pl.lit("aki"))
             .when(pl.col("aki_recovery").fill_null(False))
             .then(pl.lit("aki_recovery"))
+        )
+    if rule.qualified_values == "exclude" and "qualified" in df.columns:
+        reasons.append(
+            pl.when(pl.col("qualified").fill_null(False)).then(pl.lit("qualified_value"))
         )
     reason = pl.coalesce(reasons) if reasons else pl.lit(None, dtype=pl.String)
     df = df.with_columns(exclusion_reason=reason.cast(pl.String)).with_columns(
