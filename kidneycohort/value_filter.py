@@ -329,7 +329,8 @@ def usable_egfr(
 
     Shared by the baseline, slope and category stages: checks the contract columns,
     applies ``value_filter`` when given (or honours an ``excluded`` column already
-    present), and keeps rows with a finite eGFR. The full input is returned as well
+    present; without either, rows from a qualified result are still excluded), and keeps
+    rows with a finite eGFR. The full input is returned as well
     via :func:`egfr_keys` so that no patient disappears from an output.
     """
     df = to_polars(egfr, name)
@@ -342,6 +343,9 @@ def usable_egfr(
     )
     if value_filter is not None:
         df = apply_value_filter(df, value_filter)
+    elif "qualified" in df.columns and "excluded" not in df.columns:
+        # no value filter chosen: a limit ("<x") is still never used as a value
+        df = apply_value_filter(df, ValueFilterRule(exclude_settings=(), exclude_aki=False))
     if "excluded" not in df.columns:
         df = df.with_columns(excluded=pl.lit(False))
     # rounding to a microsecond keeps -365 days exactly -365 after the years round trip
