@@ -311,9 +311,12 @@ def apply_value_filter(egfr: FrameLike, rule: ValueFilterRule | None = None) -> 
             .then(pl.lit("aki_recovery"))
         )
     if rule.qualified_values == "exclude" and "qualified" in df.columns:
-        reasons.append(
-            pl.when(pl.col("qualified").fill_null(False)).then(pl.lit("qualified_value"))
+        flag = (
+            pl.col("qualified").str.to_lowercase().is_in(["true", "1", "yes"])
+            if df.schema["qualified"] == pl.String
+            else pl.col("qualified").cast(pl.Boolean)
         )
+        reasons.append(pl.when(flag.fill_null(False)).then(pl.lit("qualified_value")))
     reason = pl.coalesce(reasons) if reasons else pl.lit(None, dtype=pl.String)
     df = df.with_columns(exclusion_reason=reason.cast(pl.String)).with_columns(
         excluded=pl.col("exclusion_reason").is_not_null()
