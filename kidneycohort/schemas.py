@@ -2,7 +2,7 @@
 
 One place names every canonical table's columns and types, so that stages written
 separately agree, tests can check a stage's output against its contract, and the
-run folder's schema version means something. See DESIGN.md's data contract.
+run folder's schema version means something. The input tables are described for users in docs/data_contract.md (written from here).
 """
 
 from __future__ import annotations

@@ -39,7 +39,7 @@ baseline is common practice in electronic-record AKI detection. Urine-output cri
 cannot be assessed from laboratory tables and are not used.
 
 All flags are computed per patient with window expressions only, so they are the same
-on any partition of patients (DESIGN.md, partition rule).
+on any partition of patients (DEVELOPERS.md, partition rule).
 """
 
 from __future__ import annotations
