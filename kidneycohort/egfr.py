@@ -39,7 +39,7 @@ from pydantic import Field, field_validator
 
 from kidneycohort import equations as eq
 from kidneycohort import schemas, units
-from kidneycohort._frames import conform, require_columns, to_polars
+from kidneycohort._frames import conform, follows_input, require_columns, to_polars
 from kidneycohort._rules import RuleModel, resolve_rules
 from kidneycohort.ages import age_on_expr
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -343,6 +343,7 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
     )
 
 
+@follows_input
 def compute_egfr(
     labs: Any,
     patients: Any,
@@ -513,6 +514,7 @@ def _rows_in_age_bands(enriched: pl.DataFrame, equation_id: str, rule: EgfrRule)
     return enriched.filter(keep)
 
 
+@follows_input
 def egfr_wide(egfr: pl.DataFrame) -> pl.DataFrame:
     """Wide view of the long table: one row per patient and sample time, one column per
     equation (its eGFR), plus the creatinine and cystatin C of the sample.

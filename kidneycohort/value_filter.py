@@ -51,7 +51,7 @@ import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort._rules import RuleModel
 from kidneycohort._rules import rule_error_message as rule_error_message
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -131,6 +131,7 @@ def sample_time_expr(columns: list[str]) -> pl.Expr:
     return pl.coalesce(parts)
 
 
+@follows_input
 def flag_aki(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFrame:
     """Add ``aki_flag``, ``aki_criterion`` and ``aki_recovery`` to an eGFR (or labs) table.
 
@@ -248,6 +249,7 @@ def flag_aki(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFra
     return out
 
 
+@follows_input
 def apply_value_filter(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFrame:
     """Mark the results that do not count, keeping every row (see module docstring).
 

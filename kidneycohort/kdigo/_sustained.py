@@ -10,7 +10,7 @@ import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform
+from kidneycohort._frames import FrameLike, conform, follows_input
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import InputDataError
 from kidneycohort.kdigo._categories import (
@@ -324,6 +324,7 @@ def _results(
     return pl.concat(parts, how="vertical_relaxed")
 
 
+@follows_input
 def category_results(
     egfr: FrameLike | None = None,
     labs: FrameLike | None = None,
@@ -375,6 +376,7 @@ def category_results(
 
 
 # ---- stages and transitions ------------------------------------------------------------------
+@follows_input
 def sustained_stages(
     egfr: FrameLike | None = None,
     labs: FrameLike | None = None,

@@ -6,7 +6,7 @@ from typing import Any, Final
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort._rules import resolve_rules
 from kidneycohort.ages import age_at_index_expr, has_age
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -17,6 +17,7 @@ from kidneycohort.uacr import uacr_timeline
 from kidneycohort.value_filter import ValueFilterRule, usable_egfr
 
 
+@follows_input
 def kfre_inputs(
     egfr: FrameLike,
     labs: FrameLike,
@@ -123,6 +124,7 @@ KFRE_SUMMARY_REASONS: Final[dict[str, str]] = {
 
 
 # ---- KFRE at baseline ---------------------------------------------------------------------
+@follows_input
 def kfre_at_baseline(
     egfr: FrameLike,
     labs: FrameLike,

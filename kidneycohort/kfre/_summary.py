@@ -6,7 +6,7 @@ from typing import Final
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kfre._inputs import KFRE_SUMMARY_REASONS
@@ -96,6 +96,7 @@ def _count_rows(
     return rows
 
 
+@follows_input
 def kfre_summary_table(
     kfre_rows: FrameLike,
     *,

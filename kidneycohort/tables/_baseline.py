@@ -7,7 +7,7 @@ from collections.abc import Sequence
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.ages import age_at_index_expr, has_age
 from kidneycohort.disclosure import HIDDEN, CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -205,6 +205,7 @@ def _widen(long_rows: list[pl.DataFrame], columns: list[str]) -> pl.DataFrame:
     )
 
 
+@follows_input
 def baseline_characteristics_table(
     patients: FrameLike,
     baseline: FrameLike | None = None,

@@ -7,7 +7,7 @@ from collections.abc import Sequence
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, to_polars
+from kidneycohort._frames import FrameLike, follows_input, to_polars
 from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.models._design import WHOLE_COHORT, with_group
@@ -93,6 +93,7 @@ def _patients_key(name: str, group: str, same_as_n: bool) -> tuple[str, str, str
     return ("N", "", group) if same_as_n else ("patients", name, group)
 
 
+@follows_input
 def endpoint_table(
     endpoints: FrameLike,
     patients: FrameLike | None = None,

@@ -6,7 +6,7 @@ from collections.abc import Sequence
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
@@ -49,6 +49,7 @@ A_MARGIN = "KDIGO albuminuria category"
 ALL = "all"
 
 
+@follows_input
 def kdigo_grid_table(
     categories: FrameLike,
     *,
@@ -146,6 +147,7 @@ def _grid_ledger(
     return ledger
 
 
+@follows_input
 def transition_table(
     transitions: FrameLike,
     *,

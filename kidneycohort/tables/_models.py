@@ -8,7 +8,7 @@ import logging
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike
+from kidneycohort._frames import FrameLike, follows_input
 from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.models.mixed import SlopeModel
@@ -25,6 +25,7 @@ from kidneycohort.tables._format import (
 logger = logging.getLogger(__name__)
 
 
+@follows_input
 def slope_table(model: SlopeModel, *, rule: TableRule | None = None) -> pl.DataFrame:
     """Slope table of a fitted :class:`~kidneycohort.models.mixed.SlopeModel`: per group
     and per difference, acute change, chronic and total slopes with SE, 95 % CI and p.
@@ -68,6 +69,7 @@ def slope_table(model: SlopeModel, *, rule: TableRule | None = None) -> pl.DataF
     )
 
 
+@follows_input
 def rate_comparison_table(
     endpoints: FrameLike,
     patients: FrameLike | None = None,

@@ -20,7 +20,7 @@ from typing import Any, TypeVar
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, conform, to_polars
+from kidneycohort._frames import FrameLike, conform, follows_input, to_polars
 from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import ConfigError, ConvergenceError, StatisticalWarning, did_you_mean
 from kidneycohort.models.survival._cox import CoxModel
@@ -63,6 +63,7 @@ def _fit_each_endpoint(
     return out
 
 
+@follows_input
 def survival_curves_by_endpoint(
     endpoints: FrameLike,
     patients: FrameLike | None = None,
@@ -186,6 +187,7 @@ def _fit_or_report(
     return parts
 
 
+@follows_input
 def hazard_ratio_table(
     endpoints: FrameLike,
     patients: FrameLike,
