@@ -46,6 +46,7 @@ __all__ = [
     "HIDDEN",
     "CountLedger",
     "SharedDisclosure",
+    "disclosure_footnote",
     "protect_part",
     "protected_flow",
     "protected_texts",
@@ -412,3 +413,15 @@ def protected_flow(
         ledger.relate([("flow", after), left_out], ("flow", before))
     display = protect_part(ledger, disclosure, "patient_flow")
     return {name: display(("flow", name)) for name in names}
+
+
+def disclosure_footnote(threshold: int = DEFAULT_SMALL_CELL_THRESHOLD) -> str:
+    """The footnote of an output that hides counts, in the words every output uses."""
+    if threshold <= 0:
+        return "No small-cell suppression applied."
+    return (
+        f"Counts of people from 1 to {threshold} are shown as '{suppression_label(threshold)}'; "
+        f"'{HIDDEN}' marks a count hidden so that a small one cannot be worked out from the "
+        "totals and the other counts (complementary suppression); a percentage or rate of a "
+        "hidden count is hidden with it. Counts of rows and person-years are shown in full."
+    )
