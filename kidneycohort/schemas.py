@@ -229,6 +229,37 @@ HAZARD_RATIOS: Final[dict[str, pl.DataType]] = {
 }
 """Cox hazard ratios per endpoint, term and subgroup; numbers null where not estimable."""
 
+COMPETING_HAZARDS: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "model": pl.String(),  # "subdistribution" (Fine–Gray) or "cause_specific" (Cox)
+    "cause": pl.String(),  # event modelled: the endpoint or the competing event
+    "term": pl.String(),
+    "hr": pl.Float64(),
+    "hr_lower": pl.Float64(),
+    "hr_upper": pl.Float64(),
+    "p": pl.Float64(),
+    "log_hr": pl.Float64(),
+    "se": pl.Float64(),
+    "n_patients": pl.Int64(),
+    "n_events": pl.Int64(),
+    "estimable": pl.Boolean(),
+    "reason": pl.String(),  # null when estimable; else one line saying why not
+}
+"""Fine–Gray and cause-specific hazard ratios per endpoint analysed with competing risks."""
+
+COMPETING_TESTS: Final[dict[str, pl.DataType]] = {
+    "endpoint": pl.String(),
+    "cause": pl.String(),
+    "groups": pl.String(),
+    "test_statistic": pl.Float64(),
+    "df": pl.Float64(),
+    "p": pl.Float64(),
+    "estimable": pl.Boolean(),
+    "reason": pl.String(),
+    "methods": pl.String(),  # the analysis' methods text (which hazard ratio is which)
+}
+"""Gray's test of the cumulative incidence curves per endpoint, with the methods text."""
+
 INCIDENCE_RATES: Final[dict[str, pl.DataType]] = {
     "endpoint": pl.String(),
     "group": pl.String(),

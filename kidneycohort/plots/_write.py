@@ -35,6 +35,7 @@ FIGURE_TITLES: Final[dict[str, str]] = {
     "kdigo_grid": "Patients by KDIGO GFR and albuminuria category",
     "transition_matrix": "KDIGO category transitions",
     "forest_hazard_ratios": "Hazard ratios by endpoint",
+    "forest_competing_risks": "Competing risks: Fine–Gray and cause-specific hazard ratios",
     "survival": "Time to event",
 }
 """Figure file stems written by :func:`write_figures` (``survival_<endpoint>`` per endpoint)."""
@@ -164,7 +165,31 @@ def _survival_figures(run: RunFolder, palette: dict[str, str], threshold: int) -
         hazard_ratios = run.table("models/hazard_ratios")
         if hazard_ratios.height:
             out["forest_hazard_ratios"] = forest_figure(hazard_ratios)
+    if run.has("models/competing_hazard_ratios"):
+        competing = competing_forest_rows(run.table("models/competing_hazard_ratios"))
+        if competing.height:
+            out["forest_competing_risks"] = forest_figure(competing)
     return out
+
+
+def competing_forest_rows(hazards: pl.DataFrame) -> pl.DataFrame:
+    """The endpoint's subdistribution and cause-specific hazard ratios as forest rows,
+    one under the other for each term (``term`` names the model)."""
+    own = hazards.filter(pl.col("cause") == pl.col("endpoint"))
+    model = pl.col("model").replace_strict(
+        {"subdistribution": "Fine–Gray", "cause_specific": "cause-specific"},
+        default=pl.col("model"),
+    )
+    return own.sort("endpoint", "term", "model", descending=[False, False, True]).select(
+        "endpoint",
+        pl.concat_str([pl.col("term"), pl.lit(" ("), model, pl.lit(")")]).alias("term"),
+        "hr",
+        "hr_lower",
+        "hr_upper",
+        "p",
+        "estimable",
+        "reason",
+    )
 
 
 def write_figures(

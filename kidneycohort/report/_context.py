@@ -54,6 +54,10 @@ TABLES: Final[dict[str, tuple[str, str]]] = {
     "endpoint_table": ("Endpoints", "endpoints"),
     "incidence_rates": ("Incidence rates", "endpoints"),
     "kfre_summary": ("Kidney Failure Risk Equation at baseline (2- and 5-year risk)", "endpoints"),
+    "competing_risks": (
+        "Competing risks: subdistribution (Fine–Gray) and cause-specific hazard ratios",
+        "endpoints",
+    ),
 }
 # a table with one of these columns is individual-level and is never printed
 IDENTIFIER_COLUMNS: Final = frozenset(
@@ -262,6 +266,15 @@ def _summary(run: RunFolder, threshold: int) -> list[str]:
     return lines
 
 
+def _analysis_methods(run: RunFolder) -> list[dict[str, Any]]:
+    """Methods paragraphs the analyses wrote themselves (which hazard ratio is which)."""
+    tests = run.table_or_none("models/competing_tests")
+    if tests is None or tests.is_empty():
+        return []
+    sentences = list(dict.fromkeys(tests["methods"].drop_nulls().to_list()))
+    return [{"section": "Competing risks as analysed", "sentences": sentences}]
+
+
 def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:
     """Patients per group as the baseline table prints them (its N row)."""
     table = run.table_or_none("tables/baseline_characteristics")
@@ -373,7 +386,6 @@ def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
     labels = {e["id"]: e["label"] for e in equations}
     tables, index = _tables(run)
     accounting, by_reason = _accounting(run, threshold)
-    groups = _group_counts(run)
     provenance = _provenance(run)
     return {
         "title": study.name or run.path.name,
@@ -391,14 +403,13 @@ def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
         "table_index": index,
         "xlsx": "tables/tables.xlsx" if (run.path / "tables" / "tables.xlsx").is_file() else "",
         "equations": equations,
-        "methods": methods_from_config(manifest.config, labels),
+        "methods": methods_from_config(manifest.config, labels) + _analysis_methods(run),
         "cautions": list(CAUTIONS),
         "warnings": [_ISO_DATE.sub("[date removed]", w) for w in manifest.warnings],
         "accounting": accounting,
         "accounting_by_reason": by_reason,
-        "groups": [[g, small_count_text(int(n), threshold)] for g, n in groups.rows()]
-        if groups is not None
-        else [],
+        # as the baseline table prints them (one protection for every output)
+        "groups": [[g, n] for g, n in _printed_group_sizes(run, threshold).items()],
         "provenance": provenance,
         "generated": dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M UTC"),
     }

@@ -125,6 +125,18 @@ FILES: Final[dict[str, RunFile]] = _files(
     RunFile("models/at_risk", "model", schemas.AT_RISK, "Numbers at risk under the curves."),
     RunFile("models/hazard_ratios", "model", schemas.HAZARD_RATIOS, "Cox hazard ratios."),
     RunFile("models/incidence_rates", "model", schemas.INCIDENCE_RATES, "Exact incidence rates."),
+    RunFile(
+        "models/competing_hazard_ratios",
+        "model",
+        schemas.COMPETING_HAZARDS,
+        "Fine–Gray (subdistribution) and cause-specific hazard ratios per endpoint.",
+    ),
+    RunFile(
+        "models/competing_tests",
+        "model",
+        schemas.COMPETING_TESTS,
+        "Gray's test per endpoint analysed with competing risks, and its methods text.",
+    ),
     RunFile("models/kdigo_grid", "model", schemas.KDIGO_GRID_COUNTS, "Patients per KDIGO cell."),
     RunFile(
         "models/transition_counts",
@@ -150,6 +162,10 @@ FILES: Final[dict[str, RunFile]] = _files(
             ("kdigo_grid", "Patients per KDIGO G x A cell at baseline."),
             ("transition_matrix", "KDIGO G transitions between sustained stages."),
             ("kfre_summary", "KFRE risk at baseline by group."),
+            (
+                "competing_risks",
+                "Subdistribution (Fine–Gray) and cause-specific hazard ratios side by side.",
+            ),
         )
     ),
 )

@@ -25,6 +25,9 @@ from __future__ import annotations
 from kidneycohort.tables._baseline import (
     baseline_characteristics_table,
 )
+from kidneycohort.tables._competing import (
+    competing_risks_table,
+)
 from kidneycohort.tables._endpoints import (
     endpoint_table,
 )
@@ -50,6 +53,7 @@ from kidneycohort.tables._write import (
 __all__ = [
     "TableRule",
     "baseline_characteristics_table",
+    "competing_risks_table",
     "endpoint_table",
     "kdigo_grid_table",
     "rate_comparison_table",

@@ -350,3 +350,34 @@ def test_no_hidden_count_of_people_can_be_recovered_across_the_run(cohort_run) -
         overall = endpoints.filter((pl.col("endpoint") == name) & (pl.col("group") == "Overall"))
         events = overall["events"][0].split(" (")[0]
         assert f"{events} events among {overall['n_patients'][0]} patients" in html
+
+
+def test_competing_risks_beside_the_cox_models(cohort_run) -> None:
+    # survival.competing_risks in the cohort recipe: every endpoint death competes with is
+    # analysed by Fine-Gray and cause-specific Cox side by side (Austin, Lee & Fine 2016).
+    # The cause-specific hazard ratio of the endpoint is a Cox model with death censoring
+    # follow-up: the cox step's lifelines fit of the same rows (Efron ties) must agree.
+    run = cohort_run[0]
+    hazards = pl.read_parquet(run / "models/competing_hazard_ratios.parquet")
+    endpoints = pl.read_parquet(run / "endpoints.parquet")
+    with_death = set(endpoints.filter(pl.col("competing") == 1)["endpoint"].unique())
+    assert set(hazards["endpoint"].unique()) == with_death
+    assert set(hazards["model"].unique()) == {"subdistribution", "cause_specific"}
+    cox = pl.read_parquet(run / "models/hazard_ratios.parquet").filter(pl.col("subgroup").is_null())
+    own = hazards.filter(
+        (pl.col("model") == "cause_specific") & (pl.col("cause") == pl.col("endpoint"))
+    ).join(cox, on=["endpoint", "term"], suffix="_cox")
+    assert own.height > 0
+    both = own.filter(pl.col("estimable") & pl.col("estimable_cox"))
+    np.testing.assert_allclose(both["hr"], both["hr_cox"], rtol=1e-5)
+    table = pl.read_csv(run / "tables/competing_risks.csv", infer_schema=False)
+    assert {"subdistribution_hr", "cause_specific_hr", "gray_test_p"} <= set(table.columns)
+    assert (
+        table.height
+        == hazards.filter(
+            (pl.col("model") == "subdistribution") & (pl.col("cause") == pl.col("endpoint"))
+        ).height
+    )
+    html = (run / "report.html").read_text(encoding="utf-8")
+    assert "subdistribution (Fine–Gray) and cause-specific hazard ratios" in html
+    assert "Subdistribution hazard ratios come from the Fine–Gray model" in html

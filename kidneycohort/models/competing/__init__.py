@@ -18,6 +18,11 @@ estimated is a row with ``estimable = False`` and a reason, never a number.
 from __future__ import annotations
 
 from kidneycohort.models.competing._analysis import CURVE_COLUMNS, CompetingRisks
+from kidneycohort.models.competing._by_endpoint import (
+    COMPETING_HAZARDS,
+    COMPETING_TESTS,
+    competing_risks_tables,
+)
 from kidneycohort.models.competing._cause_specific import (
     CauseSpecificCox,
     CoxFit,
@@ -38,6 +43,8 @@ from kidneycohort.models.competing._gray_test import (
 from kidneycohort.models.competing._results import HAZARD_COLUMNS
 
 __all__ = [
+    "COMPETING_HAZARDS",
+    "COMPETING_TESTS",
     "CURVE_COLUMNS",
     "HAZARD_COLUMNS",
     "CauseSpecificCox",
@@ -50,6 +57,7 @@ __all__ = [
     "aalen_johansen_by_group",
     "cause_specific_arrays",
     "censoring_survival",
+    "competing_risks_tables",
     "fine_gray_arrays",
     "gray_test",
 ]

@@ -35,12 +35,14 @@ from kidneycohort.models.survival._estimability import (
     estimability_note,
 )
 from kidneycohort.models.survival._rule import (
+    CompetingRisksPart,
     SurvivalRule,
 )
 
 __all__ = [
     "MAX_LOG_HR_SE",
     "NOT_ESTIMABLE_REASONS",
+    "CompetingRisksPart",
     "CoxModel",
     "CumulativeIncidence",
     "KaplanMeier",

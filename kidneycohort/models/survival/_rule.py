@@ -12,6 +12,20 @@ CURVE_COLUMNS = ("group", "years", "estimate", "lower", "upper", "measure")
 AT_RISK_COLUMNS = ("group", "years", "n_at_risk")
 
 
+class CompetingRisksPart(RuleModel):
+    """The competing-risks analyses of a study (config key ``survival.competing_risks``):
+    Fine–Gray and cause-specific hazard ratios side by side, with Gray's test."""
+
+    endpoints: list[str] | None = Field(
+        None,
+        description="Endpoints analysed with competing risks; null: every endpoint with at "
+        "least one competing event (death before the endpoint).",
+    )
+    gray_test_rho: float = Field(
+        0.0, ge=0, description="Weight exponent of Gray's test (0: log-rank type weights)."
+    )
+
+
 class SurvivalRule(RuleModel):
     """Options of the survival analyses of one study (config key ``survival``)."""
 
@@ -43,6 +57,11 @@ class SurvivalRule(RuleModel):
         ge=1,
         description="A group's hazard ratio is reported only when the group and the reference "
         "group each have at least this many events (otherwise 'not estimable').",
+    )
+    competing_risks: CompetingRisksPart | None = Field(
+        None,
+        description="Competing-risks regression beside the Cox models (Fine–Gray and "
+        "cause-specific hazard ratios side by side, Gray's test); null: not run.",
     )
     subgroups: list[str] = Field(
         default_factory=list,

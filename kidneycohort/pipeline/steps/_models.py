@@ -71,6 +71,26 @@ def add_survival(registry: StepRegistry) -> None:
         )
         return {"models/hazard_ratios": table}
 
+    @registry.register(
+        "competing_risks",
+        needs=["endpoints", "cohort"],
+        makes=["models/competing_hazard_ratios", "models/competing_tests"],
+        section="survival",
+        options=SurvivalRule,
+        description="Fine–Gray and cause-specific hazard ratios side by side, with Gray's "
+        "test, for endpoints with death competing (survival.competing_risks).",
+    )
+    def competing_risks_step(ctx: StepContext) -> dict[str, Any]:
+        """Competing-risks regression of the endpoints death competes with."""
+        from kidneycohort.models.competing import competing_risks_tables
+
+        hazards, tests = competing_risks_tables(
+            ctx.tables["endpoints"],
+            ctx.tables["cohort"],
+            ctx.options,  # type: ignore[arg-type]
+        )
+        return {"models/competing_hazard_ratios": hazards, "models/competing_tests": tests}
+
 
 def add_slope_model(registry: StepRegistry) -> None:
     """Step ``slope_model``: the linear mixed model of eGFR by group."""

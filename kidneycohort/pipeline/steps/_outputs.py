@@ -77,6 +77,12 @@ def _shared_tables(ctx: StepContext, disclosure: Any, *, cohort_tables: bool) ->
     out["tables/slope_table"] = tb.slope_table(
         ctx.tables["slope_model_fit"], rule=rule, disclosure=disclosure
     )
+    hazards = ctx.tables.get("models/competing_hazard_ratios")
+    out["tables/competing_risks"] = (
+        tb.competing_risks_table(hazards, ctx.tables.get("models/competing_tests"), rule=rule)
+        if hazards is not None
+        else pl.DataFrame(schema={"endpoint": pl.String, "term": pl.String})
+    )
     if cohort_tables:
         out["tables/kfre_summary"] = _kfre_summary(ctx, survival.group_column, disclosure)
         out["tables/transition_matrix"] = tb.transition_table(
@@ -137,6 +143,7 @@ _COMMON = (
     "models/incidence_rates",
     "tables/slope_table",
     "tables/kdigo_grid",
+    "tables/competing_risks",
 )
 
 
@@ -146,7 +153,12 @@ def add_tables(registry: StepRegistry) -> None:
 
     @registry.register(
         "trial_tables",
-        optional_needs=["baseline_categories", "models/hazard_ratios"],
+        optional_needs=[
+            "baseline_categories",
+            "models/hazard_ratios",
+            "models/competing_hazard_ratios",
+            "models/competing_tests",
+        ],
         needs=["endpoints", "cohort", "baseline", "slope_model_fit"],
         makes=[*_COMMON],
         section="tables",
@@ -160,7 +172,13 @@ def add_tables(registry: StepRegistry) -> None:
 
     @registry.register(
         "cohort_tables",
-        optional_needs=["baseline_categories", "models/hazard_ratios", "kfre"],
+        optional_needs=[
+            "baseline_categories",
+            "models/hazard_ratios",
+            "models/competing_hazard_ratios",
+            "models/competing_tests",
+            "kfre",
+        ],
         needs=["endpoints", "cohort", "baseline", "transitions", "slope_model_fit"],
         makes=[*_COMMON, "tables/transition_matrix", "tables/kfre_summary"],
         section="tables",
