@@ -54,6 +54,19 @@ def _protect(
     return counts.with_columns(pl.Series("_hidden", hidden, dtype=pl.Boolean))
 
 
+def _denominator_hidden(long: pl.DataFrame) -> pl.Expr:
+    """Whether a row's percentage is of a hidden denominator (it would give it away:
+    count / share)."""
+    hidden_of = long.filter(pl.col("_hidden")).select("_column", "_row")
+    return (
+        pl.when(pl.col("_kind") == "of_n")
+        .then(pl.col("_column").is_in(hidden_of.filter(pl.col("_row") == "n")["_column"]))
+        .when(pl.col("_kind") == "of_applicable")
+        .then(pl.col("_column").is_in(hidden_of.filter(pl.col("_row") == "applicable")["_column"]))
+        .otherwise(pl.lit(False))
+    )
+
+
 CountRow = tuple[str, str, str, str, pl.Expr, str | None, str]
 """(row id, characteristic, statistic, level, count expression, block, denominator)."""
 
@@ -214,6 +227,7 @@ def kfre_summary_table(
     pct = (100.0 * pl.col("_count") / denominator).round(spec.decimals)
     pct_text = pl.format(" ({}%)", pct.cast(pl.String))
     small_n = (pl.col("_count") >= 1) & (pl.col("_count") <= thr)
+    denominator_hidden = _denominator_hidden(long)
     text = (
         pl.when(pl.col("_hidden") & small_n)
         .then(pl.lit(small))
@@ -221,7 +235,7 @@ def kfre_summary_table(
         .then(pl.lit("*"))
         .when(pl.col("_kind") == "")
         .then(pl.col("_count").cast(pl.String))
-        .when(denominator.is_null() | (denominator == 0))
+        .when(denominator.is_null() | (denominator == 0) | denominator_hidden)
         .then(pl.col("_count").cast(pl.String))
         .otherwise(pl.concat_str([pl.col("_count").cast(pl.String), pct_text]))
     )
