@@ -251,32 +251,34 @@ def attrition_figure(
     plot = ggplot() + theme_void(base_size=BASE_SIZE)
     if chain.height:
         plot += geom_segment(
-            chain.to_pandas(),
-            aes(x="x0", xend="x1", y="y", yend="y"),
+            data=chain.to_pandas(),
+            mapping=aes(x="x0", xend="x1", y="y", yend="y"),
             arrow=arrow(length=0.08, type="closed"),
         )
     plot += geom_segment(
-        main.to_pandas(),
-        aes(x="x", xend="x", y="y0", yend="y1"),
+        data=main.to_pandas(),
+        mapping=aes(x="x", xend="x", y="y0", yend="y1"),
         arrow=arrow(length=0.08, type="closed"),
     )
     plot += geom_segment(
-        side.to_pandas(),
-        aes(x="x0", xend="x1", y="y", yend="y"),
+        data=side.to_pandas(),
+        mapping=aes(x="x0", xend="x1", y="y", yend="y"),
         arrow=arrow(length=0.08, type="closed"),
     )
     plot += geom_tile(
-        boxes.to_pandas(),
-        aes("x", "y", width="w", height="h", fill="kind"),
+        data=boxes.to_pandas(),
+        mapping=aes("x", "y", width="w", height="h", fill="kind"),
         colour="#333333",
         size=0.5,
     )
     plot += geom_text(
-        boxes.filter(pl.col("kind") != "excluded").to_pandas(), aes("x", "y", label="text"), size=8
+        data=boxes.filter(pl.col("kind") != "excluded").to_pandas(),
+        mapping=aes("x", "y", label="text"),
+        size=8,
     )
     plot += geom_text(
-        ex.with_columns(xl=pl.col("x") - pl.col("w") / 2 + 0.1 / _INCH_PER_X).to_pandas(),
-        aes("xl", "y", label="text"),
+        data=ex.with_columns(xl=pl.col("x") - pl.col("w") / 2 + 0.1 / _INCH_PER_X).to_pandas(),
+        mapping=aes("xl", "y", label="text"),
         size=8,
         ha="left",
     )

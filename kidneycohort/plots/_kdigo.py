@@ -113,7 +113,7 @@ def kdigo_grid_figure(
     g_labels = [f"{g}  ({G_RANGES[g]})" for g in G_CATEGORIES]
     a_labels = [f"{a}\n{A_RANGES[a]}" for a in A_CATEGORIES]
     plot = (
-        ggplot(cells.to_pandas(), aes("a_category", "g_category"))
+        ggplot(data=cells.to_pandas(), mapping=aes("a_category", "g_category"))
         + base_theme()
         + geom_tile(aes(fill="risk"), colour="white", size=1.5)
         + geom_text(aes(label="label"), size=11)
@@ -228,7 +228,7 @@ def transition_heatmap_figure(
     present = set(cells["from_category"].to_list())
     order = [c for c in (*G_CATEGORIES, *A_CATEGORIES) if c in present]
     plot = (
-        ggplot(cells.to_pandas(), aes("to_category", "from_category"))
+        ggplot(data=cells.to_pandas(), mapping=aes("to_category", "from_category"))
         + base_theme()
         + geom_tile(aes(fill="fill"), colour="white", size=1)
         + geom_text(aes(label="label", colour="text_colour"), size=9)

@@ -173,13 +173,15 @@ def survival_figure(
     )
     if band.height:
         plot += geom_ribbon(
-            band.to_pandas(),
-            aes("years", ymin="lower", ymax="upper", fill="group"),
+            data=band.to_pandas(),
+            mapping=aes("years", ymin="lower", ymax="upper", fill="group"),
             alpha=0.2,
         )
     line = steps.filter(pl.col("estimate").is_not_null() & pl.col("estimate").is_not_nan())
     if line.height:
-        plot += geom_line(line.to_pandas(), aes("years", "estimate", colour="group"), size=0.9)
+        plot += geom_line(
+            data=line.to_pandas(), mapping=aes("years", "estimate", colour="group"), size=0.9
+        )
     breaks = [0.0, 0.25, 0.5, 0.75, 1.0]
     labels = [f"{b:.2f}" for b in breaks]
     y_low = -0.02
@@ -197,8 +199,8 @@ def survival_figure(
                 label=small_cell_text(pl.col("n_at_risk"), threshold),
             )
             plot += geom_text(
-                table.to_pandas(),
-                aes("years", "y", label="label", colour="group"),
+                data=table.to_pandas(),
+                mapping=aes("years", "y", label="label", colour="group"),
                 size=7.5,
                 show_legend=False,
             )
@@ -322,7 +324,7 @@ def forest_figure(hazard_ratios: FrameLike) -> ggplot:
     rows = forest_rows(hazard_ratios)
     drawn = rows.filter(pl.col("estimable"))
     order = rows["label"].to_list()[::-1]
-    plot = ggplot(drawn.to_pandas(), aes(y="label")) + base_theme()
+    plot = ggplot(data=drawn.to_pandas(), mapping=aes(y="label")) + base_theme()
     plot += geom_vline(xintercept=1, linetype="dashed", colour="#555555")
     if drawn.height:
         plot += geom_segment(
@@ -333,8 +335,8 @@ def forest_figure(hazard_ratios: FrameLike) -> ggplot:
     if missing.height:
         # placed on the line of no effect so the row keeps its place on the axis
         plot += geom_text(
-            missing.with_columns(x=pl.lit(1.0), text=pl.lit("no estimate")).to_pandas(),
-            aes(x="x", y="label", label="text"),
+            data=missing.with_columns(x=pl.lit(1.0), text=pl.lit("no estimate")).to_pandas(),
+            mapping=aes(x="x", y="label", label="text"),
             size=8,
             colour="#555555",
         )

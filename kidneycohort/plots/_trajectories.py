@@ -210,21 +210,21 @@ def egfr_trajectory_figure(
     plot = ggplot() + base_theme()
     if lines.height:
         plot += geom_line(
-            lines.to_pandas(),
-            aes("years_from_index", "egfr", group="patient_id", colour="group"),
+            data=lines.to_pandas(),
+            mapping=aes("years_from_index", "egfr", group="patient_id", colour="group"),
             alpha=0.18,
             size=0.4,
         )
     if ribbon.height:
         plot += geom_ribbon(
-            ribbon.to_pandas(),
-            aes("years", ymin="lower", ymax="upper", fill="group"),
+            data=ribbon.to_pandas(),
+            mapping=aes("years", ymin="lower", ymax="upper", fill="group"),
             alpha=0.25,
         )
     if shown.height:
         frame = shown.to_pandas()
-        plot += geom_line(frame, aes("years", "mean", colour="group"), size=1.1)
-        plot += geom_point(frame, aes("years", "mean", colour="group"), size=1.6)
+        plot += geom_line(data=frame, mapping=aes("years", "mean", colour="group"), size=1.1)
+        plot += geom_point(data=frame, mapping=aes("years", "mean", colour="group"), size=1.6)
     if not (lines.height or shown.height):
         plot += annotate("text", x=0, y=0, label="No eGFR values to show")
     plot += scale_color_manual(values=colours, name="Group")
@@ -274,7 +274,7 @@ def model_trajectory_figure(
     )
     df = df.filter(pl.col("mean").is_not_null() & pl.col("mean").is_not_nan())
     colours = palette_for(df, palette)
-    plot = ggplot(df.to_pandas(), aes("years", "mean", colour="group")) + base_theme()
+    plot = ggplot(data=df.to_pandas(), mapping=aes("years", "mean", colour="group")) + base_theme()
     if {"lower", "upper"} <= set(df.columns):
         band = df.filter(
             pl.col("lower").is_not_null()
@@ -284,8 +284,8 @@ def model_trajectory_figure(
         )
         if band.height:
             plot += geom_ribbon(
-                band.to_pandas(),
-                aes(ymin="lower", ymax="upper", fill="group"),
+                data=band.to_pandas(),
+                mapping=aes(ymin="lower", ymax="upper", fill="group"),
                 alpha=0.22,
                 colour="none",
             )
@@ -398,7 +398,7 @@ def slope_distribution_figure(
         for row in summary.select("group", "n").to_dicts()
     }
     order = sorted(axis_labels)
-    plot = ggplot(values.to_pandas(), aes("group", "slope_per_year")) + base_theme()
+    plot = ggplot(data=values.to_pandas(), mapping=aes("group", "slope_per_year")) + base_theme()
     # a violin needs a spread; a group of one patient gets its box (a line) only
     spread = (
         values.group_by("group")
@@ -408,7 +408,11 @@ def slope_distribution_figure(
     violins = values.join(spread.select("group"), on="group", how="semi")
     if violins.height:
         plot += geom_violin(
-            violins.to_pandas(), aes(fill="group"), alpha=0.35, colour="none", scale="width"
+            data=violins.to_pandas(),
+            mapping=aes(fill="group"),
+            alpha=0.35,
+            colour="none",
+            scale="width",
         )
     if values.height:
         plot += geom_boxplot(aes(colour="group"), width=0.22, outlier_shape="", fill="white")
