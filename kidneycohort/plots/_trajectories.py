@@ -5,7 +5,6 @@ trajectories, and the distribution of per-patient slopes.
 from __future__ import annotations
 
 import logging
-import math
 from collections.abc import Mapping
 
 import numpy as np
@@ -30,7 +29,7 @@ from plotnine import (
 )
 from scipy import stats
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_count_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.plots._style import (
@@ -238,6 +237,20 @@ def egfr_trajectory_figure(
     return plot
 
 
+def _label_height(df: pl.DataFrame) -> float:
+    """Height of the phase labels: the highest finite upper bound, else the highest mean.
+
+    Upper bounds may be null or NaN throughout (an interval that could not be estimated).
+    """
+    for column in ("upper", "mean"):
+        if column in df.columns:
+            values = df[column].cast(pl.Float64)
+            highest = values.filter(values.is_finite()).max()
+            if highest is not None:
+                return as_float(highest, f"trajectories: highest {column}")
+    return 0.0
+
+
 def model_trajectory_figure(
     trajectories: FrameLike,
     *,
@@ -292,8 +305,7 @@ def model_trajectory_figure(
     plot += geom_line(size=1.1)
     caption = "Model-based mean eGFR with 95% confidence bands."
     if knot_years is not None and df.height:
-        top = float(df["upper"].max() if "upper" in df.columns else df["mean"].max())
-        top = top if math.isfinite(top) else float(df["mean"].max())
+        top = _label_height(df)
         plot += geom_vline(xintercept=knot_years, linetype="dashed", colour="#555555")
         plot += annotate("text", x=knot_years / 2, y=top, label="acute", size=8, va="bottom")
         right = float(df["years"].max())
