@@ -196,7 +196,7 @@ def baseline_categories(
         equation=pl.lit(equation, dtype=pl.String),
         risk=kdigo_risk_expr("g_category", "a_category"),
     )
-    return out.select(list(BASELINE_CATEGORIES)).cast(BASELINE_CATEGORIES)
+    return out.select(list(BASELINE_CATEGORIES)).cast(pl.Schema(BASELINE_CATEGORIES))
 
 
 def kdigo_grid_counts(categories: FrameLike) -> pl.DataFrame:

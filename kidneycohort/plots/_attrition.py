@@ -23,7 +23,7 @@ from plotnine import (
     theme_void,
 )
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.plots._style import (
@@ -286,10 +286,10 @@ def attrition_figure(
         values={"read": "#FFFFFF", "used": "#E8F1F8", "excluded": "#FFF6E0", "patients": "#EAF6F1"},
         guide=None,
     )
-    x_lo = float((boxes["x"] - boxes["w"] / 2).min()) - 0.05
-    x_hi = float((boxes["x"] + boxes["w"] / 2).max()) + 0.05
-    y_lo = float((boxes["y"] - boxes["h"] / 2).min()) - 0.05
-    y_hi = float((boxes["y"] + boxes["h"] / 2).max()) + 0.05
+    x_lo = as_float((boxes["x"] - boxes["w"] / 2).min(), "attrition: left edge") - 0.05
+    x_hi = as_float((boxes["x"] + boxes["w"] / 2).max(), "attrition: right edge") + 0.05
+    y_lo = as_float((boxes["y"] - boxes["h"] / 2).min(), "attrition: bottom edge") - 0.05
+    y_hi = as_float((boxes["y"] + boxes["h"] / 2).max(), "attrition: top edge") + 0.05
     plot += scale_x_continuous(limits=(x_lo, x_hi), expand=(0, 0))
     plot += scale_y_continuous(limits=(y_lo, y_hi), expand=(0, 0))
     plot += theme(

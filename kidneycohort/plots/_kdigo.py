@@ -21,7 +21,7 @@ from plotnine import (
     theme,
 )
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
@@ -219,7 +219,7 @@ def transition_heatmap_figure(
     """
     threshold = check_threshold(small_cell_threshold)
     cells = transition_cells(transition_counts, small_cell_threshold=threshold)
-    top = float(cells["fill"].max() or 0.0)
+    top = as_float(cells["fill"].max() or 0.0, "transitions: largest fill")
     cells = cells.with_columns(
         text_colour=pl.when(pl.col("fill").fill_null(0) > 0.6 * top)
         .then(pl.lit("white"))

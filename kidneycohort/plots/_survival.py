@@ -29,7 +29,7 @@ from plotnine import (
     theme,
 )
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.labels import display_label
@@ -206,7 +206,7 @@ def survival_figure(
             )
             plot += annotate(
                 "text",
-                x=float(table["years"].min()),
+                x=as_float(table["years"].min(), "at_risk: first years"),
                 y=-0.06,
                 label="Number at risk",
                 size=7.5,

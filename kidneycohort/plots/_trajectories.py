@@ -308,7 +308,7 @@ def model_trajectory_figure(
         top = _label_height(df)
         plot += geom_vline(xintercept=knot_years, linetype="dashed", colour="#555555")
         plot += annotate("text", x=knot_years / 2, y=top, label="acute", size=8, va="bottom")
-        right = float(df["years"].max())
+        right = as_float(df["years"].max(), "trajectories: last years")
         plot += annotate(
             "text", x=(knot_years + right) / 2, y=top, label="chronic", size=8, va="bottom"
         )

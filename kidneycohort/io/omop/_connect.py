@@ -16,7 +16,7 @@ import logging
 import os
 import re
 import urllib.parse
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from types import TracebackType
 from typing import Any, Final
 
@@ -228,7 +228,9 @@ class OmopConnection:
             cur.close()
 
     # ---- catalogue ----------------------------------------------------------------
-    def require_tables(self, schema: str, tables: dict[str, tuple[str, ...]], setting: str) -> None:
+    def require_tables(
+        self, schema: str, tables: Mapping[str, tuple[str, ...]], setting: str
+    ) -> None:
         """Check that ``schema`` has each table with its columns; one line names the first
         missing schema, table or column and the config setting to change."""
         rows = self.frame(

@@ -34,7 +34,7 @@ IDENTIFIER: Final = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 
 # LOINC codes read by default, per analyte (a subset of kidneycohort.io.loinc; each code
 # must be in the database's CONCEPT table, else the read stops naming it).
-DEFAULT_LAB_CODES: Final[dict[str, list[str]]] = {
+DEFAULT_LAB_CODES: Final[dict[Literal["creatinine", "cystatin_c", "uacr"], list[str]]] = {
     "creatinine": ["2160-0", "14682-9"],
     "cystatin_c": ["33863-2"],
     "uacr": ["9318-7", "14959-1"],
