@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Callable
+from functools import partial
 from typing import Any, TypeVar
 
 import polars as pl
@@ -44,6 +45,12 @@ def evaluable_rows(endpoints: FrameLike) -> pl.DataFrame:
     endpoint table but carry no follow-up time for an estimator.
     """
     return to_polars(endpoints, "endpoints").filter(pl.col("event").is_not_null())
+
+
+def _cox_fit(
+    rule: SurvivalRule, rows: pl.DataFrame, patients: pl.DataFrame, endpoint: str
+) -> CoxModel:
+    return CoxModel(rule, endpoint=endpoint).fit(rows, patients)
 
 
 def _fit_each_endpoint(
@@ -195,9 +202,7 @@ def hazard_ratio_table(
             level_rows = rows.join(members.select("patient_id"), on="patient_id", how="semi")
             level_fits = _fit_each_endpoint(
                 level_rows,
-                lambda name, r=level_rows, m=members, w=within: CoxModel(w, endpoint=name).fit(
-                    r, m
-                ),
+                partial(_cox_fit, within, level_rows, members),
                 f"Cox model in subgroup {column}={level}",
             )
             parts.extend(_hazard_rows(name, fit, f"{column}={level}") for name, fit in level_fits)

@@ -25,7 +25,7 @@ def _prepare(
     patients: FrameLike | None,
     *,
     endpoint: str | None,
-    group_column: str,
+    group_column: str | None,
     extra_columns: Sequence[str] = (),
 ) -> tuple[pl.DataFrame, pl.DataFrame, str]:
     """One endpoint's rows with ``group`` (and ``extra_columns`` from patients), complete
