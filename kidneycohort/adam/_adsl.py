@@ -149,7 +149,7 @@ def adsl_dataset(
         frame = frame.join(dates, on="patient_id", how="left")
         kfrt = pl.coalesce("kidney_failure_date", kfrt)
     has_albuminuria = albuminuria_categories is not None
-    if has_albuminuria:
+    if albuminuria_categories is not None:
         categories = to_polars(albuminuria_categories, "albuminuria_categories").select(
             pl.col("patient_id").cast(pl.String), pl.col("a_category").alias("ACATBL")
         )

@@ -357,7 +357,7 @@ def prepare(
         raise InputDataError(
             f"{spec.id}: inputs have different lengths {shapes}; pass arrays of one length (or scalars)"
         ) from None
-    arrays = dict(zip(names, broadcast[: len(names)], strict=True))
+    arrays: dict[str, Any] = dict(zip(names, broadcast[: len(names)], strict=True))
     masks = dict(zip(masks, broadcast[len(names) :], strict=True))
     shape = broadcast[0].shape if broadcast else ()
     out_masks = _value_masks(spec, arrays, shape)

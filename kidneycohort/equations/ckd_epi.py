@@ -119,12 +119,19 @@ def _two_slope(log_ratio: FloatArray, below: Any, above: Any) -> FloatArray:
     return log_ratio * np.where(log_ratio < 0, below, above)
 
 
+def _alpha(c: CkdEpiCoefficients, female: BoolArray) -> FloatArray:
+    """The creatinine exponent below the knot, by sex."""
+    if c.alpha_female is None or c.alpha_male is None:
+        raise TypeError("a CKD-EPI coefficient set without creatinine exponents")
+    return np.where(female, c.alpha_female, c.alpha_male)
+
+
 def _creatinine_term(
     c: CkdEpiCoefficients, creatinine_mg_dl: FloatArray, female: BoolArray
 ) -> FloatArray:
     kappa = np.where(female, KAPPA_FEMALE, KAPPA_MALE)
     log_ratio = np.log(creatinine_mg_dl / kappa)
-    return _two_slope(log_ratio, np.where(female, c.alpha_female, c.alpha_male), c.creatinine_above)
+    return _two_slope(log_ratio, _alpha(c, female), c.creatinine_above)
 
 
 def _cystatin_term(c: CkdEpiCoefficients, cystatin_c_mg_l: FloatArray) -> FloatArray:
@@ -146,7 +153,7 @@ def _demographic_terms(
 
 def _creatinine_shape(c: CkdEpiCoefficients, female: BoolArray) -> tuple[Any, Any, Any]:
     kappa = np.where(female, KAPPA_FEMALE, KAPPA_MALE)
-    return kappa, np.where(female, c.alpha_female, c.alpha_male), c.creatinine_above
+    return kappa, _alpha(c, female), c.creatinine_above
 
 
 # ---------------------------------------------------------------- creatinine 2021 (race-free)

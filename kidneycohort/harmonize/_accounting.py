@@ -35,7 +35,7 @@ logger = logging.getLogger(__name__)
 def _account(
     table: str, n_read: int, n_used: int, rejected: pl.DataFrame, merged: pl.DataFrame
 ) -> tuple[dict[str, Any], pl.DataFrame]:
-    row = {
+    row: dict[str, Any] = {
         "table": table,
         "rows_read": n_read,
         "rows_used": n_used,

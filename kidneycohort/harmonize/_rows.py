@@ -17,11 +17,9 @@ def _lazy(data: Any, name: str) -> pl.LazyFrame:
         return data
     if isinstance(data, pl.DataFrame):
         return data.lazy()
-    try:
-        import pandas as pd
-    except ImportError:  # pragma: no cover - pandas is a dependency
-        pd = None
-    if pd is not None and isinstance(data, pd.DataFrame):
+    import pandas as pd
+
+    if isinstance(data, pd.DataFrame):
         return pl.from_pandas(data).lazy()
     raise InputDataError(
         f"{name}: expected a polars or pandas DataFrame, got {type(data).__name__}"

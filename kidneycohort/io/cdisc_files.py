@@ -36,9 +36,13 @@ _CHUNK: Final = 20_000
 class VariableLike(Protocol):
     """What the writers need to know of a variable."""
 
-    name: str
-    label: str
-    kind: str  # "text", "integer", "float" or "date"
+    @property
+    def name(self) -> str: ...
+    @property
+    def label(self) -> str: ...
+    @property
+    def kind(self) -> str:  # "text", "integer", "float" or "date"
+        ...
 
 
 def write_xpt(

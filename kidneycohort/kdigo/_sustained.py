@@ -10,7 +10,7 @@ import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform
+from kidneycohort._frames import FrameLike, as_int, conform
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import InputDataError
 from kidneycohort.kdigo._categories import (
@@ -260,8 +260,8 @@ def _confirm(
     # the first candidate at or after the target time of the same sequence: with the
     # sequence and the time packed into one sorted integer the as-of join needs no
     # grouping, and a match in a later sequence is discarded below
-    span = _bits(int(df["_t"].max() or 0) + after + 1)
-    if _bits(int(df["_gid"].max() or 0)) + span <= _PACKED_KEY_BITS:
+    span = _bits(as_int(df["_t"].max() or 0, "last sample time") + after + 1)
+    if _bits(as_int(df["_gid"].max() or 0, "last sequence number")) + span <= _PACKED_KEY_BITS:
         scale = 1 << span
         joined = left.with_columns(
             _key=(pl.col("_gid") * scale + pl.col("_target")).set_sorted()

@@ -147,7 +147,7 @@ class _RunState:
             run_id=self.run_id,
             config=config.resolved(),
             overrides=list(config.overrides),
-            inputs=self.inputs,  # type: ignore[arg-type]
+            inputs=self.inputs,
             packages=package_versions(),
             seed=config.study.seed,
             accounting=[AccountingRecord.model_validate(a) for a in self.accounting],
