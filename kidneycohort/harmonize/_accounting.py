@@ -10,7 +10,7 @@ from typing import Any, Final
 import polars as pl
 
 from kidneycohort import schemas
-from kidneycohort._frames import conform
+from kidneycohort._frames import FrameLike, conform
 from kidneycohort.errors import AccountingError
 from kidneycohort.harmonize._events import _clean_events
 from kidneycohort.harmonize._labs import (
@@ -71,9 +71,9 @@ _REJECTED_EMPTY: Final = pl.DataFrame(schema=schemas.REJECTED)
 
 
 def harmonize_tables(
-    labs: Any,
-    patients: Any,
-    events: Any | None = None,
+    labs: FrameLike,
+    patients: FrameLike,
+    events: FrameLike | None = None,
     rule: HarmonizeRule | None = None,
     **rule_fields: Any,
 ) -> HarmonizeResult:
