@@ -45,6 +45,15 @@ from kidneycohort.ages import age_on_expr
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.vocabulary import sex_expr, unknown_sex_error
 
+__all__ = [
+    "EGFR_REASON_CODES",
+    "AgeBand",
+    "EgfrRule",
+    "compute_egfr",
+    "egfr_wide",
+    "resolve_egfr_rule",
+]
+
 logger = logging.getLogger(__name__)
 
 EGFR_REASON_CODES: Final[dict[str, str]] = {

@@ -50,6 +50,18 @@ from kidneycohort._rules import RuleModel
 from kidneycohort._rules import rule_error_message as rule_error_message
 from kidneycohort.errors import InputDataError, did_you_mean
 
+__all__ = [
+    "AKI_CRITERIA",
+    "EGFR_REQUIRED",
+    "KNOWN_SETTINGS",
+    "ValueFilterRule",
+    "apply_value_filter",
+    "egfr_keys",
+    "flag_aki",
+    "sample_time_expr",
+    "usable_egfr",
+]
+
 logger = logging.getLogger(__name__)
 
 AKI_CRITERIA: Final = ("rise_0.3_mg_dl_48h", "ratio_1.5_7d")

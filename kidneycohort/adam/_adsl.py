@@ -30,6 +30,8 @@ from kidneycohort.adam._subjects import subject_facts
 from kidneycohort.ages import age_at_index_expr
 from kidneycohort.kdigo import gfr_category_expr
 
+__all__ = ["adsl_dataset"]
+
 
 def _sponsor(name: str, label: str, kind: str, derivation: str) -> Variable:
     return Variable(name, label, kind, "Derived", derivation)  # type: ignore[arg-type]

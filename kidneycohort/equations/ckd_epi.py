@@ -40,6 +40,30 @@ from kidneycohort.equations._core import (
     call_formula,
 )
 
+__all__ = [
+    "CKD_EPI_2009_CR",
+    "CKD_EPI_2012_CRCYS",
+    "CKD_EPI_2012_CYS",
+    "CKD_EPI_2021_CR",
+    "CKD_EPI_2021_CRCYS",
+    "CRCYS_2012",
+    "CRCYS_2021",
+    "CR_2009",
+    "CR_2021",
+    "CYSTATIN_KNOT",
+    "CYS_2012",
+    "INDEXED",
+    "KAPPA_FEMALE",
+    "KAPPA_MALE",
+    "SPECS",
+    "CkdEpiCoefficients",
+    "ckd_epi_2009_cr",
+    "ckd_epi_2012_crcys",
+    "ckd_epi_2012_cys",
+    "ckd_epi_2021_cr",
+    "ckd_epi_2021_crcys",
+]
+
 INDEXED = "mL/min/1.73 m2"
 KAPPA_FEMALE: Final = 0.7  # creatinine knot, mg/dL
 KAPPA_MALE: Final = 0.9

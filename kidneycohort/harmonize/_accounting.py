@@ -29,6 +29,8 @@ from kidneycohort.harmonize._rows import (
 )
 from kidneycohort.harmonize._rule import REASON_CODES, HarmonizeResult, HarmonizeRule, resolve_rules
 
+__all__ = ["harmonize_tables"]
+
 logger = logging.getLogger(__name__)
 
 

@@ -11,6 +11,20 @@ import polars as pl
 
 from kidneycohort.errors import InputDataError
 
+__all__ = [
+    "Check",
+    "_assumption_counts",
+    "_cascade",
+    "_date_text",
+    "_exact_duplicates",
+    "_in_source_order",
+    "_lazy",
+    "_merged_rows",
+    "_rejected_rows",
+    "_text",
+    "_with_row_identity",
+]
+
 
 def _lazy(data: Any, name: str) -> pl.LazyFrame:
     if isinstance(data, pl.LazyFrame):

@@ -21,6 +21,14 @@ from kidneycohort.kdigo._categories import (
 )
 from kidneycohort.schemas import BASELINE_CATEGORIES
 
+__all__ = [
+    "BASELINE_CATEGORIES",
+    "BASELINE_CATEGORY_REASONS",
+    "KdigoGridRule",
+    "baseline_categories",
+    "kdigo_grid_counts",
+]
+
 
 class KdigoGridRule(RuleModel):
     """The KDIGO grid at baseline (config key ``kdigo_grid``).

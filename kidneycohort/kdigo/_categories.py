@@ -16,6 +16,24 @@ from kidneycohort.units import normalize_unit
 if TYPE_CHECKING:
     from polars.expr.whenthen import ChainedThen, Then
 
+__all__ = [
+    "A_CATEGORIES",
+    "A_UPPER_BOUNDS",
+    "G_CATEGORIES",
+    "G_LOWER_BOUNDS",
+    "RISK_GRID",
+    "RISK_LEVELS",
+    "_RANK",
+    "_code",
+    "_reported_in_mmol",
+    "albuminuria_category",
+    "albuminuria_category_expr",
+    "gfr_category",
+    "gfr_category_expr",
+    "kdigo_risk_expr",
+    "risk_grid",
+]
+
 G_CATEGORIES: Final = ("G1", "G2", "G3a", "G3b", "G4", "G5")
 
 

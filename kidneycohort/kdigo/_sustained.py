@@ -24,6 +24,17 @@ from kidneycohort.uacr import uacr_timeline
 from kidneycohort.units import UACR_MG_G_PER_MG_MMOL
 from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, usable_egfr
 
+__all__ = [
+    "STAGES",
+    "_KEYS",
+    "SustainRule",
+    "_confirm",
+    "_gfr_results",
+    "_results",
+    "category_results",
+    "sustained_stages",
+]
+
 _KEYS: Final = ["patient_id", "_eq", "axis"]
 
 

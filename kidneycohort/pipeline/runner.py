@@ -43,6 +43,8 @@ from kidneycohort.run_folder import (
 )
 from kidneycohort.run_folder._manifest import own_version, utc_now_text
 
+__all__ = ["GROUPED_FILES", "ProgressObserver", "RunResult", "run_files", "run_pipeline"]
+
 logger = logging.getLogger("kidneycohort.pipeline")
 
 _LOG_FORMAT = "%(asctime)s %(levelname)s %(name)s: %(message)s"

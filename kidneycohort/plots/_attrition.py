@@ -31,6 +31,8 @@ from kidneycohort.plots._style import (
     check_threshold,
 )
 
+__all__ = ["attrition_boxes", "attrition_figure"]
+
 
 def attrition_boxes(
     accounting: Sequence[Mapping[str, Any]] | FrameLike,

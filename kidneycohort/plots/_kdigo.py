@@ -38,6 +38,8 @@ from kidneycohort.plots._style import (
     check_threshold,
 )
 
+__all__ = ["kdigo_grid_cells", "kdigo_grid_figure", "transition_cells", "transition_heatmap_figure"]
+
 
 def kdigo_grid_cells(
     grid: FrameLike, *, small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD

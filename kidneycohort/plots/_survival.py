@@ -42,6 +42,8 @@ from kidneycohort.plots._style import (
     pick,
 )
 
+__all__ = ["forest_figure", "forest_rows", "survival_figure", "survival_steps"]
+
 _MEASURE_LABEL: Final = {
     "survival": "Event-free probability (Kaplan–Meier)",
     "cumulative_incidence": "Cumulative incidence (Aalen–Johansen)",

@@ -45,6 +45,14 @@ from kidneycohort.plots._style import (
     wrap,
 )
 
+__all__ = [
+    "egfr_time_bins",
+    "egfr_trajectory_figure",
+    "model_trajectory_figure",
+    "slope_distribution",
+    "slope_distribution_figure",
+]
+
 logger = logging.getLogger(__name__)
 
 

@@ -24,6 +24,8 @@ from kidneycohort.plots._trajectories import (
 )
 from kidneycohort.run_folder import RunFolder
 
+__all__ = ["FIGURE_TITLES", "FigureRule", "write_figures"]
+
 logger = logging.getLogger(__name__)
 
 

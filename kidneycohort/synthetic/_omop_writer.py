@@ -38,6 +38,8 @@ from kidneycohort.io.omop._ddl import CDM_TABLES, create_table_sql, index_sql
 from kidneycohort.io.omop._spec import DEFAULT_EVENTS
 from kidneycohort.synthetic.cohort import SyntheticCohort
 
+__all__ = ["write_omop"]
+
 logger = logging.getLogger(__name__)
 
 SCHEMA: Final = "cdm"

@@ -32,6 +32,8 @@ from kidneycohort.errors import UnknownUnitError
 from kidneycohort.io.cdisc_files import write_dataset_json, write_xpt
 from kidneycohort.synthetic.cohort import SyntheticCohort
 
+__all__ = ["write_sdtm"]
+
 logger = logging.getLogger(__name__)
 
 TEST_CODES: Final = {"creatinine": "CREAT", "cystatin_c": "CYSTC", "uacr": "ALBCREAT"}

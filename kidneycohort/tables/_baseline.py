@@ -22,6 +22,8 @@ from kidneycohort.tables._format import (
 )
 from kidneycohort.tables._kdigo import _one_row_per_patient
 
+__all__ = ["baseline_characteristics_table"]
+
 OVERALL = "Overall"
 
 Characteristic = tuple[str, pl.DataFrame, str]

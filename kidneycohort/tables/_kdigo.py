@@ -11,6 +11,8 @@ from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
 from kidneycohort.tables._format import _MISSING_LEVEL, TableRule, _count_text, _is_small
 
+__all__ = ["_one_row_per_patient", "kdigo_grid_table", "transition_table"]
+
 
 def _one_row_per_patient(categories: pl.DataFrame, equation: str | None) -> pl.DataFrame:
     require_columns(categories, ("patient_id",), "categories")

@@ -26,6 +26,8 @@ from kidneycohort.tables._format import (
     suppression_label,
 )
 
+__all__ = ["endpoint_table", "rate_comparison_table", "slope_table"]
+
 logger = logging.getLogger(__name__)
 
 

@@ -26,6 +26,8 @@ import pyarrow as pa
 from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
 from kidneycohort.io.omop._spec import IDENTIFIER, OmopSource
 
+__all__ = ["OmopConnection", "_secrets_of", "quote_identifier", "quote_literal", "scrub"]
+
 logger = logging.getLogger(__name__)
 
 # Bytes per row assumed when turning the rows-per-batch option into the PostgreSQL

@@ -43,6 +43,8 @@ from kidneycohort.io.omop._vocabulary import (
     resolve_vocabulary,
 )
 
+__all__ = ["OmopTables", "_check_catalogue", "read_omop"]
+
 logger = logging.getLogger(__name__)
 
 

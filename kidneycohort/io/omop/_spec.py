@@ -29,6 +29,17 @@ from pydantic import Field, field_validator, model_validator
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConfigError
 
+__all__ = [
+    "DEFAULT_EVENTS",
+    "IDENTIFIER",
+    "OPERATOR_QUALIFIERS",
+    "CodeSet",
+    "CohortGroups",
+    "EventConcepts",
+    "OmopSource",
+    "check_source",
+]
+
 # Identifiers we accept from a config (schema, table names): a plain SQL identifier.
 IDENTIFIER: Final = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 

@@ -26,6 +26,8 @@ from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.io.omop._connect import OmopConnection, quote_identifier, quote_literal
 from kidneycohort.io.omop._spec import OPERATOR_QUALIFIERS, OmopSource
 
+__all__ = ["UCUM", "Vocabulary", "check_unit_codes", "resolve_vocabulary"]
+
 logger = logging.getLogger(__name__)
 
 LOINC, UCUM, GENDER, VISIT, OPERATOR = "LOINC", "UCUM", "Gender", "Visit", "Meas Value Operator"

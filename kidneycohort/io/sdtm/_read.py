@@ -37,6 +37,8 @@ from kidneycohort.io.readers import AS_READ_SUFFIX
 from kidneycohort.io.sdtm._dates import read_dtc
 from kidneycohort.io.sdtm._spec import SdtmSource
 
+__all__ = ["SdtmTables", "read_domain", "read_sdtm"]
+
 logger = logging.getLogger(__name__)
 
 _SEX: dict[str, str] = {"F": "female", "M": "male"}

@@ -18,6 +18,8 @@ from pydantic import Field, model_validator
 
 from kidneycohort._rules import RuleModel
 
+__all__ = ["DEFAULT_TEST_CODES", "SdtmSource"]
+
 DEFAULT_TEST_CODES: Final[dict[str, Literal["creatinine", "cystatin_c", "uacr"]]] = {
     "CREAT": "creatinine",
     "CYSTC": "cystatin_c",

@@ -18,6 +18,8 @@ from kidneycohort.models._design import capture_warnings, encode_covariates
 from kidneycohort.models.survival._data import _prepare, _warn_all
 from kidneycohort.models.survival._rule import SurvivalRule
 
+__all__ = ["CoxModel"]
+
 logger = logging.getLogger(__name__)
 
 

@@ -17,6 +17,8 @@ from kidneycohort.errors import InputDataError, StatisticalWarning, did_you_mean
 from kidneycohort.models._design import split_complete_cases, with_group
 from kidneycohort.models.survival._rule import AT_RISK_COLUMNS
 
+__all__ = ["_curve_frame", "_estimates_at", "_finite", "_prepare", "_warn_all", "numbers_at_risk"]
+
 logger = logging.getLogger(__name__)
 
 
