@@ -25,7 +25,7 @@ import polars as pl
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, require_columns, to_polars
-from kidneycohort.adam._metadata import AdamDataset, Variable, make_dataset, standard
+from kidneycohort.adam._metadata import AdamDataset, Kind, Variable, make_dataset, standard
 from kidneycohort.adam._subjects import subject_facts
 from kidneycohort.ages import age_at_index_expr
 from kidneycohort.kdigo import gfr_category_expr
@@ -33,8 +33,8 @@ from kidneycohort.kdigo import gfr_category_expr
 __all__ = ["adsl_dataset"]
 
 
-def _sponsor(name: str, label: str, kind: str, derivation: str) -> Variable:
-    return Variable(name, label, kind, "Derived", derivation)  # type: ignore[arg-type]
+def _sponsor(name: str, label: str, kind: Kind, derivation: str) -> Variable:
+    return Variable(name, label, kind, "Derived", derivation)
 
 
 def _variables(saffl_rule: str, has_site: bool, has_albuminuria: bool) -> list[Variable]:

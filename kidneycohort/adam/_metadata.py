@@ -35,6 +35,7 @@ from kidneycohort.errors import InputDataError
 __all__ = [
     "ADAM_IG_LABELS",
     "AdamDataset",
+    "Kind",
     "Variable",
     "check_dataset",
     "make_dataset",

@@ -7,6 +7,7 @@ from __future__ import annotations
 import logging
 import warnings
 from collections.abc import Sequence
+from typing import SupportsFloat
 
 import numpy as np
 import pandas as pd
@@ -158,8 +159,8 @@ def _curve_frame(
     )
 
 
-def _finite(value: object) -> float | None:
-    number = float(value)  # type: ignore[arg-type]
+def _finite(value: SupportsFloat) -> float | None:
+    number = float(value)
     return number if np.isfinite(number) else None
 
 
