@@ -40,6 +40,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort import baseline as baseline
     from kidneycohort import cautions as cautions
     from kidneycohort import cli as cli
+    from kidneycohort import data_contract as data_contract
     from kidneycohort import disclosure as disclosure
     from kidneycohort import egfr as egfr
     from kidneycohort import endpoints as endpoints
@@ -513,6 +514,7 @@ _SUBMODULES = (
     "baseline",
     "cautions",
     "cli",
+    "data_contract",
     "disclosure",
     "value_filter",
     "egfr",

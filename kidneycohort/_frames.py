@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
-from typing import TYPE_CHECKING, TypeAlias
+import functools
+from collections.abc import Callable, Iterable, Mapping
+from typing import TYPE_CHECKING, Any, TypeAlias, TypeVar, cast
 
 import polars as pl
 
@@ -12,7 +13,15 @@ from kidneycohort.errors import InputDataError, did_you_mean
 if TYPE_CHECKING:  # pandas is imported only when a pandas table arrives
     import pandas as pd
 
-__all__ = ["FrameLike", "as_float", "as_int", "conform", "require_columns", "to_polars"]
+__all__ = [
+    "FrameLike",
+    "as_float",
+    "as_int",
+    "conform",
+    "follows_input",
+    "require_columns",
+    "to_polars",
+]
 
 FrameLike: TypeAlias = "pl.DataFrame | pl.LazyFrame | pd.DataFrame"
 
@@ -87,3 +96,36 @@ def _cast_column(df: pl.DataFrame, column: str, dtype: pl.DataType) -> pl.Expr:
         if isinstance(dtype, pl.Datetime):
             return expr.str.to_datetime(time_unit=dtype.time_unit, strict=True)
     return expr.cast(dtype)
+
+
+F = TypeVar("F", bound=Callable[..., Any])
+
+
+def _is_pandas_frame(value: object) -> bool:
+    """A pandas DataFrame, told without importing pandas."""
+    return type(value).__name__ == "DataFrame" and type(value).__module__.startswith("pandas")
+
+
+def _as_pandas(result: Any) -> Any:
+    if isinstance(result, pl.DataFrame):
+        return result.to_pandas()
+    if isinstance(result, tuple):
+        return tuple(_as_pandas(part) for part in result)
+    return result
+
+
+def follows_input(func: F) -> F:
+    """Tables in, the same kind of tables out: a function given a pandas DataFrame (as
+    any argument) returns pandas DataFrames; given polars, polars.
+
+    The work is done in polars either way; the conversion happens once, at the return.
+    """
+
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        result = func(*args, **kwargs)
+        if any(_is_pandas_frame(a) for a in (*args, *kwargs.values())):
+            return _as_pandas(result)
+        return result
+
+    return cast(F, wrapper)

@@ -2,7 +2,7 @@
 
 A rule a study can choose (a value filter, a baseline rule, an endpoint definition, table
 options...) is a pydantic model that the stage function takes and that the YAML config
-fills under the same keys (DESIGN.md, "one vocabulary"). Built in Python with a bad
+fills under the same keys (DEVELOPERS.md, "one vocabulary"). Built in Python with a bad
 value, a :class:`RuleModel` raises :class:`~kidneycohort.errors.ConfigError` with one
 line naming the field, the value got and, for a misspelt key, the closest field name,
 instead of pydantic's multi-line report.

@@ -31,7 +31,7 @@ import polars as pl
 from pydantic import Field, model_validator
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform, to_polars
+from kidneycohort._frames import FrameLike, conform, follows_input, to_polars
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConfigError
 from kidneycohort.schemas import UACR_BASELINE
@@ -165,6 +165,7 @@ def _baseline_core(
     )
 
 
+@follows_input
 def egfr_baseline(
     egfr: FrameLike,
     rule: BaselineRule | None = None,
@@ -220,6 +221,7 @@ def egfr_baseline(
     return conform(out, schemas.BASELINE)
 
 
+@follows_input
 def uacr_baseline(
     labs: FrameLike,
     patients: FrameLike | None = None,

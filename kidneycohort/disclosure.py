@@ -16,9 +16,9 @@ count). Primary suppression hides every count from 1 to the threshold (zero stay
 empty cell discloses nobody). Complementary suppression then hides further counts until
 no hidden count can be computed from the visible ones by any combination of the known
 relations (a linear-algebra differencing attack, :meth:`CountLedger.recoverable`), the
-smallest visible count of a relation first. The result is a fixed point over every margin
-of the ledger; when only a printed total can break a disclosure, the total is hidden too
-and a :class:`~kidneycohort.errors.DisclosureWarning` says so.
+smallest visible count of a relation first (a total is hidden like any other count when
+that protects best). The result is a fixed point over every margin of the ledger; where no
+fixed point is reached a :class:`~kidneycohort.errors.DisclosureWarning` says so.
 
 References
 ----------
@@ -29,13 +29,15 @@ References
 
 from __future__ import annotations
 
+import itertools
 import warnings
-from collections.abc import Hashable, Iterable, Mapping
+from collections.abc import Callable, Hashable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Final
 
 import numpy as np
 import polars as pl
+from scipy.optimize import linprog
 
 from kidneycohort.errors import DisclosureWarning
 
@@ -43,6 +45,9 @@ __all__ = [
     "DEFAULT_SMALL_CELL_THRESHOLD",
     "HIDDEN",
     "CountLedger",
+    "SharedDisclosure",
+    "protect_part",
+    "protected_flow",
     "protected_texts",
     "small_cell_text",
     "small_count_text",
@@ -56,6 +61,7 @@ HIDDEN: Final = "*"
 """Text of a count hidden to protect another (complementary suppression)."""
 
 _TOLERANCE: Final = 1e-9
+_SHORTLIST: Final = 4  # candidates tried per step of complementary suppression
 
 
 def suppression_label(threshold: int = DEFAULT_SMALL_CELL_THRESHOLD) -> str:
@@ -116,13 +122,28 @@ class CountLedger:
     threshold: int = DEFAULT_SMALL_CELL_THRESHOLD
     counts: dict[Hashable, int] = field(default_factory=dict)
     relations: list[tuple[tuple[Hashable, ...], Hashable]] = field(default_factory=list)
+    unprinted: set[Hashable] = field(default_factory=set)
+    fixed: set[Hashable] = field(default_factory=set)
+    _cache: dict[object, list[Hashable]] = field(
+        default_factory=dict, init=False, repr=False, compare=False
+    )
 
-    def add(self, key: Hashable, count: int) -> None:
-        """Enter a printed count; the same key entered twice must carry the same count."""
+    def add(self, key: Hashable, count: int, *, printed: bool = True, fixed: bool = False) -> None:
+        """Enter a count; the same key entered twice must carry the same count.
+
+        ``printed=False`` enters a count the output does not print but a reader can
+        derive (the patients left out between two steps of a flow): it needs protection
+        only when it is small. ``fixed=True`` enters a count printed by another output
+        that this one cannot hide (it is never chosen for complementary suppression).
+        """
         count = int(count)
         if key in self.counts and self.counts[key] != count:
             raise ValueError(f"ledger: {key!r} entered as {self.counts[key]} and as {count}")
         self.counts[key] = count
+        if not printed:
+            self.unprinted.add(key)
+        if fixed:
+            self.fixed.add(key)
 
     def relate(self, members: Iterable[Hashable], total: Hashable) -> None:
         """A reader knows that the ``members`` add up to ``total`` (all entered counts)."""
@@ -137,13 +158,14 @@ class CountLedger:
         self.relate([first], second)
 
     # ---- the attack ------------------------------------------------------------------
-    def _system(self, hidden: set[Hashable]) -> tuple[list[Hashable], np.ndarray, np.ndarray]:
-        """Relations restricted to the hidden counts: ``A x = b`` with ``b`` from the
+    def _system(
+        self, unknown: list[Hashable], relations: Iterable[tuple[tuple[Hashable, ...], Hashable]]
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Relations restricted to the ``unknown`` counts: ``A x = b`` with ``b`` from the
         visible counts (the reader's knowledge)."""
-        unknown = sorted(hidden, key=repr)
         column = {key: j for j, key in enumerate(unknown)}
         rows, rhs = [], []
-        for members, total in self.relations:
+        for members, total in relations:
             coefficients = np.zeros(len(unknown))
             known = 0.0
             for key, sign in [*((m, 1.0) for m in members), (total, -1.0)]:
@@ -155,25 +177,69 @@ class CountLedger:
                 rows.append(coefficients)
                 rhs.append(known)
         matrix = np.array(rows) if rows else np.zeros((0, len(unknown)))
-        return unknown, matrix, np.array(rhs)
+        return matrix, np.array(rhs)
+
+    def _components(self, hidden: set[Hashable]) -> list[frozenset[Hashable]]:
+        """Hidden counts linked by relations (each is attacked on its own)."""
+        parent = {key: key for key in hidden}
+
+        def root(key: Hashable) -> Hashable:
+            while parent[key] != key:
+                parent[key] = parent[parent[key]]
+                key = parent[key]
+            return key
+
+        for members, total in self.relations:
+            linked = [key for key in (*members, total) if key in hidden]
+            for other in linked[1:]:
+                parent[root(other)] = root(linked[0])
+        groups: dict[Hashable, set[Hashable]] = {}
+        for key in hidden:
+            groups.setdefault(root(key), set()).add(key)
+        return [frozenset(group) for group in groups.values()]
 
     def recoverable(self, hidden: Iterable[Hashable]) -> list[Hashable]:
         """Hidden counts a reader can compute exactly from the visible ones.
 
-        A hidden count :math:`x_k` is determined by the relations :math:`A x = b` when the
-        unit vector :math:`e_k` lies in the row space of :math:`A`, i.e. when
-        :math:`\\operatorname{rank}[A; e_k] = \\operatorname{rank} A`.
+        The reader knows the relations :math:`A x = b` among the hidden counts
+        :math:`x`, that a count printed as ``"<11"`` lies in :math:`[1, \text{threshold}]`
+        and that every other hidden count lies in :math:`[0, N]` (:math:`N` the largest
+        count). A hidden count is recovered when the smallest and the largest value it
+        can take under these constraints coincide (two linear programmes, the interval
+        attack of [1]_, section 4.3).
         """
-        unknown, matrix, _ = self._system(set(hidden))
-        if matrix.shape[0] == 0:
-            return []
-        rank = np.linalg.matrix_rank(matrix)
-        found = []
+        found: list[Hashable] = []
+        for component in self._components(set(hidden)):
+            found += self._recoverable_in(component)
+        return sorted(found, key=repr)
+
+    def _recoverable_in(self, component: frozenset[Hashable]) -> list[Hashable]:
+        cache_key = (component, len(self.relations), len(self.counts))
+        if cache_key in self._cache:
+            return self._cache[cache_key]
+        unknown = sorted(component, key=repr)
+        relations = [r for r in self.relations if component & {*r[0], r[1]}]
+        matrix, rhs = self._system(unknown, relations)
+        found: list[Hashable] = []
+        upper = float(max(self.counts.values(), default=0))
+        bounds = [
+            (1.0, float(self.threshold))
+            if 1 <= self.counts[key] <= self.threshold
+            else (0.0, upper)
+            for key in unknown
+        ]
         for j, key in enumerate(unknown):
-            unit = np.zeros((1, len(unknown)))
-            unit[0, j] = 1.0
-            if np.linalg.matrix_rank(np.vstack([matrix, unit])) == rank:
+            if matrix.shape[0] == 0 or not matrix[:, j].any():
+                continue
+            objective = np.zeros(len(unknown))
+            objective[j] = 1.0
+            low = linprog(objective, A_eq=matrix, b_eq=rhs, bounds=bounds, method="highs")
+            high = linprog(-objective, A_eq=matrix, b_eq=rhs, bounds=bounds, method="highs")
+            if low.status != 0 or high.status != 0:  # pragma: no cover - the truth is feasible
+                continue
+            if -high.fun - low.fun < 1.0 - _TOLERANCE:
                 found.append(key)
+        self._cache[cache_key] = found
         return found
 
     # ---- protection ------------------------------------------------------------------
@@ -184,9 +250,9 @@ class CountLedger:
         return {k for k, n in self.counts.items() if 1 <= n <= self.threshold}
 
     def _complement(self, exposed: list[Hashable], hidden: set[Hashable]) -> Hashable | None:
-        """The count to hide next: among the visible counts related to an exposed one, the
-        one that leaves the fewest counts exposed; then members before totals, non-zero
-        before zero, the smallest first (the least information lost)."""
+        """The count to hide next: among the visible counts related to an exposed one
+        (members before totals, non-zero before zero, the smallest first: the least
+        information lost), of the first few the one that leaves the fewest exposed."""
         members_anywhere = {m for ms, _ in self.relations for m in ms}
         touched = set(exposed)
         candidates = {
@@ -194,24 +260,26 @@ class CountLedger:
             for members, total in self.relations
             if touched & {*members, total}
             for other in (*members, total)
-            if other not in hidden
+            if other not in hidden and other not in self.fixed
         }
         if not candidates:
             return None
 
-        def cost(key: Hashable) -> tuple[int, bool, bool, int, str]:
+        def order(key: Hashable) -> tuple[bool, bool, int, str]:
             n = self.counts[key]
-            left = len(self.recoverable(hidden | {key}))
-            return (left, key not in members_anywhere, n == 0, n, repr(key))
+            return (key not in members_anywhere, n == 0, n, repr(key))
 
-        return min(candidates, key=cost)
+        shortlist = sorted(candidates, key=order)[:_SHORTLIST]
+        return min(shortlist, key=lambda key: len(self.recoverable(hidden | {key})))
 
     def protect(self) -> set[Hashable]:
         """The counts to hide: primary suppression, then complementary suppression until
         no hidden count is recoverable (a fixed point)."""
-        hidden = self.primary()
+        hidden = self.primary() | self.unprinted
+        # an unprinted count that is not small may be derived: nothing to protect there
+        free = self.unprinted - self.primary()
         while True:
-            exposed = self.recoverable(hidden)
+            exposed = [key for key in self.recoverable(hidden) if key not in free]
             if not exposed:
                 return hidden
             extra = self._complement(exposed, hidden)
@@ -220,12 +288,6 @@ class CountLedger:
                     f"disclosure: counts {exposed!r} cannot be protected", DisclosureWarning, 2
                 )
                 return hidden
-            if extra not in {m for ms, _ in self.relations for m in ms}:
-                warnings.warn(
-                    f"disclosure: a printed total ({extra!r}) is hidden to protect a small count",
-                    DisclosureWarning,
-                    stacklevel=2,
-                )
             hidden.add(extra)
 
     def display(self, hidden: set[Hashable], key: Hashable) -> str:
@@ -241,3 +303,99 @@ def protected_texts(ledger: CountLedger) -> Mapping[Hashable, str]:
     """Every entered count as printed after protection."""
     hidden = ledger.protect()
     return {key: ledger.display(hidden, key) for key in ledger.counts}
+
+
+class SharedDisclosure:
+    """One protection over several outputs shown together (the tables, figures and report
+    of one run), so that a count hidden in one is not given away by another.
+
+    Each output enters its counts with keys that name what is counted (the same key in two
+    outputs is the same count, e.g. ``("N", "", "Overall")``) and the relations a reader
+    knows. The builders run twice: once to enter everything (:meth:`merge`), then, after
+    :meth:`finalize`, to print with the one hidden set (:meth:`hidden`).
+    """
+
+    def __init__(self, threshold: int = DEFAULT_SMALL_CELL_THRESHOLD) -> None:
+        self.ledger = CountLedger(threshold=threshold)
+        self._hidden: set[Hashable] | None = None
+        self._relations: set[tuple[tuple[Hashable, ...], Hashable]] = set()
+
+    @property
+    def threshold(self) -> int:
+        return self.ledger.threshold
+
+    def merge(self, part: CountLedger, name: str) -> dict[Hashable, Hashable]:
+        """Enter the counts and relations of one output; returns the keys it renamed.
+
+        A key entered by two outputs with different counts names two different things
+        (e.g. a different set of patients); the second is kept under its output's own key (``name``).
+        """
+        rename: dict[Hashable, Hashable] = {}
+        for key, n in part.counts.items():
+            if key in self.ledger.counts and self.ledger.counts[key] != n:
+                rename[key] = (name, key)
+            target = rename.get(key, key)
+            if self._hidden is not None and target not in self.ledger.counts:
+                raise RuntimeError(f"disclosure: {target!r} entered after the protection")
+            self.ledger.add(target, n)
+        for members, total in part.relations:
+            relation = (tuple(rename.get(m, m) for m in members), rename.get(total, total))
+            if relation not in self._relations:
+                self._relations.add(relation)
+                self.ledger.relations.append(relation)
+        return rename
+
+    def finalize(self) -> None:
+        """Protect every count entered so far, once."""
+        self._hidden = self.ledger.protect()
+
+    def hidden(self) -> set[Hashable] | None:
+        """The hidden keys after :meth:`finalize`, None before."""
+        return self._hidden
+
+
+def protect_part(
+    part: CountLedger, shared: SharedDisclosure | None, name: str
+) -> Callable[[Hashable], str]:
+    """How to print the counts of one output (``key -> text``): its own protection when
+    shown alone; the shared protection (or, before it is final, its own) when shown with
+    others."""
+    if shared is not None:
+        rename = shared.merge(part, name)
+        hidden = shared.hidden()
+        if hidden is not None:
+            ledger = shared.ledger
+            return lambda key: ledger.display(hidden, rename.get(key, key))
+    own = part.protect()
+    return lambda key: part.display(own, key)
+
+
+def protected_flow(
+    flow: Mapping[str, int],
+    threshold: int = DEFAULT_SMALL_CELL_THRESHOLD,
+    *,
+    shown_elsewhere: Iterable[str] = (),
+    disclosure: SharedDisclosure | None = None,
+) -> dict[str, str]:
+    """A patient flow (each step a subset of the one before) as printed.
+
+    The patients left out between two steps are not printed but are the difference of
+    two printed counts; a small difference is protected like a small count (the flow
+    step after it, or before it, is hidden), so no attrition box gives away a handful of
+    patients by subtraction. Steps in ``shown_elsewhere`` are printed by another output
+    (a table's N) and stay shown; the others are hidden around them.
+
+    >>> protected_flow({"with labs": 250, "with eGFR": 245, "analysed": 200})
+    {'with labs': '250', 'with eGFR': '*', 'analysed': '200'}
+    """
+    ledger = CountLedger(threshold=threshold)
+    names = list(flow)
+    elsewhere = set(shown_elsewhere)
+    for name in names:
+        ledger.add(("flow", name), int(flow[name]), fixed=name in elsewhere)
+    for before, after in itertools.pairwise(names):
+        left_out = ("flow left out", after)
+        ledger.add(left_out, int(flow[before]) - int(flow[after]), printed=False)
+        ledger.relate([("flow", after), left_out], ("flow", before))
+    display = protect_part(ledger, disclosure, "patient_flow")
+    return {name: display(("flow", name)) for name in names}

@@ -39,7 +39,7 @@ from pydantic import Field, field_validator
 
 from kidneycohort import equations as eq
 from kidneycohort import schemas, units
-from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
+from kidneycohort._frames import FrameLike, conform, follows_input, require_columns, to_polars
 from kidneycohort._rules import RuleModel, resolve_rules
 from kidneycohort.ages import age_on_expr
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -199,6 +199,8 @@ def _samples(labs: pl.DataFrame, analyte: str, value_name: str) -> pl.DataFrame:
         .alias("sample_datetime"),
         "setting",
         pl.col("value").cast(pl.Float64).alias(value_name),
+        # reported with "<" or ">": a limit, not an exact value (value_filter decides)
+        pl.col("qualifier").is_not_null().alias("qualified"),
     ).with_columns(_day_number("sample_date").alias("_day"))
 
 
@@ -211,6 +213,7 @@ def _pair(cr: pl.DataFrame, cys: pl.DataFrame, window: int) -> pl.DataFrame:
         pl.col("_day").alias("_cys_day"),
         pl.col("sample_datetime").alias("_cys_datetime"),
         "cystatin_c_mg_l",
+        pl.col("qualified").alias("_cys_qualified"),
     ).sort("_day", maintain_order=True)
     paired = (
         cr.with_row_index("_order")
@@ -226,10 +229,11 @@ def _pair(cr: pl.DataFrame, cys: pl.DataFrame, window: int) -> pl.DataFrame:
         .with_columns(
             pl.when(pl.col("cystatin_c_mg_l").is_null())
             .then(pl.lit("no_cystatin_c_in_window"))
-            .alias("_pair_reason")
+            .alias("_pair_reason"),
+            (pl.col("qualified") | pl.col("_cys_qualified").fill_null(False)).alias("qualified"),
         )
         .sort("_order")
-        .drop("_order")
+        .drop("_order", "_cys_qualified")
     )
     used = paired.filter(pl.col("_cys_day").is_not_null()).select(
         "patient_id",
@@ -238,7 +242,9 @@ def _pair(cr: pl.DataFrame, cys: pl.DataFrame, window: int) -> pl.DataFrame:
         "cystatin_c_mg_l",
     )
     alone = cys.join(
-        used, on=["patient_id", "_day", "sample_datetime", "cystatin_c_mg_l"], how="anti"
+        used.drop("qualified", strict=False),
+        on=["patient_id", "_day", "sample_datetime", "cystatin_c_mg_l"],
+        how="anti",
     ).with_columns(
         pl.lit(None, pl.Float64).alias("creatinine_mg_dl"),
         pl.lit("no_creatinine_in_window").alias("_pair_reason"),
@@ -346,6 +352,7 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
     )
 
 
+@follows_input
 def compute_egfr(
     labs: FrameLike,
     patients: FrameLike,
@@ -516,6 +523,7 @@ def _rows_in_age_bands(enriched: pl.DataFrame, equation_id: str, rule: EgfrRule)
     return enriched.filter(keep)
 
 
+@follows_input
 def egfr_wide(egfr: pl.DataFrame) -> pl.DataFrame:
     """Wide view of the long table: one row per patient and sample time, one column per
     equation (its eGFR), plus the creatinine and cystatin C of the sample.

@@ -2,7 +2,7 @@
 
 One place names every canonical table's columns and types, so that stages written
 separately agree, tests can check a stage's output against its contract, and the
-run folder's schema version means something. See DESIGN.md's data contract.
+run folder's schema version means something. The input tables are described for users in docs/data_contract.md (written from here).
 """
 
 from __future__ import annotations
@@ -120,6 +120,7 @@ EGFR: Final[dict[str, pl.DataType]] = {
     "creatinine_mg_dl": pl.Float64(),
     "cystatin_c_mg_l": pl.Float64(),
     "setting": pl.String(),
+    "qualified": pl.Boolean(),  # a creatinine / cystatin C reported with "<" or ">"
     "egfr_reason": pl.String(),  # null when computed
 }
 
@@ -254,8 +255,12 @@ HAZARD_RATIOS: Final[dict[str, pl.DataType]] = {
     "hr_upper": pl.Float64(),
     "p": pl.Float64(),
     "ph_p": pl.Float64(),  # proportional-hazards test of the term
+    "events": pl.Int64(),  # events in the term's group (group terms only)
+    "reference_events": pl.Int64(),  # events in the reference group (group terms only)
+    "estimable": pl.Boolean(),  # the one estimability rule (models.survival)
+    "reason": pl.String(),  # why not estimable (reason code), null when estimable
 }
-"""Cox hazard ratios per endpoint, term and subgroup."""
+"""Cox hazard ratios per endpoint, term and subgroup; numbers null where not estimable."""
 
 INCIDENCE_RATES: Final[dict[str, pl.DataType]] = {
     "endpoint": pl.String(),

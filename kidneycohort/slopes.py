@@ -43,7 +43,7 @@ import polars as pl
 from pydantic import Field, model_validator
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform
+from kidneycohort._frames import FrameLike, conform, follows_input
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConfigError
 from kidneycohort.value_filter import ValueFilterRule, usable_egfr
@@ -118,6 +118,7 @@ def _centred(prefix: str, n: pl.Expr) -> list[pl.Expr]:
     ]
 
 
+@follows_input
 def egfr_slopes(
     egfr: FrameLike,
     rule: SlopeRule | None = None,

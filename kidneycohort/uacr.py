@@ -10,12 +10,13 @@ from __future__ import annotations
 import polars as pl
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.errors import InputDataError
 
 __all__ = ["uacr_timeline"]
 
 
+@follows_input
 def uacr_timeline(labs: FrameLike, patients: FrameLike | None = None) -> pl.DataFrame:
     """UACR results (mg/g) placed in time relative to each patient's index date.
 

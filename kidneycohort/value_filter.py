@@ -21,8 +21,14 @@ Columns added
 ``excluded`` (bool)
     The row is left out of baseline, slope and category work.
 ``exclusion_reason`` (str)
-    ``"setting_<setting>"``, ``"aki"`` or ``"aki_recovery"`` (the first that applies),
-    null when the row is used.
+    ``"setting_<setting>"``, ``"aki"``, ``"aki_recovery"`` or ``"qualified_value"`` (the
+    first that applies), null when the row is used.
+
+Qualified results: a creatinine reported as ``"<20"`` µmol/L is a detection limit, not
+a value; its eGFR (``qualified`` true in the eGFR table) would show as a spike of about
+160 if taken as exact. ``qualified_values: exclude`` (the default) leaves such rows out
+of every downstream analysis with reason ``qualified_value``; ``use`` takes the limit
+as the value (a stated substitution).
 
 AKI criteria (KDIGO 2012 AKI guideline, section 2.1.1): an increase in serum creatinine
 by at least 0.3 mg/dL within 48 hours, or to at least 1.5 times baseline known or
@@ -33,19 +39,19 @@ baseline is common practice in electronic-record AKI detection. Urine-output cri
 cannot be assessed from laboratory tables and are not used.
 
 All flags are computed per patient with window expressions only, so they are the same
-on any partition of patients (DESIGN.md, partition rule).
+on any partition of patients (DEVELOPERS.md, partition rule).
 """
 
 from __future__ import annotations
 
 import logging
-from typing import Final
+from typing import Final, Literal
 
 import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, as_int, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_int, follows_input, require_columns, to_polars
 from kidneycohort._rules import RuleModel
 from kidneycohort._rules import rule_error_message as rule_error_message
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -117,6 +123,12 @@ class ValueFilterRule(RuleModel):
         gt=0,
         description="Window (days) for the ratio criterion (KDIGO 2012: 7).",
     )
+    qualified_values: Literal["exclude", "use"] = Field(
+        default="exclude",
+        description="eGFR from a creatinine or cystatin C reported with '<' or '>' (a "
+        "limit, not a value): 'exclude' leaves it out of baselines, slopes, stages and "
+        "endpoints (reason qualified_value); 'use' takes the limit as the value.",
+    )
 
 
 def sample_time_expr(columns: list[str]) -> pl.Expr:
@@ -131,6 +143,7 @@ def sample_time_expr(columns: list[str]) -> pl.Expr:
     return pl.coalesce(parts)
 
 
+@follows_input
 def flag_aki(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFrame:
     """Add ``aki_flag``, ``aki_criterion`` and ``aki_recovery`` to an eGFR (or labs) table.
 
@@ -250,6 +263,7 @@ def flag_aki(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFra
     return out
 
 
+@follows_input
 def apply_value_filter(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFrame:
     """Mark the results that do not count, keeping every row (see module docstring).
 
@@ -312,6 +326,13 @@ def apply_value_filter(egfr: FrameLike, rule: ValueFilterRule | None = None) -> 
             .when(pl.col("aki_recovery").fill_null(False))
             .then(pl.lit("aki_recovery"))
         )
+    if rule.qualified_values == "exclude" and "qualified" in df.columns:
+        flag = (
+            pl.col("qualified").str.to_lowercase().is_in(["true", "1", "yes"])
+            if df.schema["qualified"] == pl.String
+            else pl.col("qualified").cast(pl.Boolean)
+        )
+        reasons.append(pl.when(flag.fill_null(False)).then(pl.lit("qualified_value")))
     reason = pl.coalesce(reasons) if reasons else pl.lit(None, dtype=pl.String)
     df = df.with_columns(exclusion_reason=reason.cast(pl.String)).with_columns(
         excluded=pl.col("exclusion_reason").is_not_null()
@@ -327,7 +348,8 @@ def usable_egfr(
 
     Shared by the baseline, slope and category stages: checks the contract columns,
     applies ``value_filter`` when given (or honours an ``excluded`` column already
-    present), and keeps rows with a finite eGFR. The full input is returned as well
+    present; without either, rows from a qualified result are still excluded), and keeps
+    rows with a finite eGFR. The full input is returned as well
     via :func:`egfr_keys` so that no patient disappears from an output.
     """
     df = to_polars(egfr, name)
@@ -340,6 +362,9 @@ def usable_egfr(
     )
     if value_filter is not None:
         df = apply_value_filter(df, value_filter)
+    elif "qualified" in df.columns and "excluded" not in df.columns:
+        # no value filter chosen: a limit ("<x") is still never used as a value
+        df = apply_value_filter(df, ValueFilterRule(exclude_settings=(), exclude_aki=False))
     if "excluded" not in df.columns:
         df = df.with_columns(excluded=pl.lit(False))
     # rounding to a microsecond keeps -365 days exactly -365 after the years round trip

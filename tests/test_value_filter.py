@@ -121,3 +121,46 @@ def test_partition_and_row_order_invariance(seed):
     assert_frame_equal(whole, split)
     shuffled = apply_value_filter(df.sample(fraction=1.0, shuffle=True, seed=seed))
     assert_frame_equal(whole, shuffled.sort("patient_id", "sample_datetime"))
+
+
+def test_a_qualified_creatinine_is_a_limit_not_a_value() -> None:
+    # "<20" umol/L creatinine (below a detection limit) taken as 20 (0.226 mg/dL) gives
+    # CKD-EPI 2021 (Inker 2021) for a 50-year-old woman: 142 x (0.226/0.7)^-0.241 x
+    # 0.9938^50 x 1.012 = 138, against about 65 at 88 umol/L;
+    # by default it is left out of every downstream analysis with a reason, 'use' keeps it
+    import datetime as dt
+
+    from kidneycohort import compute_egfr, harmonize_tables
+    from kidneycohort.plots import egfr_time_bins
+
+    labs = pl.DataFrame(
+        {
+            "patient_id": ["Q1"] * 3,
+            "sample_date": ["2021-01-10", "2021-04-10", "2021-07-10"],
+            "analyte": ["creatinine"] * 3,
+            "value": ["88", "<20", "90"],
+            "unit": ["umol/L"] * 3,
+        }
+    )
+    patients = pl.DataFrame(
+        {
+            "patient_id": ["Q1"],
+            "sex": ["female"],
+            "birth_date": [dt.date(1971, 1, 1)],
+            "index_date": [dt.date(2021, 1, 1)],
+        }
+    )
+    tables = harmonize_tables(labs=labs, patients=patients)
+    egfr = compute_egfr(tables.labs, tables.patients, "ckd_epi_2021_cr")
+    assert egfr["qualified"].to_list() == [False, True, False]
+    age = (dt.date(2021, 4, 10) - dt.date(1971, 1, 1)).days / 365.25  # exact age, 50.3
+    assert egfr["egfr"][1] == pytest.approx(
+        142 * (20 / 88.4 / 0.7) ** -0.241 * 0.9938**age * 1.012, rel=1e-4
+    )  # what a reader would wrongly see as a spike
+    flagged = apply_value_filter(egfr, ValueFilterRule(exclude_aki=False))
+    assert flagged["exclusion_reason"].to_list() == [None, "qualified_value", None]
+    kept = apply_value_filter(egfr, ValueFilterRule(exclude_aki=False, qualified_values="use"))
+    assert not kept["excluded"].any()
+    # the trajectory figure never draws the limit as a value
+    bins = egfr_time_bins(egfr, pl.DataFrame({"patient_id": ["Q1"], "group": ["all"]}))
+    assert bins["mean"].max() < 100

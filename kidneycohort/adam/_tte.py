@@ -25,7 +25,7 @@ from typing import Any, Final, Literal
 import polars as pl
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.adam._metadata import AdamDataset, Variable, make_dataset, standard
 from kidneycohort.adam._subjects import subject_facts
 from kidneycohort.endpoints import (
@@ -152,6 +152,7 @@ _VARIABLES: Final = (
 )
 
 
+@follows_input
 def to_adam_tte(
     endpoints: FrameLike,
     definitions: Sequence[EndpointDefinition | Mapping[str, Any]],

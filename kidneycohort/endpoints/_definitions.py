@@ -7,7 +7,14 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from typing import Annotated, Any, Final, Literal
 
-from pydantic import BaseModel, Field, TypeAdapter, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    Field,
+    TypeAdapter,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from kidneycohort._rules import RuleModel, rule_error_message, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
@@ -221,6 +228,17 @@ class _LabEndpoint(_Endpoint):
     )
 
 
+def _percent_not_fraction(value: float | None) -> float | None:
+    """A percentage below 1 is almost always a fraction typed where a percent is meant
+    (0.4 for 40 %); no published eGFR-decline endpoint is below 1 %."""
+    if value is not None and value < 1:
+        raise ValueError(
+            f"{value:g} is a percent below 1; percentages are given as 40 for 40 % "
+            f"(did you mean {value * 100:g}?)"
+        )
+    return value
+
+
 class EgfrDecline(_LabEndpoint):
     r"""A confirmed fall of at least ``percent`` % from baseline eGFR.
 
@@ -244,6 +262,12 @@ class EgfrDecline(_LabEndpoint):
     percent: float = Field(
         ..., gt=0, lt=100, description="Minimum fall from baseline eGFR, in percent."
     )
+
+    @field_validator("percent")
+    @classmethod
+    def _percent_not_fraction(cls, value: float) -> float:
+        _percent_not_fraction(value)
+        return value
 
     @classmethod
     def _defaults(cls, data: Mapping[str, Any]) -> tuple[str, str, str]:
@@ -275,6 +299,11 @@ class EgfrBelow(_LabEndpoint):
         lt=100,
         description="Optional: the value must also be at least this many percent below baseline.",
     )
+
+    @field_validator("and_decline_percent")
+    @classmethod
+    def _percent_not_fraction(cls, value: float | None) -> float | None:
+        return _percent_not_fraction(value)
 
     @classmethod
     def _defaults(cls, data: Mapping[str, Any]) -> tuple[str, str, str]:

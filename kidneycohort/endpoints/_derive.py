@@ -10,7 +10,7 @@ from typing import Any
 import polars as pl
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform
+from kidneycohort._frames import FrameLike, conform, follows_input
 from kidneycohort.endpoints._definitions import (
     _LAB_KINDS,
     _PERCENT_TOLERANCE,
@@ -326,6 +326,7 @@ def _composite(defn: Composite, parts: list[pl.DataFrame]) -> pl.DataFrame:
     return _finish(out, defn.name)
 
 
+@follows_input
 def derive_endpoints(
     egfr: FrameLike,
     baseline: FrameLike,

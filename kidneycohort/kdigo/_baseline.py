@@ -7,7 +7,7 @@ from typing import Final
 import polars as pl
 from pydantic import Field
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort._rules import RuleModel
 from kidneycohort.baseline import BaselineRule
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -66,6 +66,7 @@ def _one_row_each(df: pl.DataFrame, what: str) -> pl.DataFrame:
     return df
 
 
+@follows_input
 def baseline_categories(
     baseline: FrameLike,
     uacr_baseline: FrameLike | None = None,
@@ -207,6 +208,7 @@ def baseline_categories(
     return out.select(list(BASELINE_CATEGORIES)).cast(pl.Schema(BASELINE_CATEGORIES))
 
 
+@follows_input
 def kdigo_grid_counts(categories: FrameLike) -> pl.DataFrame:
     """Patients per KDIGO GFR x albuminuria cell, with the cell's prognosis level.
 

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.errors import InputDataError
 from kidneycohort.kdigo._categories import _RANK, gfr_category_expr
 from kidneycohort.kdigo._sustained import _KEYS, SustainRule, _confirm, _gfr_results, _results
@@ -16,6 +16,7 @@ __all__ = ["ckd_status", "kdigo_progression"]
 
 
 # ---- CKD and progression -------------------------------------------------------------------
+@follows_input
 def ckd_status(
     egfr: FrameLike | None = None,
     labs: FrameLike | None = None,
@@ -110,6 +111,7 @@ def ckd_status(
     )
 
 
+@follows_input
 def kdigo_progression(
     egfr: FrameLike,
     baseline: FrameLike,

@@ -10,7 +10,7 @@ import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, as_int, conform
+from kidneycohort._frames import FrameLike, as_int, conform, follows_input
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import InputDataError
 from kidneycohort.kdigo._categories import (
@@ -335,6 +335,7 @@ def _results(
     return pl.concat(parts, how="vertical_relaxed")
 
 
+@follows_input
 def category_results(
     egfr: FrameLike | None = None,
     labs: FrameLike | None = None,
@@ -386,6 +387,7 @@ def category_results(
 
 
 # ---- stages and transitions ------------------------------------------------------------------
+@follows_input
 def sustained_stages(
     egfr: FrameLike | None = None,
     labs: FrameLike | None = None,

@@ -7,7 +7,7 @@ from __future__ import annotations
 import polars as pl
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
+from kidneycohort._frames import FrameLike, conform, follows_input, require_columns, to_polars
 from kidneycohort.kdigo._categories import _RANK, A_CATEGORIES, G_CATEGORIES
 from kidneycohort.kdigo._sustained import _KEYS
 
@@ -61,6 +61,7 @@ def _ranked_transitions(stages: pl.DataFrame) -> pl.DataFrame:
     )
 
 
+@follows_input
 def transitions(stages: FrameLike) -> pl.DataFrame:
     """Category transitions from a :func:`sustained_stages` table.
 
@@ -75,6 +76,7 @@ def transitions(stages: FrameLike) -> pl.DataFrame:
     return conform(_ranked_transitions(_with_keys(stages)), schemas.TRANSITIONS)
 
 
+@follows_input
 def transition_matrix(stages: FrameLike) -> pl.DataFrame:
     """Transition counts and rates per 100 person-years, per equation and axis.
 
@@ -145,6 +147,7 @@ def transition_matrix(stages: FrameLike) -> pl.DataFrame:
     )
 
 
+@follows_input
 def time_to_first_worsening(stages: FrameLike) -> pl.DataFrame:
     """Time from index to the first sustained worsening of category, per patient.
 

@@ -11,7 +11,7 @@ import numpy as np
 import numpy.typing as npt
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.errors import ConfigError, did_you_mean
 
 __all__ = [
@@ -127,6 +127,7 @@ def kfre_risk(
     return 1.0 - survival[horizon_years] ** np.exp(eta)
 
 
+@follows_input
 def add_kfre_risk(inputs: FrameLike, region: Region = "north_american") -> pl.DataFrame:
     """Add 2- and 5-year KFRE risks to a table of inputs, enforcing applicability.
 

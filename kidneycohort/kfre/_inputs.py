@@ -6,7 +6,7 @@ from typing import Any, Final
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort._rules import resolve_rules
 from kidneycohort.ages import age_at_index_expr, has_age
 from kidneycohort.errors import InputDataError, did_you_mean
@@ -19,6 +19,7 @@ from kidneycohort.value_filter import ValueFilterRule, usable_egfr
 __all__ = ["KFRE_SUMMARY_REASONS", "ON_KFRT", "kfre_at_baseline", "kfre_inputs"]
 
 
+@follows_input
 def kfre_inputs(
     egfr: FrameLike,
     labs: FrameLike,
@@ -125,6 +126,7 @@ KFRE_SUMMARY_REASONS: Final[dict[str, str]] = {
 
 
 # ---- KFRE at baseline ---------------------------------------------------------------------
+@follows_input
 def kfre_at_baseline(
     egfr: FrameLike,
     labs: FrameLike,

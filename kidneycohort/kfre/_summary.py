@@ -6,7 +6,8 @@ from typing import Final
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
+from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kfre._inputs import KFRE_SUMMARY_REASONS
 from kidneycohort.kfre._rule import KfreRule
@@ -26,45 +27,33 @@ def _percent(value: float) -> str:
     return f"{text} %"
 
 
-def _protect(counts: pl.DataFrame, spec: TableRule) -> pl.DataFrame:
-    """Mark ``_hidden`` cells: small counts, plus complementary cells.
+def _protect(
+    counts: pl.DataFrame, spec: TableRule, disclosure: SharedDisclosure | None
+) -> pl.DataFrame:
+    """Mark ``_hidden`` cells with the one disclosure control of
+    :mod:`kidneycohort.disclosure`: the applicable patients and the not-applicable reasons
+    add up to N in each column, the groups add up to the overall column; small counts and
+    the counts that would reveal them are hidden. N is the baseline table's N (same key)."""
+    ledger = CountLedger(threshold=spec.small_cell_threshold)
 
-    A block (``_block``: counts of one column that add up to its N) or a row (one count
-    across the group columns, which add up to the overall column) holding exactly one
-    hidden cell would let a reader recover it by subtraction; its smallest other
-    non-zero cell is hidden too. Repeated until nothing changes (common practice in
-    statistical disclosure control).
-    """
-    thr = spec.small_cell_threshold
-    out = counts.with_columns(
-        _hidden=(pl.col("_count") >= 1) & (pl.col("_count") <= thr),
-        _rank=pl.col("_count") * 1_000_000 + pl.int_range(pl.len()),
-    )
-    if thr == 0:
-        return out.drop("_rank")
-    for _ in range(10):
-        before = int(out["_hidden"].sum())
-        for scope in (["_column", "_block"], ["_row", "_is_group"]):
-            candidate = pl.when(~pl.col("_hidden") & (pl.col("_count") > 0)).then(pl.col("_rank"))
-            scoped = out.with_columns(
-                _n=pl.col("_hidden").sum().over(scope),
-                _c=candidate,
-            )
-            scoped = scoped.with_columns(_cmin=pl.col("_c").min().over(scope))
-            applies = (
-                pl.col("_block").is_not_null() if scope[1] == "_block" else pl.col("_is_group")
-            )
-            out = scoped.with_columns(
-                _hidden=pl.col("_hidden")
-                | (
-                    applies
-                    & (pl.col("_n") == 1)
-                    & (pl.col("_c") == pl.col("_cmin")).fill_null(False)
-                )
-            ).drop("_n", "_c", "_cmin")
-        if int(out["_hidden"].sum()) == before:
-            break
-    return out.drop("_rank")
+    def key(row: str, column: str) -> tuple[str, str, str]:
+        return ("N", "", column) if row == "n" else ("kfre summary", row, column)
+
+    cells = counts.select("_row", "_column", "_count", "_block").rows()
+    for row, column, n, _ in cells:
+        ledger.add(key(row, column), n)
+    columns = counts["_column"].unique(maintain_order=True).to_list()
+    groups = [c for c in columns if c != _OVERALL]
+    for column in columns:
+        block = [key(row, column) for row, c, _, b in cells if c == column and b == "n"]
+        if block:
+            ledger.relate(block, key("n", column))
+    if groups:
+        for row in counts["_row"].unique(maintain_order=True).to_list():
+            ledger.relate([key(row, g) for g in groups], key(row, _OVERALL))
+    display = protect_part(ledger, disclosure, "kfre_summary")
+    hidden = [not display(key(row, column)).isdigit() for row, column, _, _ in cells]
+    return counts.with_columns(pl.Series("_hidden", hidden, dtype=pl.Boolean))
 
 
 CountRow = tuple[str, str, str, str, pl.Expr, str | None, str]
@@ -109,12 +98,14 @@ def _count_rows(
     return rows
 
 
+@follows_input
 def kfre_summary_table(
     kfre_rows: FrameLike,
     *,
     group_column: str | None = "group",
     rule: KfreRule | None = None,
     table_rule: TableRule | None = None,
+    disclosure: SharedDisclosure | None = None,
 ) -> pl.DataFrame:
     """KFRE risk at baseline by group: applicability, median [IQR] risk, risk above thresholds.
 
@@ -201,7 +192,7 @@ def kfre_summary_table(
         _block=pl.col("_row").replace_strict(blocks, default=None, return_dtype=pl.String),
         _is_group=pl.col("_column") != _OVERALL,
     )
-    hidden = _protect(long.filter(pl.col("_row") != "n"), spec)
+    hidden = _protect(long, spec, disclosure)
     long = long.join(
         hidden.select("_column", "_row", "_hidden"), on=["_column", "_row"], how="left"
     ).with_columns(pl.col("_hidden").fill_null(False))

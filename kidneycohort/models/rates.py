@@ -16,7 +16,7 @@ import polars as pl
 from scipy import stats
 from statsmodels.stats.rates import confint_poisson, confint_poisson_2indep, test_poisson_2indep
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.models._design import with_group
 
@@ -96,6 +96,7 @@ def exact_poisson_interval(
     return lower * per, np.asarray(upper, dtype=float) * per
 
 
+@follows_input
 def incidence_rates(
     endpoints: FrameLike,
     patients: FrameLike | None = None,
@@ -161,6 +162,7 @@ def incidence_rates(
     ).select("endpoint", *RATE_COLUMNS)
 
 
+@follows_input
 def rate_difference(
     rates: FrameLike,
     *,
@@ -199,6 +201,7 @@ def rate_difference(
     return _contrast(rates, reference_group, "diff", per, confidence)
 
 
+@follows_input
 def rate_ratio(
     rates: FrameLike,
     *,

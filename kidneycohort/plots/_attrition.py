@@ -24,7 +24,7 @@ from plotnine import (
 )
 
 from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
-from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
+from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_count_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.plots._style import (
     BASE_SIZE,
@@ -38,7 +38,7 @@ def attrition_boxes(
     accounting: Sequence[Mapping[str, Any]] | FrameLike,
     accounting_by_reason: Sequence[Mapping[str, Any]] | FrameLike | None = None,
     *,
-    patients: Mapping[str, int] | None = None,
+    patients: Mapping[str, int | str] | None = None,
     small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD,
 ) -> pl.DataFrame:
     """Boxes of the attrition flow diagram, from the manifest's row accounting.
@@ -48,9 +48,11 @@ def attrition_boxes(
 
     .. math:: \\text{read} = \\text{used} + \\text{rejected} + \\text{merged}
 
-    checked (the run folder's accounting rule). ``patients`` adds a row of patient
-    counts (e.g. ``{"with lab results": 200, "with eGFR": 198, "analysed": 190}``), drawn
-    in its given order.
+    checked (the run folder's accounting rule). Rows are not people: their counts are
+    printed in full. ``patients`` adds a row of patient counts (e.g. ``{"with lab
+    results": 200, "with eGFR": 198, "analysed": 190}``), drawn in its given order; give
+    them as printed texts (:meth:`kidneycohort.run_folder.RunFolder.printed_patient_flow`,
+    protected as a chain) or as numbers (small ones then shown as ``"<11"``).
 
     Returns
     -------
@@ -103,7 +105,7 @@ def attrition_boxes(
                 pl.lit("  "),
                 pl.col("reason").str.replace_all("_", " "),
                 pl.lit(": "),
-                small_cell_text(pl.col("rows"), threshold),
+                _rows_text(pl.col("rows")),
             )
         )
         .group_by("table", maintain_order=True)
@@ -115,7 +117,9 @@ def attrition_boxes(
         .join(reason_lines, on="table", how="left")
     )
     boxes: list[pl.DataFrame] = []
-    fmt = lambda c: small_cell_text(pl.col(c), threshold)  # noqa: E731
+    # rows are not people: row accounting is printed in full (disclosure control is for
+    # counts of people; the patient boxes below are protected)
+    fmt = lambda c: _rows_text(pl.col(c))  # noqa: E731
     boxes.append(
         acc.select(
             "table",
@@ -159,9 +163,18 @@ def attrition_boxes(
         names = list(patients)
         span = max(acc.height - 1, 0) * _COLUMN_GAP + _SIDE_OFFSET
         xs = np.linspace(0.0, span, len(names)) if len(names) > 1 else np.array([span / 2])
+        printed = {
+            k: v if isinstance(v, str) else small_count_text(int(v), threshold)
+            for k, v in patients.items()
+        }
         p = pl.DataFrame(
-            {"step": names, "n": [int(patients[k]) for k in names], "x": xs.tolist()},
-            schema={"step": pl.String, "n": pl.Int64, "x": pl.Float64},
+            {
+                "step": names,
+                "n": [_count_or_none(patients[k]) for k in names],
+                "x": xs.tolist(),
+                "shown": [printed[k] for k in names],
+            },
+            schema={"step": pl.String, "n": pl.Int64, "x": pl.Float64, "shown": pl.String},
         )
         boxes.append(
             p.select(
@@ -170,10 +183,23 @@ def attrition_boxes(
                 x="x",
                 y=pl.lit(0.0),
                 n="n",
-                text=pl.concat_str(pl.lit("Patients "), pl.col("step"), pl.lit("\n"), fmt("n")),
+                text=pl.concat_str(pl.lit("Patients "), pl.col("step"), pl.lit("\n"), "shown"),
             )
         )
     return pl.concat(boxes, how="vertical_relaxed")
+
+
+def _rows_text(rows: pl.Expr) -> pl.Expr:
+    """A row count as printed (in full)."""
+    return rows.cast(pl.Int64).cast(pl.String)
+
+
+def _count_or_none(value: int | str) -> int | None:
+    """The number of a patient box (None when it is printed hidden)."""
+    if isinstance(value, str):
+        digits = value.replace(",", "")
+        return int(digits) if digits.isdigit() else None
+    return int(value)
 
 
 _COLUMN_GAP: Final = 1.6  # x distance between the flows of two input tables
@@ -202,7 +228,7 @@ def attrition_figure(
     accounting: Sequence[Mapping[str, Any]] | FrameLike,
     accounting_by_reason: Sequence[Mapping[str, Any]] | FrameLike | None = None,
     *,
-    patients: Mapping[str, int] | None = None,
+    patients: Mapping[str, int | str] | None = None,
     small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD,
 ) -> ggplot:
     """Flow diagram of rows (and patients) in, excluded by reason, and analysed.

@@ -47,6 +47,9 @@ def kdigo_grid_cells(
     """All 18 cells of the KDIGO G x A grid with counts, risk level and printed label.
 
     Cells missing from ``grid`` hold 0 patients and take the KDIGO 2012 risk level [2]_.
+    A protected table (:func:`kidneycohort.tables.kdigo_grid_table`, with ``n_display``)
+    is printed as it stands, so the figure hides exactly what the table hides; raw counts
+    get primary suppression only.
 
     Returns
     -------
@@ -56,6 +59,11 @@ def kdigo_grid_cells(
     threshold = check_threshold(small_cell_threshold)
     df = to_polars(grid, "kdigo_grid")
     require_columns(df, ("g_category", "a_category", "n"), "kdigo_grid")
+    printed = "n_display" in df.columns  # a protected table: print its texts as they are
+    df = df.with_columns(pl.col("n").cast(pl.Int64, strict=False)).filter(
+        pl.col("g_category").is_in(G_CATEGORIES) & pl.col("a_category").is_in(A_CATEGORIES)
+        | ~pl.lit(printed)
+    )
     for column, allowed in (("g_category", G_CATEGORIES), ("a_category", A_CATEGORIES)):
         unknown = sorted(set(df[column].drop_nulls().cast(pl.String).to_list()) - set(allowed))
         if unknown:
@@ -82,6 +90,7 @@ def kdigo_grid_cells(
     counts = df.group_by("g_category", "a_category").agg(
         pl.col("n").sum().cast(pl.Int64),
         *([pl.col("risk").first()] if "risk" in df.columns else []),
+        *([pl.col("n_display").first()] if printed else []),
     )
     out = full.join(counts, on=["g_category", "a_category"], how="left")
     if "risk" not in out.columns:
@@ -91,7 +100,9 @@ def kdigo_grid_cells(
         "a_category",
         n=pl.col("n").fill_null(0),
         risk=pl.col("risk").fill_null(pl.col("guideline_risk")),
-        label=small_cell_text(pl.col("n").fill_null(0), threshold),
+        label=pl.col("n_display").fill_null("0")
+        if printed
+        else small_cell_text(pl.col("n").fill_null(0), threshold),
     )
 
 
@@ -149,7 +160,9 @@ def transition_cells(
 
     The categories present on an axis (G or A, read from the category names) form the
     rows and columns; missing pairs are 0. Cells with 1..threshold transitions get a
-    null ``fill`` so the colour does not disclose them either.
+    null ``fill`` so the colour does not disclose them either. A protected table
+    (:func:`kidneycohort.tables.transition_table`, with ``n_display``) is printed as it
+    stands, so the figure hides exactly what the table hides.
 
     Returns
     -------
@@ -182,18 +195,27 @@ def transition_cells(
     square = levels.join(levels, on="axis", suffix="_to").select(
         "axis", from_category="category", to_category="category_to"
     )
-    counts = df.group_by("axis", "from_category", "to_category").agg(pl.col("n").sum())
+    printed = "n_display" in df.columns  # a protected table: print its texts as they are
+    df = df.with_columns(pl.col("n").cast(pl.Int64, strict=False))
+    counts = df.group_by("axis", "from_category", "to_category").agg(
+        pl.col("n").sum(), *([pl.col("n_display").first()] if printed else [])
+    )
     out = square.join(counts, on=["axis", "from_category", "to_category"], how="left").with_columns(
         n=pl.col("n").fill_null(0).cast(pl.Int64)
+    )
+    hidden = (
+        ~pl.col("n_display").fill_null("0").str.contains(r"^\d+$")
+        if printed
+        else pl.col("n").is_between(1, threshold)
     )
     out = out.with_columns(
         share_of_from=pl.when(pl.col("n").sum().over("axis", "from_category") > 0).then(
             100.0 * pl.col("n") / pl.col("n").sum().over("axis", "from_category")
         ),
-        fill=pl.when(pl.col("n").is_between(1, threshold))
-        .then(None)
-        .otherwise(pl.col("n").cast(pl.Float64)),
-        label=small_cell_text(pl.col("n"), threshold),
+        fill=pl.when(hidden).then(None).otherwise(pl.col("n").cast(pl.Float64)),
+        label=pl.col("n_display").fill_null("0")
+        if printed
+        else small_cell_text(pl.col("n"), threshold),
     )
     return out.sort(
         "axis",

@@ -33,6 +33,7 @@ from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.labels import display_label
+from kidneycohort.models.survival import NOT_ESTIMABLE_REASONS
 from kidneycohort.plots._style import (
     FIG_SIZE,
     OKABE_ITO,
@@ -268,7 +269,8 @@ def forest_rows(hazard_ratios: FrameLike) -> pl.DataFrame:
             f"hazard_ratios: {bad} rows with a negative hazard ratio or limit; hazard ratios "
             "are positive (exp of a Cox coefficient)"
         )
-    # a limit of 0 or infinity (no events in one group) cannot be drawn on a log axis
+    # the models' estimability rule when the table carries it (models/hazard_ratios);
+    # in any case a limit of 0 or infinity cannot be drawn on a log axis
     estimable = (
         pl.col("hr").is_finite()
         & pl.col("hr_lower").is_finite()
@@ -276,6 +278,20 @@ def forest_rows(hazard_ratios: FrameLike) -> pl.DataFrame:
         & (pl.col("hr") > 0)
         & (pl.col("hr_lower") > 0)
     )
+    if "estimable" in df.columns:
+        estimable = estimable & pl.col("estimable").fill_null(False)
+    why = pl.lit("not estimable")
+    if "reason" in df.columns:
+        reason = pl.col("reason").cast(pl.String)
+        why = (
+            pl.when(reason.is_not_null())
+            .then(
+                pl.lit("not estimable (")
+                + reason.replace_strict(NOT_ESTIMABLE_REASONS, default=reason)
+                + pl.lit(")")
+            )
+            .otherwise(why)
+        )
     name = pl.concat_str(
         pl.col("endpoint"),
         pl.lit(" · "),
@@ -301,9 +317,7 @@ def forest_rows(hazard_ratios: FrameLike) -> pl.DataFrame:
         pl.col("hr_upper").cast(pl.Float64),
         pl.col("p").cast(pl.Float64),
         estimable=estimable.fill_null(False),
-        label=pl.concat_str(
-            name, pl.lit(":  "), pl.when(estimable).then(ci).otherwise(pl.lit("not estimable"))
-        ),
+        label=pl.concat_str(name, pl.lit(":  "), pl.when(estimable).then(ci).otherwise(why)),
         row=pl.int_range(1, pl.len() + 1),
     )
 

@@ -95,7 +95,9 @@ def egfr_time_bins(
     polars.DataFrame
         ``group``, ``bin``, ``years`` (bin centre), ``n_patients``, ``n_values``,
         ``mean``, ``sd``, ``lower``, ``upper`` (null interval when ``n_patients < 2``).
-        Not-computable eGFR values (null/NaN) are not summarised; their count is logged.
+        Not-computable eGFR values (null/NaN) and values from a qualified result
+        (``qualified``: reported as ``"<x"``/``">x"``, a limit) are not summarised; their
+        count is logged.
 
     Raises
     ------
@@ -112,9 +114,16 @@ def egfr_time_bins(
     df = with_groups(df, groups, "egfr")
     usable = pl.col("egfr").is_not_null() & pl.col("egfr").is_not_nan()
     usable = usable & pl.col("years_from_index").is_not_null()
+    if "qualified" in df.columns:
+        # a result reported as "<x" or ">x" is a limit: never drawn as an exact value
+        usable = usable & ~pl.col("qualified").fill_null(False)
     n_unusable = df.height - df.filter(usable).height
     if n_unusable:
-        logger.info("egfr: %d values not computable or undated, not summarised", n_unusable)
+        logger.info(
+            "egfr: %d values not computable, undated or from a qualified result ('<x'), "
+            "not summarised",
+            n_unusable,
+        )
     per_patient = (
         df.filter(usable)
         .with_columns(bin=(pl.col("years_from_index") / bin_years).round(0).cast(pl.Int64))

@@ -92,7 +92,7 @@ def _attrition(run: RunFolder, threshold: int) -> Any | None:
     return attrition_figure(
         [a.model_dump() for a in manifest.accounting],
         [r.model_dump() for r in manifest.accounting_by_reason] or None,
-        patients=run.patient_flow(run.primary_equation) or None,
+        patients=run.printed_patient_flow() or None,
         small_cell_threshold=threshold,
     )
 
@@ -130,12 +130,22 @@ def _lab_figures(run: RunFolder, palette: dict[str, str], threshold: int) -> dic
 
 def _kdigo_figures(run: RunFolder, threshold: int) -> dict[str, Any]:
     out: dict[str, Any] = {}
-    if run.has("models/kdigo_grid"):
-        out["kdigo_grid"] = kdigo_grid_figure(
-            run.table("models/kdigo_grid"), small_cell_threshold=threshold
-        )
-    if run.has("models/transition_counts"):
-        counts = run.table("models/transition_counts")
+    # the shared (protected) tables when the run has them: a figure hides what they hide
+    grid = next(
+        (
+            n
+            for n in ("tables/kdigo_grid", "models/kdigo_grid")
+            if run.has(n) and run.table(n).height
+        ),
+        None,
+    )
+    if grid is not None:
+        out["kdigo_grid"] = kdigo_grid_figure(run.table(grid), small_cell_threshold=threshold)
+    transitions = next(
+        (n for n in ("tables/transition_matrix", "models/transition_counts") if run.has(n)), None
+    )
+    if transitions is not None:
+        counts = run.table(transitions)
         if counts.height:
             out["transition_matrix"] = transition_heatmap_figure(
                 counts, small_cell_threshold=threshold

@@ -240,29 +240,48 @@ def _estimate_text(row: dict[str, Any]) -> str:
 
 def _summary(run: RunFolder, threshold: int) -> list[str]:
     lines: list[str] = []
-    flow = run.patient_flow(run.primary_equation)
+    # every count of people is printed as the shared tables print it (one protection)
+    flow = run.printed_patient_flow()
     if flow:
-        counted = "; ".join(f"{k} {small_count_text(v, threshold)}" for k, v in flow.items())
-        lines.append(f"Patients: {counted}.")
-    counts = _group_counts(run)
-    if counts is not None and counts.height > 1:
-        listed = ", ".join(f"{g} ({small_count_text(n, threshold)})" for g, n in counts.rows())
+        lines.append("Patients: " + "; ".join(f"{k} {v}" for k, v in flow.items()) + ".")
+    group_sizes = _printed_group_sizes(run, threshold)
+    if len(group_sizes) > 1:
+        listed = ", ".join(f"{g} ({n})" for g, n in group_sizes.items())
         lines.append(f"Groups: {listed}.")
     lines += _slope_lines(run, threshold)
-    endpoints = run.table_or_none("endpoints")
-    if endpoints is not None:
-        events = endpoints.group_by("endpoint", maintain_order=True).agg(
-            patients=pl.len(), events=pl.col("event").cast(pl.Int64).sum()
-        )
-        lines += [
-            f"{display_label(name)}: {small_count_text(int(e), threshold)} events among "
-            f"{small_count_text(int(n), threshold)} patients."
-            for name, n, e in events.rows()
-        ]
+    lines += _event_lines(run)
     hazard_ratios = run.table_or_none("models/hazard_ratios")
     if hazard_ratios is not None and hazard_ratios.height:
         lines += [f"Hazard ratio, {label}." for label in forest_rows(hazard_ratios)["label"]]
     return lines
+
+
+def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:
+    """Patients per group as the baseline table prints them (its N row)."""
+    table = run.table_or_none("tables/baseline_characteristics")
+    if table is not None and "characteristic" in table.columns:
+        n_row = table.filter(pl.col("characteristic") == "N")
+        groups = [c for c in table.columns if c not in ("characteristic", "statistic", "level")]
+        if n_row.height:
+            return {g: str(n_row[g][0]) for g in groups if g != "Overall"}
+    counts = _group_counts(run)
+    if counts is None:
+        return {}
+    return {g: small_count_text(int(n), threshold) for g, n in counts.rows()}
+
+
+def _event_lines(run: RunFolder) -> list[str]:
+    """Events per endpoint, from the endpoint table's overall row (as it prints them)."""
+    table = run.table_or_none("tables/endpoint_table")
+    if table is None or not {"endpoint", "group", "events", "n_patients"} <= set(table.columns):
+        return []
+    overall = table.filter(pl.col("group") == "Overall")
+    if overall.is_empty():  # whole-cohort analysis: one row per endpoint
+        overall = table.unique("endpoint", keep="first", maintain_order=True)
+    return [
+        f"{display_label(name)}: {events.split(' (')[0]} events among {n} patients."
+        for name, events, n in overall.select("endpoint", "events", "n_patients").rows()
+    ]
 
 
 # ---- accounting and provenance ------------------------------------------------------------

@@ -151,6 +151,23 @@ class RunFolder:
                 )
         return labels
 
+    def printed_patient_flow(self) -> dict[str, str]:
+        """The patient flow as every shared output prints it: small counts, and counts
+        whose difference from the step before is small, protected
+        (:func:`kidneycohort.disclosure.protected_flow`); a step equal to the baseline
+        table's overall N stays shown, as the table prints it."""
+        from kidneycohort.disclosure import protected_flow
+
+        flow = self.patient_flow(self.primary_equation)
+        shown = []
+        if self.has("tables/baseline_characteristics"):
+            table = self.table("tables/baseline_characteristics")
+            if {"characteristic", "Overall"} <= set(table.columns):
+                n_row = table.filter(pl.col("characteristic") == "N")
+                overall = n_row["Overall"][0] if n_row.height else None
+                shown = [k for k, v in flow.items() if str(v) == overall]
+        return protected_flow(flow, self.small_cell_threshold, shown_elsewhere=shown)
+
     def patient_flow(self, equation: str | None = None) -> dict[str, int]:
         """Patient counts of the attrition flow: with lab results, with eGFR, with a baseline."""
         out: dict[str, int] = {}

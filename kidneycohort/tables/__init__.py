@@ -1,12 +1,14 @@
 """Trial and cohort tables: endpoints, slopes, baseline characteristics, KDIGO grids.
 
 Every function returns a polars DataFrame ready to print: counts and statistics are
-formatted as text, and small cells are protected. A count between 1 and the threshold
-(``TableRule.small_cell_threshold``, default 10) is shown as ``"<11"``; a percentage,
-rate or sum that would reveal such a count is suppressed with it; and where the other
-cells of a category block would give a suppressed cell away by subtraction from the
-total, the next smallest cell of the block is suppressed too (secondary suppression,
-common practice under data-use agreements). :func:`suppression_footnote` words the
+formatted as text, and counts of people are protected by :mod:`kidneycohort.disclosure`. A count between 1
+and the threshold (``TableRule.small_cell_threshold``, default 10) is shown as
+``"<11"``; a percentage or rate that would reveal such a count is suppressed with it;
+and where the other counts of a table (its margins, its overall column) would give a
+hidden count away, further counts are hidden (``"*"``) until none can be recovered
+(complementary suppression, common practice under data-use agreements). Pass one
+:class:`~kidneycohort.disclosure.SharedDisclosure` to several table functions to protect
+outputs shown together. :func:`suppression_footnote` words the
 footnote; :func:`write_tables` writes CSV files and one XLSX workbook;
 :func:`to_markdown` renders a table for the report.
 
@@ -23,6 +25,9 @@ from __future__ import annotations
 from kidneycohort.tables._baseline import (
     baseline_characteristics_table,
 )
+from kidneycohort.tables._endpoints import (
+    endpoint_table,
+)
 from kidneycohort.tables._format import (
     TableRule,
     suppress_small_counts,
@@ -34,7 +39,6 @@ from kidneycohort.tables._kdigo import (
     transition_table,
 )
 from kidneycohort.tables._models import (
-    endpoint_table,
     rate_comparison_table,
     slope_table,
 )

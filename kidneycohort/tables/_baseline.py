@@ -7,24 +7,23 @@ from collections.abc import Sequence
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.ages import age_at_index_expr, has_age
-from kidneycohort.disclosure import HIDDEN, CountLedger
+from kidneycohort.disclosure import HIDDEN, CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
 from kidneycohort.tables._format import (
     _DASH,
     _MISSING_LEVEL,
+    OVERALL,
     TableRule,
     _format_fixed,
     _is_small,
     suppression_label,
 )
-from kidneycohort.tables._kdigo import _one_row_per_patient
+from kidneycohort.tables._kdigo import A_MARGIN, G_MARGIN, _one_row_per_patient
 
 __all__ = ["baseline_characteristics_table"]
-
-OVERALL = "Overall"
 
 Characteristic = tuple[str, pl.DataFrame, str]
 """(name, frame of ``patient_id, value``, kind): kind ``mean``/``median`` for numbers."""
@@ -73,8 +72,8 @@ def _kdigo_rows(
     if "uacr_mg_g" in kdigo.columns:
         numeric.append(("UACR, mg/g", _values(kdigo, pl.col("uacr_mg_g"), pl.Float64), "median"))
     for column, name, levels in (
-        ("g_category", "KDIGO GFR category", G_CATEGORIES),
-        ("a_category", "KDIGO albuminuria category", A_CATEGORIES),
+        ("g_category", G_MARGIN, G_CATEGORIES),
+        ("a_category", A_MARGIN, A_CATEGORIES),
     ):
         if column in kdigo.columns:
             categorical.append((name, _values(kdigo, pl.col(column), pl.String), levels))
@@ -208,6 +207,7 @@ def _widen(long_rows: list[pl.DataFrame], columns: list[str]) -> pl.DataFrame:
     )
 
 
+@follows_input
 def baseline_characteristics_table(
     patients: FrameLike,
     baseline: FrameLike | None = None,
@@ -217,6 +217,7 @@ def baseline_characteristics_table(
     covariates: Sequence[str] = (),
     equation: str | None = None,
     rule: TableRule | None = None,
+    disclosure: SharedDisclosure | None = None,
 ) -> pl.DataFrame:
     r"""Baseline characteristics by group (and overall; only overall without a group column).
 
@@ -227,6 +228,10 @@ def baseline_characteristics_table(
     and each of ``covariates``: text and booleans as n (%) per level, numbers as mean (SD)
     or, when :math:`|\text{skewness}|` exceeds ``rule.skew_threshold``, median [IQR].
     Missing values get a ``missing`` level (n (%)). Percentages are of the group's N.
+
+    Counts of people are protected by :mod:`kidneycohort.disclosure` (threshold
+    ``rule.small_cell_threshold``); pass ``disclosure`` to protect this table together
+    with others shown beside it.
 
     Returns
     -------
@@ -285,7 +290,7 @@ def baseline_characteristics_table(
         order += 1
     counts = pl.concat([r for r in long_rows if "_kind" in r.columns], how="diagonal_relaxed")
     texts = [r for r in long_rows if "_kind" not in r.columns]
-    return _widen([*texts, _protected_text(counts, groups, rule)], [*groups, overall])
+    return _widen([*texts, _protected_text(counts, groups, rule, disclosure)], [*groups, overall])
 
 
 def _category_counts(
@@ -350,13 +355,19 @@ def _ledger(counts: pl.DataFrame, groups: list[str], threshold: int) -> CountLed
     return ledger
 
 
-def _protected_text(counts: pl.DataFrame, groups: list[str], rule: TableRule) -> pl.DataFrame:
+def _protected_text(
+    counts: pl.DataFrame,
+    groups: list[str],
+    rule: TableRule,
+    disclosure: SharedDisclosure | None = None,
+) -> pl.DataFrame:
     """The count cells as printed: ``n`` or ``n (%)``, small counts and the counts that
     would reveal them hidden (:mod:`kidneycohort.disclosure`)."""
-    ledger = _ledger(counts, groups, rule.small_cell_threshold)
-    hidden = ledger.protect()
+    display = protect_part(
+        _ledger(counts, groups, rule.small_cell_threshold), disclosure, "baseline"
+    )
     shown = [
-        ledger.display(hidden, key)
+        display(key)
         for key in zip(counts["characteristic"], counts["level"], counts["_group"], strict=True)
     ]
     visible = ~pl.col("_text").is_in([suppression_label(rule), HIDDEN])

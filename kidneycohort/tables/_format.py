@@ -13,6 +13,7 @@ from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort._rules import RuleModel
 
 __all__ = [
+    "OVERALL",
     "_DASH",
     "_MISSING_LEVEL",
     "TableRule",
@@ -31,8 +32,8 @@ _DASH = "–"
 
 _MISSING_LEVEL = "missing"
 
-
-_COMPLEMENTARY_LABEL = "*"  # hidden so that a suppressed cell cannot be recovered
+OVERALL = "Overall"
+"""The column (or row) of all patients, beside the groups."""
 
 
 class TableRule(RuleModel):
@@ -147,28 +148,3 @@ def suppress_small_counts(
     table = to_polars(frame, "table")
     require_columns(table, count_columns, "table")
     return table.with_columns(_count_text(pl.col(c), rule).alias(c) for c in count_columns)
-
-
-def _complementary(counts: pl.DataFrame) -> pl.DataFrame:
-    """Add ``_hidden``: ``_primary`` cells plus, in a group's block with exactly one
-    hidden cell (recoverable as N minus the others), its smallest other non-zero cell."""
-    block = pl.col("_group")
-    candidate = pl.when(~pl.col("_primary") & (pl.col("_count") > 0)).then(
-        pl.col("_count") * 10_000 + pl.col("_level_order")
-    )
-    return (
-        counts.with_columns(
-            pl.col("_primary").sum().over(block).alias("_n_hidden"), candidate.alias("_candidate")
-        )
-        .with_columns(
-            (
-                pl.col("_primary")
-                | (
-                    (pl.col("_n_hidden") == 1)
-                    & pl.col("_candidate").is_not_null()
-                    & (pl.col("_candidate") == pl.col("_candidate").min().over(block))
-                )
-            ).alias("_hidden")
-        )
-        .drop("_n_hidden", "_candidate")
-    )

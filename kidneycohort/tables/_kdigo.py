@@ -6,12 +6,18 @@ from collections.abc import Sequence
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
+from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
-from kidneycohort.tables._format import _MISSING_LEVEL, TableRule, _count_text, _is_small
+from kidneycohort.tables._format import (
+    _MISSING_LEVEL,
+    OVERALL,
+    TableRule,
+    _count_text,
+)
 
-__all__ = ["_one_row_per_patient", "kdigo_grid_table", "transition_table"]
+__all__ = ["A_MARGIN", "G_MARGIN", "_one_row_per_patient", "kdigo_grid_table", "transition_table"]
 
 
 def _one_row_per_patient(categories: pl.DataFrame, equation: str | None) -> pl.DataFrame:
@@ -39,20 +45,37 @@ def _one_row_per_patient(categories: pl.DataFrame, equation: str | None) -> pl.D
     return categories
 
 
+GRID = "KDIGO GFR × albuminuria"
+G_MARGIN = "KDIGO GFR category"
+A_MARGIN = "KDIGO albuminuria category"
+ALL = "all"
+
+
+@follows_input
 def kdigo_grid_table(
-    categories: FrameLike, *, equation: str | None = None, rule: TableRule | None = None
+    categories: FrameLike,
+    *,
+    equation: str | None = None,
+    rule: TableRule | None = None,
+    disclosure: SharedDisclosure | None = None,
 ) -> pl.DataFrame:
-    """Number of patients in each KDIGO GFR x albuminuria cell (KDIGO 2012 / 2024 grid).
+    """Number of patients in each KDIGO GFR x albuminuria cell (KDIGO 2012 / 2024 grid),
+    with the margins.
 
     ``categories`` holds one row per patient with ``g_category`` and ``a_category``; a
-    missing category is counted under ``missing`` rather than left out.
+    missing category is counted under ``missing`` rather than left out. Counts of people
+    are protected by :mod:`kidneycohort.disclosure` over the cells and margins together
+    (``disclosure``: together with the other outputs of a run, e.g. the baseline table,
+    whose G and A rows are the same counts as these margins).
 
     Returns
     -------
     polars.DataFrame
         ``g_category, a_category, n, n_display``: every G1-G5 x A1-A3 cell (zeros
-        included) plus any ``missing`` cells; ``n`` is null where suppressed and
-        ``n_display`` is the text to show (``"<11"``).
+        included), any ``missing`` cells, then the margins (``a_category == "all"`` for a
+        G row's total, ``g_category == "all"`` for an A column's, both for all patients);
+        ``n`` is null where hidden and ``n_display`` is the text to show (``"<11"``, or
+        ``"*"`` for a count hidden so that a small one cannot be recovered).
     """
     rule = rule or TableRule()
     kdigo = _one_row_per_patient(to_polars(categories, "categories"), equation)
@@ -76,20 +99,64 @@ def kdigo_grid_table(
         on=["g_category", "a_category"],
         how="left",
     ).with_columns(pl.col("n").fill_null(0))
-    return counted.select(
+    with_margins = pl.concat(
+        [
+            counted,
+            counted.group_by("g_category", maintain_order=True).agg(
+                pl.lit(ALL).alias("a_category"), pl.col("n").sum()
+            ),
+            counted.group_by("a_category", maintain_order=True).agg(
+                pl.lit(ALL).alias("g_category"), pl.col("n").sum()
+            ),
+            pl.DataFrame({"g_category": [ALL], "a_category": [ALL], "n": [counted["n"].sum()]}),
+        ],
+        how="diagonal_relaxed",
+    ).with_columns(pl.col("n").cast(pl.Int64))
+    display = protect_part(
+        _grid_ledger(with_margins, g_levels, a_levels, rule), disclosure, "kdigo_grid"
+    )
+    keys = [_grid_key(g, a) for g, a in with_margins.select("g_category", "a_category").rows()]
+    texts = pl.Series("n_display", [display(key) for key in keys], dtype=pl.String)
+    shown = texts.str.contains(r"^\d+$")
+    return with_margins.select(
         "g_category",
         "a_category",
-        pl.when(_is_small(pl.col("n"), rule)).then(None).otherwise(pl.col("n")).alias("n"),
-        _count_text(pl.col("n"), rule).alias("n_display"),
-    )
+        pl.when(shown).then(pl.col("n")).otherwise(None).alias("n"),
+    ).with_columns(texts)
 
 
+def _grid_key(g: str, a: str) -> tuple[str, str, str]:
+    """What a grid count is: a cell, or a margin that is the same count as the baseline
+    table's G or A row (missing levels excepted: there they also count patients with no
+    category row at all)."""
+    if a == ALL and g not in (ALL, _MISSING_LEVEL):
+        return (G_MARGIN, g, OVERALL)
+    if g == ALL and a not in (ALL, _MISSING_LEVEL):
+        return (A_MARGIN, a, OVERALL)
+    return (GRID, f"{g} × {a}", OVERALL)
+
+
+def _grid_ledger(
+    counts: pl.DataFrame, g_levels: Sequence[str], a_levels: Sequence[str], rule: TableRule
+) -> CountLedger:
+    ledger = CountLedger(threshold=rule.small_cell_threshold)
+    for g, a, n in counts.select("g_category", "a_category", "n").rows():
+        ledger.add(_grid_key(g, a), n)
+    for g in [*g_levels, ALL]:
+        ledger.relate([_grid_key(g, a) for a in a_levels], _grid_key(g, ALL))
+    for a in a_levels:
+        ledger.relate([_grid_key(g, a) for g in g_levels], _grid_key(ALL, a))
+    return ledger
+
+
+@follows_input
 def transition_table(
     transitions: FrameLike,
     *,
     axis: str = "G",
     equation: str | None = None,
     rule: TableRule | None = None,
+    disclosure: SharedDisclosure | None = None,
 ) -> pl.DataFrame:
     """Counts of category transitions (``schemas.TRANSITIONS`` rows) on one axis.
 
@@ -98,7 +165,9 @@ def transition_table(
     polars.DataFrame
         ``from_category, to_category, n, n_patients, n_display``: every ordered pair of
         distinct categories of the axis (zeros included); ``n`` counts transitions,
-        ``n_patients`` patients with at least one; both null where suppressed.
+        ``n_patients`` patients with at least one; both null where the patients are
+        a small count (:mod:`kidneycohort.disclosure`; ``disclosure`` to protect the
+        table together with other outputs).
     """
     rule = rule or TableRule()
     table = to_polars(transitions, "transitions")
@@ -130,7 +199,17 @@ def transition_table(
         on=["from_category", "to_category"],
         how="left",
     ).with_columns(pl.col("n", "n_patients").fill_null(0))
-    hidden = _is_small(pl.col("n"), rule) | _is_small(pl.col("n_patients"), rule)
+    # patients with a transition are counted; the number of transitions goes with them
+    ledger = CountLedger(threshold=rule.small_cell_threshold)
+    pairs = counted.select("from_category", "to_category", "n_patients").rows()
+    for source, target, n in pairs:
+        ledger.add(("transition", axis, f"{source} -> {target}"), n)
+    display = protect_part(ledger, disclosure, f"transition_table_{axis}")
+    shown = [
+        display(("transition", axis, f"{source} -> {target}")).isdigit()
+        for source, target, _ in pairs
+    ]
+    hidden = pl.lit(~pl.Series(shown, dtype=pl.Boolean))
     return counted.select(
         "from_category",
         "to_category",

@@ -5,157 +5,29 @@ and the slope-model contrasts.
 from __future__ import annotations
 
 import logging
-from collections.abc import Sequence
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike
-from kidneycohort.errors import ConvergenceError, InputDataError, did_you_mean
-from kidneycohort.models._design import with_group
+from kidneycohort._frames import FrameLike, follows_input
+from kidneycohort.disclosure import CountLedger, SharedDisclosure, protect_part
+from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.models.mixed import SlopeModel
 from kidneycohort.models.rates import incidence_rates
-from kidneycohort.models.survival import CoxModel
 from kidneycohort.tables._format import (
     _DASH,
     TableRule,
-    _count_text,
     _format_fixed,
     _interval,
-    _is_small,
     _p_text,
     suppression_label,
 )
 
-__all__ = ["endpoint_table", "rate_comparison_table", "slope_table"]
+__all__ = ["rate_comparison_table", "slope_table"]
 
 logger = logging.getLogger(__name__)
 
 
-def endpoint_table(
-    endpoints: FrameLike,
-    patients: FrameLike | None = None,
-    *,
-    group_column: str = "group",
-    reference_group: str | None = None,
-    covariates: Sequence[str] = (),
-    strata: Sequence[str] = (),
-    endpoint: str | Sequence[str] | None = None,
-    rule: TableRule | None = None,
-) -> pl.DataFrame:
-    r"""Endpoint table: per endpoint and group, N, events n (%), person-years, rate per
-    100 person-years (exact 95 % CI), hazard ratio (95 % CI) and p.
-
-    Rates are those of :func:`kidneycohort.models.rates.incidence_rates`; hazard ratios
-    come from :class:`kidneycohort.models.survival.CoxModel` per endpoint (group against
-    ``reference_group``, adjusted for ``covariates``, stratified by ``strata``). A hazard
-    ratio that cannot be estimated (no events) is shown as '–' with the reason logged.
-
-    .. math::
-
-        \%\ \text{events} = 100\, d / N, \qquad \text{rate} = 100\, d / PY
-
-    Returns
-    -------
-    polars.DataFrame
-        ``endpoint, group, n_patients, events, person_years, rate_per_100py,
-        hazard_ratio, p`` as text.
-    """
-    rule = rule or TableRule()
-    frame = with_group(endpoints, patients, group_column)
-    rates = incidence_rates(frame, group_column="group", endpoint=endpoint)
-    counts = frame.group_by("endpoint", "group").agg(pl.len().cast(pl.Int64).alias("n_patients"))
-    table = rates.join(counts, on=["endpoint", "group"], how="left")
-    groups = sorted(table["group"].unique().to_list())
-    reference = reference_group if reference_group is not None else groups[0]
-    if reference not in groups:
-        raise InputDataError(
-            f"reference_group: '{reference}' is not a value of '{group_column}' (values: "
-            f"{groups}){did_you_mean(reference, groups)}"
-        )
-    hazard_rows = []
-    if len(groups) > 1:
-        for name in table["endpoint"].unique().sort().to_list():
-            model = CoxModel(
-                endpoint=name,
-                group_column=group_column,
-                reference_group=reference,
-                covariates=covariates,
-                strata=strata,
-            )
-            try:
-                model.fit(frame, patients)
-            except ConvergenceError as error:
-                logger.warning("endpoint table: no hazard ratio for %s (%s)", name, error)
-                continue
-            summary = model.summary().filter(pl.col("term").str.starts_with(f"{group_column}="))
-            hazard_rows.append(
-                summary.select(
-                    pl.lit(name).alias("endpoint"),
-                    pl.col("term").str.slice(len(group_column) + 1).alias("group"),
-                    "hr",
-                    "hr_lower",
-                    "hr_upper",
-                    "p",
-                )
-            )
-    hazards = (
-        pl.concat(hazard_rows)
-        if hazard_rows
-        else pl.DataFrame(
-            schema={
-                "endpoint": pl.String,
-                "group": pl.String,
-                "hr": pl.Float64,
-                "hr_lower": pl.Float64,
-                "hr_upper": pl.Float64,
-                "p": pl.Float64,
-            }
-        )
-    )
-    table = table.join(hazards, on=["endpoint", "group"], how="left")
-    hide_events = _is_small(pl.col("events"), rule) | _is_small(pl.col("n_patients"), rule)
-    percent = pl.col("events") / pl.col("n_patients") * 100
-    return table.sort("endpoint", pl.col("group") != reference, "group").select(
-        "endpoint",
-        "group",
-        _count_text(pl.col("n_patients"), rule).alias("n_patients"),
-        pl.when(hide_events)
-        .then(_count_text(pl.col("events"), rule, hide=hide_events & (pl.col("events") > 0)))
-        .otherwise(
-            pl.concat_str(
-                [
-                    _count_text(pl.col("events"), rule),
-                    pl.lit(" ("),
-                    _format_fixed(percent, rule.decimals),
-                    pl.lit("%)"),
-                ]
-            )
-        )
-        .alias("events"),
-        _format_fixed(pl.col("person_years"), rule.decimals).alias("person_years"),
-        pl.when(hide_events & (pl.col("events") > 0))
-        .then(pl.lit(suppression_label(rule)))
-        .otherwise(
-            _interval(
-                pl.col("rate_per_100py"), pl.col("lower"), pl.col("upper"), rule.estimate_decimals
-            )
-        )
-        .alias("rate_per_100py"),
-        pl.when(pl.col("group") == reference)
-        .then(pl.lit("reference"))
-        .when(pl.col("hr").is_null())
-        .then(pl.lit(_DASH))
-        .otherwise(
-            _interval(pl.col("hr"), pl.col("hr_lower"), pl.col("hr_upper"), rule.estimate_decimals)
-        )
-        .alias("hazard_ratio"),
-        pl.when(pl.col("group") == reference)
-        .then(pl.lit(""))
-        .otherwise(_p_text(pl.col("p"), rule))
-        .alias("p"),
-    )
-
-
+@follows_input
 def slope_table(model: SlopeModel, *, rule: TableRule | None = None) -> pl.DataFrame:
     """Slope table of a fitted :class:`~kidneycohort.models.mixed.SlopeModel`: per group
     and per difference, acute change, chronic and total slopes with SE, 95 % CI and p.
@@ -199,6 +71,7 @@ def slope_table(model: SlopeModel, *, rule: TableRule | None = None) -> pl.DataF
     )
 
 
+@follows_input
 def rate_comparison_table(
     endpoints: FrameLike,
     patients: FrameLike | None = None,
@@ -207,6 +80,7 @@ def rate_comparison_table(
     reference_group: str | None = None,
     confidence: float = 0.95,
     rule: TableRule | None = None,
+    disclosure: SharedDisclosure | None = None,
 ) -> pl.DataFrame:
     r"""Incidence rates per 100 person-years with rate ratios and differences, for sharing.
 
@@ -221,9 +95,11 @@ def rate_comparison_table(
         \text{rate} = 100\,d/PY, \qquad RR = \frac{d_1/PY_1}{d_0/PY_0}, \qquad
         RD = 100\left(\frac{d_1}{PY_1} - \frac{d_0}{PY_0}\right)
 
-    Small-cell protection: an event count from 1 to the threshold is shown as the
-    suppression label, and so is every figure that would reveal it given the printed
-    person-years — the group's rate, and the ratio and difference of any comparison
+    Small-cell protection (:mod:`kidneycohort.disclosure`; ``disclosure`` to protect the
+    table together with the endpoint table, whose event counts are the same): an event
+    count from 1 to the threshold is shown as the suppression label, a count hidden to
+    protect another as ``"*"``, and so is every figure that would reveal it given the
+    printed person-years — the group's rate, and the ratio and difference of any comparison
     that involves a suppressed count (in either group).
 
     Returns
@@ -232,7 +108,7 @@ def rate_comparison_table(
         ``endpoint, group, events, person_years, rate_per_100py, rate_ratio,
         rate_difference_per_100py`` as text.
     """
-    from kidneycohort.models.rates import incidence_rates, rate_difference, rate_ratio
+    from kidneycohort.models.rates import rate_difference, rate_ratio
 
     rule = rule or TableRule()
     rates = incidence_rates(endpoints, patients, group_column=group_column, confidence=confidence)
@@ -264,7 +140,15 @@ def rate_comparison_table(
             pl.lit(None, dtype=pl.Float64).alias(c)
             for c in ("rate_ratio", "rr_lower", "rr_upper", "rd", "rd_lower", "rd_upper")
         )
-    small = _is_small(pl.col("events"), rule)
+    # events are the same counts as the endpoint table's (key ("events", endpoint, group))
+    ledger = CountLedger(threshold=rule.small_cell_threshold)
+    keys = [("events", e, g) for e, g in table.select("endpoint", "group").rows()]
+    for name, n in zip(keys, table["events"].to_list(), strict=True):
+        ledger.add(name, int(n))
+    display = protect_part(ledger, disclosure, "rate_comparison_table")
+    texts = [display(name) for name in keys]
+    table = table.with_columns(pl.Series("_events_text", texts, dtype=pl.String))
+    small = ~pl.col("_events_text").str.contains(r"^\d+$")
     reference_small = (
         (small & (pl.col("group") == reference)).any().over("endpoint")
         if reference is not None
@@ -277,10 +161,10 @@ def rate_comparison_table(
     return table.sort(key).select(
         "endpoint",
         "group",
-        _count_text(pl.col("events"), rule).alias("events"),
+        pl.col("_events_text").alias("events"),
         _format_fixed(pl.col("person_years"), rule.decimals).alias("person_years"),
         pl.when(small)
-        .then(label)
+        .then(pl.col("_events_text"))
         .otherwise(_interval(pl.col("rate_per_100py"), pl.col("lower"), pl.col("upper"), d))
         .alias("rate_per_100py"),
         pl.when(is_reference)

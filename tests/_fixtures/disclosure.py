@@ -63,6 +63,9 @@ def disclosed_counts(
         objective[j] = 1.0
         low = linprog(objective, A_eq=np.array(rows), b_eq=np.array(rhs), bounds=bounds)
         high = linprog(-objective, A_eq=np.array(rows), b_eq=np.array(rhs), bounds=bounds)
+        # the printed truth satisfies every relation: an infeasible system means the
+        # attacker's relations are wrong, and the test would pass for nothing
+        assert low.status != 2 and high.status != 2, f"relations contradict the table at {key!r}"
         if low.status == 0 and high.status == 0 and abs(low.fun + high.fun) < 1e-6:
             found[key] = low.fun
     return found

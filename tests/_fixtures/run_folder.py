@@ -23,6 +23,7 @@ from lifelines.statistics import proportional_hazard_test
 from kidneycohort._frames import conform
 from kidneycohort.run_folder import FILES
 from kidneycohort.schemas import BASELINE, EGFR, ENDPOINTS, LABS, REJECTED, SLOPES, TRANSITIONS
+from kidneycohort.tables import kdigo_grid_table, transition_table
 
 PRIMARY = "ckd_epi_2021_cr"
 SECONDARY = "ckd_epi_2021_crcys"
@@ -537,15 +538,17 @@ def build_run_folder(
             egfr_mean=pl.col("egfr").mean().round(1),
         )
         .sort("group"),
-        "kdigo_grid": grid.pivot(on="a_category", index="g_category", values="n")
-        .sort("g_category")
-        .with_columns(pl.exclude("g_category").cast(pl.Int64).fill_null(0))
-        .with_columns(
-            _small(pl.col(c)).alias(c)
-            for c in ("A1", "A2", "A3")
-            if c in grid["a_category"].to_list()
+        # the shared KDIGO tables as the tables stage prints them (protected, long layout)
+        "kdigo_grid": kdigo_grid_table(
+            grid.select(
+                pl.col("g_category").repeat_by("n").explode(),
+                pl.col("a_category").repeat_by("n").explode(),
+            )
+            .drop_nulls()
+            .with_row_index("patient_id")
+            .with_columns(pl.col("patient_id").cast(pl.String))
         ),
-        "transition_matrix": counts.with_columns(n=_small(pl.col("n"))),
+        "transition_matrix": transition_table(transitions),
     }
     for name, df in tables.items():
         if f"tables/{name}.csv" not in omit:

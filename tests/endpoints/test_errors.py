@@ -214,3 +214,13 @@ def test_definition_defaults_are_self_describing() -> None:
     for model in (EndpointRule, EgfrDecline, EgfrBelow, KidneyFailure, Composite):
         for name, info in model.model_fields.items():
             assert info.description, f"{model.__name__}.{name} has no description"
+
+
+def test_a_fraction_given_as_percent_is_refused() -> None:
+    # 0.4 typed for 40 %: no published decline endpoint is below 1 % (common practice:
+    # 30, 40, 57 % - Levey 2014); the message names the field and suggests 40
+    with pytest.raises(ConfigError, match=r"EgfrDecline\.percent: 0\.4 .*did you mean 40"):
+        EgfrDecline(percent=0.4)
+    with pytest.raises(ConfigError, match="and_decline_percent"):
+        EgfrBelow(threshold=15, and_decline_percent=0.5)
+    assert EgfrDecline(percent=40).percent == 40

@@ -141,4 +141,5 @@ def test_no_person_time_is_refused() -> None:
 def test_pandas_input_gives_the_same_table() -> None:
     expected = incidence_rates(_endpoints(), _patients())
     result = incidence_rates(_endpoints().to_pandas(), _patients().to_pandas())
-    assert_frame_equal(result, expected)
+    assert type(result).__module__.startswith("pandas")  # pandas in, pandas out
+    assert_frame_equal(pl.from_pandas(result), expected, check_dtypes=False)

@@ -3,7 +3,10 @@ row accounting, KDIGO stages and grid, KFRE at baseline and its summary, the rep
 
 from __future__ import annotations
 
+import itertools
 import json
+import re
+from html import unescape
 from pathlib import Path
 
 import numpy as np
@@ -14,6 +17,7 @@ from click.testing import CliRunner
 from kidneycohort.cli import cli
 from kidneycohort.pipeline.demo import demo_config_path, demo_scenario_path
 from kidneycohort.synthetic import write_cohort
+from tests._fixtures.disclosure import disclosed_counts, printed_count
 
 PATIENTS = 2000
 PRIMARY = "ckd_epi_2021_cr"
@@ -249,3 +253,100 @@ def test_report_holds_the_cohort_sections(cohort_run) -> None:
     manifest = json.loads((run / "manifest.json").read_text())
     listed = {o["file"] for o in manifest["outputs"]}
     assert {"report.html", "kfre.parquet", "tables/kfre_summary.csv"} <= listed
+
+
+def test_no_hidden_count_of_people_can_be_recovered_across_the_run(cohort_run) -> None:
+    # The acceptance test of disclosure control: an attacker who reads every shared table
+    # and the report, knows how their counts add up (levels to N, groups to Overall, grid
+    # rows and columns to their margins, grid margins equal the baseline table's G and A
+    # rows, the rate table's events equal the endpoint table's) and that a hidden count is
+    # a whole number (1..10 when printed "<11") solves linear programmes for every hidden
+    # count (tests/_fixtures/disclosure.py) and pins down none of them.
+    run = cohort_run[0]
+
+    def read(name: str) -> pl.DataFrame:
+        return pl.read_csv(run / "tables" / f"{name}.csv", infer_schema=False)
+
+    printed: dict[tuple, str] = {}
+    relations: list[tuple[list[tuple], tuple]] = []
+    baseline = read("baseline_characteristics")
+    columns = [c for c in baseline.columns if c not in ("characteristic", "statistic", "level")]
+    groups = [c for c in columns if c != "Overall"]
+    for row in baseline.iter_rows(named=True):
+        if row["statistic"] in ("n", "n (%)"):
+            for column in columns:
+                printed[("b", row["characteristic"], row["level"] or "", column)] = row[column]
+    blocks = baseline.filter(pl.col("statistic") == "n (%)").group_by("characteristic")
+    for (characteristic,), block in blocks:
+        levels = block["level"].to_list()
+        if "recorded" in levels or len(levels) < 2:
+            continue  # a missing-values row alone is one count, not a block
+        for column in columns:
+            members = [("b", characteristic, level, column) for level in levels]
+            relations.append((members, ("b", "N", "", column)))
+    for key in [k for k in printed if k[3] == "Overall"]:
+        relations.append(([(*key[:3], g) for g in groups], key))
+
+    grid = read("kdigo_grid")
+    for g, a, text in grid.select("g_category", "a_category", "n_display").rows():
+        printed[("g", g, a)] = text
+    g_levels = [g for g in grid["g_category"].unique(maintain_order=True) if g != "all"]
+    a_levels = [a for a in grid["a_category"].unique(maintain_order=True) if a != "all"]
+    for g in [*g_levels, "all"]:
+        relations.append(([("g", g, a) for a in a_levels], ("g", g, "all")))
+    for a in a_levels:
+        relations.append(([("g", g, a) for g in g_levels], ("g", "all", a)))
+    for g in g_levels:
+        if ("b", "KDIGO GFR category", g, "Overall") in printed and g != "missing":
+            relations.append(([("g", g, "all")], ("b", "KDIGO GFR category", g, "Overall")))
+    for a in a_levels:
+        if ("b", "KDIGO albuminuria category", a, "Overall") in printed and a != "missing":
+            relations.append(([("g", "all", a)], ("b", "KDIGO albuminuria category", a, "Overall")))
+
+    endpoints = read("endpoint_table")
+    rates = read("incidence_rates")
+    for name, group, n, events in endpoints.select(
+        "endpoint", "group", "n_patients", "events"
+    ).rows():
+        printed[("e", name, group, "n")] = n
+        printed[("e", name, group, "events")] = events
+    for name, group, events in rates.select("endpoint", "group", "events").rows():
+        printed[("r", name, group)] = events
+        relations.append(([("r", name, group)], ("e", name, group, "events")))
+    for name in endpoints["endpoint"].unique().to_list():
+        for what in ("n", "events"):
+            relations.append(([("e", name, g, what) for g in groups], ("e", name, "Overall", what)))
+
+    kfre = read("kfre_summary")
+    block = kfre.filter(pl.col("characteristic").is_in(["KFRE applicable", "KFRE not applicable"]))
+    for row in kfre.iter_rows(named=True):
+        if row["statistic"].startswith("n"):
+            for column in columns:
+                printed[("k", row["characteristic"], row["level"] or "", column)] = row[column]
+    for column in columns:
+        members = [
+            ("k", c, level or "", column)
+            for c, level in block.select("characteristic", "level").rows()
+        ]
+        relations.append((members, ("k", "N", "", column)))
+        relations.append(([("k", "N", "", column)], ("b", "N", "", column)))
+    for key in [k for k in printed if k[0] == "k" and k[3] == "Overall"]:
+        relations.append(([(*key[:3], g) for g in groups], key))
+
+    assert any(printed_count(t) is None for t in printed.values()), "nothing was hidden"
+    assert disclosed_counts(printed, relations) == {}
+
+    # the report prints the same texts (no count it hides elsewhere) and its patient flow
+    # gives no small number away by subtraction
+    html = unescape((run / "report.html").read_text(encoding="utf-8"))
+    flow = re.search(r"Patients: ([^<]*)\.", html)
+    assert flow is not None
+    steps = [part.rsplit(" ", 1)[1] for part in flow.group(1).split("; ")]
+    shown = [printed_count(s) for s in steps]
+    for before, after in itertools.pairwise(shown):
+        if before is not None and after is not None:
+            assert not 1 <= before - after <= 10, steps
+    for name in endpoints["endpoint"].unique().to_list():
+        overall = endpoints.filter((pl.col("endpoint") == name) & (pl.col("group") == "Overall"))
+        events = overall["events"][0].split(" (")[0]
+        assert f"{events} events among {overall['n_patients'][0]} patients" in html

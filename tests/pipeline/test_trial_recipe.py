@@ -281,11 +281,17 @@ def test_kdigo_grid_counts_patients_by_baseline_categories(demo) -> None:
         want = int(crosstab.loc[g, a]) if g in crosstab.index and a in crosstab.columns else 0
         assert n == want, (g, a)
     assert int(grid["n"].sum()) == len(both)
-    # the printed table hides 1-10 and counts the patients with a missing category
+    # the printed table (no suppression in the trial recipe) equals the model counts
+    # cell by cell and adds the margins
     table = pl.read_csv(run / "tables/kdigo_grid.csv", infer_schema=False)
-    shown = table.filter(pl.col("n").is_not_null())["n"].cast(pl.Int64)
-    assert not shown.is_between(1, 10).any()
-    assert table.filter(pl.col("n_display") == "<11").height == table["n"].null_count()
+    cells = table.filter((pl.col("g_category") != "all") & (pl.col("a_category") != "all"))
+    printed = dict(
+        zip(zip(cells["g_category"], cells["a_category"], strict=True), cells["n"], strict=True)
+    )
+    for g, a, n in grid.select("g_category", "a_category", "n").rows():
+        assert printed[(g, a)] == str(n), (g, a)
+    total = table.filter((pl.col("g_category") == "all") & (pl.col("a_category") == "all"))
+    assert int(total["n"][0]) == int(cells["n"].cast(pl.Int64).sum())
 
 
 def test_adam_dataset_equals_the_export_of_the_endpoints(demo) -> None:
@@ -361,20 +367,19 @@ def test_adam_files_in_the_run_folder(demo) -> None:
     assert len(back) == adtte.height
 
 
-def test_shared_tables_print_no_small_counts(demo) -> None:
-    # every aggregate table under tables/ follows the small-cell rule (counts 1..10 are
-    # shown as <11 - common practice in data-use agreements); exact rates stay in models/
+def test_trial_tables_print_exact_counts(demo) -> None:
+    # the trial recipe turns small-cell suppression off (its tables are not a public
+    # release); the shared rate table then prints the exact counts of models/
     run = demo[0]
+    manifest = json.loads((run / "manifest.json").read_text())
+    assert manifest["config"]["tables"]["small_cell_threshold"] == 0
     rates = pl.read_csv(run / "tables" / "incidence_rates.csv", infer_schema=False)
     assert {"rate_ratio", "rate_difference_per_100py"} <= set(rates.columns)
-    small = rates.filter(pl.col("events").str.contains(r"^(?:[1-9]|10)$"))
-    assert small.is_empty()
     exact = pl.read_parquet(run / "models" / "incidence_rates.parquet")
-    shown = rates.filter(pl.col("events") != "<11")
-    joined = shown.join(
+    joined = rates.join(
         exact.select("endpoint", "group", pl.col("events").cast(pl.String).alias("exact")),
         on=["endpoint", "group"],
     )
-    assert joined.height == shown.height
+    assert joined.height == rates.height
     assert (joined["events"] == joined["exact"]).all()
-    assert (rates["events"] == "<11").any()  # the demo has rare endpoints
+    assert joined["exact"].cast(pl.Int64).is_between(1, 10).any()  # rare endpoints shown

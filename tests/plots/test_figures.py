@@ -23,7 +23,7 @@ from PIL import Image
 from scipy import stats
 
 from kidneycohort import plots
-from kidneycohort.disclosure import small_cell_text
+from kidneycohort.disclosure import protected_flow, small_cell_text
 from kidneycohort.errors import InputDataError
 from tests._fixtures.run_folder import PRIMARY, build_run_folder
 
@@ -429,14 +429,18 @@ def test_attrition_boxes_follow_the_accounting(run: dict) -> None:
     )
     assert labs["used"]["n"] == acc["rows_used"]
     text = labs["excluded"]["text"]
+    # rows are not people: row accounting is printed in full, small numbers included
     for reason in manifest["accounting_by_reason"]:
-        shown = "<11" if reason["rows"] <= 10 else str(reason["rows"])
-        assert f"{reason['reason'].replace('_', ' ')}: {shown}" in text
-    assert (
-        f"Merged as duplicates: {'<11' if acc['rows_merged'] <= 10 else acc['rows_merged']}" in text
-    )
+        assert f"{reason['reason'].replace('_', ' ')}: {reason['rows']}" in text
+    assert f"Merged as duplicates: {acc['rows_merged']}" in text
     patients = boxes.filter(pl.col("kind") == "patients")["text"].to_list()
     assert patients == ["Patients with eGFR\n118", "Patients analysed\n<11"]
+    # a flow given as printed texts (protected as a chain) is drawn as it stands
+    flow = protected_flow({"with eGFR": 118, "analysed": 112})  # 6 left out: hidden
+    assert flow == {"with eGFR": "118", "analysed": "*"}
+    chain = plots.attrition_boxes(manifest["accounting"], patients=flow)
+    drawn = chain.filter(pl.col("kind") == "patients")["text"].to_list()
+    assert drawn == ["Patients with eGFR\n118", "Patients analysed\n*"]
     _draw(plots.attrition_figure(manifest["accounting"], manifest["accounting_by_reason"]))
 
 
@@ -574,6 +578,7 @@ def test_write_figures_draws_what_the_folder_has(tmp_path: Path, run: dict) -> N
     for name in (
         "models/trajectories.parquet",
         "models/kdigo_grid.parquet",
+        "tables/kdigo_grid.csv",  # the grid figure prints the shared table when present
         "models/hazard_ratios.parquet",
     ):
         (folder / name).unlink()

@@ -11,7 +11,7 @@ import polars as pl
 import pytest
 from polars.testing import assert_frame_equal
 
-from kidneycohort.errors import InputDataError
+from kidneycohort.errors import InputDataError, StatisticalWarning
 from kidneycohort.models.mixed import SlopeModel
 from kidneycohort.models.rates import exact_poisson_interval
 from kidneycohort.tables import (
@@ -143,16 +143,30 @@ def _kdigo() -> pl.DataFrame:
 def test_kdigo_grid_counts_every_cell() -> None:
     grid = kdigo_grid_table(_kdigo())
     assert grid.columns == ["g_category", "a_category", "n", "n_display"]
-    assert grid.height == 6 * 3 + 3  # full KDIGO grid + missing GFR category row
+    cells = grid.filter((pl.col("g_category") != "all") & (pl.col("a_category") != "all"))
+    assert cells.height == 7 * 3  # full KDIGO grid + missing GFR category row
+    # margins: 7 G rows (with missing), 3 A columns, and all patients
+    assert grid.height == 7 * 3 + 7 + 3 + 1
     cell = {(r[0], r[1]): (r[2], r[3]) for r in grid.rows()}
-    assert cell[("G2", "A1")] == (30, "30")
     assert cell[("G2", "A2")] == (None, "<11")  # 10 patients
-    assert cell[("G3a", "A2")] == (25, "25")
     assert cell[("G4", "A3")] == (None, "<11")
     assert cell[("G1", "A1")] == (0, "0")
     assert cell[("missing", "A1")] == (None, "<11")
-    shown = sum(v[0] for v in cell.values() if v[0] is not None)
-    assert shown == 30 + 25
+    assert cell[("all", "all")] == (70, "70")
+    # a reader adding up rows and columns learns none of the hidden counts
+    printed = {key: text for key, (_, text) in cell.items()}
+    g_levels = ["G1", "G2", "G3a", "G3b", "G4", "G5", "missing"]
+    a_levels = ["A1", "A2", "A3"]
+    relations = [([(g, a) for a in a_levels], (g, "all")) for g in [*g_levels, "all"]] + [
+        ([(g, a) for g in g_levels], ("all", a)) for a in a_levels
+    ]
+    assert disclosed_counts(printed, relations) == {}
+    # every shown count is the true count
+    truth = _kdigo().with_columns(pl.col("g_category").fill_null("missing"))
+    for (g, a), (n, _) in cell.items():
+        if n is not None and "all" not in (g, a):
+            expected = truth.filter((pl.col("g_category") == g) & (pl.col("a_category") == a))
+            assert n == expected.height
 
 
 def test_kdigo_grid_refuses_unknown_category() -> None:
@@ -206,16 +220,63 @@ def test_endpoint_table_by_hand() -> None:
         "rate_per_100py",
         "hazard_ratio",
         "p",
+        "note",
     ]
-    placebo, active = table.rows()
-    assert placebo[1] == "placebo" and placebo[3] == "<11" and placebo[5] == "<11"
-    assert placebo[6] == "reference"
+    placebo, active, overall = table.rows(named=True)
+    assert [placebo["group"], active["group"], overall["group"]] == ["placebo", "active", "Overall"]
+    assert placebo["events"] == "<11" and placebo["rate_per_100py"] == "<11"
+    assert placebo["hazard_ratio"] == "reference"
+    assert overall["n_patients"] == "40"
+    # 3 placebo events would be the overall 15 minus the active 12: one of those is hidden
+    printed = {g: row["events"] for g, row in zip("pao", (placebo, active, overall), strict=True)}
+    assert disclosed_counts(printed, [(["p", "a"], "o")]) == {}
     person_years = float(years[:20].sum())
     low, upp = exact_poisson_interval(12, person_years)
-    assert active[3] == "12 (60.0%)"
-    assert active[4] == f"{person_years:.1f}"
-    assert active[5] == f"{1200 / person_years:.2f} ({low[0]:.2f} to {upp[0]:.2f})"
-    assert active[6].count("(") == 1 and " to " in active[6]
+    assert active["person_years"] == f"{person_years:.1f}"
+    if active["events"] != "*":
+        assert active["events"] == "12 (60.0%)"
+        assert active["rate_per_100py"] == (
+            f"{1200 / person_years:.2f} ({low[0]:.2f} to {upp[0]:.2f})"
+        )
+    else:  # a hidden count hides its rate too (the person-years are printed)
+        assert active["rate_per_100py"] == "*"
+    assert active["hazard_ratio"].count("(") == 1 and " to " in active["hazard_ratio"]
+
+
+def test_endpoint_table_marks_a_ratio_that_cannot_be_estimated() -> None:
+    # one event against none: the partial likelihood has no maximum (monotone likelihood,
+    # Heinze & Schemper 2001); the ratio reads NE with its reason, never a number
+    patients = _patients(20, 20)
+    event = np.zeros(40, dtype=int)
+    event[0] = 1
+    endpoints = pl.DataFrame(
+        {
+            "patient_id": patients["patient_id"],
+            "endpoint": "kidney_failure",
+            "years": np.linspace(0.5, 3.0, 40),
+            "event": event,
+            "competing": 0,
+        }
+    )
+    with pytest.warns(StatisticalWarning, match="separation"):
+        table = endpoint_table(
+            endpoints, patients, reference_group="placebo", rule=TableRule(small_cell_threshold=0)
+        )
+    active = table.filter(pl.col("group") == "active").row(0, named=True)
+    assert active["hazard_ratio"] == "NE"
+    assert active["p"] == ""
+    assert active["note"].startswith("NE: hazard ratio not estimable")
+    assert "events" in active["note"]
+    # the same rule in the models table the figures and the report read
+    from kidneycohort.models.survival import hazard_ratio_table
+
+    with pytest.warns(StatisticalWarning, match="separation"):
+        ratios = hazard_ratio_table(
+            endpoints, patients, group_column="group", reference_group="placebo"
+        )
+    row = ratios.row(0, named=True)
+    assert row["estimable"] is False and row["reason"] == "too_few_events_in_group"
+    assert row["hr"] is None and row["hr_upper"] is None
 
 
 @pytest.fixture(scope="module")

@@ -29,15 +29,23 @@ from kidneycohort.models.survival._curves import (
 from kidneycohort.models.survival._data import (
     numbers_at_risk,
 )
+from kidneycohort.models.survival._estimability import (
+    MAX_LOG_HR_SE,
+    NOT_ESTIMABLE_REASONS,
+    estimability_note,
+)
 from kidneycohort.models.survival._rule import (
     SurvivalRule,
 )
 
 __all__ = [
+    "MAX_LOG_HR_SE",
+    "NOT_ESTIMABLE_REASONS",
     "CoxModel",
     "CumulativeIncidence",
     "KaplanMeier",
     "SurvivalRule",
+    "estimability_note",
     "evaluable_rows",
     "hazard_ratio_table",
     "numbers_at_risk",

@@ -16,12 +16,11 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Callable
-from functools import partial
 from typing import Any, TypeVar
 
 import polars as pl
 
-from kidneycohort._frames import FrameLike, to_polars
+from kidneycohort._frames import FrameLike, conform, follows_input, to_polars
 from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import ConfigError, ConvergenceError, StatisticalWarning, did_you_mean
 from kidneycohort.models.survival._cox import CoxModel
@@ -70,6 +69,7 @@ def _fit_each_endpoint(
     return out
 
 
+@follows_input
 def survival_curves_by_endpoint(
     endpoints: FrameLike,
     patients: FrameLike | None = None,
@@ -129,11 +129,71 @@ def _hazard_rows(name: str, fit: CoxModel, subgroup: str | None) -> pl.DataFrame
             "hr_lower",
             "hr_upper",
             "p",
-            "ph_p",
+            pl.when(pl.col("estimable")).then(pl.col("ph_p")).alias("ph_p"),
+            "events",
+            "reference_events",
+            "estimable",
+            "reason",
         )
     )
 
 
+def _unfitted_rows(
+    name: str, rows: pl.DataFrame, cohort: pl.DataFrame, rule: SurvivalRule, subgroup: str | None
+) -> pl.DataFrame:
+    """Group terms of an endpoint whose Cox model could not be fitted at all (no events,
+    or no convergence), as not-estimable rows, so that they are reported, not left out."""
+    column = rule.group_column
+    if column is None or column not in cohort.columns:
+        return pl.DataFrame(schema=HAZARD_RATIOS)
+    events = (
+        cohort.select("patient_id", pl.col(column).cast(pl.String).alias("_group"))
+        .join(rows.filter(pl.col("endpoint") == name), on="patient_id", how="inner")
+        .group_by("_group")
+        .agg(pl.col("event").cast(pl.Int64).sum().alias("events"))
+    )
+    levels = sorted(events["_group"].drop_nulls().to_list())
+    if len(levels) < 2:
+        return pl.DataFrame(schema=HAZARD_RATIOS)
+    reference = rule.reference_group if rule.reference_group in levels else levels[0]
+    by_level = dict(events.iter_rows())
+    none = by_level[reference] == 0 and all(n == 0 for n in by_level.values())
+    return pl.DataFrame(
+        {
+            "endpoint": name,
+            "term": [f"{column}={g}" for g in levels if g != reference],
+            "subgroup": subgroup,
+            "events": [by_level[g] for g in levels if g != reference],
+            "reference_events": by_level[reference],
+            "estimable": False,
+            "reason": "no_events" if none else "did_not_converge",
+        },
+        schema_overrides={"subgroup": pl.String},
+    ).pipe(conform, HAZARD_RATIOS)
+
+
+def _fit_or_report(
+    rows: pl.DataFrame, cohort: pl.DataFrame, rule: SurvivalRule, subgroup: str | None
+) -> list[pl.DataFrame]:
+    """Hazard-ratio rows of every endpoint of ``rows``: fitted, or reported not estimable."""
+    parts = []
+    for name in sorted(rows["endpoint"].unique().to_list()):
+        try:
+            fit = CoxModel(rule, endpoint=name).fit(rows, cohort)
+        except ConvergenceError as exc:  # e.g. no events: reported, not fatal
+            where = f" in subgroup {subgroup}" if subgroup else ""
+            warnings.warn(
+                f"Cox model of endpoint '{name}'{where} not estimated: {exc}",
+                StatisticalWarning,
+                stacklevel=3,
+            )
+            parts.append(_unfitted_rows(name, rows, cohort, rule, subgroup))
+            continue
+        parts.append(_hazard_rows(name, fit, subgroup))
+    return parts
+
+
+@follows_input
 def hazard_ratio_table(
     endpoints: FrameLike,
     patients: FrameLike,
@@ -180,10 +240,7 @@ def hazard_ratio_table(
         return pl.DataFrame(schema=HAZARD_RATIOS)
     rows = evaluable_rows(endpoints)
     cohort = to_polars(patients, "patients")
-    fits = _fit_each_endpoint(
-        rows, lambda name: CoxModel(resolved, endpoint=name).fit(rows, cohort), "Cox model"
-    )
-    parts = [_hazard_rows(name, fit, None) for name, fit in fits]
+    parts = _fit_or_report(rows, cohort, resolved, None)
     for column in resolved.subgroups:
         if column not in cohort.columns:
             raise ConfigError(
@@ -200,10 +257,9 @@ def hazard_ratio_table(
         for level in sorted(cohort[column].drop_nulls().cast(pl.String).unique().to_list()):
             members = cohort.filter(pl.col(column).cast(pl.String) == level)
             level_rows = rows.join(members.select("patient_id"), on="patient_id", how="semi")
-            level_fits = _fit_each_endpoint(
-                level_rows,
-                partial(_cox_fit, within, level_rows, members),
-                f"Cox model in subgroup {column}={level}",
-            )
-            parts.extend(_hazard_rows(name, fit, f"{column}={level}") for name, fit in level_fits)
-    return pl.concat(parts) if parts else pl.DataFrame(schema=HAZARD_RATIOS)
+            parts.extend(_fit_or_report(level_rows, members, within, f"{column}={level}"))
+    return (
+        conform(pl.concat(parts, how="diagonal_relaxed"), HAZARD_RATIOS)
+        if parts
+        else pl.DataFrame(schema=HAZARD_RATIOS)
+    )

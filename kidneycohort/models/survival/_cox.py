@@ -16,6 +16,7 @@ from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import ConvergenceError, InputDataError, did_you_mean
 from kidneycohort.models._design import capture_warnings, encode_covariates
 from kidneycohort.models.survival._data import _prepare, _warn_all
+from kidneycohort.models.survival._estimability import with_estimability
 from kidneycohort.models.survival._rule import SurvivalRule
 
 __all__ = ["CoxModel"]
@@ -152,24 +153,10 @@ class CoxModel:
             f"CoxModel ({self.endpoint_})",
             "check groups or covariate levels with few events and collinear covariates",
         )
+        self.converged_ = not captured.convergence
         self.fitter_ = fitter
         self.terms_ = names
-        summary = fitter.summary
-        self._summary = pl.DataFrame(
-            {
-                "term": names,
-                "hr": summary.loc[names, "exp(coef)"].to_numpy(dtype=float),
-                "hr_lower": np.exp(
-                    summary.loc[names].filter(like="coef lower").iloc[:, 0].to_numpy(dtype=float)
-                ),
-                "hr_upper": np.exp(
-                    summary.loc[names].filter(like="coef upper").iloc[:, 0].to_numpy(dtype=float)
-                ),
-                "p": summary.loc[names, "p"].to_numpy(dtype=float),
-                "log_hr": summary.loc[names, "coef"].to_numpy(dtype=float),
-                "se": summary.loc[names, "se(coef)"].to_numpy(dtype=float),
-            }
-        )
+        self._summary = self._tidy_summary(fitter, names, rows, group_column)
         with capture_warnings() as captured:
             test = proportional_hazard_test(fitter, frame, time_transform="km")
         _warn_all(captured.convergence, f"proportional-hazards test ({self.endpoint_})")
@@ -190,8 +177,60 @@ class CoxModel:
             )
         return self
 
+    def _tidy_summary(
+        self, fitter: CoxPHFitter, names: list[str], rows: pl.DataFrame, group_column: str
+    ) -> pl.DataFrame:
+        """lifelines' summary as one row per term, with the estimability rule applied."""
+        summary = fitter.summary
+        # an unbounded fit (separation) overflows to inf; the estimability rule rejects it
+        with np.errstate(over="ignore"):
+            tidy = self._tidy_numbers(summary, names)
+        return with_estimability(
+            tidy.join(self._term_events(rows, group_column), on="term", how="left"),
+            converged=self.converged_,
+            min_events_per_group=self.rule.min_events_per_group,
+        )
+
+    @staticmethod
+    def _tidy_numbers(summary: Any, names: list[str]) -> pl.DataFrame:
+        return pl.DataFrame(
+            {
+                "term": names,
+                "hr": summary.loc[names, "exp(coef)"].to_numpy(dtype=float),
+                "hr_lower": np.exp(
+                    summary.loc[names].filter(like="coef lower").iloc[:, 0].to_numpy(dtype=float)
+                ),
+                "hr_upper": np.exp(
+                    summary.loc[names].filter(like="coef upper").iloc[:, 0].to_numpy(dtype=float)
+                ),
+                "p": summary.loc[names, "p"].to_numpy(dtype=float),
+                "log_hr": summary.loc[names, "coef"].to_numpy(dtype=float),
+                "se": summary.loc[names, "se(coef)"].to_numpy(dtype=float),
+            }
+        )
+
+    def _term_events(self, rows: pl.DataFrame, group_column: str) -> pl.DataFrame:
+        """Events in each group term's group and in the reference group."""
+        if self.rule.group_column is None:
+            return pl.DataFrame(
+                schema={"term": pl.String, "events": pl.Int64, "reference_events": pl.Int64}
+            )
+        events = dict(rows.group_by("group").agg(pl.col("event").cast(pl.Int64).sum()).iter_rows())
+        return pl.DataFrame(
+            {
+                "term": [f"{group_column}={g}" for g in events if g != self.reference_group_],
+                "events": [n for g, n in events.items() if g != self.reference_group_],
+            },
+            schema={"term": pl.String, "events": pl.Int64},
+        ).with_columns(
+            pl.lit(events[self.reference_group_], dtype=pl.Int64).alias("reference_events")
+        )
+
     def summary(self) -> pl.DataFrame:
-        """``term, hr, hr_lower, hr_upper, p`` (+ ``log_hr, se``), one row per term."""
+        """``term, hr, hr_lower, hr_upper, p, log_hr, se`` per term, with ``events`` and
+        ``reference_events`` of group terms and the estimability rule's ``estimable`` and
+        ``reason`` (:mod:`kidneycohort.models.survival._estimability`; numbers null where
+        not estimable)."""
         if not hasattr(self, "_summary"):
             raise InputDataError("CoxModel: call .fit(endpoints, patients) first")
         return self._summary

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import polars as pl
 
-from kidneycohort._frames import FrameLike, to_polars
+from kidneycohort._frames import FrameLike, follows_input, to_polars
 from kidneycohort.errors import InputDataError, StatisticalWarning, did_you_mean
 from kidneycohort.models._design import split_complete_cases, with_group
 from kidneycohort.models.survival._rule import AT_RISK_COLUMNS
@@ -84,6 +84,7 @@ def _prepare(
     return kept, excluded, endpoint
 
 
+@follows_input
 def numbers_at_risk(
     durations: pl.DataFrame, times: Sequence[float], *, groups: Sequence[str] | None = None
 ) -> pl.DataFrame:

@@ -40,6 +40,12 @@ class SurvivalRule(RuleModel):
         description="Times (years) of the numbers-at-risk table under the curves.",
     )
     confidence: float = Field(0.95, gt=0, lt=1, description="Confidence level of intervals.")
+    min_events_per_group: int = Field(
+        1,
+        ge=1,
+        description="A group's hazard ratio is reported only when the group and the reference "
+        "group each have at least this many events (otherwise 'not estimable').",
+    )
     subgroups: list[str] = Field(
         default_factory=list,
         description="Patients columns whose levels each get their own Cox hazard ratios "

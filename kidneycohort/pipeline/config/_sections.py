@@ -91,7 +91,7 @@ sets it. The config sets each under ``study`` only; the loader fills the stage r
 
 
 class DataSection(_Strict):
-    """The input tables of the study (see the data contract in DESIGN.md).
+    """The input tables of the study (see docs/data_contract.md).
 
     Each entry is a :class:`kidneycohort.io.FileSource` (the readers' own option model),
     or a list of them for a table split over several files (e.g. one lab extract per

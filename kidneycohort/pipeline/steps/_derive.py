@@ -14,7 +14,6 @@ from kidneycohort.pipeline.steps._facts import (
     check_data_cut,
     group_column,
     primary_equation,
-    section,
     study_data_cut,
 )
 from kidneycohort.value_filter import ValueFilterRule
@@ -162,12 +161,12 @@ def add_kdigo_grid(registry: StepRegistry) -> None:
     """Step ``kdigo_grid``: KDIGO G and A categories at baseline and the grid counts."""
     from kidneycohort.baseline import uacr_baseline
     from kidneycohort.kdigo import KdigoGridRule, baseline_categories, kdigo_grid_counts
-    from kidneycohort.tables import TableRule, kdigo_grid_table
+    from kidneycohort.tables import TableRule
 
     @registry.register(
         "kdigo_grid",
         needs=["baseline", "labs", "cohort"],
-        makes=["baseline_categories", "models/kdigo_grid", "tables/kdigo_grid"],
+        makes=["baseline_categories", "models/kdigo_grid"],
         section="kdigo_grid",
         options=KdigoGridRule,
         extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
@@ -189,21 +188,18 @@ def add_kdigo_grid(registry: StepRegistry) -> None:
         return {
             "baseline_categories": categories,
             "models/kdigo_grid": kdigo_grid_counts(categories),
-            "tables/kdigo_grid": kdigo_grid_table(
-                categories, rule=section(ctx, "tables", TableRule)
-            ),
         }
 
 
 def add_kfre(registry: StepRegistry) -> None:
-    """Step ``kfre``: KFRE risk at baseline and its summary table."""
-    from kidneycohort.kfre import KfreRule, kfre_at_baseline, kfre_summary_table
+    """Step ``kfre``: KFRE risk at baseline per patient."""
+    from kidneycohort.kfre import KfreRule, kfre_at_baseline
     from kidneycohort.tables import TableRule
 
     @registry.register(
         "kfre",
         needs=["egfr", "labs", "cohort"],
-        makes=["kfre", "tables/kfre_summary"],
+        makes=["kfre"],
         section="kfre",
         options=KfreRule,
         extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
@@ -221,10 +217,5 @@ def add_kfre(registry: StepRegistry) -> None:
             value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
             group_column=group,
         )
-        summary = kfre_summary_table(
-            rows,
-            group_column=group,
-            rule=ctx.options,  # type: ignore[arg-type]
-            table_rule=section(ctx, "tables", TableRule),
-        )
-        return {"kfre": rows, "tables/kfre_summary": summary}
+        # its summary table is printed by the tables step, protected with the others
+        return {"kfre": rows}

@@ -21,9 +21,9 @@ def _categories_for_table(categories: pl.DataFrame | None) -> pl.DataFrame | Non
     return categories
 
 
-def _common_tables(ctx: StepContext) -> dict[str, pl.DataFrame]:
+def _shared_tables(ctx: StepContext, disclosure: Any, *, cohort_tables: bool) -> dict[str, Any]:
+    """Every shared table of the run, protected by ``disclosure`` (one ledger for all)."""
     from kidneycohort import tables as tb
-    from kidneycohort.models.rates import incidence_rates
     from kidneycohort.models.survival import SurvivalRule, evaluable_rows
 
     rule = ctx.options
@@ -31,7 +31,9 @@ def _common_tables(ctx: StepContext) -> dict[str, pl.DataFrame]:
     survival = section(ctx, "survival", SurvivalRule)
     endpoints = evaluable_rows(ctx.tables["endpoints"])
     cohort = ctx.tables["cohort"]
-    return {
+    equation = primary_equation(ctx.sections, ctx.tables)
+    categories = _categories_for_table(ctx.tables.get("baseline_categories"))
+    out: dict[str, Any] = {
         "tables/endpoint_table": tb.endpoint_table(
             endpoints,
             cohort,
@@ -39,18 +41,22 @@ def _common_tables(ctx: StepContext) -> dict[str, pl.DataFrame]:
             reference_group=survival.reference_group,
             covariates=survival.covariates,
             strata=survival.strata,
+            # the cox step's fits: one fit per endpoint per run, its warnings said once
+            hazard_ratios=ctx.tables.get("models/hazard_ratios"),
             rule=rule,
+            disclosure=disclosure,
         ),
         "tables/baseline_characteristics": tb.baseline_characteristics_table(
             cohort,
             ctx.tables["baseline"],
             # KDIGO G and A categories and UACR at baseline, when the recipe made them
-            _categories_for_table(ctx.tables.get("baseline_categories")),
+            categories,
             group_column=survival.group_column,
-            equation=primary_equation(ctx.sections, ctx.tables),
+            equation=equation,
             rule=rule,
+            disclosure=disclosure,
         ),
-        # the shared table suppresses small cells; the exact rates stay in models/
+        # the shared table protects small counts; the exact rates stay in models/
         "tables/incidence_rates": tb.rate_comparison_table(
             endpoints,
             cohort,
@@ -58,14 +64,70 @@ def _common_tables(ctx: StepContext) -> dict[str, pl.DataFrame]:
             reference_group=survival.reference_group,
             confidence=survival.confidence,
             rule=rule,
-        ),
-        "models/incidence_rates": incidence_rates(
-            endpoints,
-            cohort,
-            group_column=survival.group_column,
-            confidence=survival.confidence,
+            disclosure=disclosure,
         ),
     }
+    out["tables/kdigo_grid"] = (
+        tb.kdigo_grid_table(categories, rule=rule, disclosure=disclosure)
+        if categories is not None
+        else pl.DataFrame(
+            schema={"g_category": pl.String, "a_category": pl.String, "n": pl.Int64}
+        ).with_columns(pl.lit(None, dtype=pl.String).alias("n_display"))
+    )
+    if cohort_tables:
+        out["tables/kfre_summary"] = _kfre_summary(ctx, survival.group_column, disclosure)
+        out["tables/transition_matrix"] = tb.transition_table(
+            ctx.tables["transitions"], axis="G", equation=equation, rule=rule, disclosure=disclosure
+        )
+    return out
+
+
+def _kfre_summary(ctx: StepContext, group: str | None, disclosure: Any) -> pl.DataFrame:
+    """The KFRE summary table, when the run computed KFRE (empty otherwise)."""
+    from kidneycohort.kfre import KfreRule, kfre_summary_table
+    from kidneycohort.tables import TableRule
+
+    table_rule = ctx.options
+    assert isinstance(table_rule, TableRule)
+    rows = ctx.tables.get("kfre")
+    if rows is None:
+        return pl.DataFrame(
+            schema={"characteristic": pl.String, "statistic": pl.String, "level": pl.String}
+        )
+    return kfre_summary_table(
+        rows,
+        group_column=group,
+        rule=section(ctx, "kfre", KfreRule),
+        table_rule=table_rule,
+        disclosure=disclosure,
+    )
+
+
+def _protected_tables(ctx: StepContext, *, cohort_tables: bool) -> dict[str, Any]:
+    """The shared tables built twice: once to enter every count of people they print into
+    one ledger, then, after one protection of the whole ledger, to print them
+    (:class:`kidneycohort.disclosure.SharedDisclosure`), so no table gives away a count
+    another hides. The exact (unprotected) rates go to ``models/``."""
+    from kidneycohort.disclosure import SharedDisclosure
+    from kidneycohort.models.rates import incidence_rates
+    from kidneycohort.models.survival import SurvivalRule, evaluable_rows
+    from kidneycohort.tables import TableRule, slope_table
+
+    rule = ctx.options
+    assert isinstance(rule, TableRule)
+    shared = SharedDisclosure(rule.small_cell_threshold)
+    _shared_tables(ctx, shared, cohort_tables=cohort_tables)
+    shared.finalize()
+    out = _shared_tables(ctx, shared, cohort_tables=cohort_tables)
+    survival = section(ctx, "survival", SurvivalRule)
+    out["models/incidence_rates"] = incidence_rates(
+        evaluable_rows(ctx.tables["endpoints"]),
+        ctx.tables["cohort"],
+        group_column=survival.group_column,
+        confidence=survival.confidence,
+    )
+    out["tables/slope_table"] = slope_table(ctx.tables["slope_model_fit"], rule=rule)
+    return out
 
 
 _COMMON = (
@@ -73,48 +135,42 @@ _COMMON = (
     "tables/baseline_characteristics",
     "tables/incidence_rates",
     "models/incidence_rates",
+    "tables/slope_table",
+    "tables/kdigo_grid",
 )
 
 
 def add_tables(registry: StepRegistry) -> None:
     """Steps ``trial_tables`` and ``cohort_tables``."""
-    from kidneycohort.tables import TableRule, slope_table, transition_table
+    from kidneycohort.tables import TableRule
 
     @registry.register(
         "trial_tables",
-        optional_needs=["baseline_categories"],
+        optional_needs=["baseline_categories", "models/hazard_ratios"],
         needs=["endpoints", "cohort", "baseline", "slope_model_fit"],
-        makes=[*_COMMON, "tables/slope_table"],
+        makes=[*_COMMON],
         section="tables",
         options=TableRule,
-        description="Endpoint, baseline, incidence-rate and slope tables (kidneycohort.tables).",
+        description="Endpoint, baseline, incidence-rate, KDIGO grid and slope tables, "
+        "protected together (kidneycohort.tables, kidneycohort.disclosure).",
     )
     def trial_tables_step(ctx: StepContext) -> dict[str, Any]:
-        """The trial's endpoint, baseline, incidence and slope tables."""
-        out = _common_tables(ctx)
-        out["tables/slope_table"] = slope_table(ctx.tables["slope_model_fit"], rule=ctx.options)  # type: ignore[arg-type]
-        return out
+        """The trial's endpoint, baseline, incidence, KDIGO grid and slope tables."""
+        return _protected_tables(ctx, cohort_tables=False)
 
     @registry.register(
         "cohort_tables",
-        optional_needs=["baseline_categories"],
+        optional_needs=["baseline_categories", "models/hazard_ratios", "kfre"],
         needs=["endpoints", "cohort", "baseline", "transitions", "slope_model_fit"],
-        makes=[*_COMMON, "tables/transition_matrix", "tables/slope_table"],
+        makes=[*_COMMON, "tables/transition_matrix", "tables/kfre_summary"],
         section="tables",
         options=TableRule,
-        description="Endpoint, baseline, incidence-rate, G-transition and slope tables.",
+        description="Endpoint, baseline, incidence-rate, KDIGO grid, G-transition and slope "
+        "tables, protected together.",
     )
     def cohort_tables_step(ctx: StepContext) -> dict[str, Any]:
-        """The cohort's endpoint, baseline, incidence and transition tables."""
-        out = _common_tables(ctx)
-        out["tables/transition_matrix"] = transition_table(
-            ctx.tables["transitions"],
-            axis="G",
-            equation=primary_equation(ctx.sections, ctx.tables),
-            rule=ctx.options,  # type: ignore[arg-type]
-        )
-        out["tables/slope_table"] = slope_table(ctx.tables["slope_model_fit"], rule=ctx.options)  # type: ignore[arg-type]
-        return out
+        """The cohort's endpoint, baseline, incidence, grid, transition and slope tables."""
+        return _protected_tables(ctx, cohort_tables=True)
 
 
 def add_figures(registry: StepRegistry) -> None:

@@ -1,0 +1,38 @@
+"""Tables in, the same kind of tables out, across the public API."""
+
+from __future__ import annotations
+
+import inspect
+
+import polars as pl
+
+import kidneycohort as kc
+from kidneycohort._frames import follows_input
+
+# functions that take no table (registries, reference tables) return polars
+NO_TABLE_INPUT = {"registry_table", "loinc_table", "risk_grid"}
+
+
+def test_every_public_table_function_follows_its_input() -> None:
+    missing = []
+    for name in kc._PUBLIC:
+        obj = getattr(kc, name)
+        if not inspect.isfunction(obj) or name in NO_TABLE_INPUT:
+            continue
+        returns = str(inspect.signature(obj).return_annotation)
+        if "DataFrame" in returns and not hasattr(obj, "__wrapped__"):
+            missing.append(name)
+    assert missing == [], f"decorate with kidneycohort._frames.follows_input: {missing}"
+
+
+def test_pandas_in_pandas_out_polars_in_polars_out() -> None:
+    import pandas as pd
+
+    @follows_input
+    def double(table: pl.DataFrame | pd.DataFrame) -> pl.DataFrame:
+        frame = table if isinstance(table, pl.DataFrame) else pl.from_pandas(table)
+        return frame.with_columns(pl.col("x") * 2)
+
+    assert isinstance(double(pl.DataFrame({"x": [1]})), pl.DataFrame)
+    out = double(pd.DataFrame({"x": [1]}))
+    assert isinstance(out, pd.DataFrame) and out["x"].tolist() == [2]
