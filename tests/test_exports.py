@@ -91,6 +91,12 @@ def test_public_submodule_resolves(name: str) -> None:
     assert getattr(kc, name) is importlib.import_module(f"kidneycohort.{name}")
 
 
+def test_every_public_module_is_a_public_submodule() -> None:
+    public = {info.name for info in pkgutil.iter_modules(kc.__path__)}
+    missing = sorted(name for name in public - set(kc._SUBMODULES) if not name.startswith("_"))
+    assert not missing, f"add to kidneycohort._SUBMODULES and the TYPE_CHECKING imports: {missing}"
+
+
 def test_top_level_all_and_dir() -> None:
     for name in kc.__all__:
         assert hasattr(kc, name), name
