@@ -46,6 +46,7 @@ __all__ = [
     "HIDDEN",
     "CountLedger",
     "SharedDisclosure",
+    "disclosure_footnote",
     "protect_part",
     "protected_flow",
     "protected_texts",
@@ -251,8 +252,9 @@ class CountLedger:
 
     def _complement(self, exposed: list[Hashable], hidden: set[Hashable]) -> Hashable | None:
         """The count to hide next: among the visible counts related to an exposed one
-        (members before totals, non-zero before zero, the smallest first: the least
-        information lost), of the first few the one that leaves the fewest exposed."""
+        (members before totals - a total only when no member is left -, non-zero before
+        zero, the smallest first: the least information lost), of the first few the one
+        that leaves the fewest exposed."""
         members_anywhere = {m for ms, _ in self.relations for m in ms}
         touched = set(exposed)
         candidates = {
@@ -269,8 +271,20 @@ class CountLedger:
             n = self.counts[key]
             return (key not in members_anywhere, n == 0, n, repr(key))
 
-        shortlist = sorted(candidates, key=order)[:_SHORTLIST]
-        return min(shortlist, key=lambda key: len(self.recoverable(hidden | {key})))
+        # a total (a group's N, a margin) is hidden only when no member can protect:
+        # readers need the margins of a table more than its inner cells
+        def best(pool: list[Hashable]) -> tuple[int, Hashable]:
+            shortlist = sorted(pool, key=order)[:_SHORTLIST]
+            scored = [(len(self.recoverable(hidden | {key})), key) for key in shortlist]
+            return min(scored, key=lambda item: (item[0], order(item[1])))
+
+        totals = {total for _, total in self.relations}
+        inner = [k for k in candidates if k not in totals and self.counts[k] > 0]
+        if inner:
+            left, key = best(inner)
+            if left <= len(exposed):  # an inner cell that does not make things worse
+                return key
+        return best(list(candidates))[1]
 
     def protect(self) -> set[Hashable]:
         """The counts to hide: primary suppression, then complementary suppression until
@@ -399,3 +413,15 @@ def protected_flow(
         ledger.relate([("flow", after), left_out], ("flow", before))
     display = protect_part(ledger, disclosure, "patient_flow")
     return {name: display(("flow", name)) for name in names}
+
+
+def disclosure_footnote(threshold: int = DEFAULT_SMALL_CELL_THRESHOLD) -> str:
+    """The footnote of an output that hides counts, in the words every output uses."""
+    if threshold <= 0:
+        return "No small-cell suppression applied."
+    return (
+        f"Counts of people from 1 to {threshold} are shown as '{suppression_label(threshold)}'; "
+        f"'{HIDDEN}' marks a count hidden so that a small one cannot be worked out from the "
+        "totals and the other counts (complementary suppression); a percentage or rate of a "
+        "hidden count is hidden with it. Counts of rows and person-years are shown in full."
+    )

@@ -18,7 +18,7 @@ from typing import Any, Final
 import polars as pl
 
 from kidneycohort.cautions import CAUTIONS
-from kidneycohort.disclosure import small_count_text
+from kidneycohort.disclosure import HIDDEN, disclosure_footnote, small_count_text, suppression_label
 from kidneycohort.errors import InputDataError
 from kidneycohort.labels import display_label
 from kidneycohort.plots import FIGURE_TITLES, forest_rows, slope_distribution
@@ -146,11 +146,17 @@ def _shared_table(run: RunFolder, name: str) -> Table:
     if bad:
         logger.warning("tables/%s.csv has individual-level column %s; not printed", name, bad[0])
         return Table(name, title, [], [], files, f"Not printed: it has the column '{bad[0]}'.")
-    note = ""
+    notes = []
+    hidden = {suppression_label(run.small_cell_threshold), HIDDEN}
+    texts = df.select(pl.all().cast(pl.String))
+    if any(texts[c].str.split(" ").list.first().is_in(list(hidden)).any() for c in texts.columns):
+        notes.append(disclosure_footnote(run.small_cell_threshold))
     if df.height > MAX_TABLE_ROWS:
-        note = f"First {MAX_TABLE_ROWS} of {df.height:,} rows; the full table is in the files."
+        notes.append(
+            f"First {MAX_TABLE_ROWS} of {df.height:,} rows; the full table is in the files."
+        )
         df = df.head(MAX_TABLE_ROWS)
-    return Table(name, title, list(df.columns), _cells(df), files, note)
+    return Table(name, title, list(df.columns), _cells(df), files, " ".join(notes))
 
 
 def _model_tables(run: RunFolder) -> dict[str, list[Table]]:

@@ -10,6 +10,8 @@ import re
 from collections.abc import Callable, Mapping
 from typing import Any, Final
 
+from kidneycohort.disclosure import disclosure_footnote
+
 __all__ = ["methods_from_config", "readable_key"]
 
 
@@ -51,7 +53,8 @@ _PHRASES: Final[dict[str, Callable[[Any], str]]] = {
         f"mL/min/1.73 m² per year (slope below -{_readable_value(abs(float(v)))})."
     ),
     "small_cell_threshold": lambda v: (
-        f"Counts from 1 to {v} are shown as <{int(v) + 1} in tables and figures."
+        disclosure_footnote(int(v))
+        + " The same protection applies to every table, figure and sentence of this report."
     ),
     "confirm_after_days": lambda v: (
         f"A decline counts only when a repeat value at least {v} days later confirms it."

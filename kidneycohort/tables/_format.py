@@ -67,17 +67,11 @@ def suppression_label(rule: TableRule | None = None) -> str:
 
 
 def suppression_footnote(rule: TableRule | None = None) -> str:
-    """Footnote explaining small-cell suppression, for every aggregate table."""
-    rule = rule or TableRule()
-    if rule.small_cell_threshold == 0:
-        return "No small-cell suppression applied."
-    label = suppression_label(rule)
-    return (
-        f"Counts from 1 to {rule.small_cell_threshold} are shown as '{label}'; percentages and "
-        "rates that would reveal them are suppressed, and where a suppressed count could be "
-        "recovered from the other counts of its block or from the overall column, further "
-        "counts are suppressed too (shown as '*')."
-    )
+    """Footnote explaining small-cell suppression, for every aggregate table
+    (:func:`kidneycohort.disclosure.disclosure_footnote`)."""
+    from kidneycohort.disclosure import disclosure_footnote
+
+    return disclosure_footnote((rule or TableRule()).small_cell_threshold)
 
 
 def _is_small(count: pl.Expr, rule: TableRule) -> pl.Expr:

@@ -28,7 +28,12 @@ logger = logging.getLogger(__name__)
 
 
 @follows_input
-def slope_table(model: SlopeModel, *, rule: TableRule | None = None) -> pl.DataFrame:
+def slope_table(
+    model: SlopeModel,
+    *,
+    rule: TableRule | None = None,
+    disclosure: SharedDisclosure | None = None,
+) -> pl.DataFrame:
     """Slope table of a fitted :class:`~kidneycohort.models.mixed.SlopeModel`: per group
     and per difference, acute change, chronic and total slopes with SE, 95 % CI and p.
 
@@ -45,15 +50,20 @@ def slope_table(model: SlopeModel, *, rule: TableRule | None = None) -> pl.DataF
         )
     sizes = dict(model.group_sizes_.select("group", "n_patients").rows())
     summary = model.summary()
-    label = suppression_label(rule)
+    # a group's patients in the model: the baseline table's N when it is the same count
+    # (a different count is kept apart by the shared protection)
+    ledger = CountLedger(threshold=rule.small_cell_threshold)
+    for group, count in sizes.items():
+        ledger.add(("N", "", group), int(count))
+    display = protect_part(ledger, disclosure, "slope_table")
 
-    def size_text(count: int) -> str:
-        return label if 1 <= count <= rule.small_cell_threshold else str(count)
+    def size_text(group: str) -> str:
+        return display(("N", "", group))
 
-    size_by_contrast = {g: size_text(n) for g, n in sizes.items()}
+    size_by_contrast = {g: size_text(g) for g in sizes}
     for group in model.groups_[1:]:
         size_by_contrast[f"{group} - {model.reference_group_}"] = (
-            f"{size_text(sizes[group])} vs {size_text(sizes[model.reference_group_])}"
+            f"{size_text(group)} vs {size_text(model.reference_group_)}"
         )
     d = rule.estimate_decimals
     return summary.select(
@@ -179,7 +189,12 @@ def rate_comparison_table(
         .then(pl.lit("reference"))
         .when(comparison_hidden)
         .then(label)
-        .when(pl.col("rd").is_null() | pl.col("rd").is_nan())
+        .when(
+            pl.col("rd").is_null()
+            | pl.col("rd").is_nan()
+            | pl.col("rd_lower").is_null()
+            | pl.col("rd_upper").is_null()
+        )
         .then(pl.lit(_DASH))
         .otherwise(_interval(pl.col("rd"), pl.col("rd_lower"), pl.col("rd_upper"), d))
         .alias("rate_difference_per_100py"),

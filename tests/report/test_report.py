@@ -136,7 +136,7 @@ def test_no_patient_identifiers_or_individual_dates(full: dict) -> None:
 def test_small_cells_are_protected(full: dict) -> None:
     html = full["html"]
     assert "&lt;11" in html
-    assert "Counts from 1 to 10 are shown as &lt;11" in html
+    assert "Counts of people from 1 to 10 are shown as &#39;&lt;11&#39;" in html
     endpoint_table = pl.read_csv(full["run"] / "tables/endpoint_table.csv", infer_schema=False)
     for value in endpoint_table["events"].to_list():
         assert f"<td>{value.replace('<', '&lt;')}</td>" in html

@@ -310,11 +310,11 @@ def test_write_tables_csv_xlsx_and_notes(tmp_path: Path) -> None:
     back = pd.read_excel(written["workbook"], sheet_name=None)  # openpyxl reads it back
     assert list(back) == ["kdigo_grid", "transitions"]
     assert back["transitions"].iloc[0].tolist() == ["G2", "G3a", 12]
-    assert back["kdigo_grid"].iloc[grid.height + 1, 0].startswith("Counts from 1 to 10")
+    assert back["kdigo_grid"].iloc[grid.height + 1, 0].startswith("Counts of people from 1 to 10")
     assert (
         (tmp_path / "kdigo_grid.notes.txt")
         .read_text(encoding="utf-8")
-        .startswith("Counts from 1 to 10")
+        .startswith("Counts of people from 1 to 10")
     )
     with pytest.raises(InputDataError, match="cannot name a sheet"):
         write_tables({"a/b": grid}, tmp_path)

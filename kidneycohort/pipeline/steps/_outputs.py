@@ -74,6 +74,9 @@ def _shared_tables(ctx: StepContext, disclosure: Any, *, cohort_tables: bool) ->
             schema={"g_category": pl.String, "a_category": pl.String, "n": pl.Int64}
         ).with_columns(pl.lit(None, dtype=pl.String).alias("n_display"))
     )
+    out["tables/slope_table"] = tb.slope_table(
+        ctx.tables["slope_model_fit"], rule=rule, disclosure=disclosure
+    )
     if cohort_tables:
         out["tables/kfre_summary"] = _kfre_summary(ctx, survival.group_column, disclosure)
         out["tables/transition_matrix"] = tb.transition_table(
@@ -111,7 +114,7 @@ def _protected_tables(ctx: StepContext, *, cohort_tables: bool) -> dict[str, Any
     from kidneycohort.disclosure import SharedDisclosure
     from kidneycohort.models.rates import incidence_rates
     from kidneycohort.models.survival import SurvivalRule, evaluable_rows
-    from kidneycohort.tables import TableRule, slope_table
+    from kidneycohort.tables import TableRule
 
     rule = ctx.options
     assert isinstance(rule, TableRule)
@@ -126,7 +129,7 @@ def _protected_tables(ctx: StepContext, *, cohort_tables: bool) -> dict[str, Any
         group_column=survival.group_column,
         confidence=survival.confidence,
     )
-    out["tables/slope_table"] = slope_table(ctx.tables["slope_model_fit"], rule=rule)
+
     return out
 
 
