@@ -22,6 +22,15 @@ from pydantic_core import ErrorDetails
 
 from kidneycohort.errors import ConfigError, did_you_mean
 
+__all__ = [
+    "RuleModel",
+    "error_facts",
+    "resolve_rules",
+    "rule_error_message",
+    "short_repr",
+    "validate_config",
+]
+
 # Set while a model or a config section is being validated, so that only the outermost
 # call turns pydantic's report into one ConfigError: pydantic calls a model's own
 # ``__init__`` for nested models too, and the outer message keeps the full field path.

@@ -19,6 +19,20 @@ import click
 from kidneycohort.cautions import SHORT_CAUTION
 from kidneycohort.errors import KidneyCohortError
 
+__all__ = [
+    "EXIT_BAD_INPUT",
+    "EXIT_INTERNAL",
+    "EXIT_OK",
+    "F",
+    "cli",
+    "demo_cmd",
+    "equations_cmd",
+    "main",
+    "run_cmd",
+    "synth_cmd",
+    "validate_cmd",
+]
+
 F = TypeVar("F", bound=Callable[..., Any])
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2

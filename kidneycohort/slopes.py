@@ -48,6 +48,8 @@ from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConfigError
 from kidneycohort.value_filter import ValueFilterRule, usable_egfr
 
+__all__ = ["SLOPE_REASONS", "SlopeRule", "egfr_slopes"]
+
 logger = logging.getLogger(__name__)
 
 SLOPE_REASONS: Final[dict[str, str]] = {

@@ -20,6 +20,8 @@ from kidneycohort.adam._metadata import AdamDataset, spec_sheet
 from kidneycohort.errors import InputDataError
 from kidneycohort.io.cdisc_files import sas_date, write_dataset_json, write_xpt
 
+__all__ = ["check_xpt_round_trip", "read_back_xpt", "write_adam"]
+
 logger = logging.getLogger(__name__)
 
 # pandas reads an IBM-format zero as 5.397605e-79 (pandas issue #50670); values this

@@ -27,6 +27,8 @@ from kidneycohort.io.maps import (
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
 from kidneycohort.vocabulary import fold_code, fold_code_expr
 
+__all__ = ["_clean_events"]
+
 
 def _clean_events(
     events: Any, status: pl.DataFrame, rule: HarmonizeRule

@@ -29,6 +29,8 @@ from kidneycohort.io.maps import (
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
 from kidneycohort.vocabulary import fold_code, fold_code_expr
 
+__all__ = ["_GOOD_COLUMNS", "_LAB_CONTENT", "_collapse_same_day", "_finish_labs", "_prepare_labs"]
+
 # A partial ISO 8601 date: year, or year and month (SDTM --DTC convention).
 _PARTIAL_DATE: Final = r"^\d{4}(?:-\d{2})?$"
 # A result reported as not done ("NOT DONE", "not done: haemolysed", ...).

@@ -23,6 +23,8 @@ from kidneycohort.harmonize._rule import HarmonizeRule
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
 from kidneycohort.vocabulary import fold_code_expr, sex_expr, unknown_sex_error
 
+__all__ = ["_clean_patients", "_finish_patients"]
+
 _PATIENT_DATES: Final = {c: t for c, t in schemas.PATIENTS.items() if t.is_temporal()}
 
 

@@ -12,6 +12,16 @@ from pydantic import Field
 from kidneycohort import _rules, units
 from kidneycohort._rules import RuleModel
 
+__all__ = [
+    "DEFAULT_PLAUSIBLE_RANGES",
+    "MERGE_REASONS",
+    "REASON_CODES",
+    "HarmonizeResult",
+    "HarmonizeRule",
+    "PlausibleRange",
+    "resolve_rules",
+]
+
 REASON_CODES: Final[dict[str, str]] = {
     # rejected (any table)
     "missing_patient_id": "the row has no patient identifier",

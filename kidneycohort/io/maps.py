@@ -18,6 +18,14 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 from kidneycohort.errors import ConfigError
 from kidneycohort.vocabulary import SEX_CODES
 
+__all__ = [
+    "DEFAULT_ANALYTE_NAMES",
+    "DEFAULT_EVENT_CODES",
+    "DEFAULT_SEX_CODES",
+    "FileSource",
+    "TableKind",
+]
+
 TableKind = Literal["labs", "patients", "events"]
 
 # Site analyte names after folding (lower case, runs of space/_/- -> one space).

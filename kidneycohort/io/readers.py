@@ -31,6 +31,23 @@ from kidneycohort import schemas
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.io.maps import FileSource, TableKind
 
+__all__ = [
+    "AS_READ_SUFFIX",
+    "CANDIDATE_DATE_FORMATS",
+    "ISO",
+    "REQUIRED",
+    "SCHEMAS",
+    "infer_date_format",
+    "parse_date_columns",
+    "read_events",
+    "read_labs",
+    "read_many",
+    "read_patients",
+    "read_source",
+    "scan_source",
+    "suggest_column",
+]
+
 logger = logging.getLogger(__name__)
 
 AS_READ_SUFFIX: Final = "_as_read"

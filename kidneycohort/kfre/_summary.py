@@ -13,6 +13,8 @@ from kidneycohort.kfre._inputs import KFRE_SUMMARY_REASONS
 from kidneycohort.kfre._rule import KfreRule
 from kidneycohort.tables import TableRule, suppression_label
 
+__all__ = ["kfre_summary_table"]
+
 _DASH: Final = "–"
 
 

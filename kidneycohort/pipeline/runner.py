@@ -43,6 +43,8 @@ from kidneycohort.run_folder import (
 )
 from kidneycohort.run_folder._manifest import own_version, utc_now_text
 
+__all__ = ["GROUPED_FILES", "ProgressObserver", "RunResult", "run_files", "run_pipeline"]
+
 logger = logging.getLogger("kidneycohort.pipeline")
 
 _LOG_FORMAT = "%(asctime)s %(levelname)s %(name)s: %(message)s"
@@ -147,7 +149,7 @@ class _RunState:
             run_id=self.run_id,
             config=config.resolved(),
             overrides=list(config.overrides),
-            inputs=self.inputs,  # type: ignore[arg-type]
+            inputs=self.inputs,
             packages=package_versions(),
             seed=config.study.seed,
             accounting=[AccountingRecord.model_validate(a) for a in self.accounting],

@@ -15,6 +15,8 @@ from kidneycohort.pipeline.standard_sources import input_records as standard_inp
 from kidneycohort.pipeline.standard_sources import read_source as read_standard_source
 from kidneycohort.run_folder import sha256_of
 
+__all__ = ["SOURCE_TABLES", "check_inputs", "input_records", "read_sources"]
+
 # config table -> (run table name, reader kind)
 SOURCE_TABLES = {
     "patients": ("patients", "patients"),

@@ -23,6 +23,8 @@ from kidneycohort.tables._format import (
 )
 from kidneycohort.tables._kdigo import A_MARGIN, G_MARGIN, _one_row_per_patient
 
+__all__ = ["baseline_characteristics_table"]
+
 Characteristic = tuple[str, pl.DataFrame, str]
 """(name, frame of ``patient_id, value``, kind): kind ``mean``/``median`` for numbers."""
 Category = tuple[str, pl.DataFrame, Sequence[str] | None]

@@ -12,6 +12,8 @@ from kidneycohort._frames import FrameLike, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.tables._format import _DASH, _format_fixed
 
+__all__ = ["to_markdown", "write_tables"]
+
 logger = logging.getLogger(__name__)
 
 

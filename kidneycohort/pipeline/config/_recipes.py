@@ -15,6 +15,16 @@ from kidneycohort.pipeline.config._yaml import read_yaml
 from kidneycohort.pipeline.registry import Step
 from kidneycohort.pipeline.standard_sources import anchor as anchor_source
 
+__all__ = [
+    "_anchor_paths",
+    "builtin_config_dir",
+    "builtin_recipe_dir",
+    "check_chain",
+    "find_recipe",
+    "load_recipe",
+    "source_tables",
+]
+
 
 # ---- recipes ----------------------------------------------------------------------------
 def builtin_recipe_dir() -> Path:

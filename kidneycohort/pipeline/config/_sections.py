@@ -15,6 +15,16 @@ from kidneycohort.io.maps import FileSource
 from kidneycohort.pipeline.registry import Step
 from kidneycohort.pipeline.standard_sources import StandardSource
 
+__all__ = [
+    "FIXED_SECTIONS",
+    "STUDY_FACTS",
+    "DataSection",
+    "OutputSection",
+    "Recipe",
+    "StudyConfig",
+    "StudySection",
+]
+
 FIXED_SECTIONS = ("study", "data", "output")
 
 

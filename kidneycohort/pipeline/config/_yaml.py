@@ -11,6 +11,8 @@ import yaml
 
 from kidneycohort.errors import ConfigError
 
+__all__ = ["apply_overrides", "deep_merge", "read_yaml"]
+
 
 # ---- YAML -----------------------------------------------------------------------------
 def read_yaml(path: Path, what: str = "config") -> dict[str, Any]:
