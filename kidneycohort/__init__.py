@@ -237,6 +237,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.synthetic import write_cohort as write_cohort
     from kidneycohort.tables import TableRule as TableRule
     from kidneycohort.tables import baseline_characteristics_table as baseline_characteristics_table
+    from kidneycohort.tables import competing_risks_table as competing_risks_table
     from kidneycohort.tables import endpoint_table as endpoint_table
     from kidneycohort.tables import kdigo_grid_table as kdigo_grid_table
     from kidneycohort.tables import rate_comparison_table as rate_comparison_table
@@ -394,6 +395,7 @@ _PUBLIC: dict[str, str] = {
         for name in (
             "TableRule",
             "endpoint_table",
+            "competing_risks_table",
             "slope_table",
             "baseline_characteristics_table",
             "kdigo_grid_table",
