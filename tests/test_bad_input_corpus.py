@@ -1,0 +1,236 @@
+"""A corpus of bad inputs: each ends in one line naming the file, row or config field,
+the right exit code, no traceback on the terminal, and the study folder unchanged.
+
+Every case builds a tiny invented study in ``tmp_path`` (a harmonise-only recipe unless
+a case needs more), hashes the study folder, runs the command line through click's
+runner, and checks the folder's files are byte-identical afterwards.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import polars as pl
+import pytest
+from click.testing import CliRunner
+
+from kidneycohort.cli import cli
+
+PATIENTS = (
+    "SUBJID,SEX,BRTHDTC,RFSTDTC,ARM\nS1,F,1960-05-01,2020-01-01,A\nS2,M,1955-03-02,2020-02-01,B\n"
+)
+LABS = (
+    "SUBJID,LBDTC,LBTESTCD,LBORRES,LBORRESU\n"
+    "S1,2020-01-01,CREAT,1.0,mg/dL\n"
+    "S1,2020-06-01,CREAT,1.1,mg/dL\n"
+    "S2,2020-02-01,CREAT,0.9,mg/dL\n"
+    "S2,2020-08-01,CREAT,1.2,mg/dL\n"
+)
+PATIENT_COLUMNS = "{SUBJID: patient_id, SEX: sex, BRTHDTC: birth_date, RFSTDTC: index_date}"
+LAB_COLUMNS = (
+    "{SUBJID: patient_id, LBDTC: sample_date, LBTESTCD: analyte, LBORRES: value, LBORRESU: unit}"
+)
+
+
+@dataclass
+class Study:
+    """An invented study folder: files by name, the config text, the recipe's steps."""
+
+    files: dict[str, str | bytes] = field(default_factory=dict)
+    study: str = "{name: corpus, recipe: clean}"
+    data: str = ""
+    extra: str = ""
+    steps: str = "[harmonize]"
+
+    def write(self, folder: Path) -> Path:
+        folder.mkdir(parents=True, exist_ok=True)
+        (folder / "pipelines").mkdir(exist_ok=True)
+        (folder / "pipelines" / "clean.yaml").write_text(
+            f"name: clean\nsteps: {self.steps}\n", encoding="utf-8"
+        )
+        files = {"patients.csv": PATIENTS, "labs.csv": LABS, **self.files}
+        for name, content in files.items():
+            path = folder / name
+            if isinstance(content, bytes):
+                path.write_bytes(content)
+            else:
+                path.write_text(content, encoding="utf-8")
+        data = self.data or (
+            "data:\n"
+            f"  patients: {{path: patients.csv, columns: {PATIENT_COLUMNS}}}\n"
+            f"  labs: {{path: labs.csv, columns: {LAB_COLUMNS}}}\n"
+        )
+        config = folder / "study.yaml"
+        config.write_text(f"study: {self.study}\n{data}{self.extra}", encoding="utf-8")
+        return config
+
+
+def tree_hashes(folder: Path) -> dict[str, str]:
+    """SHA-256 of every file under ``folder`` (relative path -> digest)."""
+    return {
+        p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+        for p in sorted(folder.rglob("*"))
+        if p.is_file()
+    }
+
+
+def invoke(args: list[str], cwd: Path) -> tuple[int, str]:
+    old = Path.cwd()
+    os.chdir(cwd)
+    try:
+        result = CliRunner().invoke(cli, args, catch_exceptions=False)
+    finally:
+        os.chdir(old)
+    return result.exit_code, result.output
+
+
+def check_one_line(output: str) -> None:
+    assert "Traceback" not in output, output
+    errors = [line for line in output.splitlines() if "error" in line.lower()]
+    assert len(errors) == 1, output
+    assert "internal error" not in output, output
+
+
+# ---- input is never destroyed --------------------------------------------------------------
+@pytest.mark.parametrize(
+    ("out", "force", "fragment"),
+    [
+        (".", True, "holds an input of this run"),
+        ("labs.csv", True, "is a file, not a run folder"),
+        ("labs.csv", False, "is a file, not a run folder"),
+        ("pipelines", True, "holds an input of this run"),
+        ("notes", True, "is not a previous run folder (no manifest.json)"),
+        ("notes", False, "already exists"),
+    ],
+)
+def test_force_never_replaces_inputs(tmp_path: Path, out: str, force: bool, fragment: str) -> None:
+    folder = tmp_path / "study"
+    (folder / "notes").mkdir(parents=True)
+    (folder / "notes" / "readme.txt").write_text("mine", encoding="utf-8")
+    config = Study().write(folder)
+    before = tree_hashes(folder)
+    args = ["run", str(config.name), "--out", out, "-q"] + (["--force"] if force else [])
+    code, output = invoke(args, folder)
+    assert code == 2, output
+    assert fragment in output
+    check_one_line(output)
+    assert tree_hashes(folder) == before
+    assert not list(folder.glob(".*partial*")) and not list(folder.glob("*.failed"))
+
+
+def test_force_replaces_a_previous_run_folder(tmp_path: Path) -> None:
+    folder = tmp_path / "study"
+    config = Study().write(folder)
+    assert invoke(["run", str(config), "--out", "out", "-q"], folder)[0] == 0
+    before = tree_hashes(folder)
+    code, output = invoke(["run", str(config), "--out", "out", "-q", "--force"], folder)
+    assert code == 0, output
+    assert {k: v for k, v in tree_hashes(folder).items() if not k.startswith("out/")} == {
+        k: v for k, v in before.items() if not k.startswith("out/")
+    }
+    assert not (folder / ".out.lock").exists()
+
+
+def _dead_pid() -> int:
+    proc = subprocess.Popen([sys.executable, "-c", "pass"])
+    proc.wait()
+    return proc.pid
+
+
+def test_a_locked_target_is_refused_and_a_dead_lock_taken_over(tmp_path: Path) -> None:
+    folder = tmp_path / "study"
+    config = Study().write(folder)
+    lock = folder / ".out.lock"
+    lock.write_text(f"{os.getppid()}\n", encoding="utf-8")  # a live process owns it
+    code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+    assert code == 2 and "being written by another run" in output, output
+    check_one_line(output)
+    assert not (folder / "out").exists()
+    lock.write_text(f"{_dead_pid()}\n", encoding="utf-8")
+    code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+    assert code == 0, output
+    assert not lock.exists()
+
+
+def test_stale_partial_folders_of_dead_runs_are_removed_and_logged(tmp_path: Path) -> None:
+    folder = tmp_path / "study"
+    config = Study().write(folder)
+    stale = folder / f".out.partial-{_dead_pid()}"
+    stale.mkdir()
+    (stale / "manifest.json").write_text("{}", encoding="utf-8")
+    code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+    assert code == 0, output
+    assert not stale.exists()
+    assert "removed the unfinished folder" in (folder / "out" / "run.log").read_text()
+
+
+_SLOW_RUN = textwrap.dedent(
+    """
+    import sys, time
+    from kidneycohort.pipeline import load_config, run_pipeline
+    from kidneycohort.pipeline.sources import read_sources
+
+    def slow(config):
+        tables = read_sources(config)
+        print("reading", flush=True)
+        time.sleep(30)
+        return tables
+
+    run_pipeline(load_config(sys.argv[1]), out_dir=sys.argv[2], reader=slow)
+    """
+)
+
+
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL])
+def test_killed_runs_leave_no_manifest_and_are_cleaned_up(tmp_path: Path, sig: int) -> None:
+    folder = tmp_path / "study"
+    config = Study().write(folder)
+    proc = subprocess.Popen(
+        [sys.executable, "-c", _SLOW_RUN, str(config), str(folder / "out")],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    assert proc.stdout is not None
+    assert proc.stdout.readline().strip() == "reading"
+    proc.send_signal(sig)
+    _, stderr = proc.communicate(timeout=30)
+    assert not list(folder.rglob("manifest.json"))
+    if sig == signal.SIGTERM:  # handled like SIGINT: the failed folder keeps the log
+        assert not list(folder.glob(".out.partial-*"))
+        assert (folder / "out.failed" / "run.log").is_file()
+        assert "KeyboardInterrupt" in stderr
+    code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+    assert code == 0, output
+    assert not list(folder.glob(".out.partial-*")) and not (folder / ".out.lock").exists()
+
+
+def test_a_full_disk_leaves_nothing_half_written(tmp_path: Path, monkeypatch) -> None:
+    import errno
+
+    from kidneycohort.run_folder import _writer
+
+    folder = tmp_path / "study"
+    config = Study().write(folder)
+    before = tree_hashes(folder)
+
+    def full(*args, **kwargs):
+        raise OSError(errno.ENOSPC, "No space left on device", str(folder / "x"))
+
+    monkeypatch.setattr(_writer, "markdown_table", full)
+    monkeypatch.setattr(pl.DataFrame, "write_csv", full)
+    code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+    assert code == 2, output
+    assert "no space left" in output
+    check_one_line(output)
+    assert tree_hashes(folder) == before
+    assert sorted(p.name for p in folder.iterdir()) == sorted(
+        ["labs.csv", "patients.csv", "pipelines", "study.yaml"]
+    )
