@@ -234,3 +234,40 @@ def test_a_full_disk_leaves_nothing_half_written(tmp_path: Path, monkeypatch) ->
     assert sorted(p.name for p in folder.iterdir()) == sorted(
         ["labs.csv", "patients.csv", "pipelines", "study.yaml"]
     )
+
+
+# ---- spreadsheet formula injection -----------------------------------------------------------
+FORMULAS = ['=HYPERLINK("http://x")', "+1+cmd|' /C calc'!A0", "-2+3", "@SUM(A1)"]
+
+
+def test_formula_leading_ids_are_text_in_rejected_rows(tmp_path: Path) -> None:
+    labs = LABS
+    rows = "".join('"' + f.replace('"', '""') + '",2020-03-01,CREAT,1.0,mg/dL\n' for f in FORMULAS)
+    folder = tmp_path / "study"
+    config = Study(files={"labs.csv": labs + rows}).write(folder)
+    code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+    assert code == 0, output
+    text = (folder / "out" / "rejected_rows.csv").read_text(encoding="utf-8")
+    for formula in FORMULAS:
+        assert "'" + formula.split('"')[0] in text
+    for line in text.splitlines()[1:]:
+        assert not line.startswith(("=", "+", "-", "@", '"=', '"+', '"-', '"@')), line
+
+
+def test_workbook_and_csv_write_text_cells_as_text(tmp_path: Path) -> None:
+    import zipfile
+
+    from kidneycohort.run_folder import write_table, write_workbook
+
+    table = pl.DataFrame(
+        {"group": [*FORMULAS, "-3.2", "A"], "estimate": [-3.2, 1.0, 2.0, 3.0, -3.2, 4.0]}
+    )
+    write_table(tmp_path, "tables/slope_table", table)
+    write_workbook(tmp_path, {"tables/slope_table": table})
+    with zipfile.ZipFile(tmp_path / "tables" / "tables.xlsx") as book:
+        sheets = [n for n in book.namelist() if n.startswith("xl/worksheets/sheet")]
+        xml = "".join(book.read(n).decode() for n in sheets)
+    assert "<f>" not in xml  # no formula cell
+    csv = pl.read_csv(tmp_path / "tables" / "slope_table.csv", infer_schema=False)
+    assert csv["group"].to_list() == [*("'" + f for f in FORMULAS), "-3.2", "A"]
+    assert csv["estimate"][0] == "-3.2"  # numbers stay numbers
