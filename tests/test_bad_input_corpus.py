@@ -14,6 +14,7 @@ import signal
 import subprocess
 import sys
 import textwrap
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -271,3 +272,72 @@ def test_workbook_and_csv_write_text_cells_as_text(tmp_path: Path) -> None:
     csv = pl.read_csv(tmp_path / "tables" / "slope_table.csv", infer_schema=False)
     assert csv["group"].to_list() == [*("'" + f for f in FORMULAS), "-3.2", "A"]
     assert csv["estimate"][0] == "-3.2"  # numbers stay numbers
+
+
+# ---- the corpus: one bad input per row -------------------------------------------------------
+def _bomb() -> str:
+    levels = ["&a0 [x, x, x, x, x, x, x, x, x]"]
+    levels += [f"&a{i} [" + ", ".join([f"*a{i - 1}"] * 9) + "]" for i in range(1, 9)]
+    return "[" + ", ".join(levels) + "]"
+
+
+@dataclass
+class Case:
+    """One bad input: the study, the command, the exit code and a message fragment."""
+
+    id: str
+    study: Study
+    fragment: str
+    code: int = 2
+    command: str = "run"
+    args: tuple[str, ...] = ()
+
+
+CASES = [
+    Case(
+        "yaml alias bomb",
+        Study(study="{name: corpus, recipe: clean, description: " + _bomb() + "}"),
+        "aliases expand to more than",
+        command="validate",
+    ),
+    Case(
+        "duplicated yaml key",
+        Study(study="{name: corpus, recipe: clean, data_cut: 2021-01-01, data_cut: 2022-01-01}"),
+        "key 'data_cut' appears twice",
+        command="validate",
+    ),
+    Case(
+        "duplicated yaml section",
+        Study(extra="study: {name: again, recipe: clean}\n"),
+        "key 'study' appears twice",
+    ),
+    Case(
+        "impossible data cut",
+        Study(study="{name: corpus, recipe: clean, data_cut: 2025-02-30}"),
+        "'2025-02-30' is not a date in the calendar",
+    ),
+    Case(
+        "seed above 2^64",
+        Study(study="{name: corpus, recipe: clean, seed: 18446744073709551617}"),
+        "study.seed:",
+    ),
+]
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c.id for c in CASES])
+def test_bad_input(tmp_path: Path, case: Case) -> None:
+    folder = tmp_path / "study"
+    config = case.study.write(folder)
+    before = tree_hashes(folder)
+    args = [case.command, config.name, *case.args]
+    if case.command == "run":
+        args += ["--out", "out"]
+    started = time.perf_counter()
+    code, output = invoke(args, folder)
+    assert time.perf_counter() - started < 10
+    assert code == case.code, output
+    assert case.fragment in output, output
+    check_one_line(output)
+    assert len([line for line in output.splitlines() if line.startswith("error")]) == 1
+    assert tree_hashes(folder) == before
+    assert not list(folder.glob(".*partial*"))
