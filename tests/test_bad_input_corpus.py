@@ -63,14 +63,17 @@ class Study:
                 path.write_bytes(content)
             else:
                 path.write_text(content, encoding="utf-8")
-        data = self.data or (
-            "data:\n"
-            f"  patients: {{path: patients.csv, columns: {PATIENT_COLUMNS}}}\n"
-            f"  labs: {{path: labs.csv, columns: {LAB_COLUMNS}}}\n"
-        )
+        data = self.data or DATA
         config = folder / "study.yaml"
         config.write_text(f"study: {self.study}\n{data}{self.extra}", encoding="utf-8")
         return config
+
+
+DATA = (
+    "data:\n"
+    f"  patients: {{path: patients.csv, columns: {PATIENT_COLUMNS}}}\n"
+    f"  labs: {{path: labs.csv, columns: {LAB_COLUMNS}}}\n"
+)
 
 
 def tree_hashes(folder: Path) -> dict[str, str]:
@@ -316,6 +319,76 @@ CASES = [
         Study(study="{name: corpus, recipe: clean, data_cut: 2025-02-30}"),
         "'2025-02-30' is not a date in the calendar",
     ),
+    Case("empty labs file", Study(files={"labs.csv": ""}), "labs.csv: the file is empty"),
+    Case(
+        "empty patients file",
+        Study(files={"patients.csv": ""}),
+        "patients.csv: the file is empty",
+        command="validate",
+    ),
+    Case(
+        "encoding changes after the first MiB",
+        Study(
+            files={
+                "labs.csv": (LABS + "S1,2020-04-01,CREAT,1.0,mg/dL\n" * 40_000).encode()
+                + "S1,2020-05-01,CRÉAT,1.0,mg/dL\n".encode("latin-1")
+            }
+        ),
+        "not readable as UTF-8 at line 40006",
+    ),
+    Case(
+        "unknown encoding name",
+        Study(data=DATA.replace("path: labs.csv,", "path: labs.csv, encoding: klingon,")),
+        "unknown encoding 'klingon'",
+    ),
+    Case(
+        "unbalanced quote",
+        Study(files={"labs.csv": LABS + 'S1,"2020-04-01,CREAT,1.0,mg/dL\n'}),
+        'line 6: a quote (") opens a field that is never closed',
+    ),
+    Case(
+        "ragged row, too many fields",
+        Study(files={"labs.csv": LABS + "S1,2020-04-01,CREAT,1.0,mg/dL,extra\n"}),
+        "labs.csv: line 6 has 6 fields where the header has 5",
+    ),
+    Case(
+        "ragged row, too few fields",
+        Study(files={"labs.csv": LABS + "S1,2020-04-01\n"}),
+        "labs.csv: line 6 has 2 fields where the header has 5",
+        command="validate",
+    ),
+    Case(
+        "two source columns mapped to one name",
+        Study(data=DATA.replace("LBORRES: value", "LBORRES: unit")),
+        "source columns 'LBORRES' and 'LBORRESU' both map to 'unit'",
+    ),
+    Case(
+        "a mapped column collides with a file column",
+        Study(files={"patients.csv": PATIENTS.replace("ARM", "sex")}),
+        "columns 'SEX' and 'sex' would both be 'sex'",
+    ),
+    Case(
+        "duplicated CSV header",
+        Study(files={"labs.csv": LABS.replace("LBORRESU", "LBORRES")}),
+        "column 'LBORRES' appears twice in the header",
+    ),
+    Case(
+        "wrong delimiter",
+        Study(files={"labs.csv": LABS.replace(",", ";")}),
+        "set delimiter: ';'",
+        command="validate",
+    ),
+    Case(
+        "unknown figure format",
+        Study(steps="[harmonize, figures]", extra="figures: {formats: [bmp]}\n"),
+        "figures.formats",
+    ),
+    Case(
+        "output under a file",
+        Study(),
+        "cannot write the run folder",
+        args=("--out", "labs.csv/run"),
+    ),
     Case(
         "seed above 2^64",
         Study(study="{name: corpus, recipe: clean, seed: 18446744073709551617}"),
@@ -330,7 +403,7 @@ def test_bad_input(tmp_path: Path, case: Case) -> None:
     config = case.study.write(folder)
     before = tree_hashes(folder)
     args = [case.command, config.name, *case.args]
-    if case.command == "run":
+    if case.command == "run" and "--out" not in case.args:
         args += ["--out", "out"]
     started = time.perf_counter()
     code, output = invoke(args, folder)
@@ -339,5 +412,7 @@ def test_bad_input(tmp_path: Path, case: Case) -> None:
     assert case.fragment in output, output
     check_one_line(output)
     assert len([line for line in output.splitlines() if line.startswith("error")]) == 1
-    assert tree_hashes(folder) == before
-    assert not list(folder.glob(".*partial*"))
+    after = tree_hashes(folder)
+    assert {name: after.get(name) for name in before} == before  # inputs unchanged
+    assert all(name.startswith("out.failed/") for name in set(after) - set(before))
+    assert not list(folder.glob(".*partial*")) and not list(folder.glob(".*lock"))
