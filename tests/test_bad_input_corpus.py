@@ -416,3 +416,34 @@ def test_bad_input(tmp_path: Path, case: Case) -> None:
     assert {name: after.get(name) for name in before} == before  # inputs unchanged
     assert all(name.startswith("out.failed/") for name in set(after) - set(before))
     assert not list(folder.glob(".*partial*")) and not list(folder.glob(".*lock"))
+
+
+# ---- wrong values accepted -------------------------------------------------------------------
+@pytest.mark.parametrize(
+    ("decimal_comma", "expected"),
+    [
+        (None, {"1,500": 1500.0, "0,9": 0.9, "12,000.5": 12000.5, "1.500": 1.5}),
+        (True, {"1,500": 1.5, "0,9": 0.9, "1.500": 1.5}),
+        (False, {"1,500": 1500.0, "12,000.5": 12000.5, "1.500": 1.5}),
+    ],
+)
+def test_a_comma_and_three_digits_is_a_thousands_separator(decimal_comma, expected) -> None:
+    """Common practice (no single source): '1,500' mg/g is 1500 unless the source says
+    its decimal mark is a comma; each such reading is counted as an assumption."""
+    from kidneycohort.harmonize import harmonize_tables
+
+    texts = ["1,500", "0,9", "12,000.5", "1.500"]
+    labs = pl.DataFrame(
+        {
+            "patient_id": ["a"] * 4,
+            "sample_date": [f"2020-01-0{i}" for i in range(1, 5)],
+            "analyte": ["uacr"] * 4,
+            "value": texts,
+            "unit": ["mg/g"] * 4,
+        }
+    )
+    out = harmonize_tables(labs, pl.DataFrame({"patient_id": ["a"]}), decimal_comma=decimal_comma)
+    got = dict(zip([texts[r - 1] for r in out.labs["source_row"]], out.labs["value"], strict=True))
+    assert got == expected
+    thousands = out.assumptions.filter(pl.col("assumption").str.contains("thousands"))
+    assert thousands["rows"].sum() == (0 if decimal_comma else 2)

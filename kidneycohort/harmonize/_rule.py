@@ -90,10 +90,14 @@ class HarmonizeRule(RuleModel):
         description="Results reported as '<x' or '>x': 'keep' uses x and sets the "
         "qualifier column; 'reject' rejects them with reason qualified_value.",
     )
-    decimal_comma: bool = Field(
-        default=True,
-        description="Read '0,9' as 0.9 (a single comma and no point). When false such "
-        "text is not_a_result.",
+    decimal_comma: bool | None = Field(
+        default=None,
+        description="The decimal mark of the source, when it states one. true: a comma is "
+        "the decimal mark ('1,500' is 1.5). false: a point is ('1,500' is 1500, '0,9' is "
+        "not_a_result). null (not stated): a comma followed by exactly three digits, in "
+        "well-formed groups and with no other separator ('1,500', '12,000.5'), is a "
+        "thousands separator, any other single comma a decimal comma ('0,9' is 0.9); "
+        "each thousands reading is recorded as an assumption and counted.",
     )
     plausible_ranges: dict[str, PlausibleRange] = Field(
         default_factory=lambda: dict(DEFAULT_PLAUSIBLE_RANGES),
