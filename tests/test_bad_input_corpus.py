@@ -447,3 +447,56 @@ def test_a_comma_and_three_digits_is_a_thousands_separator(decimal_comma, expect
     assert got == expected
     thousands = out.assumptions.filter(pl.col("assumption").str.contains("thousands"))
     assert thousands["rows"].sum() == (0 if decimal_comma else 2)
+
+
+def test_impossible_dates_ages_and_body_size_are_not_analysed() -> None:
+    """Common practice (no single source): no sample after today or before 1900, no age
+    over 110 or below 0; an implausible height or weight is set missing, patient kept."""
+    from kidneycohort.harmonize import harmonize_tables
+
+    labs = pl.DataFrame(
+        {
+            "patient_id": ["a", "a", "a", "b", "c", "f"],
+            "sample_date": [
+                "2020-01-01",
+                "2999-01-01",
+                "9999-12-31",
+                "2020-01-01",
+                "2020-01-01",
+                "2020-01-01",
+            ],
+            "analyte": ["creatinine"] * 6,
+            "value": ["1.0"] * 6,
+            "unit": ["mg/dL"] * 6,
+        }
+    )
+    patients = pl.DataFrame(
+        {
+            "patient_id": ["a", "b", "c", "d", "f"],
+            "birth_date": ["1960-01-01", "1800-01-01", "1950-01-01", None, "1905-01-01"],
+            "index_date": ["2020-01-01", "2020-01-01", "2020-01-01", "2020-01-01", "2010-01-01"],
+            "age_at_index": [60.0, None, 130.0, 111.0, None],
+            "weight_kg": [700.0, 80.0, 70.0, 60.0, 60.0],
+            "height_cm": [170.0, 170.0, 170.0, 170.0, 30.0],
+        }
+    )
+    out = harmonize_tables(labs, patients)
+    reasons = dict(
+        zip(
+            zip(out.rejected["table"], out.rejected["source_row"], strict=True),
+            out.rejected["reason"],
+            strict=True,
+        )
+    )
+    assert reasons[("labs", 2)] == reasons[("labs", 3)] == "implausible_date"
+    assert reasons[("labs", 6)] == "implausible_age"  # 115 years old at the sample
+    assert reasons[("patients", 2)] == "implausible_date"  # born 1800
+    assert reasons[("patients", 3)] == reasons[("patients", 4)] == "implausible_age"
+    kept = out.patients.filter(pl.col("patient_id").is_in(["a", "f"]))
+    assert kept["weight_kg"].to_list() == [None, 60.0]
+    assert kept["height_cm"].to_list() == [170.0, None]
+    notes = set(out.assumptions["assumption"])
+    assert {
+        "weight_kg outside 1-350 kg, set missing",
+        "height_cm outside 40-250 cm, set missing",
+    } <= notes

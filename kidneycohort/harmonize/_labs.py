@@ -12,6 +12,7 @@ import polars as pl
 from kidneycohort import schemas, units
 from kidneycohort._frames import conform, require_columns
 from kidneycohort.errors import InputDataError
+from kidneycohort.harmonize._plausible import DAYS_PER_YEAR, implausible_date
 from kidneycohort.harmonize._rows import (
     Check,
     _cascade,
@@ -242,6 +243,7 @@ def _prepare_labs(
             pl.format("sample_date '{}' does not parse", pl.col("_date_as_read")),
         ),
         (pl.col("_when").is_null(), "missing_date", pl.lit("sample_date is empty")),
+        implausible_date(pl.col("_day"), "sample_date", rule),
         (
             pl.col("_analyte").is_null(),
             "unknown_analyte",
@@ -305,6 +307,16 @@ def _prepare_labs(
             pl.format(
                 "sample {} before birth {}",
                 _date_text(pl.col("_day")),
+                _date_text(pl.col("birth_date")),
+            ),
+        ),
+        (
+            (pl.col("_day") - pl.col("birth_date")).dt.total_days() / DAYS_PER_YEAR
+            > rule.max_age_years,
+            "implausible_age",
+            pl.format(
+                "age at sample over {} years (born {})",
+                pl.lit(rule.max_age_years),
                 _date_text(pl.col("birth_date")),
             ),
         ),

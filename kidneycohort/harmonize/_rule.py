@@ -24,6 +24,10 @@ REASON_CODES: Final[dict[str, str]] = {
     "before_birth": "the date is before the patient's birth date",
     "after_death": "the date is after the patient's death date",
     "after_data_cut": "the date is after the data-cut date of the rules",
+    "implausible_date": "the date is before the earliest plausible date (1900-01-01 by "
+    "default) or after today",
+    "implausible_age": "the patient's age (at the sample, or at index) is below 0 or over "
+    "the oldest plausible age (110 years by default)",
     # rejected (labs)
     "unknown_analyte": "the analyte name or LOINC code is not creatinine, cystatin C or "
     "UACR and is not in the analyte map",
@@ -111,6 +115,29 @@ class HarmonizeRule(RuleModel):
     )
     data_cut_date: dt.date | None = Field(
         default=None, description="Rows dated after this day are rejected (after_data_cut)."
+    )
+    earliest_date: dt.date = Field(
+        default=dt.date(1900, 1, 1),
+        description="Dates before this day, or after today, are implausible: a lab row is "
+        "rejected (implausible_date), a patient row too when it is a birth, index or death "
+        "date.",
+    )
+    max_age_years: float = Field(
+        default=110.0,
+        gt=0,
+        description="Oldest plausible age (years): a lab row of a patient older at the "
+        "sample, or a patient whose age at index is outside 0 to this, is rejected "
+        "(implausible_age).",
+    )
+    plausible_height_cm: tuple[float, float] = Field(
+        default=(40.0, 250.0),
+        description="Plausible height range (cm); a height outside is set missing with a "
+        "recorded reason (the patient is kept).",
+    )
+    plausible_weight_kg: tuple[float, float] = Field(
+        default=(1.0, 350.0),
+        description="Plausible weight range (kg); a weight outside is set missing with a "
+        "recorded reason (the patient is kept).",
     )
     date_format: str | None = Field(
         default=None,
