@@ -500,3 +500,45 @@ def test_impossible_dates_ages_and_body_size_are_not_analysed() -> None:
         "weight_kg outside 1-350 kg, set missing",
         "height_cm outside 40-250 cm, set missing",
     } <= notes
+
+
+def test_two_lab_files_with_one_stem_are_told_apart(tmp_path: Path) -> None:
+    import json
+
+    folder = tmp_path / "study"
+    files = {
+        "site_a/labs.csv": LABS,
+        "site_b/labs.csv": LABS.splitlines()[0] + "\nS1,2021-01-01,CREAT,x,mg/dL\n",
+    }
+    (folder / "site_a").mkdir(parents=True)
+    (folder / "site_b").mkdir()
+    data = DATA.replace(
+        f"  labs: {{path: labs.csv, columns: {LAB_COLUMNS}}}\n",
+        f"  labs:\n    - {{path: site_a/labs.csv, columns: {LAB_COLUMNS}}}\n"
+        f"    - {{path: site_b/labs.csv, columns: {LAB_COLUMNS}}}\n",
+    )
+    config = Study(files=files, data=data).write(folder)
+    code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+    assert code == 0, output
+    manifest = json.loads((folder / "out" / "manifest.json").read_text())
+    rows = {r["path"]: r["rows"] for r in manifest["inputs"] if r["table"] == "labs"}
+    assert rows == {"site_a/labs.csv": 4, "site_b/labs.csv": 1}
+    rejected = pl.read_csv(folder / "out" / "rejected_rows.csv", infer_schema=False)
+    assert rejected.filter(pl.col("table") == "labs")["source"].to_list() == ["site_b/labs"]
+
+
+def test_a_patient_without_an_index_date_gets_no_eligible_slope() -> None:
+    from kidneycohort.slopes import egfr_slopes
+
+    egfr = pl.DataFrame(
+        {
+            "patient_id": ["a"] * 3 + ["b"] * 3,
+            "equation": ["ckd_epi_2021_cr"] * 6,
+            "years_from_index": [0.0, 1.0, 2.0, None, None, None],
+            "egfr": [60.0, 58.0, 55.0, 60.0, 50.0, 40.0],
+        }
+    )
+    out = egfr_slopes(egfr).sort("patient_id")
+    assert out["eligible"].to_list() == [True, False]
+    assert out["ineligible_reason"].to_list() == [None, "no_index_date"]
+    assert out["n_values"].to_list() == [3, 0]
