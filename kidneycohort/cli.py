@@ -31,7 +31,8 @@ def _guarded(func: F) -> F:
         try:
             return func(*args, **kwargs)
         except KidneyCohortError as exc:
-            click.echo(f"error: {exc}", err=True)
+            for line in str(exc).splitlines() or [""]:
+                click.echo(f"error: {line}", err=True)
             sys.exit(EXIT_BAD_INPUT)
         except click.exceptions.Exit:
             raise
@@ -280,12 +281,19 @@ def _guarded_run(func: F) -> F:
 def validate_cmd(config: Path, overrides: tuple[str, ...], no_data: bool) -> None:
     """Check a study CONFIG, its recipe and its input files without running anything.
 
-    Reads only file headers: every key and type, every step's inputs, every file
-    and column the config names. Exit code 0 when the config would run, 2 otherwise.
+    Reads file headers and the first rows of each file (a bounded scan): every key and
+    type, every step's inputs, every file and column the config names, tables whose
+    every row would be rejected, groups a comparison needs. Every problem is one line.
+    Exit code 0 when the config would run, 2 otherwise.
     """
+    from kidneycohort.errors import InputDataError
     from kidneycohort.pipeline import check_inputs
+    from kidneycohort.pipeline.preview import preview_problems
 
     study = _load(config, overrides)
+    problems = [] if no_data else preview_problems(study)
+    if problems:
+        raise InputDataError("\n".join(problems))
     columns = {} if no_data else check_inputs(study)
     click.echo(f"config {config}: valid")
     click.echo(f"recipe {study.recipe.name}: {' -> '.join(s.name for s in study.steps)}")
