@@ -312,7 +312,12 @@ def validate_cmd(config: Path, overrides: tuple[str, ...], no_data: bool) -> Non
     help="Run folder (default: output.dir of the config).",
 )
 @click.option("--set", "overrides", multiple=True, metavar="KEY=VALUE", help=_SET_HELP)
-@click.option("--force", is_flag=True, help="Replace an existing run folder once the run succeeds.")
+@click.option(
+    "--force",
+    is_flag=True,
+    help="Replace a previous run folder (one with manifest.json, holding no input) once "
+    "the run succeeds; a file or any other folder is never replaced.",
+)
 @click.option("--quiet", "-q", is_flag=True, help="No progress display or log lines.")
 @click.option("--verbose", "-v", is_flag=True, help="Debug log lines.")
 @_guarded_run
@@ -327,8 +332,10 @@ def run_cmd(
     """Run a study CONFIG and write its run folder (tables, models, figures, report).
 
     The folder is written to a temporary place and moved into place only when every
-    step succeeded; a failed run leaves RUN_DIR.failed with run.log. Exit codes: 0 ok,
-    2 bad config or input, 1 internal error.
+    step succeeded; a failed run leaves RUN_DIR.failed with run.log (the traceback of a
+    failure is there, the terminal gets one line). One run at a time owns a run folder
+    (a lock file .RUN_DIR.lock beside it); SIGTERM stops a run like Ctrl-C. Exit codes:
+    0 ok, 2 bad config or input, 1 internal error.
     """
     from kidneycohort.pipeline import run_pipeline
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -614,3 +615,23 @@ def test_a_patient_without_an_index_date_gets_no_eligible_slope() -> None:
     assert out["eligible"].to_list() == [True, False]
     assert out["ineligible_reason"].to_list() == [None, "no_index_date"]
     assert out["n_values"].to_list() == [3, 0]
+
+
+@pytest.mark.parametrize(
+    ("text", "fragment"),
+    [
+        (LABS + "S1,2020-04-01\n", "line 6 has 2 fields where the header has 5"),
+        (LABS + "S1,2020-04-01,CREAT,1.0,mg/dL,x\n", "line 6 has 6 fields where the header has 5"),
+        (LABS.replace("LBORRESU", "LBORRES"), "column 'LBORRES' appears twice in the header"),
+    ],
+)
+def test_the_python_api_refuses_ragged_rows_and_duplicated_headers(
+    tmp_path: Path, text: str, fragment: str
+) -> None:
+    from kidneycohort.errors import InputDataError
+    from kidneycohort.io import read_labs
+
+    path = tmp_path / "labs.csv"
+    path.write_text(text, encoding="utf-8")
+    with pytest.raises(InputDataError, match=re.escape(fragment)):
+        read_labs(path, columns={"SUBJID": "patient_id", "LBDTC": "sample_date"}).collect()
