@@ -15,6 +15,7 @@ at once, one line each:
 from __future__ import annotations
 
 import re
+from pathlib import Path
 from typing import Any, Final
 
 import polars as pl
@@ -40,6 +41,10 @@ def _where(table: str, specs: list[FileSource], i: int) -> str:
 
 
 def _read_head(spec: FileSource, kind: str, where: str, rows: int) -> tuple[Any, str | None]:
+    if not Path(spec.path).is_file():
+        return None, (
+            f"{where}.path: file '{spec.path}' not found; paths are relative to the config file"
+        )
     try:
         frame = read_source(spec, kind).head(rows).collect()  # type: ignore[arg-type]
     except KidneyCohortError as exc:
