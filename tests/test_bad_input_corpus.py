@@ -635,3 +635,27 @@ def test_the_python_api_refuses_ragged_rows_and_duplicated_headers(
     path.write_text(text, encoding="utf-8")
     with pytest.raises(InputDataError, match=re.escape(fragment)):
         read_labs(path, columns={"SUBJID": "patient_id", "LBDTC": "sample_date"}).collect()
+
+
+def test_an_event_dated_in_the_future_is_rejected() -> None:
+    from kidneycohort.harmonize import harmonize_tables
+
+    labs = pl.DataFrame(
+        {
+            "patient_id": ["a"],
+            "sample_date": ["2020-01-01"],
+            "analyte": ["creatinine"],
+            "value": ["1.0"],
+            "unit": ["mg/dL"],
+        }
+    )
+    events = pl.DataFrame(
+        {
+            "patient_id": ["a", "a"],
+            "event_date": ["2021-01-01", "2999-01-01"],
+            "event": ["dialysis", "dialysis"],
+        }
+    )
+    out = harmonize_tables(labs, pl.DataFrame({"patient_id": ["a"]}), events)
+    assert out.rejected["reason"].to_list() == ["implausible_date"]
+    assert out.events.height == 1
