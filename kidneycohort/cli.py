@@ -24,6 +24,12 @@ F = TypeVar("F", bound=Callable[..., Any])
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
 
+def _first_line(exc: BaseException) -> str:
+    """The first line of an exception's message (a terminal gets one line)."""
+    lines = str(exc).strip().splitlines()
+    return lines[0] if lines else ""
+
+
 def _guarded(func: F) -> F:
     """Turn our errors into one-line messages and exit codes; never a traceback."""
 
@@ -40,7 +46,8 @@ def _guarded(func: F) -> F:
             log_hint = getattr(exc, "log_path", None)
             where = f" (details in {log_hint})" if log_hint else ""
             click.echo(
-                f"internal error: {type(exc).__name__}: {exc}{where}; please report it",
+                f"internal error: {type(exc).__name__}: {_first_line(exc)}{where}; "
+                "please report it",
                 err=True,
             )
             logging.getLogger("kidneycohort").debug("internal error", exc_info=True)
@@ -263,7 +270,8 @@ def _guarded_run(func: F) -> F:
             log_hint = getattr(exc, "log_path", None)
             where = f" (details in {log_hint})" if log_hint else ""
             click.echo(
-                f"internal error: {type(exc).__name__}: {exc}{where}; please report it",
+                f"internal error: {type(exc).__name__}: {_first_line(exc)}{where}; "
+                "please report it",
                 err=True,
             )
             sys.exit(EXIT_INTERNAL)
