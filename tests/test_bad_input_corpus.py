@@ -659,3 +659,22 @@ def test_an_event_dated_in_the_future_is_rejected() -> None:
     out = harmonize_tables(labs, pl.DataFrame({"patient_id": ["a"]}), events)
     assert out.rejected["reason"].to_list() == ["implausible_date"]
     assert out.events.height == 1
+
+
+def test_two_runs_into_one_folder_at_once_the_second_fails(tmp_path: Path) -> None:
+    folder = tmp_path / "study"
+    config = Study().write(folder)
+    first = subprocess.Popen(
+        [sys.executable, "-c", _SLOW_RUN, str(config), str(folder / "out")],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    try:
+        assert first.stdout is not None and first.stdout.readline().strip() == "reading"
+        code, output = invoke(["run", str(config), "--out", "out", "-q"], folder)
+        assert code == 2 and f"being written by another run (pid {first.pid}" in output, output
+        check_one_line(output)
+    finally:
+        first.send_signal(signal.SIGTERM)
+        first.communicate(timeout=30)
