@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import errno
 import logging
+import os
+import re
 import shutil
 import signal
 import threading
@@ -253,7 +255,7 @@ def run_pipeline(
     except BaseException as exc:
         if _is_disk_error(exc, target):
             _discard(tmp, target, progress)
-            raise _disk_error(target, exc) from None  # type: ignore[arg-type]
+            raise _disk_error(target, exc) from None
         _fail(tmp, target, exc, progress)
         raise
     try:
@@ -299,17 +301,31 @@ def _discard(tmp: Path, target: Path, progress: ProgressObserver) -> None:
 def _is_disk_error(exc: BaseException, target: Path) -> bool:
     """A full or read-only disk, or a folder we may not write to, under the target's
     parent (an unreadable input is not one)."""
+    if not isinstance(exc, OSError | pl.exceptions.PolarsError):
+        return False
+    code = getattr(exc, "errno", None)
+    found = _OS_ERROR.search(str(exc))  # polars and pyarrow say "(os error 28)"
+    if found and code is None:
+        code = int(found.group(1))
+    if code in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
+        return True
     if not isinstance(exc, OSError):
         return False
-    if exc.errno in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
-        return True
     name = str(exc.filename or "")
     return exc.errno in (errno.EACCES, errno.EPERM) and name.startswith(str(target.parent))
 
 
-def _disk_error(target: Path, exc: OSError) -> KidneyCohortError:
-    reason = "no space left on the device" if exc.errno == errno.ENOSPC else exc.strerror
-    where = f" ({exc.filename})" if exc.filename else ""
+_OS_ERROR = re.compile(r"\(os error (\d+)\)")
+
+
+def _disk_error(target: Path, exc: BaseException) -> KidneyCohortError:
+    code = getattr(exc, "errno", None)
+    found = _OS_ERROR.search(str(exc))
+    if found and code is None:
+        code = int(found.group(1))
+    reason = "no space left on the device" if code == errno.ENOSPC else os.strerror(code or 0)
+    filename = getattr(exc, "filename", None)
+    where = f" ({filename})" if filename else ""
     return ConfigError(
         f"output.dir: cannot write the run folder '{target}': {reason}{where}; "
         "nothing was written; free space or choose another --out"
