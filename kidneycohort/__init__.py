@@ -217,6 +217,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.run_folder import StudyFacts as StudyFacts
     from kidneycohort.run_folder import canonical_order as canonical_order
     from kidneycohort.run_folder import check_layout as check_layout
+    from kidneycohort.run_folder import csv_safe as csv_safe
     from kidneycohort.run_folder import declared as declared
     from kidneycohort.run_folder import file_for as file_for
     from kidneycohort.run_folder import is_written as is_written
@@ -225,6 +226,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.run_folder import package_versions as package_versions
     from kidneycohort.run_folder import read_manifest as read_manifest
     from kidneycohort.run_folder import sha256_of as sha256_of
+    from kidneycohort.run_folder import write_csv as write_csv
     from kidneycohort.run_folder import write_manifest as write_manifest
     from kidneycohort.run_folder import write_table as write_table
     from kidneycohort.run_folder import write_workbook as write_workbook
@@ -483,6 +485,8 @@ _PUBLIC: dict[str, str] = {
             "StudyFacts",
             "canonical_order",
             "check_layout",
+            "csv_safe",
+            "write_csv",
             "declared",
             "file_for",
             "is_written",

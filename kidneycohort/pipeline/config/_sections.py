@@ -65,7 +65,12 @@ class StudySection(_Strict):
         description="Group every difference and hazard ratio is taken against (default: "
         "the first group in sorted order).",
     )
-    seed: int = Field(0, description="Seed for any resampling a step does; recorded.")
+    seed: int = Field(
+        0,
+        ge=0,
+        lt=2**63,
+        description="Seed for any resampling a step does (0 to 2^63 - 1); recorded.",
+    )
     description: str = Field("", description="Free text shown in the report header.")
 
     @model_validator(mode="after")
