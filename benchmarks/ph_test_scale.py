@@ -52,7 +52,9 @@ def main() -> None:
     parser.add_argument("--rows", default="50000,200000,1000000")
     parser.add_argument("--lifelines-max", type=int, default=200_000)
     args = parser.parse_args()
-    print(f"{'rows':>9} {'events':>7} {'fit s':>7} {'lifelines s':>12} {'ours s':>8} {'max rel diff':>13}")
+    print(
+        f"{'rows':>9} {'events':>7} {'fit s':>7} {'lifelines s':>12} {'ours s':>8} {'max rel diff':>13}"
+    )
     for n in (int(s) for s in args.rows.split(",")):
         data = cohort(n)
         names = ["group", "age", "female"]
