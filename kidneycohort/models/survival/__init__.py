@@ -30,6 +30,10 @@ from kidneycohort.models.survival._curves import (
 from kidneycohort.models.survival._data import (
     numbers_at_risk,
 )
+from kidneycohort.models.survival._efron import (
+    VectorisedCoxPHFitter,
+    efron_derivatives,
+)
 from kidneycohort.models.survival._estimability import (
     MAX_LOG_HR_SE,
     NOT_ESTIMABLE_REASONS,
@@ -52,6 +56,8 @@ __all__ = [
     "CumulativeIncidence",
     "KaplanMeier",
     "SurvivalRule",
+    "VectorisedCoxPHFitter",
+    "efron_derivatives",
     "estimability_note",
     "evaluable_rows",
     "hazard_ratio_table",

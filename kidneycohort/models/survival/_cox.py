@@ -15,6 +15,7 @@ from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import ConvergenceError, InputDataError, did_you_mean
 from kidneycohort.models._design import capture_warnings, encode_covariates
 from kidneycohort.models.survival._data import _prepare, _warn_all
+from kidneycohort.models.survival._efron import VectorisedCoxPHFitter
 from kidneycohort.models.survival._estimability import with_estimability
 from kidneycohort.models.survival._ph_test import proportional_hazards_test
 from kidneycohort.models.survival._rule import SurvivalRule
@@ -32,7 +33,8 @@ class CoxModel:
         h_i(t) = h_{0,s(i)}(t) \exp(\beta^\top x_i)
 
     with a baseline hazard per stratum :math:`s(i)`, Efron's handling of ties (lifelines
-    ``CoxPHFitter``). The group enters as indicators of each group against
+    ``CoxPHFitter``, its Newton derivatives vectorised: :class:`VectorisedCoxPHFitter`).
+    The group enters as indicators of each group against
     ``reference_group`` (terms ``<group_column>=<level>``); text covariates likewise.
     Beside the fit, the proportional-hazards assumption is checked per term by the
     scaled-Schoenfeld-residual test of Grambsch and Therneau with Kaplan–Meier time
@@ -55,6 +57,7 @@ class CoxModel:
     Attributes
     ----------
     fitter_ : lifelines.CoxPHFitter
+        A :class:`VectorisedCoxPHFitter` (a ``CoxPHFitter`` subclass).
     ph_test_ : polars.DataFrame
         ``term, test_statistic, p``.
     ph_global_ : polars.DataFrame
@@ -136,7 +139,7 @@ class CoxModel:
                 f"CoxModel ({self.endpoint_}): no events among {rows.height} patients; a hazard "
                 "ratio cannot be estimated - report the event counts instead"
             )
-        fitter = CoxPHFitter(alpha=1.0 - self.rule.confidence)
+        fitter = VectorisedCoxPHFitter(alpha=1.0 - self.rule.confidence)
         try:
             with capture_warnings() as captured:
                 fitter.fit(
