@@ -78,8 +78,11 @@ def run_once(data: Path, out: Path, pythonpath: str | None) -> dict:
     env = dict(os.environ)
     if pythonpath:
         env["PYTHONPATH"] = pythonpath + os.pathsep + env.get("PYTHONPATH", "")
+    # run from the data folder: ``python -c`` puts the working directory first on the
+    # path, which would shadow --pythonpath with a checkout's own package
     done = subprocess.run(
-        [sys.executable, "-c", _CHILD, str(data), str(out)],
+        [sys.executable, "-c", _CHILD, str(data.resolve()), str(out.resolve())],
+        cwd=data.parent,
         env=env,
         capture_output=True,
         text=True,
