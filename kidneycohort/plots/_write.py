@@ -111,8 +111,8 @@ def _lab_figures(run: RunFolder, palette: dict[str, str], threshold: int) -> dic
             )
             if equation is not None:
                 scan = scan.filter(pl.col("equation") == equation)
-        wanted = ("patient_id", "equation", "years_from_index", "egfr", "egfr_unit", "group")
-        egfr = scan.select([c for c in wanted if c in have]).collect()
+        egfr_columns = ("patient_id", "equation", "years_from_index", "egfr", "egfr_unit", "group")
+        egfr = scan.select([c for c in egfr_columns if c in have]).collect()
         out["egfr_trajectories"] = egfr_trajectory_figure(
             egfr,
             groups,
@@ -127,8 +127,8 @@ def _lab_figures(run: RunFolder, palette: dict[str, str], threshold: int) -> dic
         )
     if run.has("slopes"):
         have = run.scan("slopes").collect_schema().names()
-        wanted = ("patient_id", "equation", "slope_per_year", "eligible", "group")
-        slopes = run.table("slopes", [c for c in wanted if c in have])
+        slope_columns = ("patient_id", "equation", "slope_per_year", "eligible", "group")
+        slopes = run.table("slopes", [c for c in slope_columns if c in have])
         out["slope_distribution"] = slope_distribution_figure(
             slopes,
             groups,
