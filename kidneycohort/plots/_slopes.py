@@ -22,7 +22,7 @@ from plotnine import (
     scale_x_continuous,
 )
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_count_text
 from kidneycohort.plots._style import (
     RAPID_DECLINE_PER_YEAR,
@@ -136,6 +136,7 @@ def _slope_box(values: pl.DataFrame) -> pl.DataFrame:
     return box.join(whiskers, on="group").sort("group")
 
 
+@follows_input
 def slope_density(
     slopes: FrameLike,
     groups: FrameLike | None = None,
@@ -152,7 +153,7 @@ def slope_density(
 
     Returns
     -------
-    polars.DataFrame
+    polars.DataFrame (pandas when given pandas)
         ``group``, ``slope_per_year`` (bin centre), ``density`` (integrates to 1 over
         the group's range, up to the kernel mass beyond it), ``width`` (density over
         the group's largest density).
