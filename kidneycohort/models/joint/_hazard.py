@@ -19,8 +19,8 @@ derivative in :math:`c`. For the Weibull baseline :math:`h_0(t) = \lambda \rho
 t^{\rho-1}` the substitution :math:`u = t^\rho` removes the singularity at 0,
 :math:`\int_s^e \lambda\rho t^{\rho-1} e^{\eta(t)} dt = \int_{s^\rho}^{e^\rho}
 \lambda e^{\eta(u^{1/\rho})} du`, computed by Gauss–Legendre quadrature per segment;
-it also gives :math:`K = \int h(t)(1 + \rho\log t)\,dt`, the derivative in
-:math:`\log\rho`.
+it also gives :math:`K`, the derivative of the cumulative hazard in :math:`\log\rho`
+(Leibniz's rule in :math:`u`, so no :math:`\log u` singularity is integrated).
 """
 
 from __future__ import annotations
@@ -73,4 +73,11 @@ def weibull_segments(
     u = np.maximum(u, 1e-300)
     t = u ** (1.0 / rho)
     values = np.exp(a[..., None] + c[..., None] * t) * (half[..., None] * weights)
-    return values.sum(-1), (values * t).sum(-1), (values * (1.0 + np.log(u))).sum(-1)
+    cumulative, moment = values.sum(-1), (values * t).sum(-1)
+    # d/d log(rho) by Leibniz's rule: the limits u = s^rho, e^rho move, and the integrand
+    # moves through t = u^(1/rho) (dt/dlog rho = -t log(u) / rho); t log u -> 0 at u = 0
+    upper = np.where(end > 0, high * np.log(np.where(end > 0, end, 1.0)), 0.0)
+    lower = np.where(start > 0, low * np.log(np.where(start > 0, start, 1.0)), 0.0)
+    limits = rho * (upper * np.exp(a + c * end) - lower * np.exp(a + c * start))
+    inside = (values * t * np.log(u)).sum(-1)
+    return cumulative, moment, limits - c / rho * inside

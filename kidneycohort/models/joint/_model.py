@@ -302,7 +302,8 @@ class JointSlopeModel:
             lay, cov = self.layout_, optimum.covariance
             full = np.zeros((matrix.shape[0], lay.size))
             full[:, lay.beta] = matrix
-            extra = [("all", "association", lay.alpha)] + [
+            fixed = self.rule.fixed_association is not None
+            extra = [("all", "association", lay.alpha)] * (not fixed) + [
                 (f"{g} - {self.reference_group_}", "log_hazard_ratio", lay.gamma.start + i)
                 for i, g in enumerate(self.groups_[1:])
             ]
