@@ -152,8 +152,10 @@ class JointLikelihood:
         association: str,
         cuts: np.ndarray,
         quadrature_nodes: int,
+        longitudinal_only: bool = False,
     ) -> None:
         self.data, self.layout, self.association = data, layout, association
+        self.longitudinal_only = longitudinal_only
         self.quadrature_nodes = quadrature_nodes
         knot = data.knot
         edges = np.unique(np.concatenate([[0.0], cuts, [] if knot is None else [knot]]))
@@ -258,11 +260,13 @@ class JointLikelihood:
         )
         log_long = -0.5 * (data.n_values[:, None] * (_LOG_2PI + 2.0 * log_sigma) + rss / sigma2)
         link = theta if self.association == "current_value" else effects
-        terms = self._hazard_terms(x, link)
-        event = data.event[:, None]
-        cumulative = terms["E"].sum(axis=2)
-        log_surv = event * terms["log_hazard"] - cumulative
-        total = grid.offset + log_long + log_surv
+        total = grid.offset + log_long
+        terms: dict[str, np.ndarray] | None = None
+        cumulative = np.zeros(1)
+        if not self.longitudinal_only:
+            terms = self._hazard_terms(x, link)
+            cumulative = terms["E"].sum(axis=2)
+            total = total + data.event[:, None] * terms["log_hazard"] - cumulative
         per = logsumexp(total, axis=1)
         if per_patient:
             return per
@@ -285,7 +289,7 @@ class JointLikelihood:
         cross_theta: np.ndarray,
         rss: np.ndarray,
         link: np.ndarray,
-        terms: dict[str, np.ndarray],
+        terms: dict[str, np.ndarray] | None,
         cumulative: np.ndarray,
     ) -> np.ndarray:
         lay, data = self.layout, self.data
@@ -293,12 +297,14 @@ class JointLikelihood:
         event = data.event[:, None]
         grad = np.zeros(lay.size)
         score_long = (data.cross_response[:, None, :] - cross_theta) / sigma2  # (n, K, q)
-        e, f = terms["E"], terms["F"]
-        link_score = (
-            event[..., None] * self.event_z[:, None, :]
-            - np.einsum("nkj,jq->nkq", e, self.z_a)
-            - np.einsum("nkj,jq->nkq", f, self.z_c)
-        )  # derivative of log S_i in the link coefficients, divided by alpha
+        if terms is None:  # the mixed model alone
+            link_score = np.zeros_like(score_long)
+        else:  # derivative of log S_i in the link coefficients, divided by alpha
+            link_score = (
+                event[..., None] * self.event_z[:, None, :]
+                - np.einsum("nkj,jq->nkq", terms["E"], self.z_a)
+                - np.einsum("nkj,jq->nkq", terms["F"], self.z_c)
+            )
         score_effects = score_long + alpha * link_score
         score_beta = score_long + (
             alpha * link_score if self.association == "current_value" else 0.0
@@ -318,6 +324,9 @@ class JointLikelihood:
         diagonal = rows == cols
         d_chol[diagonal] *= factor[rows[diagonal], cols[diagonal]]
         grad[lay.chol] = d_chol
+        if terms is None:
+            return grad
+        e = terms["E"]
         survival = weights * (event - cumulative)
         by_group = np.bincount(data.group_code, survival.sum(axis=1), minlength=lay.n_groups)
         grad[lay.gamma] = by_group[1:]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import warnings
 from typing import Any, Self
 
 import numpy as np
@@ -11,7 +12,7 @@ from scipy import stats
 
 from kidneycohort._frames import FrameLike
 from kidneycohort._rules import resolve_rules
-from kidneycohort.errors import ConvergenceError, InputDataError
+from kidneycohort.errors import ConvergenceError, InputDataError, StatisticalWarning
 from kidneycohort.models.joint._data import JointData, joint_data, reorder_groups
 from kidneycohort.models.joint._fit import JointOptimum, maximise
 from kidneycohort.models.joint._likelihood import JointLikelihood, Layout
@@ -24,7 +25,8 @@ __all__ = ["JointSlopeModel", "fit_separate_mixed_model"]
 
 
 def fit_separate_mixed_model(data: JointData, slope_terms: list[str]) -> MixedModelFit:
-    """The same eGFR model alone, by ML (exact engine), on the same patients and values."""
+    """The same eGFR model alone, by ML (exact engine), on the same patients and values;
+    the joint model's starting values."""
     terms = ["intercept", *slope_terms]
     code = data.group_code[data.row_patient]
     design = data.row_design
@@ -131,62 +133,10 @@ class JointSlopeModel:
         sizes = np.bincount(data.group_code, minlength=len(data.groups))
         if sizes.min() < spec.min_patients_per_group:
             self.reasons_ = {"mixed": "too_few_patients", "joint": "too_few_patients"}
-        self.mixed_ = self._fit_mixed(data)
-        if self.reasons_["joint"] is None:
-            if data.n_events == 0:
-                self.reasons_["joint"] = "no_dropout_events"
-            elif data.n_events < spec.min_events:
-                self.reasons_["joint"] = "too_few_events"
-            elif self.mixed_ is None:
-                self.reasons_["joint"] = "mixed_not_converged"
-        self.optimum_: JointOptimum | None = None
-        if self.reasons_["joint"] is None:
-            self._fit_joint(data)
-        self._summary = self._summarise()
-        return self
-
-    def _fit_mixed(self, data: JointData) -> MixedModelFit | None:
-        if self.reasons_["mixed"] is not None:
-            return None
-        try:
-            return fit_separate_mixed_model(data, self.slope_terms_)
-        except (ConvergenceError, InputDataError) as error:
-            logger.info("JointSlopeModel: the separate mixed model failed: %s", error)
-            self.reasons_["mixed"] = "mixed_not_converged"
-            return None
-
-    def likelihood(self, quadrature_nodes: int | None = None) -> JointLikelihood:
-        """The joint log-likelihood of the fitted data (``quadrature_nodes`` per effect)."""
-        spec = self.rule
-        return JointLikelihood(
-            self.data_,
-            self.layout_,
-            association=spec.association,
-            cuts=self.cuts_,
-            quadrature_nodes=quadrature_nodes or spec.quadrature_nodes,
-        )
-
-    def _start(self, data: JointData) -> np.ndarray:
-        lay, mixed = self.layout_, self.mixed_
-        assert mixed is not None
-        x = np.zeros(lay.size)
-        x[lay.beta] = mixed.fixed_effects
-        x[lay.log_sigma] = 0.5 * np.log(mixed.residual_variance)
-        covariance = mixed.random_covariance
-        floor = 1e-4 * max(float(np.trace(covariance)), 1e-8) * np.eye(lay.q)
-        factor = np.linalg.cholesky(covariance + floor)
-        rows, cols = np.tril_indices(lay.q)
-        entries = factor[rows, cols]
-        entries[rows == cols] = np.log(entries[rows == cols])
-        x[lay.chol] = entries
-        x[lay.alpha] = self.rule.fixed_association or 0.0
-        exposure = max(float(data.time.sum()), 1e-8)
-        rate = np.log(max(data.n_events, 0.5) / exposure)
-        x[lay.hazard] = rate if lay.baseline == "piecewise" else [rate, 0.0]
-        return x
-
-    def _fit_joint(self, data: JointData) -> None:
-        spec = self.rule
+        elif data.n_events == 0:
+            self.reasons_["joint"] = "no_dropout_events"
+        elif data.n_events < spec.min_events:
+            self.reasons_["joint"] = "too_few_events"
         self.cuts_ = (
             baseline_cuts(data, spec.hazard_pieces)
             if spec.baseline_hazard == "piecewise"
@@ -195,24 +145,105 @@ class JointSlopeModel:
         self.layout_ = Layout.build(
             data.groups, self.slope_terms_, spec.baseline_hazard, self.cuts_.size + 1
         )
-        start = self._start(data)
-        free = np.ones(self.layout_.size, dtype=bool)
-        if spec.fixed_association is not None:
-            free[self.layout_.alpha] = False
-        optimum = maximise(
-            self.likelihood(),
+        self.mixed_: JointOptimum | None = None
+        self.optimum_: JointOptimum | None = None
+        if self.reasons_["mixed"] is None:
+            self._fit_mixed(data)
+        if self.reasons_["joint"] is None:
+            self._fit_joint(data)
+        self._summary = self._summarise()
+        return self
+
+    def likelihood(
+        self, quadrature_nodes: int | None = None, *, longitudinal_only: bool = False
+    ) -> JointLikelihood:
+        """The joint log-likelihood of the fitted data (``quadrature_nodes`` per effect);
+        ``longitudinal_only`` leaves out the dropout model (the mixed model alone)."""
+        spec = self.rule
+        return JointLikelihood(
+            self.data_,
+            self.layout_,
+            association=spec.association,
+            cuts=self.cuts_,
+            quadrature_nodes=quadrature_nodes or spec.quadrature_nodes,
+            longitudinal_only=longitudinal_only,
+        )
+
+    def _start(self, data: JointData) -> np.ndarray:
+        """Mixed-model ML estimates of the exact engine (pooled least squares if it
+        fails), random-effect variances floored away from the boundary, crude hazards."""
+        lay = self.layout_
+        x = np.zeros(lay.size)
+        design = data.row_design
+        try:
+            with warnings.catch_warnings():  # only a start: a boundary fit is floored below
+                warnings.simplefilter("ignore", StatisticalWarning)
+                mixed = fit_separate_mixed_model(data, self.slope_terms_)
+            beta, sigma2 = mixed.fixed_effects, mixed.residual_variance
+            covariance = mixed.random_covariance
+        except (ConvergenceError, InputDataError) as error:
+            logger.info("JointSlopeModel: start by least squares (%s)", error)
+            code = data.group_code[data.row_patient]
+            wide = np.hstack([(code == g)[:, None] * design for g in range(len(data.groups))])
+            beta = np.linalg.lstsq(wide, data.row_response, rcond=None)[0]
+            sigma2 = float(np.var(data.row_response - wide @ beta))
+            covariance = np.zeros((lay.q, lay.q))
+        floor = 0.05 * sigma2 / np.maximum((design**2).mean(axis=0), 1e-8)
+        factor = np.linalg.cholesky(covariance + np.diag(floor))
+        rows, cols = np.tril_indices(lay.q)
+        entries = factor[rows, cols]
+        entries[rows == cols] = np.log(entries[rows == cols])
+        x[lay.beta] = beta
+        x[lay.log_sigma] = 0.5 * np.log(sigma2)
+        x[lay.chol] = entries
+        exposure = max(float(data.time.sum()), 1e-8)
+        rate = np.log(max(data.n_events, 0.5) / exposure)
+        x[lay.hazard] = rate if lay.baseline == "piecewise" else [rate, 0.0]
+        return x
+
+    def _maximise(
+        self, start: np.ndarray, free: np.ndarray, longitudinal_only: bool
+    ) -> JointOptimum:
+        spec = self.rule
+        return maximise(
+            self.likelihood(longitudinal_only=longitudinal_only),
             start,
             free,
             tolerance=spec.tolerance,
             max_iterations=spec.max_iterations,
         )
-        self.optimum_ = optimum
+
+    @staticmethod
+    def _failure(optimum: JointOptimum) -> str | None:
         if optimum.covariance is None:
-            self.reasons_["joint"] = (
-                "hessian_not_positive_definite" if np.isfinite(optimum.loglik) else "not_converged"
-            )
-        elif not optimum.converged:
-            self.reasons_["joint"] = "not_converged"
+            finite = np.isfinite(optimum.loglik) and np.isfinite(optimum.newton_decrement)
+            return "hessian_not_positive_definite" if finite else "not_converged"
+        return None if optimum.converged else "not_converged"
+
+    def _fit_mixed(self, data: JointData) -> None:
+        lay = self.layout_
+        self.start_ = self._start(data)
+        free = np.zeros(lay.size, dtype=bool)
+        free[lay.beta] = True
+        free[lay.log_sigma] = True
+        free[lay.chol] = True
+        self.mixed_ = self._maximise(self.start_, free, longitudinal_only=True)
+        failure = self._failure(self.mixed_)
+        if failure is not None:
+            self.reasons_["mixed"] = "mixed_not_converged"
+
+    def _fit_joint(self, data: JointData) -> None:
+        spec, lay = self.rule, self.layout_
+        start = self.start_.copy() if hasattr(self, "start_") else self._start(data)
+        if self.mixed_ is not None and self.reasons_["mixed"] is None:
+            longitudinal = slice(lay.beta.start, lay.chol.stop)
+            start[longitudinal] = self.mixed_.x[longitudinal]
+        start[lay.alpha] = spec.fixed_association or 0.0
+        free = np.ones(lay.size, dtype=bool)
+        if spec.fixed_association is not None:
+            free[lay.alpha] = False
+        self.optimum_ = self._maximise(start, free, longitudinal_only=False)
+        self.reasons_["joint"] = self._failure(self.optimum_)
 
     # ---- results ----------------------------------------------------------------------
 
@@ -321,9 +352,10 @@ class JointSlopeModel:
             joint_labels += [("all", "association")]
             frames.append(self._rows("joint", np.zeros(len(joint_labels)), None, joint_labels))
         mixed = self.mixed_
-        if mixed is not None:
-            estimate = matrix @ mixed.fixed_effects
-            variance = np.einsum("ij,jk,ik->i", matrix, mixed.fixed_covariance, matrix)
+        if mixed is not None and mixed.covariance is not None and self.reasons_["mixed"] is None:
+            block = mixed.covariance[self.layout_.beta, self.layout_.beta]
+            estimate = matrix @ mixed.x[self.layout_.beta]
+            variance = np.einsum("ij,jk,ik->i", matrix, block, matrix)
             frames.append(self._rows("mixed", estimate, variance, labels))
         else:
             frames.append(self._rows("mixed", np.zeros(len(labels)), None, labels))
@@ -363,7 +395,7 @@ class JointSlopeModel:
             "n_patients": data.n_patients,
             "n_values": int(data.n_values.sum()),
             "n_events": data.n_events,
-            "mixed_loglik": self.mixed_.log_likelihood if self.mixed_ is not None else None,
+            "mixed_loglik": self.mixed_.loglik if self.mixed_ is not None else None,
             "reason": self.reasons_["joint"],
         }
         if optimum is None:
