@@ -6,13 +6,23 @@ stated value at kidney failure).
 
 from __future__ import annotations
 
+from kidneycohort.models.joint._dropout_sensitivity import (
+    DeltaAdjustedResult,
+    StatedValueResult,
+    delta_adjusted_slopes,
+    stated_value_at_kidney_failure,
+)
 from kidneycohort.models.joint._model import JointSlopeModel
 from kidneycohort.models.joint._rule import JointSlopeRule
 from kidneycohort.models.joint._simulate import JointCohortTruth, simulate_joint_cohort
 
 __all__ = [
+    "DeltaAdjustedResult",
     "JointCohortTruth",
     "JointSlopeModel",
     "JointSlopeRule",
+    "StatedValueResult",
+    "delta_adjusted_slopes",
     "simulate_joint_cohort",
+    "stated_value_at_kidney_failure",
 ]

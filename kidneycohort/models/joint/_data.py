@@ -241,6 +241,35 @@ def joint_data(
     )
 
 
+def with_values(
+    data: JointData, patient: np.ndarray, years: np.ndarray, response: np.ndarray
+) -> JointData:
+    """The same patients with other eGFR values (``patient`` indexes ``data.patient_ids``);
+    used to refit completed data sets."""
+    from dataclasses import replace
+
+    n = data.n_patients
+    z = time_design(years, data.knot)
+    q = z.shape[1]
+    cross = np.empty((n, q, q))
+    for a in range(q):
+        for b in range(a, q):
+            cross[:, a, b] = cross[:, b, a] = np.bincount(patient, z[:, a] * z[:, b], minlength=n)
+    return replace(
+        data,
+        n_values=np.bincount(patient, minlength=n).astype(float),
+        cross=cross,
+        cross_response=np.stack(
+            [np.bincount(patient, z[:, a] * response, minlength=n) for a in range(q)], axis=1
+        ),
+        response_square=np.bincount(patient, response * response, minlength=n),
+        row_patient=patient,
+        row_years=years,
+        row_response=response,
+        row_design=z,
+    )
+
+
 def reorder_groups(data: JointData, reference: str) -> JointData:
     """The same data with ``reference`` as group code 0 (the others in sorted order)."""
     if reference not in data.groups:

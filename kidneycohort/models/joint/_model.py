@@ -112,6 +112,29 @@ class JointSlopeModel:
 
     def fit(self, egfr: FrameLike, patients: FrameLike | None, endpoints: FrameLike) -> Self:
         """Fit the joint and the separate mixed model; returns ``self``."""
+        self.prepare(egfr, patients, endpoints)
+        if self.reasons_["mixed"] is None:
+            self._fit_mixed(self.data_)
+        if self.reasons_["joint"] is None:
+            self._fit_joint(self.data_)
+        self._summary = self._summarise()
+        return self
+
+    def fit_observed(
+        self, egfr: FrameLike, patients: FrameLike | None, endpoints: FrameLike
+    ) -> Self:
+        """Fit only the separate mixed model (the observed-data model of the sensitivity
+        analyses); the joint rows of the summary say ``not_fitted``."""
+        self.prepare(egfr, patients, endpoints)
+        if self.reasons_["mixed"] is None:
+            self._fit_mixed(self.data_)
+        if self.reasons_["joint"] is None:
+            self.reasons_["joint"] = "not_fitted"
+        self._summary = self._summarise()
+        return self
+
+    def prepare(self, egfr: FrameLike, patients: FrameLike | None, endpoints: FrameLike) -> None:
+        """Read and check the tables (``data_``, ``groups_``, ``excluded_``) without fitting."""
         spec = self.rule
         data = joint_data(
             egfr,
@@ -147,12 +170,6 @@ class JointSlopeModel:
         )
         self.mixed_: JointOptimum | None = None
         self.optimum_: JointOptimum | None = None
-        if self.reasons_["mixed"] is None:
-            self._fit_mixed(data)
-        if self.reasons_["joint"] is None:
-            self._fit_joint(data)
-        self._summary = self._summarise()
-        return self
 
     def likelihood(
         self, quadrature_nodes: int | None = None, *, longitudinal_only: bool = False

@@ -31,6 +31,7 @@ NOT_ESTIMABLE_NOTES: dict[str, str] = {
     "hessian_not_positive_definite": "the information matrix is not positive definite at "
     "the optimum; standard errors cannot be computed",
     "mixed_not_converged": "the mixed model alone could not be fitted",
+    "not_fitted": "the joint model was not fitted (observed-data model only)",
 }
 
 
