@@ -149,17 +149,30 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.kfre import kfre_inputs as kfre_inputs
     from kidneycohort.kfre import kfre_risk as kfre_risk
     from kidneycohort.kfre import kfre_summary_table as kfre_summary_table
+    from kidneycohort.models import CauseSpecificCox as CauseSpecificCox
+    from kidneycohort.models import CompetingRisks as CompetingRisks
+    from kidneycohort.models import CompetingRisksRule as CompetingRisksRule
     from kidneycohort.models import CoxModel as CoxModel
     from kidneycohort.models import CumulativeIncidence as CumulativeIncidence
+    from kidneycohort.models import FineGray as FineGray
+    from kidneycohort.models import JointSlopeModel as JointSlopeModel
+    from kidneycohort.models import JointSlopeRule as JointSlopeRule
     from kidneycohort.models import KaplanMeier as KaplanMeier
+    from kidneycohort.models import MixedModelFit as MixedModelFit
     from kidneycohort.models import SlopeModel as SlopeModel
     from kidneycohort.models import SlopeModelRule as SlopeModelRule
     from kidneycohort.models import SurvivalRule as SurvivalRule
+    from kidneycohort.models import delta_adjusted_slopes as delta_adjusted_slopes
     from kidneycohort.models import exact_poisson_interval as exact_poisson_interval
+    from kidneycohort.models import fit_mixed_model as fit_mixed_model
+    from kidneycohort.models import gray_test as gray_test
     from kidneycohort.models import incidence_rates as incidence_rates
     from kidneycohort.models import numbers_at_risk as numbers_at_risk
+    from kidneycohort.models import patient_blocks as patient_blocks
     from kidneycohort.models import rate_difference as rate_difference
     from kidneycohort.models import rate_ratio as rate_ratio
+    from kidneycohort.models import simulate_joint_cohort as simulate_joint_cohort
+    from kidneycohort.models import stated_value_at_kidney_failure as stated_value_at_kidney_failure
     from kidneycohort.pipeline import DataSection as DataSection
     from kidneycohort.pipeline import OutputSection as OutputSection
     from kidneycohort.pipeline import ProgressObserver as ProgressObserver
@@ -382,6 +395,19 @@ _PUBLIC: dict[str, str] = {
         for name in (
             "SlopeModel",
             "SlopeModelRule",
+            "CauseSpecificCox",
+            "CompetingRisks",
+            "CompetingRisksRule",
+            "FineGray",
+            "gray_test",
+            "JointSlopeModel",
+            "JointSlopeRule",
+            "delta_adjusted_slopes",
+            "simulate_joint_cohort",
+            "stated_value_at_kidney_failure",
+            "MixedModelFit",
+            "fit_mixed_model",
+            "patient_blocks",
             "KaplanMeier",
             "CumulativeIncidence",
             "CoxModel",

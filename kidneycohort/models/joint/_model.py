@@ -17,7 +17,7 @@ from kidneycohort.models.joint._data import JointData, joint_data, reorder_group
 from kidneycohort.models.joint._fit import JointOptimum, maximise
 from kidneycohort.models.joint._likelihood import JointLikelihood, Layout
 from kidneycohort.models.joint._rule import NOT_ESTIMABLE_NOTES, SUMMARY_COLUMNS, JointSlopeRule
-from kidneycohort.models.mixed._engine import MixedModelFit, fit_mixed_model, patient_blocks
+from kidneycohort.models.mixed import MixedModelFit, fit_mixed_model, patient_blocks
 
 logger = logging.getLogger(__name__)
 
@@ -273,7 +273,7 @@ class JointSlopeModel:
             parts = {"slope": {1: 1.0}}
         else:
             parts = {"acute_change": {1: knot}, "chronic_slope": {2: 1.0}}
-        rows = []
+        rows: list[tuple[str, str, np.ndarray]] = []
 
         def weights(group: int, terms: dict[int, float]) -> np.ndarray:
             out = np.zeros(size)

@@ -8,6 +8,8 @@ from pydantic import Field
 
 from kidneycohort._rules import RuleModel
 
+__all__ = ["SUMMARY_COLUMNS", "JointSlopeRule"]
+
 SUMMARY_COLUMNS = (
     "model",
     "contrast",
