@@ -41,6 +41,7 @@ References
 from __future__ import annotations
 
 import itertools
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -50,11 +51,9 @@ import polars as pl
 from scipy import stats
 
 from kidneycohort._frames import FrameLike
-from kidneycohort.errors import ConvergenceError, InputDataError
+from kidneycohort.errors import ConvergenceError, InputDataError, StatisticalWarning
 from kidneycohort.models.joint._data import JointData, dropout_times, time_design, with_values
-from kidneycohort.models.joint._fit import maximise
-from kidneycohort.models.joint._likelihood import JointLikelihood
-from kidneycohort.models.joint._model import JointSlopeModel
+from kidneycohort.models.joint._model import JointSlopeModel, fit_separate_mixed_model
 
 __all__ = [
     "DeltaAdjustedResult",
@@ -64,6 +63,22 @@ __all__ = [
 ]
 
 _BISECTION_STEPS = 10
+# completed-data refits (not) at the covariance boundary since the last reset
+_BOUNDARY_FITS = {False: 0, True: 0}
+
+
+def _boundary_note() -> str:
+    """A note on refits at the boundary since the last call (and reset the count)."""
+    at, total = _BOUNDARY_FITS[True], _BOUNDARY_FITS[True] + _BOUNDARY_FITS[False]
+    _BOUNDARY_FITS[False] = _BOUNDARY_FITS[True] = 0
+    if not at:
+        return ""
+    return (
+        f"{at} of {total} refits ended at the boundary of the random-effects covariance "
+        "(a variance at zero or a correlation at +/-1); their fixed effects are valid"
+    )
+
+
 _TABLE_COLUMNS = ("delta", "estimate", "se", "lower", "upper", "p", "df", "significant")
 
 
@@ -72,28 +87,25 @@ def _slope_fit(
 ) -> tuple[float, float]:
     """Slope difference (first non-reference - reference; chronic with a knot) and its
     variance from the observed-data mixed model (ML, the dropout model left out) refitted
-    to these values, started from the observed-data estimates."""
-    data, lay, observed = model.data_, model.layout_, model.mixed_
-    assert observed is not None
-    completed = with_values(data, patient, years, response)
-    likelihood = JointLikelihood(
-        completed,
-        lay,
-        association="current_value",
-        cuts=np.empty(0),
-        quadrature_nodes=3,
-        longitudinal_only=True,
-    )
-    free = np.zeros(lay.size, dtype=bool)
-    free[lay.beta.start : lay.chol.stop] = True
-    fit = maximise(likelihood, observed.x, free, tolerance=model.rule.tolerance, max_iterations=500)
-    if fit.covariance is None or not fit.converged:
-        raise ConvergenceError(
-            f"delta-adjusted analysis: a completed data set could not be fitted ({fit.message})"
+    to these values by the exact engine (closed-form profiled likelihood, no quadrature:
+    the eGFR model alone is Gaussian)."""
+    data = model.data_
+    with warnings.catch_warnings():
+        # a boundary covariance leaves the fixed effects valid; it is counted in the
+        # result's note (``boundary_fits``) instead of one warning per completed data set
+        warnings.simplefilter("ignore", StatisticalWarning)
+        fit = fit_separate_mixed_model(
+            with_values(data, patient, years, response), model.slope_terms_
         )
-    contrast = np.zeros(lay.size)
-    contrast[lay.beta.start + 2 * lay.q - 1], contrast[lay.beta.start + lay.q - 1] = 1.0, -1.0
-    return float(contrast @ fit.x), float(contrast @ fit.covariance @ contrast)
+    _BOUNDARY_FITS[bool(fit.convergence.boundary)] += 1
+    if not fit.convergence.converged:
+        raise ConvergenceError(
+            f"delta-adjusted analysis: a completed data set could not be fitted ({fit.describe()})"
+        )
+    q = 1 + len(model.slope_terms_)
+    contrast = np.zeros(fit.fixed_effects.size)
+    contrast[2 * q - 1], contrast[q - 1] = 1.0, -1.0
+    return float(contrast @ fit.fixed_effects), float(contrast @ fit.fixed_covariance @ contrast)
 
 
 def rubin(estimates: np.ndarray, variances: np.ndarray) -> tuple[float, float, float, float]:
@@ -242,6 +254,7 @@ def delta_adjusted_slopes(
     """
     if imputations < 2:
         raise InputDataError("delta_adjusted_slopes: imputations must be at least 2")
+    _boundary_note()  # reset the count
     model = _observed_model(egfr, patients, endpoints, options)
     data = model.data_
     imputed = _draw(model, _planned_years(data, planned_years), imputations, seed)
@@ -262,7 +275,11 @@ def delta_adjusted_slopes(
         }
     ).select(_TABLE_COLUMNS)
     quantity = "chronic_slope" if data.knot is not None else "slope"
-    note = "" if tipping is not None else "no change of conclusion over the deltas examined"
+    notes = [
+        "" if tipping is not None else "no change of conclusion over the deltas examined",
+        _boundary_note(),
+    ]
+    note = "; ".join(n for n in notes if n)
     return DeltaAdjustedResult(
         table,
         tipping,
@@ -309,6 +326,7 @@ class StatedValueResult:
     value: float
     endpoint: str
     added_values: int
+    note: str = ""
 
     def methods_text(self) -> str:
         return (
@@ -348,6 +366,7 @@ def stated_value_at_kidney_failure(
     who = index[known]
     when = failed["dropout_years"].to_numpy()[known]
     z = float(stats.norm.ppf(0.5 + confidence / 2.0))
+    _boundary_note()  # reset the count
     rows = []
     for analysis, patient, years, response in (
         ("observed", data.row_patient, data.row_years, data.row_response),
@@ -372,4 +391,6 @@ def stated_value_at_kidney_failure(
                 "p": float(2.0 * stats.norm.sf(abs(estimate) / se)),
             }
         )
-    return StatedValueResult(pl.DataFrame(rows), float(value), failure_endpoint, int(who.size))
+    return StatedValueResult(
+        pl.DataFrame(rows), float(value), failure_endpoint, int(who.size), _boundary_note()
+    )
