@@ -154,6 +154,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.models import CompetingRisksRule as CompetingRisksRule
     from kidneycohort.models import CoxModel as CoxModel
     from kidneycohort.models import CumulativeIncidence as CumulativeIncidence
+    from kidneycohort.models import DropoutAnalysisRule as DropoutAnalysisRule
     from kidneycohort.models import FineGray as FineGray
     from kidneycohort.models import JointSlopeModel as JointSlopeModel
     from kidneycohort.models import JointSlopeRule as JointSlopeRule
@@ -163,6 +164,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.models import SlopeModelRule as SlopeModelRule
     from kidneycohort.models import SurvivalRule as SurvivalRule
     from kidneycohort.models import delta_adjusted_slopes as delta_adjusted_slopes
+    from kidneycohort.models import dropout_analysis as dropout_analysis
     from kidneycohort.models import exact_poisson_interval as exact_poisson_interval
     from kidneycohort.models import fit_mixed_model as fit_mixed_model
     from kidneycohort.models import gray_test as gray_test
@@ -254,6 +256,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.tables import TableRule as TableRule
     from kidneycohort.tables import baseline_characteristics_table as baseline_characteristics_table
     from kidneycohort.tables import competing_risks_table as competing_risks_table
+    from kidneycohort.tables import dropout_table as dropout_table
     from kidneycohort.tables import endpoint_table as endpoint_table
     from kidneycohort.tables import kdigo_grid_table as kdigo_grid_table
     from kidneycohort.tables import rate_comparison_table as rate_comparison_table
@@ -401,6 +404,8 @@ _PUBLIC: dict[str, str] = {
             "FineGray",
             "gray_test",
             "JointSlopeModel",
+            "DropoutAnalysisRule",
+            "dropout_analysis",
             "JointSlopeRule",
             "delta_adjusted_slopes",
             "simulate_joint_cohort",
@@ -425,6 +430,7 @@ _PUBLIC: dict[str, str] = {
             "TableRule",
             "endpoint_table",
             "competing_risks_table",
+            "dropout_table",
             "slope_table",
             "baseline_characteristics_table",
             "kdigo_grid_table",

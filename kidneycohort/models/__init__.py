@@ -14,9 +14,11 @@ from kidneycohort.models.competing import (
     gray_test,
 )
 from kidneycohort.models.joint import (
+    DropoutAnalysisRule,
     JointSlopeModel,
     JointSlopeRule,
     delta_adjusted_slopes,
+    dropout_analysis,
     simulate_joint_cohort,
     stated_value_at_kidney_failure,
 )
@@ -47,6 +49,7 @@ __all__ = [
     "CompetingRisksRule",
     "CoxModel",
     "CumulativeIncidence",
+    "DropoutAnalysisRule",
     "FineGray",
     "JointSlopeModel",
     "JointSlopeRule",
@@ -56,6 +59,7 @@ __all__ = [
     "SlopeModelRule",
     "SurvivalRule",
     "delta_adjusted_slopes",
+    "dropout_analysis",
     "exact_poisson_interval",
     "fit_mixed_model",
     "gray_test",

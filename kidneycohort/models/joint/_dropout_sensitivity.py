@@ -42,7 +42,7 @@ from __future__ import annotations
 
 import itertools
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -62,7 +62,14 @@ __all__ = [
     "stated_value_at_kidney_failure",
 ]
 
-_BISECTION_STEPS = 10
+_BISECTION_STEPS = 7  # the bracket shrinks 128-fold
+# Newton decrement per value (deviance units) at which a completed-data refit counts as
+# converged: 1e-8 leaves a log-likelihood gap of at most 0.5e-8 per value, far below
+# what moves a slope difference; the engine's default 1e-10 refused near-flat optima
+# next to the covariance boundary on small completed data sets
+_REFIT_TOLERANCE = 1e-8
+# doublings of the extreme delta when the whole grid agrees
+_EXTENSIONS = 4
 # completed-data refits (not) at the covariance boundary since the last reset
 _BOUNDARY_FITS = {False: 0, True: 0}
 
@@ -95,7 +102,9 @@ def _slope_fit(
         # result's note (``boundary_fits``) instead of one warning per completed data set
         warnings.simplefilter("ignore", StatisticalWarning)
         fit = fit_separate_mixed_model(
-            with_values(data, patient, years, response), model.slope_terms_
+            with_values(data, patient, years, response),
+            model.slope_terms_,
+            tolerance=_REFIT_TOLERANCE,
         )
     _BOUNDARY_FITS[bool(fit.convergence.boundary)] += 1
     if not fit.convergence.converged:
@@ -215,8 +224,10 @@ class DeltaAdjustedResult:
             "imputed values of the non-reference arm were shifted by delta mL/min/1.73 m² "
             "per year since dropout, each completed data set was analysed by the slope "
             "mixed model and the results combined by Rubin's rules (Rubin 1987; Carpenter "
-            f"& Kenward 2013). For the {self.quantity} difference {self.contrast}, {point} "
-            f"(two-sided alpha {self.alpha:g}; bisection between grid values)."
+            f"& Kenward 2013). For the {self.quantity.replace('_', ' ')} difference "
+            f"{self.contrast}, {point} (two-sided alpha {self.alpha:g}; the extreme delta "
+            "doubled up to four times when the grid agreed; bisection between the deltas "
+            "that bracket the change)."
         )
 
 
@@ -259,6 +270,7 @@ def delta_adjusted_slopes(
     data = model.data_
     imputed = _draw(model, _planned_years(data, planned_years), imputations, seed)
     results = {float(d): _pooled(model, imputed, float(d)) for d in sorted(set(deltas))}
+    _extend_grid(results, model, imputed, alpha)
     tipping = _tipping_point(results, model, imputed, alpha)
     rows = sorted(results.items())
     z = stats.t.ppf(1 - alpha / 2, [r[2] for _, r in rows])
@@ -290,6 +302,30 @@ def delta_adjusted_slopes(
         int(imputed.patient.size),
         note,
     )
+
+
+def _extend_grid(
+    results: dict[float, tuple[float, float, float, float]],
+    model: JointSlopeModel,
+    imputed: _Imputations,
+    alpha: float,
+) -> None:
+    """When the whole grid agrees, double the extreme delta on the side where p is
+    largest (towards a changed conclusion) up to :data:`_EXTENSIONS` times, so that a
+    tipping point beyond the grid is still found; the added deltas join the table."""
+    conclusions = {results[d][3] < alpha for d in results}
+    if len(conclusions) > 1:
+        return
+    (grid_conclusion,) = conclusions
+    low, high = min(results), max(results)
+    edge = low if results[low][3] >= results[high][3] else high
+    if edge == 0.0:
+        edge = -1.0 if edge == high else 1.0
+    for _ in range(_EXTENSIONS):
+        edge *= 2.0
+        results[edge] = _pooled(model, imputed, edge)
+        if (results[edge][3] < alpha) != grid_conclusion:
+            return
 
 
 def _tipping_point(
@@ -328,11 +364,13 @@ class StatedValueResult:
     added_values: int
     note: str = ""
 
-    def methods_text(self) -> str:
+    def methods_text(self, count_text: Callable[[int], str] = str) -> str:
+        """The methods paragraph; ``count_text`` prints the count of patients (e.g.
+        :func:`kidneycohort.disclosure.small_count_text` for a public release)."""
         return (
             f"As an alternative analysis, an eGFR value of {self.value:g} mL/min/1.73 m² was "
             f"added at the time of {self.endpoint.replace('_', ' ')} for the "
-            f"{self.added_values} patients who reached it, and the slope mixed model was "
+            f"{count_text(self.added_values)} patients who reached it, and the slope mixed model was "
             "refitted (maximum likelihood), so that kidney failure counts as the low eGFR it "
             "stands for."
         )

@@ -24,9 +24,12 @@ logger = logging.getLogger(__name__)
 __all__ = ["JointSlopeModel", "fit_separate_mixed_model"]
 
 
-def fit_separate_mixed_model(data: JointData, slope_terms: list[str]) -> MixedModelFit:
+def fit_separate_mixed_model(
+    data: JointData, slope_terms: list[str], *, tolerance: float | None = None
+) -> MixedModelFit:
     """The same eGFR model alone, by ML (exact engine), on the same patients and values;
-    the joint model's starting values."""
+    the joint model's starting values. ``tolerance``: the engine's convergence tolerance
+    (Newton decrement per value), its default when ``None``."""
     terms = ["intercept", *slope_terms]
     code = data.group_code[data.row_patient]
     design = data.row_design
@@ -42,6 +45,7 @@ def fit_separate_mixed_model(data: JointData, slope_terms: list[str]) -> MixedMo
         ),
         method="ml",
         fallback=False,
+        **({} if tolerance is None else {"tolerance": tolerance}),
     )
 
 
@@ -473,9 +477,10 @@ class JointSlopeModel:
             if spec.knot_years is None
             else f"a random intercept and acute and chronic slopes (knot at {spec.knot_years:g} years)"
         )
+        dropout = " or ".join(e.replace("_", " ") for e in spec.dropout_endpoints)
         return (
             "To account for informative dropout, eGFR and the time to dropout "
-            f"({' or '.join(spec.dropout_endpoints)}, whichever came first) were modelled "
+            f"({dropout}, whichever came first) were modelled "
             "jointly with a shared-random-effects model (Henderson, Diggle & Dobson 2000; "
             f"Rizopoulos 2012): a linear mixed model of eGFR with {slopes} by group, and a "
             f"proportional-hazards model of dropout with {base}, the group, and {link} as "
