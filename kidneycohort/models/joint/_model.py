@@ -31,6 +31,7 @@ def fit_separate_mixed_model(
     the joint model's starting values. ``tolerance``: the engine's convergence tolerance
     (Newton decrement per value), its default when ``None``."""
     terms = ["intercept", *slope_terms]
+    overrides: dict[str, Any] = {} if tolerance is None else {"tolerance": tolerance}
     code = data.group_code[data.row_patient]
     design = data.row_design
     columns = [(code == g)[:, None] * design for g in range(len(data.groups))]
@@ -45,7 +46,7 @@ def fit_separate_mixed_model(
         ),
         method="ml",
         fallback=False,
-        **({} if tolerance is None else {"tolerance": tolerance}),
+        **overrides,
     )
 
 
