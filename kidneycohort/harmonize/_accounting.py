@@ -133,6 +133,9 @@ def harmonize_tables(
     used_patients, status, rejected_p, merged_p, n_patients = _clean_patients(patients, resolved)
 
     frame, lab_checks = _prepare_labs(labs, status, resolved)
+    # the lab rows are read (their columns copied as text); a caller that handed over
+    # its only reference frees the raw table here, before the joins below
+    del labs
     data = _in_source_order(frame.collect())
     del frame  # drops the plan's reference to the pre-join copy
     n_labs = data.height
