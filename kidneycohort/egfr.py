@@ -481,15 +481,33 @@ def _sample_frames(table: pl.DataFrame, kinds: set[str], rule: EgfrRule) -> dict
     return frames
 
 
+_PATIENT_FACTS: Final = frozenset(
+    {
+        "patient_id",
+        "sex",
+        "birth_date",
+        "age_at_index",
+        "index_date",
+        "height_cm",
+        "weight_kg",
+        "black_race",
+    }
+)
+"""The patient columns the equations and the sample's age and time from index read."""
+
+
 def _enrich(
     samples: pl.DataFrame, people: pl.DataFrame, body: pl.DataFrame | None, rule: EgfrRule
 ) -> pl.DataFrame:
     """Samples with the patient's facts, exact age, time from index, window and body size."""
     if "_pair_reason" not in samples.columns:
         samples = samples.with_columns(pl.lit(None, pl.String).alias("_pair_reason"))
-    enriched = samples.join(people, on="patient_id", how="left", maintain_order="left")
+    # only the facts an equation or the age reads: other patient columns (group, site,
+    # follow-up dates) would be copied to every sample for nothing
+    facts = people.select(c for c in people.columns if c in _PATIENT_FACTS)
+    enriched = samples.join(facts, on="patient_id", how="left", maintain_order="left")
     enriched = enriched.with_columns(
-        age_on_expr(people.columns, pl.col("sample_date")).alias("age_years"),
+        age_on_expr(facts.columns, pl.col("sample_date")).alias("age_years"),
         (
             (pl.col("sample_date") - pl.col("index_date")).dt.total_days() / schemas.DAYS_PER_YEAR
         ).alias("years_from_index"),
