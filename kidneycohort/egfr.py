@@ -293,16 +293,23 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
     # rows already without a pair or outside the window are not evaluated at all
     eligible = (frame["_pair_reason"].is_null() & frame["_window_reason"].is_null()).to_numpy()
     where = np.flatnonzero(eligible)
-    subset = frame[where]
+    n_eligible = where.size
+    # only the equation's inputs are gathered (not every column of the samples)
+    picked = pl.Series(where, dtype=pl.UInt32) if n_eligible < frame.height else None
+
+    def column_of(column: str) -> pl.Series:
+        values = frame[column]
+        return values.gather(picked) if picked is not None else values
+
     inputs: dict[str, Any] = {}
     for name in spec.inputs:
         column = {"age": "age_years"}.get(name, name)
         if name == "sex":
-            inputs[name] = subset["sex"]
+            inputs[name] = column_of("sex")
         else:
-            inputs[name] = subset[column].cast(pl.Float64).to_numpy()
+            inputs[name] = column_of(column).cast(pl.Float64).to_numpy()
     if spec.race_coefficient and rule.apply_race_coefficient:
-        inputs["black_race"] = subset["black_race"].cast(pl.Float64).to_numpy()
+        inputs["black_race"] = column_of("black_race").cast(pl.Float64).to_numpy()
     result = eq.evaluate_with_reason(
         equation_id,
         **inputs,
@@ -310,8 +317,8 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
         apply_race_coefficient=rule.apply_race_coefficient,
     )
     values = np.full(frame.height, np.nan)
-    values[where] = np.asarray(result.values, dtype=np.float64).reshape(subset.height)
-    reasons = np.asarray(result.reasons).reshape(subset.height)
+    values[where] = np.asarray(result.values, dtype=np.float64).reshape(n_eligible)
+    reasons = np.asarray(result.reasons).reshape(n_eligible)
     # numpy string arrays convert slowly: name the few distinct codes of the rows that
     # failed, and gather (code index len(codes) = no library reason)
     failed = reasons != eq.OK
@@ -422,16 +429,21 @@ def compute_egfr(
     specs = {e: eq.get_equation(e) for e in resolved.all_equations()}
     frames = _sample_frames(table, {s.kind for s in specs.values()}, resolved)
     needs_body = any({"height_cm", "weight_kg"} & set(s.inputs) for s in specs.values())
+    del table
     out: list[pl.DataFrame] = []
-    for kind, samples in frames.items():
+    for kind in list(frames):
+        samples = frames.pop(kind)  # released once enriched (a million patients' samples)
         ids = [e for e, s in specs.items() if s.kind == kind]
         if not ids:
             continue
         enriched = _enrich(samples, people, body if needs_body else None, resolved)
+        del samples
         for equation_id in ids:
             rows = _rows_in_age_bands(enriched, equation_id, resolved)
             if rows.height:
                 out.append(conform(_evaluate(rows, equation_id, resolved), schemas.EGFR))
+            del rows
+        del enriched
     # blocks per equation (rule order), each in labs order: no sort of millions of rows
     result = pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)
     logger.info(
