@@ -104,6 +104,8 @@ def test_module_is_light() -> None:
         alias.name.split(".")[0]
         for node in ast.walk(tree)
         if isinstance(node, ast.Import | ast.ImportFrom)
-        for alias in (node.names if isinstance(node, ast.Import) else [ast.alias(node.module or "")])
+        for alias in (
+            node.names if isinstance(node, ast.Import) else [ast.alias(node.module or "")]
+        )
     }
     assert imported <= {"__future__", "os", "sys", "typing"}
