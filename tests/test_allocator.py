@@ -72,8 +72,7 @@ def test_the_entry_point_configures_first(monkeypatch) -> None:
 )
 def test_freed_polars_memory_leaves_the_resident_size() -> None:
     """With the options, 800 MB that polars allocated and freed no longer count in the
-    resident size a second later (polars' own defaults leave such pages resident, marked
-    lazily freeable, until the system runs short of memory)."""
+    resident size two seconds later (the options are read and take effect)."""
     code = (
         "import time\n"
         "from kidneycohort._allocator import configure_allocator\n"
