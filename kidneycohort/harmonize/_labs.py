@@ -395,8 +395,12 @@ _GOOD_COLUMNS: Final = (
 )
 
 
-def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Fold usable results of one patient, analyte and day; return (kept, merged)."""
+def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.LazyFrame, pl.DataFrame]:
+    """Fold usable results of one patient, analyte and day; return (kept, merged).
+
+    The kept rows are a plan on ``valid``: :func:`_finish_labs` copies only the output
+    columns of the kept rows (not every working column first).
+    """
     key = ["patient_id", "_analyte", "_day"]
     if rule == "none":
         no_merge = _merged_rows(
@@ -406,7 +410,7 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
             "labs",
             pl.lit(""),
         )
-        return valid.with_columns(pl.col("_n_in").alias("_n")), no_merge
+        return valid.lazy().with_columns(pl.col("_n_in").alias("_n")), no_merge
     # only groups with repeats need window work; most patient-days have one result
     # (a hash collision only moves a single result into the exact window work below)
     repeated = valid.select(pl.struct(key).hash().is_duplicated()).to_series()
@@ -465,10 +469,11 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
     updated = {
         c: everything[c].clone().scatter(where, valid[c]) for c in ("_standard", "_qualifier", "_n")
     }
-    return everything.with_columns(**updated).filter(pl.Series(keep)), merged
+    plan = everything.with_columns(**updated, _kept_row=pl.Series(keep)).lazy()
+    return plan.filter(pl.col("_kept_row")), merged
 
 
-def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
+def _finish_labs(kept: pl.LazyFrame) -> pl.DataFrame:
     out = kept.select(
         "patient_id",
         pl.col("_day").alias("sample_date"),
@@ -486,4 +491,4 @@ def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
     )
     # rows stay in source order (source, source_row): deterministic whatever the input
     # order, and no sort of millions of rows by patient
-    return conform(out, schemas.LABS)
+    return conform(out.collect(), schemas.LABS)
