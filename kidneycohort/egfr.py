@@ -310,7 +310,7 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
             inputs[name] = column_of(column).cast(pl.Float64).to_numpy()
     if spec.race_coefficient and rule.apply_race_coefficient:
         inputs["black_race"] = column_of("black_race").cast(pl.Float64).to_numpy()
-    result = eq.evaluate_with_reason(
+    result = eq.evaluate_with_reason_index(
         equation_id,
         **inputs,
         allow_outside_age=rule.allow_outside_age,
@@ -318,14 +318,12 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
     )
     values = np.full(frame.height, np.nan)
     values[where] = np.asarray(result.values, dtype=np.float64).reshape(n_eligible)
-    reasons = np.asarray(result.reasons).reshape(n_eligible)
-    # numpy string arrays convert slowly: name the few distinct codes of the rows that
-    # failed, and gather (code index len(codes) = no library reason)
-    failed = reasons != eq.OK
-    codes, inverse = np.unique(reasons[failed], return_inverse=True)
+    # the library's reason of each row as an index into its few codes (index len(codes):
+    # no library reason), gathered into text once
+    codes = result.codes
     index = np.full(frame.height, len(codes), dtype=np.uint32)
-    index[where[failed]] = inverse.ravel()
-    library_reason = pl.Series("_lib", [*codes.tolist(), None], dtype=pl.String).gather(
+    index[where] = result.reason_index.reshape(n_eligible)
+    library_reason = pl.Series("_lib", [*codes, None], dtype=pl.String).gather(
         pl.Series(index, dtype=pl.UInt32)
     )
     # name the missing input instead of the library's generic missing_input
