@@ -19,7 +19,7 @@ from typing import Final
 import numpy as np
 import polars as pl
 
-__all__ = ["BATCH_ROWS", "by_patient_ranges", "patient_range_cuts"]
+__all__ = ["BATCH_ROWS", "by_patient_ranges", "patient_range_cuts", "patient_range_parts"]
 
 BATCH_ROWS: Final = 2_000_000
 """Input rows derived at once by the pipeline's per-patient steps (all inputs together)."""
@@ -60,6 +60,18 @@ def _range_numbers(frame: pl.DataFrame, cuts: pl.Series) -> np.ndarray:
     numbers = cuts.search_sorted(ids, side="right").cast(pl.UInt32).to_numpy().copy()
     numbers[ids.is_null().to_numpy()] = 0  # a missing id goes with the first range
     return numbers
+
+
+def patient_range_parts(frame: pl.DataFrame, max_rows: int) -> Iterator[pl.DataFrame]:
+    """The rows of ``frame`` in consecutive ranges of patient ids (of about ``max_rows``
+    rows; missing ids in the first), each in the frame's order, one range at a time."""
+    cuts = patient_range_cuts([frame], max_rows)
+    if cuts.len() == 0:
+        yield frame
+        return
+    numbers = _range_numbers(frame, cuts)
+    for number in range(cuts.len() + 1):
+        yield frame.filter(pl.Series(numbers == number))
 
 
 def _parts(
