@@ -16,6 +16,12 @@ step); the run's peak is the largest step peak. Prints one table per measure wit
 column per size and the growth exponent of each step, the slope of log(value) on
 log(patients) fitted over the sizes (1: linear; 2: quadratic), and the totals.
 
+The child runs with the allocator options the command line sets before polars is
+loaded (``kidneycohort._allocator``: freed memory leaves the resident size at once);
+``--allocator polars`` runs it with polars' own defaults instead, to measure the
+difference. Besides wall time, each step's processor time (``cpu_seconds``, every
+thread) is printed: on a shared machine it is the figure other processes disturb least.
+
 ``--pythonpath`` runs another checkout's code (e.g. a ``git worktree`` of main) on
 the same data, for before/after figures; a manifest without per-step memory shows
 ``-``. Run it on a quiet machine and quote the machine's size with the figures.
@@ -32,6 +38,8 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+
+from kidneycohort._allocator import ALLOCATOR_ENV, ALLOCATOR_OPTIONS
 
 REPO = Path(__file__).resolve().parents[1]
 SCENARIO = REPO / "synthetic" / "ehr_cohort.yaml"
@@ -74,8 +82,12 @@ def ensure_data(folder: Path, patients: int) -> Path:
     return target
 
 
-def run_once(data: Path, out: Path, pythonpath: str | None) -> dict:
+def run_once(data: Path, out: Path, pythonpath: str | None, allocator: str) -> dict:
     env = dict(os.environ)
+    env.pop(ALLOCATOR_ENV, None)
+    if allocator == "run":
+        # what the command line sets before polars is loaded (kidneycohort._allocator)
+        env[ALLOCATOR_ENV] = ALLOCATOR_OPTIONS
     if pythonpath:
         env["PYTHONPATH"] = pythonpath + os.pathsep + env.get("PYTHONPATH", "")
     # run from the data folder: ``python -c`` puts the working directory first on the
@@ -120,6 +132,10 @@ def table(sizes: list[int], runs: list[dict], key: str, unit: str, fmt: str) -> 
     if key == "seconds":
         totals = [r["wall"] for r in runs]
         label_total = "total (wall)"
+    elif key == "cpu_seconds":
+        cpu = [[s.get(key) for s in r["steps"] if s.get(key) is not None] for r in runs]
+        totals = [sum(c) if c else None for c in cpu]
+        label_total = "total (steps)"
     else:
         peaks = [[s.get(key) for s in r["steps"] if s.get(key) is not None] for r in runs]
         totals = [max(p) if p else None for p in peaks]
@@ -134,6 +150,13 @@ def main() -> None:
     parser.add_argument("--data", type=Path, default=Path(tempfile.gettempdir()) / "kc_scale")
     parser.add_argument("--keep", type=Path, help="write the run folders here (default: temp)")
     parser.add_argument("--pythonpath", help="run this checkout's kidneycohort instead")
+    parser.add_argument(
+        "--allocator",
+        choices=("run", "polars"),
+        default="run",
+        help="'run': the allocator options the command line sets (default); 'polars': "
+        "polars' own defaults, to measure what the options change",
+    )
     args = parser.parse_args()
     sizes = sorted(parse_size(s) for s in args.sizes.split(","))
     print(f"# {os.cpu_count()} CPUs; {_memory_text()}; python {sys.version.split()[0]}")
@@ -142,9 +165,10 @@ def main() -> None:
         runs_dir = args.keep or Path(tmp)
         for n in sizes:
             data = ensure_data(args.data, n)
-            runs.append(run_once(data, runs_dir / f"run_{n}", args.pythonpath))
+            runs.append(run_once(data, runs_dir / f"run_{n}", args.pythonpath, args.allocator))
             print(f"# {label(n)} patients: {runs[-1]['wall']:.1f} s", flush=True)
     table(sizes, runs, "seconds", "s", ".2f")
+    table(sizes, runs, "cpu_seconds", "s, all threads", ".2f")
     table(sizes, runs, "peak_rss_mib", "MiB", ".0f")
 
 

@@ -98,6 +98,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.endpoints import parse_endpoint_definitions as parse_endpoint_definitions
     from kidneycohort.endpoints import usual_kidney_composite as usual_kidney_composite
     from kidneycohort.equations import REGISTRY as REGISTRY
+    from kidneycohort.equations import EquationReasonIndex as EquationReasonIndex
     from kidneycohort.equations import EquationResult as EquationResult
     from kidneycohort.equations import EquationSpec as EquationSpec
     from kidneycohort.equations import bsa_dubois as bsa_dubois
@@ -106,6 +107,9 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.equations import equation_ids as equation_ids
     from kidneycohort.equations import evaluate as evaluate
     from kidneycohort.equations import evaluate_with_reason as evaluate_with_reason
+    from kidneycohort.equations import (
+        evaluate_with_reason_index as evaluate_with_reason_index,
+    )
     from kidneycohort.equations import get_equation as get_equation
     from kidneycohort.equations import index_gfr as index_gfr
     from kidneycohort.equations import registry_table as registry_table
@@ -284,7 +288,8 @@ def _by_module(groups: dict[str, str]) -> dict[str, str]:
 _PUBLIC: dict[str, str] = _by_module(
     {
         "kidneycohort.equations": (
-            "REGISTRY EquationSpec evaluate evaluate_with_reason equation_ids get_equation "
+            "REGISTRY EquationSpec evaluate evaluate_with_reason evaluate_with_reason_index "
+            "EquationReasonIndex equation_ids get_equation "
             "registry_table solve_creatinine solve_cystatin_c bsa_dubois bsa_mosteller "
             "deindex_egfr index_gfr EquationResult"
         ),

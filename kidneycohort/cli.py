@@ -16,6 +16,7 @@ from typing import Any, TypeVar
 
 import click
 
+from kidneycohort._allocator import configure_allocator
 from kidneycohort.cautions import SHORT_CAUTION
 from kidneycohort.errors import KidneyCohortError
 
@@ -442,6 +443,8 @@ def demo_cmd(
 
 def main() -> None:
     """Console entry point."""
+    # before any command imports polars: freed memory leaves the resident size at once
+    configure_allocator()
     cli()
 
 

@@ -293,32 +293,37 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
     # rows already without a pair or outside the window are not evaluated at all
     eligible = (frame["_pair_reason"].is_null() & frame["_window_reason"].is_null()).to_numpy()
     where = np.flatnonzero(eligible)
-    subset = frame[where]
+    n_eligible = where.size
+    # only the equation's inputs are gathered (not every column of the samples)
+    picked = pl.Series(where, dtype=pl.UInt32) if n_eligible < frame.height else None
+
+    def column_of(column: str) -> pl.Series:
+        values = frame[column]
+        return values.gather(picked) if picked is not None else values
+
     inputs: dict[str, Any] = {}
     for name in spec.inputs:
         column = {"age": "age_years"}.get(name, name)
         if name == "sex":
-            inputs[name] = subset["sex"]
+            inputs[name] = column_of("sex")
         else:
-            inputs[name] = subset[column].cast(pl.Float64).to_numpy()
+            inputs[name] = column_of(column).cast(pl.Float64).to_numpy()
     if spec.race_coefficient and rule.apply_race_coefficient:
-        inputs["black_race"] = subset["black_race"].cast(pl.Float64).to_numpy()
-    result = eq.evaluate_with_reason(
+        inputs["black_race"] = column_of("black_race").cast(pl.Float64).to_numpy()
+    result = eq.evaluate_with_reason_index(
         equation_id,
         **inputs,
         allow_outside_age=rule.allow_outside_age,
         apply_race_coefficient=rule.apply_race_coefficient,
     )
     values = np.full(frame.height, np.nan)
-    values[where] = np.asarray(result.values, dtype=np.float64).reshape(subset.height)
-    reasons = np.asarray(result.reasons).reshape(subset.height)
-    # numpy string arrays convert slowly: name the few distinct codes of the rows that
-    # failed, and gather (code index len(codes) = no library reason)
-    failed = reasons != eq.OK
-    codes, inverse = np.unique(reasons[failed], return_inverse=True)
+    values[where] = np.asarray(result.values, dtype=np.float64).reshape(n_eligible)
+    # the library's reason of each row as an index into its few codes (index len(codes):
+    # no library reason), gathered into text once
+    codes = result.codes
     index = np.full(frame.height, len(codes), dtype=np.uint32)
-    index[where[failed]] = inverse.ravel()
-    library_reason = pl.Series("_lib", [*codes.tolist(), None], dtype=pl.String).gather(
+    index[where] = result.reason_index.reshape(n_eligible)
+    library_reason = pl.Series("_lib", [*codes, None], dtype=pl.String).gather(
         pl.Series(index, dtype=pl.UInt32)
     )
     # name the missing input instead of the library's generic missing_input
@@ -422,16 +427,21 @@ def compute_egfr(
     specs = {e: eq.get_equation(e) for e in resolved.all_equations()}
     frames = _sample_frames(table, {s.kind for s in specs.values()}, resolved)
     needs_body = any({"height_cm", "weight_kg"} & set(s.inputs) for s in specs.values())
+    del table
     out: list[pl.DataFrame] = []
-    for kind, samples in frames.items():
+    for kind in list(frames):
+        samples = frames.pop(kind)  # released once enriched (a million patients' samples)
         ids = [e for e, s in specs.items() if s.kind == kind]
         if not ids:
             continue
         enriched = _enrich(samples, people, body if needs_body else None, resolved)
+        del samples
         for equation_id in ids:
             rows = _rows_in_age_bands(enriched, equation_id, resolved)
             if rows.height:
                 out.append(conform(_evaluate(rows, equation_id, resolved), schemas.EGFR))
+            del rows
+        del enriched
     # blocks per equation (rule order), each in labs order: no sort of millions of rows
     result = pl.concat(out) if out else pl.DataFrame(schema=schemas.EGFR)
     logger.info(
@@ -481,15 +491,33 @@ def _sample_frames(table: pl.DataFrame, kinds: set[str], rule: EgfrRule) -> dict
     return frames
 
 
+_PATIENT_FACTS: Final = frozenset(
+    {
+        "patient_id",
+        "sex",
+        "birth_date",
+        "age_at_index",
+        "index_date",
+        "height_cm",
+        "weight_kg",
+        "black_race",
+    }
+)
+"""The patient columns the equations and the sample's age and time from index read."""
+
+
 def _enrich(
     samples: pl.DataFrame, people: pl.DataFrame, body: pl.DataFrame | None, rule: EgfrRule
 ) -> pl.DataFrame:
     """Samples with the patient's facts, exact age, time from index, window and body size."""
     if "_pair_reason" not in samples.columns:
         samples = samples.with_columns(pl.lit(None, pl.String).alias("_pair_reason"))
-    enriched = samples.join(people, on="patient_id", how="left", maintain_order="left")
+    # only the facts an equation or the age reads: other patient columns (group, site,
+    # follow-up dates) would be copied to every sample for nothing
+    facts = people.select(c for c in people.columns if c in _PATIENT_FACTS)
+    enriched = samples.join(facts, on="patient_id", how="left", maintain_order="left")
     enriched = enriched.with_columns(
-        age_on_expr(people.columns, pl.col("sample_date")).alias("age_years"),
+        age_on_expr(facts.columns, pl.col("sample_date")).alias("age_years"),
         (
             (pl.col("sample_date") - pl.col("index_date")).dt.total_days() / schemas.DAYS_PER_YEAR
         ).alias("years_from_index"),

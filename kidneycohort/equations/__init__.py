@@ -52,6 +52,7 @@ from kidneycohort.equations._core import (
     finish,
     invert_power_shape,
     prepare,
+    reason_indices,
     reasons_for,
     run_kernel,
 )
@@ -77,6 +78,7 @@ __all__ = [
     "OUTSIDE_DOMAIN",
     "REASON_CODES",
     "REGISTRY",
+    "EquationReasonIndex",
     "EquationResult",
     "EquationSpec",
     "bsa_dubois",
@@ -85,6 +87,7 @@ __all__ = [
     "equation_ids",
     "evaluate",
     "evaluate_with_reason",
+    "evaluate_with_reason_index",
     "get_equation",
     "index_gfr",
     "registry_table",
@@ -216,6 +219,51 @@ def evaluate(
     )
     values, _ = run_kernel(spec, prepared)
     return finish(values, prepared.scalar)
+
+
+_INPUT_NAMES = (
+    "creatinine_mg_dl",
+    "cystatin_c_mg_l",
+    "age",
+    "sex",
+    "height_cm",
+    "weight_kg",
+    "black_race",
+)
+
+
+class EquationReasonIndex(NamedTuple):
+    """Values, and per element the index of its reason in ``codes`` (``len(codes)``
+    where the value was computed): the compact form of :class:`EquationResult`."""
+
+    values: FloatArray
+    reason_index: npt.NDArray[np.uint8]
+    codes: list[str]
+
+
+def evaluate_with_reason_index(
+    equation_id: str,
+    *,
+    allow_outside_age: bool = False,
+    apply_race_coefficient: bool = False,
+    **inputs: ArrayLike,
+) -> EquationReasonIndex:
+    """Like :func:`evaluate_with_reason` for arrays, the reasons as one byte per element
+    (an index into the codes) instead of text: for millions of samples.
+
+    ``inputs`` are the keyword inputs of :func:`evaluate` (``creatinine_mg_dl``,
+    ``age``, ``sex``, ...).
+    """
+    unknown = sorted(set(inputs) - set(_INPUT_NAMES))
+    if unknown:
+        raise TypeError(f"evaluate_with_reason_index: unknown inputs {unknown}")
+    given = {name: inputs.get(name) for name in _INPUT_NAMES}
+    spec, prepared = _prepare(
+        equation_id, given, allow_outside_age, apply_race_coefficient, "evaluate"
+    )
+    values, ok = run_kernel(spec, prepared)
+    index, codes = reason_indices(prepared, ok)
+    return EquationReasonIndex(np.atleast_1d(values), np.atleast_1d(index), codes)
 
 
 def evaluate_with_reason(

@@ -43,6 +43,7 @@ __all__ = [
     "finish",
     "invert_power_shape",
     "prepare",
+    "reason_indices",
     "reasons_for",
     "run_kernel",
 ]
@@ -412,13 +413,25 @@ def run_kernel(spec: EquationSpec, prepared: Prepared) -> tuple[FloatArray, Bool
     return np.where(ok, values, np.nan), ok
 
 
-def reasons_for(prepared: Prepared, ok: BoolArray) -> npt.NDArray[np.str_]:
-    """Per-element reason codes, first applicable in :data:`REASON_CODES` order."""
+def reason_indices(prepared: Prepared, ok: BoolArray) -> tuple[npt.NDArray[np.uint8], list[str]]:
+    """Per-element index of the first applicable reason code (in :data:`REASON_CODES`
+    order) into the returned codes, ``len(codes)`` where the value was computed.
+
+    One byte per element: a text array of millions of codes would be about a hundred.
+    """
     order = [c for c in REASON_CODES if c in prepared.masks]
     conditions = [prepared.masks[c] for c in order]
-    choices = [*order, OUTSIDE_DOMAIN]
+    choices: list[str] = [*order, OUTSIDE_DOMAIN]
     conditions.append(~ok)
-    return np.select(conditions, choices, default=OK).astype(f"<U{max(map(len, choices))}")
+    index = np.select(conditions, list(range(len(choices))), default=len(choices))
+    return index.astype(np.uint8), choices
+
+
+def reasons_for(prepared: Prepared, ok: BoolArray) -> npt.NDArray[np.str_]:
+    """Per-element reason codes, first applicable in :data:`REASON_CODES` order."""
+    index, choices = reason_indices(prepared, ok)
+    labels = np.array([*choices, OK], dtype=f"<U{max(map(len, choices))}")
+    return labels[index]
 
 
 def finish(values: FloatArray, scalar: bool) -> FloatArray | float:

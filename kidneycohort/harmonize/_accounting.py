@@ -5,6 +5,7 @@
 from __future__ import annotations
 
 import logging
+from collections.abc import Callable
 from typing import Any, Final
 
 import polars as pl
@@ -24,7 +25,7 @@ from kidneycohort.harmonize._patients import _clean_patients, _finish_patients
 from kidneycohort.harmonize._rows import (
     _assumption_counts,
     _exact_duplicates,
-    _in_source_order,
+    _is_in_source_order,
     _rejected_rows,
 )
 from kidneycohort.harmonize._rule import REASON_CODES, HarmonizeResult, HarmonizeRule, resolve_rules
@@ -70,6 +71,42 @@ def _account(
 
 
 _REJECTED_EMPTY: Final = pl.DataFrame(schema=schemas.REJECTED)
+
+# Lab rows checked at once: the checked table (the lookups, the patient's status, every
+# check) is several times the rows read, so it is built for a slice of rows at a time.
+_SLICE_ROWS: Final = 2_000_000
+
+
+def _checked_in_slices(
+    base: pl.DataFrame, checked: Callable[[pl.DataFrame], pl.LazyFrame]
+) -> tuple[pl.DataFrame, pl.DataFrame, pl.DataFrame]:
+    """The rejected rows (every column) and the usable rows (the columns the next stages
+    read), in source order, and the assumption counts, checked a slice at a time.
+
+    Identical rows always get the same reason, so duplicates can be looked for on the
+    rejected and the usable side separately.
+    """
+    bad_parts, good_parts, assumption_parts = [], [], []
+    for offset in range(0, max(base.height, 1), _SLICE_ROWS):
+        part = checked(base.slice(offset, _SLICE_ROWS)).collect()
+        assumption_parts.append(_assumption_counts(part, "labs"))
+        is_bad = part["_reason"].is_not_null()
+        bad_parts.append(part.filter(is_bad))
+        good_parts.append(part.filter(~is_bad).select("_rid", *_GOOD_COLUMNS))
+        del part, is_bad
+    bad, good = pl.concat(bad_parts), pl.concat(good_parts)
+    del bad_parts, good_parts
+    if not _is_in_source_order(base):
+        # the same order as sorting all rows, then splitting them
+        bad = bad.sort("source", "source_row", "_rid")
+        good = good.sort("source", "source_row", "_rid")
+    assumptions = (
+        pl.concat(assumption_parts)
+        .group_by("table", "source", "assumption")
+        .agg(pl.col("rows").sum().cast(pl.Int64))
+        .select("table", "source", "assumption", "rows")
+    )
+    return bad, good.drop("_rid"), assumptions
 
 
 def harmonize_tables(
@@ -132,17 +169,13 @@ def harmonize_tables(
     resolved = resolve_rules(rule, rule_fields)
     used_patients, status, rejected_p, merged_p, n_patients = _clean_patients(patients, resolved)
 
-    frame, lab_checks = _prepare_labs(labs, status, resolved)
-    data = _in_source_order(frame.collect())
-    del frame  # drops the plan's reference to the pre-join copy
-    n_labs = data.height
-    assumptions_l = _assumption_counts(data, "labs")
-    # Identical rows always get the same reason, so duplicates can be looked for on the
-    # rejected and the usable side separately; the usable side keeps only what it needs.
-    is_bad = data["_reason"].is_not_null()
-    bad = data.filter(is_bad)
-    good = data.filter(~is_bad).select(_GOOD_COLUMNS)
-    del data
+    base, checked, lab_checks = _prepare_labs(labs, status, resolved)
+    # the lab rows are read (their columns copied as text); a caller that handed over
+    # its only reference frees the raw table here, before the joins below
+    del labs
+    n_labs = base.height
+    bad, good, assumptions_l = _checked_in_slices(base, checked)
+    del base, checked
     bad, merged_bad = _exact_duplicates(bad, list(_LAB_CONTENT), "labs")
     good, merged_good = _exact_duplicates(good, list(_LAB_CONTENT), "labs")
     merged_exact = pl.concat([merged_bad, merged_good])

@@ -4,6 +4,7 @@ standard unit, implausible and orphan rows rejected, same-day results collapsed.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any, Final
 
 import numpy as np
@@ -94,7 +95,13 @@ def _parse_result(text: pl.Expr, rule: HarmonizeRule) -> tuple[pl.Expr, pl.Expr,
 
 def _prepare_labs(
     labs: Any, status: pl.DataFrame, rule: HarmonizeRule
-) -> tuple[pl.LazyFrame, list[Check]]:
+) -> tuple[pl.DataFrame, Callable[[pl.DataFrame], pl.LazyFrame], list[Check]]:
+    """The lab rows read once as text (``base``), how to check any slice of them (the
+    lookups joined, the patient's status, the ``_reason`` cascade) and the checks.
+
+    The checked table has some forty columns; built for a slice of rows at a time, it
+    never exists for all the rows of a large extract at once.
+    """
     frame = _lazy(labs, "labs")
     require_columns(frame, schemas.RAW_LABS_REQUIRED, "labs")
     names = frame.collect_schema().names()
@@ -211,8 +218,19 @@ def _prepare_labs(
         .with_columns(analyte.alias("_analyte"))
         .with_columns(factor.alias("_factor"), low.alias("_low"), high.alias("_high"))
     )
+    checks = _lab_checks(rule)
+
+    def checked(part: pl.DataFrame) -> pl.LazyFrame:
+        return _checked(part, result_lookup, code_lookup, status).with_columns(_cascade(checks))
+
+    return base_data, checked, checks
+
+
+def _checked(
+    part: pl.DataFrame, result_lookup: pl.DataFrame, code_lookup: pl.DataFrame, status: pl.DataFrame
+) -> pl.LazyFrame:
     frame = (
-        base_data.lazy()
+        part.lazy()
         .join(result_lookup.lazy(), on="_value_text", how="left", maintain_order="left")
         .join(
             code_lookup.lazy(),
@@ -230,7 +248,11 @@ def _prepare_labs(
             pl.col("_when").dt.date().alias("_day"),
         )
     )
-    frame = frame.join(status.lazy(), on="patient_id", how="left", maintain_order="left")
+    return frame.join(status.lazy(), on="patient_id", how="left", maintain_order="left")
+
+
+def _lab_checks(rule: HarmonizeRule) -> list[Check]:
+    """The checks of a lab row, in the order the first failing one names its reason."""
     std_unit = pl.col("_analyte").replace_strict(units.STANDARD_UNIT, default=None)
     checks: list[Check] = [
         (pl.col("patient_id").is_null(), "missing_patient_id", pl.lit("patient_id is empty")),
@@ -345,7 +367,7 @@ def _prepare_labs(
                 ),
             )
         )
-    return frame.with_columns(_cascade(checks)), checks
+    return checks
 
 
 _LAB_CONTENT: Final = (
@@ -373,8 +395,12 @@ _GOOD_COLUMNS: Final = (
 )
 
 
-def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Fold usable results of one patient, analyte and day; return (kept, merged)."""
+def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.LazyFrame, pl.DataFrame]:
+    """Fold usable results of one patient, analyte and day; return (kept, merged).
+
+    The kept rows are a plan on ``valid``: :func:`_finish_labs` copies only the output
+    columns of the kept rows (not every working column first).
+    """
     key = ["patient_id", "_analyte", "_day"]
     if rule == "none":
         no_merge = _merged_rows(
@@ -384,7 +410,7 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
             "labs",
             pl.lit(""),
         )
-        return valid.with_columns(pl.col("_n_in").alias("_n")), no_merge
+        return valid.lazy().with_columns(pl.col("_n_in").alias("_n")), no_merge
     # only groups with repeats need window work; most patient-days have one result
     # (a hash collision only moves a single result into the exact window work below)
     repeated = valid.select(pl.struct(key).hash().is_duplicated()).to_series()
@@ -443,10 +469,11 @@ def _collapse_same_day(valid: pl.DataFrame, rule: str) -> tuple[pl.DataFrame, pl
     updated = {
         c: everything[c].clone().scatter(where, valid[c]) for c in ("_standard", "_qualifier", "_n")
     }
-    return everything.with_columns(**updated).filter(pl.Series(keep)), merged
+    plan = everything.with_columns(**updated, _kept_row=pl.Series(keep)).lazy()
+    return plan.filter(pl.col("_kept_row")), merged
 
 
-def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
+def _finish_labs(kept: pl.LazyFrame) -> pl.DataFrame:
     out = kept.select(
         "patient_id",
         pl.col("_day").alias("sample_date"),
@@ -464,4 +491,4 @@ def _finish_labs(kept: pl.DataFrame) -> pl.DataFrame:
     )
     # rows stay in source order (source, source_row): deterministic whatever the input
     # order, and no sort of millions of rows by patient
-    return conform(out, schemas.LABS)
+    return conform(out.collect(), schemas.LABS)

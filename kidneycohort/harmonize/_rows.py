@@ -18,6 +18,7 @@ __all__ = [
     "_date_text",
     "_exact_duplicates",
     "_in_source_order",
+    "_is_in_source_order",
     "_lazy",
     "_merged_rows",
     "_rejected_rows",
@@ -160,10 +161,16 @@ def _exact_duplicates(
     return frame.filter(first), merged
 
 
+def _is_in_source_order(frame: pl.DataFrame) -> bool:
+    """Whether the rows are in (source, source_row, _rid) order as they stand (one
+    source, rising row numbers): then they need no sort."""
+    one_source = frame["source"].n_unique() <= 1
+    return bool(one_source and frame["source_row"].is_sorted() and frame["_rid"].is_sorted())
+
+
 def _in_source_order(frame: pl.DataFrame) -> pl.DataFrame:
     """Sort by (source, source_row, _rid) unless the rows already are in that order."""
-    one_source = frame["source"].n_unique() <= 1
-    if one_source and frame["source_row"].is_sorted() and frame["_rid"].is_sorted():
+    if _is_in_source_order(frame):
         return frame
     return frame.sort("source", "source_row", "_rid")
 

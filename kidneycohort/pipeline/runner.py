@@ -9,6 +9,7 @@ so it can never be mistaken for a finished run.
 from __future__ import annotations
 
 import errno
+import functools
 import logging
 import os
 import re
@@ -387,7 +388,7 @@ def _execute(
         )
         progress.start(["read"] + [s.name for s in config.steps])
         progress.step_started("read")
-        started = time.perf_counter()
+        started, cpu_started = time.perf_counter(), time.process_time()
         with StepPeakMemory() as memory:
             state.tables.update(reader(config))
             state.inputs = input_records(config, state.tables)
@@ -395,7 +396,11 @@ def _execute(
         rows = _rows(state.tables.get("raw_labs"))
         state.steps.append(
             StepRecord(
-                name="read", seconds=round(seconds, 3), rows_out=rows, peak_rss_mib=memory.peak_mib
+                name="read",
+                seconds=round(seconds, 3),
+                rows_out=rows,
+                peak_rss_mib=memory.peak_mib,
+                cpu_seconds=round(time.process_time() - cpu_started, 3),
             )
         )
         logger.info("step read: %s rows of labs in %.2f s", rows, seconds)
@@ -407,7 +412,10 @@ def _execute(
                 _finish_tables(run_dir, state.tables, config)
                 state.caught = list(caught)
                 folder = RunFolder(run_dir, manifest=state.manifest())
-            _run_step(step, state, run_dir, progress, folder)
+            # tables this step reads last are handed over: the step holds the only
+            # reference and may free one as soon as it has read it (the raw labs)
+            hand_over = functools.partial(_release, state.tables, last_use, index, config)
+            _run_step(step, state, run_dir, progress, folder, hand_over)
             _release(state.tables, last_use, index, config)
         _finish_tables(run_dir, state.tables, config)
         state.caught = list(caught)
@@ -498,12 +506,14 @@ def _run_step(
     run_dir: Path,
     progress: ProgressObserver,
     folder: RunFolder | None,
+    hand_over: Callable[[], None] | None = None,
 ) -> None:
     progress.step_started(step.name)
-    started = time.perf_counter()
+    started, cpu_started = time.perf_counter(), time.process_time()
     with StepPeakMemory() as memory:
-        made = _call_step(step, state, run_dir, folder)
+        made = _call_step(step, state, run_dir, folder, hand_over)
     seconds = time.perf_counter() - started
+    cpu_seconds = time.process_time() - cpu_started
     rows_out = _rows(made[step.makes[0]]) if step.makes else None
     logger.info(
         "step %s: %s rows in %.2f s, peak %s MiB", step.name, rows_out, seconds, memory.peak_mib
@@ -515,17 +525,28 @@ def _run_step(
             seconds=round(seconds, 3),
             rows_out=rows_out,
             peak_rss_mib=memory.peak_mib,
+            cpu_seconds=round(cpu_seconds, 3),
         )
     )
 
 
 def _call_step(
-    step: Step, state: _RunState, run_dir: Path, folder: RunFolder | None
+    step: Step,
+    state: _RunState,
+    run_dir: Path,
+    folder: RunFolder | None,
+    hand_over: Callable[[], None] | None = None,
 ) -> dict[str, Any]:
-    """Run one step, check what it made against its declaration, write its tables."""
+    """Run one step, check what it made against its declaration, write its tables.
+
+    ``hand_over`` drops from the run's tables those the step is the last to read (after
+    they were given to it), so the step's context holds their only reference.
+    """
     config, tables = state.config, state.tables
     given = {n: tables[n] for n in step.needs}
     given.update({n: tables[n] for n in step.optional_needs if n in tables})
+    if hand_over is not None:
+        hand_over()
     context = StepContext(
         tables=given,
         options=config.sections.get(step.section) if step.section else None,

@@ -14,6 +14,7 @@ from typing import Any
 
 import polars as pl
 
+from kidneycohort._batches import BATCH_ROWS, patient_range_parts
 from kidneycohort.run_folder._layout import FILES, RunFile, check_layout
 
 __all__ = [
@@ -79,7 +80,16 @@ def canonical_order(df: pl.DataFrame) -> pl.DataFrame:
     produced the rows in; it does not change any value.
     """
     cols = _sortable(df)
-    return df.sort(cols, nulls_last=False, maintain_order=True) if cols else df
+    if not cols:
+        return df
+    if cols[0] == "patient_id" and df.schema["patient_id"] == pl.String and df.height > BATCH_ROWS:
+        # patient id first: consecutive id ranges, each sorted, are the sorted table, and
+        # the sort's working memory (all columns encoded) is a range's, not the table's
+        return pl.concat(
+            part.sort(cols, nulls_last=False, maintain_order=True)
+            for part in patient_range_parts(df, BATCH_ROWS)
+        )
+    return df.sort(cols, nulls_last=False, maintain_order=True)
 
 
 def markdown_table(df: pl.DataFrame) -> str:

@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import polars as pl
 
 from kidneycohort.errors import ConvergenceError, StatisticalWarning
 from kidneycohort.models._design import capture_warnings
@@ -65,7 +66,7 @@ def random_effect_names(structure: str, slope_terms: list[str]) -> list[str]:
 def fit_exact(
     endog: np.ndarray,
     exog: np.ndarray,
-    patient_codes: np.ndarray,
+    patient_codes: np.ndarray | pl.Series,
     pieces: list[np.ndarray],
     names: list[str],
     slope_terms: list[str],

@@ -220,6 +220,7 @@ class SlopeModel:
                 columns.append(encoded_rows[name].to_numpy() - float(means[name][0]))
                 names.append(name)
         exog = np.column_stack(columns)
+        del columns  # the stacked copy is the one used
         self.fixed_effect_names_ = names
         self.group_sizes_ = (
             rows.group_by("_group")
@@ -233,13 +234,14 @@ class SlopeModel:
         self.n_observations_ = rows.height
         self.n_patients_ = patient_level.height
         endog = rows["egfr"].to_numpy()
-        patient_codes = rows["patient_id"].cast(pl.String).to_numpy()
+        # the exact engine codes the ids in polars: no array of millions of Python strings
+        patient_ids = rows["patient_id"].cast(pl.String)
 
         if spec.engine == "exact":
             fit = fit_exact(
                 endog,
                 exog,
-                patient_codes,
+                patient_ids,
                 pieces,
                 names,
                 self.slope_terms_,
@@ -248,7 +250,7 @@ class SlopeModel:
             )
         else:
             fit = fit_statsmodels(
-                endog, exog, patient_codes, pieces, self.slope_terms_, spec.random_effects
+                endog, exog, patient_ids.to_numpy(), pieces, self.slope_terms_, spec.random_effects
             )
         self.fit_ = fit
         self.engine_ = fit.engine

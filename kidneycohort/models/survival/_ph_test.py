@@ -236,8 +236,14 @@ def proportional_hazards_test(
     ss = float(centred @ centred)
     u = centred @ residuals  # time-weighted column sums of the raw residuals
     scaled_sum = d * (u @ v)  # = centred @ (d * residuals @ V)
-    per_term = scaled_sum**2 / (d * np.diag(v) * ss)
-    overall = float(d * (u @ v @ u) / ss)
+    if ss > 0:
+        per_term = scaled_sum**2 / (d * np.diag(v) * ss)
+        overall = float(d * (u @ v @ u) / ss)
+    else:
+        # every event at one (transformed) time, e.g. a single event: no trend in time
+        # can be tested; the statistics are not estimable (NaN), never a number
+        per_term = np.full(p, np.nan)
+        overall = float("nan")
     return pl.DataFrame(
         {
             "term": [*labels, "GLOBAL"],

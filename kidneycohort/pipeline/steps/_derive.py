@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable, Mapping
 from typing import Any
 
 import polars as pl
 from pydantic import Field
 
+from kidneycohort._batches import by_patient_ranges
 from kidneycohort._rules import RuleModel
 from kidneycohort.endpoints import EndpointDefinition, EndpointRule
+from kidneycohort.errors import InputDataError
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 from kidneycohort.pipeline.steps._facts import (
     check_data_cut,
@@ -45,8 +48,11 @@ def add_baseline_and_slopes(registry: StepRegistry) -> None:
     def baseline_step(ctx: StepContext) -> dict[str, Any]:
         """Baseline eGFR per patient and equation."""
         value_filter = ctx.sections.get("value_filter")
-        baseline = egfr_baseline(ctx.tables["egfr"], rule=ctx.options, value_filter=value_filter)  # type: ignore[arg-type]
-        return {"baseline": baseline}
+
+        def derive(tables: Mapping[str, pl.DataFrame]) -> pl.DataFrame:
+            return egfr_baseline(tables["egfr"], rule=ctx.options, value_filter=value_filter)  # type: ignore[arg-type]
+
+        return {"baseline": _per_patient_equation(derive, ctx)}
 
     @registry.register(
         "slopes",
@@ -60,8 +66,22 @@ def add_baseline_and_slopes(registry: StepRegistry) -> None:
     def slopes_step(ctx: StepContext) -> dict[str, Any]:
         """Per-patient eGFR slopes."""
         value_filter = ctx.sections.get("value_filter")
-        slopes = egfr_slopes(ctx.tables["egfr"], rule=ctx.options, value_filter=value_filter)  # type: ignore[arg-type]
-        return {"slopes": slopes}
+
+        def derive(tables: Mapping[str, pl.DataFrame]) -> pl.DataFrame:
+            return egfr_slopes(tables["egfr"], rule=ctx.options, value_filter=value_filter)  # type: ignore[arg-type]
+
+        return {"slopes": _per_patient_equation(derive, ctx)}
+
+
+def _per_patient_equation(
+    derive: Callable[[Mapping[str, pl.DataFrame]], pl.DataFrame], ctx: StepContext
+) -> pl.DataFrame:
+    """One row per patient and equation of the eGFR table, in its first-seen order,
+    derived one range of patients at a time (the value filter's working tables of a
+    million patients' eGFR rows are gigabytes)."""
+    return by_patient_ranges(
+        derive, {"egfr": ctx.tables["egfr"]}, order_of="egfr", keys=["patient_id", "equation"]
+    )
 
 
 class EndpointsSection(RuleModel):
@@ -208,14 +228,27 @@ def add_kfre(registry: StepRegistry) -> None:
     def kfre_step(ctx: StepContext) -> dict[str, Any]:
         """KFRE risk at the index date and its distribution by group."""
         group = group_column(ctx)
-        rows = kfre_at_baseline(
-            ctx.tables["egfr"],
-            ctx.tables["labs"],
-            ctx.tables["cohort"],
-            equation=primary_equation(ctx.sections, ctx.tables),
-            rule=ctx.options,  # type: ignore[arg-type]
-            value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
-            group_column=group,
+        equation = primary_equation(ctx.sections, ctx.tables)
+
+        def derive(tables: Mapping[str, pl.DataFrame]) -> pl.DataFrame:
+            return kfre_at_baseline(
+                tables["egfr"],
+                tables["labs"],
+                tables["cohort"],
+                equation=equation,
+                rule=ctx.options,  # type: ignore[arg-type]
+                value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
+                group_column=group,
+            )
+
+        # one row per patient of the cohort, in its order, one range of patients at a
+        # time; a range without a row of the equation is no error of the cohort's
+        rows = by_patient_ranges(
+            derive,
+            {k: ctx.tables[k] for k in ("egfr", "labs", "cohort")},
+            order_of="cohort",
+            keys=["patient_id"],
+            whole_on=(InputDataError,),
         )
         # its summary table is printed by the tables step, protected with the others
         return {"kfre": rows}

@@ -29,8 +29,9 @@ def add_harmonize(registry: StepRegistry) -> None:
     )
     def harmonize_step(ctx: StepContext) -> dict[str, Any]:
         """Harmonise labs, patients and events (kidneycohort.harmonize)."""
+        # taken out of the context: harmonize_tables frees the raw labs once read
         result = harmonize_tables(
-            ctx.tables["raw_labs"],
+            ctx.tables.pop("raw_labs"),
             ctx.tables["patients"],
             ctx.tables.get("events"),
             rule=ctx.options,  # type: ignore[arg-type]

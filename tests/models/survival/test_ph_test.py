@@ -213,3 +213,18 @@ def test_rossi_against_live_r(tmp_path: Path) -> None:
     for transform, expected in zip(("identity", "log"), rows, strict=True):
         ours = _ours(data, fit, ROSSI_ALL, transform)["test_statistic"].to_numpy()
         np.testing.assert_allclose(ours, expected, rtol=1e-5)
+
+
+def test_one_event_is_not_estimable() -> None:
+    """With a single event there is no spread of event times to test a trend against:
+    every statistic is NaN (not estimable), never a number and never a warning."""
+    rng = np.random.default_rng(2)
+    durations = np.linspace(0.5, 3.0, 30)
+    events = np.zeros(30)
+    events[4] = 1.0
+    covariates = rng.normal(size=(30, 2))
+    out = proportional_hazards_test(
+        durations, events, covariates, np.array([0.1, -0.2]), np.eye(2) * 0.5
+    )
+    assert out.height == 3
+    assert out["test_statistic"].is_nan().all() and out["p"].is_nan().all()
