@@ -16,9 +16,11 @@ from __future__ import annotations
 from kidneycohort.report._context import SECTIONS, build_report_context
 from kidneycohort.report._methods import methods_from_config
 from kidneycohort.report._render import render_report, write_report
+from kidneycohort.report._rule import ReportRule
 
 __all__ = [
     "SECTIONS",
+    "ReportRule",
     "build_report_context",
     "methods_from_config",
     "render_report",

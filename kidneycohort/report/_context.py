@@ -20,10 +20,12 @@ import polars as pl
 from kidneycohort.cautions import CAUTIONS
 from kidneycohort.disclosure import HIDDEN, disclosure_footnote, small_count_text, suppression_label
 from kidneycohort.errors import InputDataError
-from kidneycohort.labels import display_label
+from kidneycohort.labels import display_label, label_map
 from kidneycohort.plots import FIGURE_TITLES, forest_rows, slope_distribution
 from kidneycohort.report._equations import equation_rows
+from kidneycohort.report._headline import headline
 from kidneycohort.report._methods import methods_from_config, readable_key
+from kidneycohort.report._rule import ReportRule
 from kidneycohort.run_folder import FILES, RunFolder
 
 logger = logging.getLogger(__name__)
@@ -248,7 +250,7 @@ def _estimate_text(row: dict[str, Any]) -> str:
     return text
 
 
-def _summary(run: RunFolder, threshold: int) -> list[str]:
+def _summary(run: RunFolder, threshold: int, labels: dict[str, str]) -> list[str]:
     lines: list[str] = []
     # every count of people is printed as the shared tables print it (one protection)
     flow = run.printed_patient_flow()
@@ -259,7 +261,7 @@ def _summary(run: RunFolder, threshold: int) -> list[str]:
         listed = ", ".join(f"{g} ({n})" for g, n in group_sizes.items())
         lines.append(f"Groups: {listed}.")
     lines += _slope_lines(run, threshold)
-    lines += _event_lines(run)
+    lines += _event_lines(run, labels)
     hazard_ratios = run.table_or_none("models/hazard_ratios")
     if hazard_ratios is not None and hazard_ratios.height:
         lines += [f"Hazard ratio, {label}." for label in forest_rows(hazard_ratios)["label"]]
@@ -289,7 +291,7 @@ def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:
     return {g: small_count_text(int(n), threshold) for g, n in counts.rows()}
 
 
-def _event_lines(run: RunFolder) -> list[str]:
+def _event_lines(run: RunFolder, labels: dict[str, str]) -> list[str]:
     """Events per endpoint, from the endpoint table's overall row (as it prints them)."""
     table = run.table_or_none("tables/endpoint_table")
     if table is None or not {"endpoint", "group", "events", "n_patients"} <= set(table.columns):
@@ -298,9 +300,14 @@ def _event_lines(run: RunFolder) -> list[str]:
     if overall.is_empty():  # whole-cohort analysis: one row per endpoint
         overall = table.unique("endpoint", keep="first", maintain_order=True)
     return [
-        f"{display_label(name)}: {events.split(' (')[0]} events among {n} patients."
+        f"{_capital(display_label(name, labels))}: {events.split(' (')[0]} events among "
+        f"{n} patients."
         for name, events, n in overall.select("endpoint", "events", "n_patients").rows()
     ]
+
+
+def _capital(text: str) -> str:
+    return text if text.startswith("eGFR") else text[:1].upper() + text[1:]
 
 
 # ---- accounting and provenance ------------------------------------------------------------
@@ -357,7 +364,9 @@ def _provenance(run: RunFolder) -> dict[str, Any]:
     }
 
 
-def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
+def build_report_context(
+    run_dir: str | Path | RunFolder, *, rule: ReportRule | None = None
+) -> dict[str, Any]:
     """Everything the report template prints, read from a run folder.
 
     Parameters
@@ -365,6 +374,8 @@ def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
     run_dir
         The run folder (a path or a :class:`~kidneycohort.run_folder.RunFolder`). Absent
         files are tolerated: the sections they feed say that the run did not make them.
+    rule
+        Report options; by default the run's ``report`` config section.
 
     Returns
     -------
@@ -381,6 +392,9 @@ def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
     run = run_dir if isinstance(run_dir, RunFolder) else RunFolder(run_dir)
     manifest, study = run.manifest, run.manifest.study
     threshold = run.small_cell_threshold
+    rule = rule or ReportRule.model_validate(manifest.section("report"))
+    display = label_map(manifest.config)
+    display.update(rule.labels)
     equation = study.primary_equation
     equations = equation_rows(run, study.equations or ([equation] if equation else []), threshold)
     labels = {e["id"]: e["label"] for e in equations}
@@ -397,7 +411,8 @@ def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
         "sections": [
             {"id": key, "title": title, "number": i + 1} for i, (key, title) in enumerate(SECTIONS)
         ],
-        "summary": _summary(run, threshold),
+        "headline": headline(run, rule, display),
+        "summary": _summary(run, threshold, display),
         "figures": _figures(run),
         "tables": tables,
         "table_index": index,

@@ -1,0 +1,87 @@
+"""The report's content on real pipeline runs of the synthetic demos: the headline block,
+methods prose written from the resolved config, provenance without machine paths."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import polars as pl
+import pytest
+
+from kidneycohort.pipeline.demo import run_demo
+from kidneycohort.report import ReportRule, build_report_context, render_report
+from kidneycohort.run_folder import RunFolder
+
+PATIENTS = 150
+
+
+@pytest.fixture(scope="module")
+def trial(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    base = tmp_path_factory.mktemp("report_trial")
+    result, _ = run_demo(
+        base / "run",
+        patients=PATIENTS,
+        overrides=[
+            "figures.formats=[png]",
+            "figures.dpi=50",
+            "tables.small_cell_threshold=10",
+            "report.labels={active: Active drug, placebo: Placebo}",
+        ],
+    )
+    return result.run_dir
+
+
+def _headline_html(html: str) -> str:
+    start = html.index('<div class="headline"')
+    return html[start : html.index("Further results", start)]
+
+
+def test_headline_leads_with_the_first_endpoint_and_the_chronic_slope(trial: Path) -> None:
+    """The headline prints the endpoint table's and the slope table's own texts (the
+    protected shared tables), for the first endpoint definition of the config."""
+    run = RunFolder(trial)
+    context = build_report_context(run)
+    endpoint, slope = context["headline"]["endpoint"], context["headline"]["slope"]
+    first = run.manifest.section("endpoints")["definitions"][0]["name"]
+    assert endpoint["code"] == first
+    table = run.table("tables/endpoint_table").filter(
+        (pl.col("endpoint") == first) & (pl.col("group") != "Overall")
+    )
+    printed = {(r["events"].split(" (")[0], r["n_patients"]) for r in table.to_dicts()}
+    assert {(g["events"], g["patients"]) for g in endpoint["groups"]} == printed
+    assert {g["group"] for g in endpoint["groups"]} == {"Active drug", "Placebo"}
+    assert slope["code"] == "chronic_slope"
+    slopes = run.table("tables/slope_table").filter(
+        (pl.col("quantity") == "chronic_slope") & pl.col("contrast").str.contains(" - ")
+    )
+    assert slope["effects"][0]["estimate"] == slopes["estimate"][0]
+    assert slope["effects"][0]["interval"] == slopes["ci_95"][0]
+    html = _headline_html(render_report(context))
+    assert html.index("Primary endpoint") < html.index("Primary slope contrast")
+    assert "Active drug vs Placebo" in html and "95% CI" in html
+
+
+def test_headline_counts_stay_hidden_when_the_table_hides_them(trial: Path) -> None:
+    """Kidney failure is rare in 150 patients: the endpoint table hides its event counts
+    ('<11' or '*'), and the headline shows that text, never the count from endpoints."""
+    run = RunFolder(trial)
+    context = build_report_context(run, rule=ReportRule(primary_endpoint="kidney_failure"))
+    groups = context["headline"]["endpoint"]["groups"]
+    table = run.table("tables/endpoint_table").filter(
+        (pl.col("endpoint") == "kidney_failure") & (pl.col("group") != "Overall")
+    )
+    assert [g["events"] for g in groups] == [e.split(" (")[0] for e in table["events"]]
+    hidden = [g["events"] for g in groups if not g["events"].isdigit()]
+    assert hidden, "the demo should have a hidden kidney-failure count at this size"
+    assert all(h in {"<11", "*"} for h in hidden)
+    raw = (
+        run.table("endpoints")
+        .filter(pl.col("endpoint") == "kidney_failure")
+        .group_by("group")
+        .agg(pl.col("event").sum())
+    )
+    html = _headline_html(render_report(context))
+    for n in raw["event"].to_list():
+        if 0 < n <= 10:  # a hidden count must not appear as "n / patients"
+            assert not re.search(rf">{n} / ", html)
