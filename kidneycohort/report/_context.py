@@ -268,13 +268,21 @@ def _summary(run: RunFolder, threshold: int, labels: dict[str, str]) -> list[str
     return lines
 
 
-def _analysis_methods(run: RunFolder) -> list[dict[str, Any]]:
-    """Methods paragraphs the analyses wrote themselves (which hazard ratio is which)."""
+def _method_facts(run: RunFolder) -> dict[str, Any]:
+    """What the run recorded about its own analyses, for the Methods prose: the slope
+    model's fit, the competing-risks analysis' own methods texts, software versions."""
     tests = run.table_or_none("models/competing_tests")
-    if tests is None or tests.is_empty():
-        return []
-    sentences = list(dict.fromkeys(tests["methods"].drop_nulls().to_list()))
-    return [{"section": "Competing risks as analysed", "sentences": sentences}]
+    fit = run.table_or_none("models/slope_model_fit")
+    manifest = run.manifest
+    return {
+        "slope_model_fit": [] if fit is None else fit.to_dicts(),
+        "competing_methods": []
+        if tests is None or "methods" not in tests.columns
+        else list(dict.fromkeys(tests.drop_nulls("methods").select("endpoint", "methods").rows())),
+        "kidneycohort_version": manifest.kidneycohort_version,
+        "packages": dict(manifest.packages),
+        "seed": manifest.seed,
+    }
 
 
 def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:
@@ -418,7 +426,9 @@ def build_report_context(
         "table_index": index,
         "xlsx": "tables/tables.xlsx" if (run.path / "tables" / "tables.xlsx").is_file() else "",
         "equations": equations,
-        "methods": methods_from_config(manifest.config, labels) + _analysis_methods(run),
+        "methods": methods_from_config(
+            manifest.config, {**display, **labels}, facts=_method_facts(run)
+        ),
         "cautions": list(CAUTIONS),
         "warnings": [_ISO_DATE.sub("[date removed]", w) for w in manifest.warnings],
         "accounting": accounting,

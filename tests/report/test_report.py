@@ -157,11 +157,11 @@ def test_equations_section_uses_the_registry(full: dict) -> None:
 
 def test_methods_and_cautions_in_plain_language(full: dict) -> None:
     html = full["html"]
-    assert "linear spline with a knot at 0.25 years" in html
-    assert "repeat value at least 28 days later confirms it" in html
+    assert "a linear spline in time with a knot at 0.25 years" in html
+    assert "the next eligible value at least 28 days later also qualified" in html
     assert (
-        "Rapid decline: an eGFR fall faster than 5 mL/min/1.73 m² per year (slope below -5)."
-        in html
+        "Rapid decline was defined as a fall faster than 5 mL/min/1.73 m² per year "
+        "(slope below -5)." in html
     )
     for caution in CAUTIONS:
         assert caution in html
@@ -180,9 +180,9 @@ def test_methods_tolerate_missing_and_unknown_keys() -> None:
     )
     sections = {m["section"]: m["sentences"] for m in out}
     assert "Data" not in sections  # file locations belong to provenance
-    assert sections["Aki"] == ["Exclude aki days: 7.", "Use inpatient: no."]
-    assert sections["EGFR"] == ["Equations: CKD-EPI creatinine 2021 (race-free), made_up_eq."]
-    assert sections["Study"] == ["Recipe: cohort."]
+    assert sections["Other settings"] == ["Aki, exclude aki days: 7.", "Aki, use inpatient: no."]
+    assert "CKD-EPI creatinine 2021 (race-free) equation" in sections["Estimated GFR"][0]
+    assert "made_up_eq (not in the kidneycohort equation registry)" in sections["Estimated GFR"][1]
 
 
 def test_absent_files_leave_sections_that_say_so(tmp_path: Path, full: dict) -> None:

@@ -85,3 +85,63 @@ def test_headline_counts_stay_hidden_when_the_table_hides_them(trial: Path) -> N
     for n in raw["event"].to_list():
         if 0 < n <= 10:  # a hidden count must not appear as "n / patients"
             assert not re.search(rf">{n} / ", html)
+
+
+def _methods_text(config: dict) -> str:
+    from kidneycohort.report import methods_from_config
+
+    return " ".join(" ".join(m["sentences"]) for m in methods_from_config(config))
+
+
+def test_methods_prose_follows_the_config_that_produced_it(trial: Path) -> None:
+    """Methods are written from the run's resolved config: the report says what the
+    config says, and a changed rule changes its sentence (and nothing is a key dump)."""
+    run = RunFolder(trial)
+    config = run.manifest.config
+    html = render_report(build_report_context(run))
+    methods = html[html.index('id="methods"') : html.index('id="cautions"')]
+    rule = config["endpoints"]["rule"]
+    assert f"at least {rule['confirm_after_days']} days later also qualified" in methods
+    assert "Exclude aki: yes" not in methods and "Equation: None" not in methods
+    assert "Rules: not set" not in methods
+    assert "doi:10.1056/NEJMoa2102953" in methods  # CKD-EPI 2021 from the registry
+    assert f"knot at {config['slope_model']['knot_years']:g} years" in methods
+    assert "restricted maximum likelihood" in methods
+    assert f"kidneycohort {run.manifest.kidneycohort_version}" in methods
+
+    import copy
+
+    changed = copy.deepcopy(config)
+    changed["endpoints"]["rule"]["confirm_after_days"] = 91
+    changed["endpoints"]["rule"]["confirmation"] = "sustained_to_end"
+    changed["value_filter"]["exclude_aki"] = False
+    changed["slope_model"]["knot_years"] = 0.5
+    changed["baseline"] = {**changed["baseline"], "method": "median_in_window"}
+    before, after = _methods_text(config), _methods_text(changed)
+    assert "every later eligible value also qualified, at least one of them 91 days" in after
+    assert "every later eligible value" not in before
+    assert "acute kidney injury were not excluded" in after
+    assert "KDIGO 2012 creatinine criteria" in before
+    assert "knot at 0.5 years" in after and "knot at 0.5 years" not in before
+    assert "Baseline eGFR was the median of the eGFR values" in after
+
+
+def test_methods_carry_the_competing_risks_text_once() -> None:
+    """The competing-risks analysis writes its own methods text per endpoint; the report
+    writes one wording once, naming the endpoints."""
+    from kidneycohort.report import methods_from_config
+
+    text = "Competing risks: {e} was analysed with death as competing event; incidence of {e}."
+    facts = {
+        "competing_methods": [
+            ("a_end", text.format(e="a_end")),
+            ("b_end", text.format(e="b_end")),
+        ]
+    }
+    out = methods_from_config({"survival": {"confidence": 0.95}}, {"a_end": "A"}, facts=facts)
+    survival = next(m for m in out if m["section"] == "Survival analysis")["sentences"]
+    written = [s for s in survival if s.startswith("Competing risks")]
+    assert written == [
+        "Competing risks: each endpoint (A and b_end) was analysed with death as competing "
+        "event; incidence of the endpoint."
+    ]
