@@ -10,9 +10,10 @@ from __future__ import annotations
 import base64
 import datetime as dt
 import logging
+import os
 import re
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import Path, PurePosixPath, PureWindowsPath
 from typing import Any, Final
 
 import polars as pl
@@ -338,6 +339,47 @@ def _accounting(run: RunFolder, threshold: int) -> tuple[list[list[str]], list[l
     return rows, reasons
 
 
+_WINDOWS_ABSOLUTE = re.compile(r"^(?:[A-Za-z]:[\\/]|\\\\)")
+
+
+def relative_override(override: str, run_path: Path) -> str:
+    """``key=/abs/path`` as ``key=<path relative to the run folder>``; other overrides as
+    given. A report travels; the machine's folder layout is not printed.
+
+    Parameters
+    ----------
+    override : str
+        One ``--set`` override as recorded in the manifest.
+    run_path : Path
+        The run folder, which relative paths start from.
+
+    Returns
+    -------
+    str
+        The override with an absolute path made relative (POSIX separators).
+    """
+    key, sep, value = override.partition("=")
+    text = value.strip().strip("'\"")
+    if not sep:
+        return override
+    if _WINDOWS_ABSOLUTE.match(text):
+        return f"{key}={PureWindowsPath(text).name}"
+    if not PurePosixPath(text).is_absolute():
+        return override
+    try:
+        relative = os.path.relpath(text, run_path.resolve())
+    except ValueError:  # another drive
+        relative = PurePosixPath(text).name
+    return f"{key}={PurePosixPath(*Path(relative).parts).as_posix()}"
+
+
+_ABSOLUTE_PATH = re.compile(r"(?<![\w.:/])/(?:[\w.-]+/)+[\w.-]+")
+
+
+def _relative_path(path: str, run_path: Path) -> str:
+    return relative_override(f"x={path}", run_path).partition("=")[2]
+
+
 def _provenance(run: RunFolder) -> dict[str, Any]:
     manifest = run.manifest
     return {
@@ -346,7 +388,7 @@ def _provenance(run: RunFolder) -> dict[str, Any]:
         "created_utc": manifest.created_utc or "not recorded",
         "seed": manifest.seed,
         "recipe": manifest.study.recipe or "not recorded",
-        "overrides": list(manifest.overrides),
+        "overrides": [relative_override(o, run.path) for o in manifest.overrides],
         "inputs": [
             {
                 "path": Path(i.path).name if i.path else i.table,
@@ -430,7 +472,12 @@ def build_report_context(
             manifest.config, {**display, **labels}, facts=_method_facts(run)
         ),
         "cautions": list(CAUTIONS),
-        "warnings": [_ISO_DATE.sub("[date removed]", w) for w in manifest.warnings],
+        "warnings": [
+            _ABSOLUTE_PATH.sub(
+                lambda m: _relative_path(m[0], run.path), _ISO_DATE.sub("[date removed]", w)
+            )
+            for w in manifest.warnings
+        ],
         "accounting": accounting,
         "accounting_by_reason": by_reason,
         # as the baseline table prints them (one protection for every output)

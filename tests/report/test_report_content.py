@@ -145,3 +145,16 @@ def test_methods_carry_the_competing_risks_text_once() -> None:
         "Competing risks: each endpoint (A and b_end) was analysed with death as competing "
         "event; incidence of the endpoint."
     ]
+
+
+def test_provenance_prints_override_paths_relative_to_the_run_folder(trial: Path) -> None:
+    """The demo passes its input files as absolute-path overrides; the report prints
+    them relative to the run folder and no absolute path of this machine."""
+    run = RunFolder(trial)
+    absolute = [o for o in run.manifest.overrides if "=/" in o]
+    assert absolute, "the demo records its input paths as overrides"
+    html = render_report(build_report_context(run))
+    provenance = html[html.index('id="provenance"') :]
+    assert "data.labs.path=../run_inputs/labs.parquet" in provenance
+    assert str(trial.parent) not in html
+    assert str(Path.home()) not in html or str(Path.home()) == "/"
