@@ -15,6 +15,7 @@ from __future__ import annotations
 
 from kidneycohort.report._context import SECTIONS, build_report_context
 from kidneycohort.report._methods import methods_from_config
+from kidneycohort.report._pdf import find_browser, print_pdf, require_browser
 from kidneycohort.report._render import render_report, write_report
 from kidneycohort.report._rule import ReportRule
 
@@ -22,7 +23,10 @@ __all__ = [
     "SECTIONS",
     "ReportRule",
     "build_report_context",
+    "find_browser",
     "methods_from_config",
+    "print_pdf",
     "render_report",
+    "require_browser",
     "write_report",
 ]
