@@ -4,13 +4,26 @@ from __future__ import annotations
 
 import functools
 from collections.abc import Callable, Iterable, Mapping
-from typing import Any, TypeVar, cast
+from typing import TYPE_CHECKING, Any, TypeAlias, TypeVar, cast
 
 import polars as pl
 
 from kidneycohort.errors import InputDataError, did_you_mean
 
-FrameLike = pl.DataFrame | pl.LazyFrame | Any  # Any: a pandas DataFrame
+if TYPE_CHECKING:  # pandas is imported only when a pandas table arrives
+    import pandas as pd
+
+__all__ = [
+    "FrameLike",
+    "as_float",
+    "as_int",
+    "conform",
+    "follows_input",
+    "require_columns",
+    "to_polars",
+]
+
+FrameLike: TypeAlias = "pl.DataFrame | pl.LazyFrame | pd.DataFrame"
 
 
 def to_polars(data: FrameLike, name: str = "table") -> pl.DataFrame:
@@ -23,15 +36,35 @@ def to_polars(data: FrameLike, name: str = "table") -> pl.DataFrame:
         return data
     if isinstance(data, pl.LazyFrame):
         return data.collect()
-    try:
-        import pandas as pd
-    except ImportError:  # pragma: no cover - pandas is a dependency
-        pd = None
-    if pd is not None and isinstance(data, pd.DataFrame):
+    import pandas as pd
+
+    if isinstance(data, pd.DataFrame):
         return pl.from_pandas(data)
     raise InputDataError(
         f"{name}: expected a polars or pandas DataFrame, got {type(data).__name__}"
     )
+
+
+def as_float(value: object, what: str) -> float:
+    """``value`` (a polars scalar such as ``Series.max()``) as a float.
+
+    Raises :class:`TypeError` naming ``what`` when it is not a real number (a null, a
+    date, text): the caller expected a number there.
+    """
+    if isinstance(value, int | float) and not isinstance(value, bool):
+        return float(value)
+    raise TypeError(f"{what}: expected a number, got {type(value).__name__} {value!r}")
+
+
+def as_int(value: object, what: str) -> int:
+    """``value`` (a polars scalar such as ``Series.max()``) as an int.
+
+    Raises :class:`TypeError` naming ``what`` when it is not an integer (a null, a
+    float, a date, text): the caller expected an integer there.
+    """
+    if isinstance(value, int) and not isinstance(value, bool):
+        return value
+    raise TypeError(f"{what}: expected an integer, got {type(value).__name__} {value!r}")
 
 
 def require_columns(df: pl.DataFrame | pl.LazyFrame, columns: Iterable[str], name: str) -> None:

@@ -22,6 +22,15 @@ from pydantic_core import ErrorDetails
 
 from kidneycohort.errors import ConfigError, did_you_mean
 
+__all__ = [
+    "RuleModel",
+    "error_facts",
+    "resolve_rules",
+    "rule_error_message",
+    "short_repr",
+    "validate_config",
+]
+
 # Set while a model or a config section is being validated, so that only the outermost
 # call turns pydantic's report into one ConfigError: pydantic calls a model's own
 # ``__init__`` for nested models too, and the outer message keeps the full field path.
@@ -106,6 +115,15 @@ def error_facts(
     )
 
 
+class _ShortRepr(reprlib.Repr):
+    """reprlib with a bounded integer: a huge int is never turned into text whole."""
+
+    def repr_int(self, x: int, level: int) -> str:
+        if x.bit_length() > 256:
+            return f"<{'negative ' if x < 0 else ''}integer of {x.bit_length()} bits>"
+        return super().repr_int(x, level)
+
+
 def short_repr(value: Any, limit: int = 60) -> str:
     """``repr(value)`` cut to ``limit`` characters, without rendering a large value whole.
 
@@ -117,10 +135,13 @@ def short_repr(value: Any, limit: int = 60) -> str:
     >>> short_repr(list(range(10**6)))
     '[0, 1, 2, 3, 4, 5, ...]'
     """
-    shortened = reprlib.Repr()  # Python 3.11: limits are attributes, not arguments
+    shortened = _ShortRepr()  # Python 3.11: limits are attributes, not arguments
     shortened.maxlevel, shortened.maxlist, shortened.maxdict = 2, 6, 4
-    shortened.maxstring = shortened.maxother = limit
-    text = shortened.repr(value)
+    shortened.maxstring = shortened.maxother = shortened.maxlong = limit
+    try:
+        text = shortened.repr(value)
+    except Exception:  # a value whose own repr fails: say what it is
+        text = f"<{type(value).__name__}>"
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 

@@ -38,6 +38,8 @@ from kidneycohort.schemas import UACR_BASELINE
 from kidneycohort.uacr import uacr_timeline
 from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, usable_egfr
 
+__all__ = ["BASELINE_REASONS", "BaselineRule", "egfr_baseline", "uacr_baseline"]
+
 logger = logging.getLogger(__name__)
 
 BASELINE_REASONS: Final[dict[str, str]] = {

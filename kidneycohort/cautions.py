@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from typing import Final
 
+__all__ = ["CAUTIONS", "SHORT_CAUTION"]
+
 CAUTIONS: Final = (
     "Research estimates only: eGFR values, categories, endpoints and model results from "
     "kidneycohort are for cohort and trial research, not for individual clinical decisions "

@@ -19,9 +19,29 @@ import click
 from kidneycohort.cautions import SHORT_CAUTION
 from kidneycohort.errors import KidneyCohortError
 
+__all__ = [
+    "EXIT_BAD_INPUT",
+    "EXIT_INTERNAL",
+    "EXIT_OK",
+    "F",
+    "cli",
+    "demo_cmd",
+    "equations_cmd",
+    "main",
+    "run_cmd",
+    "synth_cmd",
+    "validate_cmd",
+]
+
 F = TypeVar("F", bound=Callable[..., Any])
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+
+
+def _first_line(exc: BaseException) -> str:
+    """The first line of an exception's message (a terminal gets one line)."""
+    lines = str(exc).strip().splitlines()
+    return lines[0] if lines else ""
 
 
 def _guarded(func: F) -> F:
@@ -31,7 +51,8 @@ def _guarded(func: F) -> F:
         try:
             return func(*args, **kwargs)
         except KidneyCohortError as exc:
-            click.echo(f"error: {exc}", err=True)
+            for line in str(exc).splitlines() or [""]:
+                click.echo(f"error: {line}", err=True)
             sys.exit(EXIT_BAD_INPUT)
         except click.exceptions.Exit:
             raise
@@ -39,7 +60,8 @@ def _guarded(func: F) -> F:
             log_hint = getattr(exc, "log_path", None)
             where = f" (details in {log_hint})" if log_hint else ""
             click.echo(
-                f"internal error: {type(exc).__name__}: {exc}{where}; please report it",
+                f"internal error: {type(exc).__name__}: {_first_line(exc)}{where}; "
+                "please report it",
                 err=True,
             )
             logging.getLogger("kidneycohort").debug("internal error", exc_info=True)
@@ -262,7 +284,8 @@ def _guarded_run(func: F) -> F:
             log_hint = getattr(exc, "log_path", None)
             where = f" (details in {log_hint})" if log_hint else ""
             click.echo(
-                f"internal error: {type(exc).__name__}: {exc}{where}; please report it",
+                f"internal error: {type(exc).__name__}: {_first_line(exc)}{where}; "
+                "please report it",
                 err=True,
             )
             sys.exit(EXIT_INTERNAL)
@@ -280,12 +303,19 @@ def _guarded_run(func: F) -> F:
 def validate_cmd(config: Path, overrides: tuple[str, ...], no_data: bool) -> None:
     """Check a study CONFIG, its recipe and its input files without running anything.
 
-    Reads only file headers: every key and type, every step's inputs, every file
-    and column the config names. Exit code 0 when the config would run, 2 otherwise.
+    Reads file headers and the first rows of each file (a bounded scan): every key and
+    type, every step's inputs, every file and column the config names, tables whose
+    every row would be rejected, groups a comparison needs. Every problem is one line.
+    Exit code 0 when the config would run, 2 otherwise.
     """
+    from kidneycohort.errors import InputDataError
     from kidneycohort.pipeline import check_inputs
+    from kidneycohort.pipeline.preview import preview_problems
 
     study = _load(config, overrides)
+    problems = [] if no_data else preview_problems(study)
+    if problems:
+        raise InputDataError("\n".join(problems))
     columns = {} if no_data else check_inputs(study)
     click.echo(f"config {config}: valid")
     click.echo(f"recipe {study.recipe.name}: {' -> '.join(s.name for s in study.steps)}")
@@ -304,7 +334,12 @@ def validate_cmd(config: Path, overrides: tuple[str, ...], no_data: bool) -> Non
     help="Run folder (default: output.dir of the config).",
 )
 @click.option("--set", "overrides", multiple=True, metavar="KEY=VALUE", help=_SET_HELP)
-@click.option("--force", is_flag=True, help="Replace an existing run folder once the run succeeds.")
+@click.option(
+    "--force",
+    is_flag=True,
+    help="Replace a previous run folder (one with manifest.json, holding no input) once "
+    "the run succeeds; a file or any other folder is never replaced.",
+)
 @click.option("--quiet", "-q", is_flag=True, help="No progress display or log lines.")
 @click.option("--verbose", "-v", is_flag=True, help="Debug log lines.")
 @_guarded_run
@@ -319,8 +354,10 @@ def run_cmd(
     """Run a study CONFIG and write its run folder (tables, models, figures, report).
 
     The folder is written to a temporary place and moved into place only when every
-    step succeeded; a failed run leaves RUN_DIR.failed with run.log. Exit codes: 0 ok,
-    2 bad config or input, 1 internal error.
+    step succeeded; a failed run leaves RUN_DIR.failed with run.log (the traceback of a
+    failure is there, the terminal gets one line). One run at a time owns a run folder
+    (a lock file .RUN_DIR.lock beside it); SIGTERM stops a run like Ctrl-C. Exit codes:
+    0 ok, 2 bad config or input, 1 internal error.
     """
     from kidneycohort.pipeline import run_pipeline
 

@@ -39,11 +39,20 @@ from pydantic import Field, field_validator
 
 from kidneycohort import equations as eq
 from kidneycohort import schemas, units
-from kidneycohort._frames import conform, follows_input, require_columns, to_polars
+from kidneycohort._frames import FrameLike, conform, follows_input, require_columns, to_polars
 from kidneycohort._rules import RuleModel, resolve_rules
 from kidneycohort.ages import age_on_expr
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.vocabulary import sex_expr, unknown_sex_error
+
+__all__ = [
+    "EGFR_REASON_CODES",
+    "AgeBand",
+    "EgfrRule",
+    "compute_egfr",
+    "egfr_wide",
+    "resolve_egfr_rule",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -345,12 +354,12 @@ def _evaluate(frame: pl.DataFrame, equation_id: str, rule: EgfrRule) -> pl.DataF
 
 @follows_input
 def compute_egfr(
-    labs: Any,
-    patients: Any,
+    labs: FrameLike,
+    patients: FrameLike,
     equations: str | Sequence[str] | None = None,
     *,
     rule: EgfrRule | None = None,
-    measurements: Any | None = None,
+    measurements: FrameLike | None = None,
     wide: bool = False,
     **rule_fields: Any,
 ) -> pl.DataFrame:
@@ -435,7 +444,7 @@ def compute_egfr(
 
 
 def _inputs(
-    labs: Any, patients: Any, measurements: Any | None
+    labs: FrameLike, patients: FrameLike, measurements: FrameLike | None
 ) -> tuple[pl.DataFrame, pl.DataFrame, pl.DataFrame | None]:
     """Labs, patients (one row each, sex in the vocabulary) and body-size measurements."""
     table = to_polars(labs, "labs")

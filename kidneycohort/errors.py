@@ -10,6 +10,22 @@ from __future__ import annotations
 import difflib
 from collections.abc import Iterable
 
+__all__ = [
+    "AccountingError",
+    "ConfigError",
+    "ConvergenceError",
+    "DataQualityWarning",
+    "DisclosureWarning",
+    "EquationWarning",
+    "InputDataError",
+    "KidneyCohortError",
+    "KidneyCohortWarning",
+    "StatisticalWarning",
+    "UnknownEquationError",
+    "UnknownUnitError",
+    "did_you_mean",
+]
+
 
 class KidneyCohortError(Exception):
     """Base class of all errors raised on purpose by kidneycohort."""

@@ -11,6 +11,39 @@ from typing import Final
 
 import polars as pl
 
+__all__ = [
+    "AT_RISK",
+    "BASELINE",
+    "BASELINE_CATEGORIES",
+    "CANONICAL_EVENTS",
+    "DAYS_PER_YEAR",
+    "EGFR",
+    "ENDPOINTS",
+    "EVENTS",
+    "EVENTS_REQUIRED",
+    "HAZARD_RATIOS",
+    "INCIDENCE_RATES",
+    "KDIGO_GRID_COUNTS",
+    "KFRE_AT_BASELINE",
+    "LABS",
+    "MODEL_SLOPES",
+    "PATIENTS",
+    "PATIENTS_REQUIRED",
+    "RAW_LABS",
+    "RAW_LABS_REQUIRED",
+    "REJECTED",
+    "SCHEMA_VERSION",
+    "SLOPES",
+    "SLOPE_MODEL_FIT",
+    "SLOPE_SUMMARY",
+    "STAGES",
+    "SURVIVAL_CURVES",
+    "TRAJECTORIES",
+    "TRANSITIONS",
+    "TRANSITION_COUNTS",
+    "UACR_BASELINE",
+]
+
 SCHEMA_VERSION: Final = "1.0"
 
 # ---- inputs (what the tool reads when no column map is given) -----------------------

@@ -48,9 +48,12 @@ from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConfigError
 from kidneycohort.value_filter import ValueFilterRule, usable_egfr
 
+__all__ = ["SLOPE_REASONS", "SlopeRule", "egfr_slopes"]
+
 logger = logging.getLogger(__name__)
 
 SLOPE_REASONS: Final[dict[str, str]] = {
+    "no_index_date": "no index date, so no time from index for any value",
     "no_values": "no usable eGFR value in the slope window",
     "fewer_than_min_values": "fewer usable values than min_values",
     "span_below_min_years": "values span less than min_span_years",
@@ -151,7 +154,7 @@ def egfr_slopes(
     """
     rule = rule or SlopeRule()
     df = usable_egfr(egfr, value_filter)
-    use = pl.col("_finite") & ~pl.col("excluded")
+    use = pl.col("_finite") & ~pl.col("excluded") & pl.col("years_from_index").is_not_null()
     if rule.from_years is not None:
         use = use & (pl.col("years_from_index") >= rule.from_years)
     if rule.to_years is not None:
@@ -170,6 +173,7 @@ def egfr_slopes(
         y.count().cast(pl.Int32).alias("n_values"),
         (x.max() - x.min()).alias("span_years"),
         positive.alias("_positive"),
+        pl.col("years_from_index").is_null().all().alias("_no_index"),
         *_ols_aggs(x, y, "_"),
         *_ols_aggs(x, ly, "_l"),
     )
@@ -189,7 +193,9 @@ def egfr_slopes(
     )
     # a span a hair under the threshold from the years round trip still counts
     reason = (
-        pl.when(n == 0)
+        pl.when(pl.col("_no_index"))
+        .then(pl.lit("no_index_date"))
+        .when(n == 0)
         .then(pl.lit("no_values"))
         .when(n < rule.min_values)
         .then(pl.lit("fewer_than_min_values"))

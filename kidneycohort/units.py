@@ -27,6 +27,21 @@ import polars as pl
 
 from kidneycohort.errors import UnknownUnitError, did_you_mean
 
+__all__ = [
+    "ANALYTES",
+    "CREATININE_UMOL_PER_MG_DL",
+    "STANDARD_UNIT",
+    "UACR_MG_G_PER_MG_MMOL",
+    "conversion_factor",
+    "creatinine_mg_dl_to_umol",
+    "creatinine_umol_to_mg_dl",
+    "fold_unit_expr",
+    "normalize_unit",
+    "to_standard",
+    "uacr_mg_mmol_to_mg_g",
+    "unit_factor_table",
+]
+
 CREATININE_UMOL_PER_MG_DL: Final = 88.4
 UACR_MG_G_PER_MG_MMOL: Final = 8.84
 

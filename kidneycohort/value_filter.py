@@ -51,10 +51,22 @@ import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_int, follows_input, require_columns, to_polars
 from kidneycohort._rules import RuleModel
 from kidneycohort._rules import rule_error_message as rule_error_message
 from kidneycohort.errors import InputDataError, did_you_mean
+
+__all__ = [
+    "AKI_CRITERIA",
+    "EGFR_REQUIRED",
+    "KNOWN_SETTINGS",
+    "ValueFilterRule",
+    "apply_value_filter",
+    "egfr_keys",
+    "flag_aki",
+    "sample_time_expr",
+    "usable_egfr",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -193,9 +205,11 @@ def flag_aki(egfr: FrameLike, rule: ValueFilterRule | None = None) -> pl.DataFra
     rise_s = round(rule.aki_rise_hours * 3600)
     ratio_s = round(rule.aki_ratio_days * 86400)
     recovery_s = round(rule.aki_recovery_days * 86400)
-    lo = work["_s"].min() or 0
-    gap = (work["_s"].max() or 0) - lo + max(rise_s, ratio_s, recovery_s) + 1
-    if ((work["_pid"].max() or 0) + 1).bit_length() + gap.bit_length() <= 62:
+    lo = as_int(work["_s"].min() or 0, "first sample time (s)")
+    hi = as_int(work["_s"].max() or 0, "last sample time (s)")
+    gap = hi - lo + max(rise_s, ratio_s, recovery_s) + 1
+    n_codes = as_int(work["_pid"].max() or 0, "largest patient code") + 1
+    if n_codes.bit_length() + gap.bit_length() <= 62:
         work = work.with_columns(
             _start=pl.col("_pid") * gap, _key=pl.col("_pid") * gap + pl.col("_s") - lo
         ).sort("_key")

@@ -69,7 +69,7 @@ def test_validate_ok(tmp_path: Path) -> None:
         ("", ["harmonize.decimal_comma=perhaps"], "harmonize.decimal_comma: "),
         ("", ["study.recipe=clen"], "study.recipe: unknown recipe 'clen' (did you mean 'clean'?)"),
         ("", ["data.labs.path=nowhere.csv"], "data.labs.path: file"),
-        ("", ["data.labs.columns.SUBJECT=patient_id"], "data.labs: "),
+        ("", ["data.labs.columns.SUBJECT=patient_id"], "both map to 'patient_id'"),
     ],
 )
 def test_config_errors_exit_2_with_the_field(

@@ -25,14 +25,16 @@ import polars as pl
 
 from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, require_columns, to_polars
-from kidneycohort.adam._metadata import AdamDataset, Variable, make_dataset, standard
+from kidneycohort.adam._metadata import AdamDataset, Kind, Variable, make_dataset, standard
 from kidneycohort.adam._subjects import subject_facts
 from kidneycohort.ages import age_at_index_expr
 from kidneycohort.kdigo import gfr_category_expr
 
+__all__ = ["adsl_dataset"]
 
-def _sponsor(name: str, label: str, kind: str, derivation: str) -> Variable:
-    return Variable(name, label, kind, "Derived", derivation)  # type: ignore[arg-type]
+
+def _sponsor(name: str, label: str, kind: Kind, derivation: str) -> Variable:
+    return Variable(name, label, kind, "Derived", derivation)
 
 
 def _variables(saffl_rule: str, has_site: bool, has_albuminuria: bool) -> list[Variable]:
@@ -149,7 +151,7 @@ def adsl_dataset(
         frame = frame.join(dates, on="patient_id", how="left")
         kfrt = pl.coalesce("kidney_failure_date", kfrt)
     has_albuminuria = albuminuria_categories is not None
-    if has_albuminuria:
+    if albuminuria_categories is not None:
         categories = to_polars(albuminuria_categories, "albuminuria_categories").select(
             pl.col("patient_id").cast(pl.String), pl.col("a_category").alias("ACATBL")
         )

@@ -32,6 +32,14 @@ from kidneycohort.adam._subjects import subject_facts
 from kidneycohort.equations import REGISTRY
 from kidneycohort.errors import ConfigError
 
+__all__ = [
+    "PARAMCD_BY_EQUATION",
+    "VisitWindow",
+    "adegfr_dataset",
+    "default_visit_windows",
+    "paramcd",
+]
+
 # PARAMCD of each equation (8 characters at most, ADaM IG); our own codes.
 PARAMCD_BY_EQUATION: Final[dict[str, str]] = {
     "ckd_epi_2021_cr": "EGFRC21",

@@ -19,6 +19,9 @@ import polars as pl
 from kidneycohort.adam._metadata import AdamDataset, spec_sheet
 from kidneycohort.errors import InputDataError
 from kidneycohort.io.cdisc_files import sas_date, write_dataset_json, write_xpt
+from kidneycohort.run_folder import write_csv
+
+__all__ = ["check_xpt_round_trip", "read_back_xpt", "write_adam"]
 
 logger = logging.getLogger(__name__)
 
@@ -110,7 +113,7 @@ def write_adam(
             )
         )
     spec = folder / "spec.csv"
-    spec_sheet(datasets).write_csv(spec)
+    write_csv(spec_sheet(datasets), spec)
     files.append(spec)
     logger.info("ADaM: %s written to %s", ", ".join(d.name for d in datasets), folder)
     return files

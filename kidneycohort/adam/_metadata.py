@@ -32,6 +32,17 @@ import polars as pl
 
 from kidneycohort.errors import InputDataError
 
+__all__ = [
+    "ADAM_IG_LABELS",
+    "AdamDataset",
+    "Kind",
+    "Variable",
+    "check_dataset",
+    "make_dataset",
+    "spec_sheet",
+    "standard",
+]
+
 Kind = Literal["text", "integer", "float", "date"]
 Origin = Literal["Derived", "Assigned", "Predecessor"]
 

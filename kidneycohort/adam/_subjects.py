@@ -23,6 +23,8 @@ import polars as pl
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
 
+__all__ = ["subject_facts"]
+
 SUBJECT_COLUMNS: Final = (
     "USUBJID",
     "TRTP",

@@ -30,6 +30,7 @@ from kidneycohort.adam._metadata import AdamDataset, Variable, make_dataset, sta
 from kidneycohort.adam._subjects import subject_facts
 from kidneycohort.endpoints import (
     NOT_EVALUABLE_REASONS,
+    Composite,
     EndpointDefinition,
     parse_endpoint_definitions,
 )
@@ -290,7 +291,7 @@ def _rows(
             "PARAM": [f"{d.label} ({unit})" for d in defs],
             "PARAMN": list(range(1, len(defs) + 1)),
             "_kind_source": [
-                "|".join(_composite_source(d, defs)) if d.kind == "composite" else None
+                "|".join(_composite_source(d, defs)) if isinstance(d, Composite) else None
                 for d in defs
             ],
         },
@@ -351,11 +352,9 @@ def _rows(
     )
 
 
-def _composite_source(
-    composite: EndpointDefinition, defs: Sequence[EndpointDefinition]
-) -> tuple[str, str]:
+def _composite_source(composite: Composite, defs: Sequence[EndpointDefinition]) -> tuple[str, str]:
     by_name = {d.name: d for d in defs}
-    first = by_name.get(composite.components[0])  # type: ignore[union-attr]
+    first = by_name.get(composite.components[0])
     if first is None:
         return _KIND_SOURCE["egfr_decline"]
     return _KIND_SOURCE.get(first.kind, _KIND_SOURCE["egfr_decline"])

@@ -19,6 +19,24 @@ from pydantic import (
 from kidneycohort._rules import RuleModel, rule_error_message, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
 
+__all__ = [
+    "NOT_EVALUABLE_REASONS",
+    "_LAB_KINDS",
+    "_PERCENT_TOLERANCE",
+    "Composite",
+    "Death",
+    "EgfrBelow",
+    "EgfrDecline",
+    "EndpointDefinition",
+    "EndpointRule",
+    "KidneyDeath",
+    "KidneyFailure",
+    "_resolve_order",
+    "_validate",
+    "parse_endpoint_definitions",
+    "usual_kidney_composite",
+]
+
 # A fall that equals the threshold percentage to within floating-point rounding counts
 # (100 -> 60 is a 40 % fall even if (100 - 60) / 100 * 100 rounds to 39.999...).
 _PERCENT_TOLERANCE: Final = 1e-9
@@ -248,7 +266,8 @@ class EgfrDecline(_LabEndpoint):
     @field_validator("percent")
     @classmethod
     def _percent_not_fraction(cls, value: float) -> float:
-        return _percent_not_fraction(value)
+        _percent_not_fraction(value)
+        return value
 
     @classmethod
     def _defaults(cls, data: Mapping[str, Any]) -> tuple[str, str, str]:

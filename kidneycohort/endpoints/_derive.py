@@ -37,6 +37,8 @@ from kidneycohort.endpoints._timeline import (
 )
 from kidneycohort.errors import ConfigError
 
+__all__ = ["derive_endpoints"]
+
 logger = logging.getLogger(__name__)
 
 

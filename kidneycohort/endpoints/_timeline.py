@@ -16,6 +16,16 @@ from kidneycohort import schemas
 from kidneycohort._frames import FrameLike, conform, require_columns, to_polars
 from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
 
+__all__ = [
+    "_Context",
+    "_parse_date",
+    "_patient_frame",
+    "_prepare_baseline",
+    "_prepare_egfr",
+    "_prepare_events",
+    "_prepare_patients",
+]
+
 logger = logging.getLogger(__name__)
 
 

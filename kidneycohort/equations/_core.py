@@ -23,6 +23,30 @@ import polars as pl
 from kidneycohort.errors import DataQualityWarning, EquationWarning, InputDataError
 from kidneycohort.vocabulary import SEX_CODES, fold_code, sex_expr, unknown_sex_error
 
+__all__ = [
+    "AGE_ABOVE",
+    "AGE_BELOW",
+    "INVALID_VALUE",
+    "MISSING_INPUT",
+    "NONPOSITIVE_VALUE",
+    "OK",
+    "OUTSIDE_DOMAIN",
+    "REASON_CODES",
+    "ArrayLike",
+    "BoolArray",
+    "EquationSpec",
+    "FloatArray",
+    "Prepared",
+    "as_float_array",
+    "bisect_log",
+    "call_formula",
+    "finish",
+    "invert_power_shape",
+    "prepare",
+    "reasons_for",
+    "run_kernel",
+]
+
 logger = logging.getLogger("kidneycohort.equations")
 
 FloatArray = npt.NDArray[np.float64]
@@ -357,7 +381,7 @@ def prepare(
         raise InputDataError(
             f"{spec.id}: inputs have different lengths {shapes}; pass arrays of one length (or scalars)"
         ) from None
-    arrays = dict(zip(names, broadcast[: len(names)], strict=True))
+    arrays: dict[str, Any] = dict(zip(names, broadcast[: len(names)], strict=True))
     masks = dict(zip(masks, broadcast[len(names) :], strict=True))
     shape = broadcast[0].shape if broadcast else ()
     out_masks = _value_masks(spec, arrays, shape)

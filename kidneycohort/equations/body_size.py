@@ -25,6 +25,17 @@ import numpy as np
 
 from kidneycohort.equations._core import ArrayLike, FloatArray, as_float_array, finish
 
+__all__ = [
+    "DUBOIS",
+    "MOSTELLER_DIVISOR",
+    "STANDARD_BSA_M2",
+    "DuBoisCoefficients",
+    "bsa_dubois",
+    "bsa_mosteller",
+    "deindex_egfr",
+    "index_gfr",
+]
+
 STANDARD_BSA_M2: Final = 1.73
 
 

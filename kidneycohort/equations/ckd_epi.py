@@ -40,6 +40,30 @@ from kidneycohort.equations._core import (
     call_formula,
 )
 
+__all__ = [
+    "CKD_EPI_2009_CR",
+    "CKD_EPI_2012_CRCYS",
+    "CKD_EPI_2012_CYS",
+    "CKD_EPI_2021_CR",
+    "CKD_EPI_2021_CRCYS",
+    "CRCYS_2012",
+    "CRCYS_2021",
+    "CR_2009",
+    "CR_2021",
+    "CYSTATIN_KNOT",
+    "CYS_2012",
+    "INDEXED",
+    "KAPPA_FEMALE",
+    "KAPPA_MALE",
+    "SPECS",
+    "CkdEpiCoefficients",
+    "ckd_epi_2009_cr",
+    "ckd_epi_2012_crcys",
+    "ckd_epi_2012_cys",
+    "ckd_epi_2021_cr",
+    "ckd_epi_2021_crcys",
+]
+
 INDEXED = "mL/min/1.73 m2"
 KAPPA_FEMALE: Final = 0.7  # creatinine knot, mg/dL
 KAPPA_MALE: Final = 0.9
@@ -119,12 +143,19 @@ def _two_slope(log_ratio: FloatArray, below: Any, above: Any) -> FloatArray:
     return log_ratio * np.where(log_ratio < 0, below, above)
 
 
+def _alpha(c: CkdEpiCoefficients, female: BoolArray) -> FloatArray:
+    """The creatinine exponent below the knot, by sex."""
+    if c.alpha_female is None or c.alpha_male is None:
+        raise TypeError("a CKD-EPI coefficient set without creatinine exponents")
+    return np.where(female, c.alpha_female, c.alpha_male)
+
+
 def _creatinine_term(
     c: CkdEpiCoefficients, creatinine_mg_dl: FloatArray, female: BoolArray
 ) -> FloatArray:
     kappa = np.where(female, KAPPA_FEMALE, KAPPA_MALE)
     log_ratio = np.log(creatinine_mg_dl / kappa)
-    return _two_slope(log_ratio, np.where(female, c.alpha_female, c.alpha_male), c.creatinine_above)
+    return _two_slope(log_ratio, _alpha(c, female), c.creatinine_above)
 
 
 def _cystatin_term(c: CkdEpiCoefficients, cystatin_c_mg_l: FloatArray) -> FloatArray:
@@ -146,7 +177,7 @@ def _demographic_terms(
 
 def _creatinine_shape(c: CkdEpiCoefficients, female: BoolArray) -> tuple[Any, Any, Any]:
     kappa = np.where(female, KAPPA_FEMALE, KAPPA_MALE)
-    return kappa, np.where(female, c.alpha_female, c.alpha_male), c.creatinine_above
+    return kappa, _alpha(c, female), c.creatinine_above
 
 
 # ---------------------------------------------------------------- creatinine 2021 (race-free)

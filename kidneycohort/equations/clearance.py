@@ -24,6 +24,8 @@ from kidneycohort.equations._core import (
     call_formula,
 )
 
+__all__ = ["AGE_OFFSET", "COCKCROFT_GAULT", "DIVISOR", "FEMALE_FACTOR", "SPECS", "cockcroft_gault"]
+
 AGE_OFFSET: Final = 140.0  # years: (AGE_OFFSET - age)
 DIVISOR: Final = 72.0
 FEMALE_FACTOR: Final = 0.85

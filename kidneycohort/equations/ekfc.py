@@ -36,6 +36,31 @@ from kidneycohort.equations._core import (
 )
 from kidneycohort.units import CREATININE_UMOL_PER_MG_DL
 
+__all__ = [
+    "ADULT_Q_FROM_AGE",
+    "ADULT_Q_UMOL_FEMALE",
+    "ADULT_Q_UMOL_MALE",
+    "AGE_FACTOR",
+    "AGE_TERM_FROM",
+    "CHILD_LOG_Q_FEMALE",
+    "CHILD_LOG_Q_MALE",
+    "CONSTANT",
+    "CYSTATIN_Q",
+    "CYSTATIN_Q_FLAT_UNTIL",
+    "CYSTATIN_Q_SLOPE",
+    "EKFC_CR",
+    "EKFC_CYS",
+    "EXPONENT_ABOVE",
+    "EXPONENT_BELOW",
+    "INDEXED",
+    "SPECS",
+    "LogQPolynomial",
+    "creatinine_q_mg_dl",
+    "cystatin_q_mg_l",
+    "ekfc_cr",
+    "ekfc_cys",
+]
+
 INDEXED = "mL/min/1.73 m2"
 CONSTANT: Final = 107.3
 EXPONENT_BELOW: Final = -0.322

@@ -31,6 +31,25 @@ from kidneycohort.equations._core import (
 )
 from kidneycohort.units import CREATININE_UMOL_PER_MG_DL
 
+__all__ = [
+    "BIS1_AGE_EXPONENT",
+    "BIS1_CONSTANT",
+    "BIS1_CR",
+    "BIS1_CREATININE_EXPONENT",
+    "BIS1_FEMALE_FACTOR",
+    "INDEXED",
+    "LMR_AGE_COEFFICIENT",
+    "LMR_CR",
+    "LMR_FEMALE",
+    "LMR_LOG_AGE_COEFFICIENT",
+    "LMR_LOG_SLOPE",
+    "LMR_MALE",
+    "SPECS",
+    "LundMalmoSex",
+    "bis1_cr",
+    "lmr_cr",
+]
+
 INDEXED = "mL/min/1.73 m2"
 
 BIS1_CONSTANT: Final = 3736.0

@@ -26,6 +26,18 @@ from kidneycohort.equations._core import (
     call_formula,
 )
 
+__all__ = [
+    "ADULT_Q_FEMALE",
+    "ADULT_Q_MALE",
+    "AGE_FACTOR",
+    "AGE_TERM_FROM",
+    "CONSTANT",
+    "FAS_CR",
+    "INDEXED",
+    "SPECS",
+    "fas_cr",
+]
+
 INDEXED = "mL/min/1.73 m2"
 CONSTANT: Final = 107.3
 AGE_FACTOR: Final = 0.988  # per year above AGE_TERM_FROM

@@ -32,6 +32,21 @@ from kidneycohort.equations._core import (
     call_formula,
 )
 
+__all__ = [
+    "AGE_EXPONENT",
+    "CREATININE_EXPONENT",
+    "FEMALE_FACTOR",
+    "IDMS",
+    "INDEXED",
+    "MDRD_175",
+    "MDRD_186",
+    "NON_IDMS",
+    "SPECS",
+    "MdrdVariant",
+    "mdrd_175",
+    "mdrd_186",
+]
+
 INDEXED = "mL/min/1.73 m2"
 CREATININE_EXPONENT: Final = -1.154
 AGE_EXPONENT: Final = -0.203

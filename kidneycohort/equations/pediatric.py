@@ -29,6 +29,26 @@ from kidneycohort.equations._core import (
     call_formula,
 )
 
+__all__ = [
+    "BEDSIDE_K",
+    "CKID_U25_CR",
+    "CKID_U25_CYS",
+    "INDEXED",
+    "SCHWARTZ_BEDSIDE",
+    "SPECS",
+    "U25_ADULT_FROM_AGE",
+    "U25_CREATININE_FEMALE",
+    "U25_CREATININE_MALE",
+    "U25_CYSTATIN_FEMALE",
+    "U25_CYSTATIN_MALE",
+    "U25Coefficient",
+    "ckid_u25_cr",
+    "ckid_u25_creatinine_k",
+    "ckid_u25_cys",
+    "ckid_u25_cystatin_k",
+    "schwartz_bedside",
+]
+
 INDEXED = "mL/min/1.73 m2"
 BEDSIDE_K: Final = 0.413  # with height in cm
 

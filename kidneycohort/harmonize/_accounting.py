@@ -10,7 +10,7 @@ from typing import Any, Final
 import polars as pl
 
 from kidneycohort import schemas
-from kidneycohort._frames import conform
+from kidneycohort._frames import FrameLike, conform
 from kidneycohort.errors import AccountingError
 from kidneycohort.harmonize._events import _clean_events
 from kidneycohort.harmonize._labs import (
@@ -29,13 +29,15 @@ from kidneycohort.harmonize._rows import (
 )
 from kidneycohort.harmonize._rule import REASON_CODES, HarmonizeResult, HarmonizeRule, resolve_rules
 
+__all__ = ["harmonize_tables"]
+
 logger = logging.getLogger(__name__)
 
 
 def _account(
     table: str, n_read: int, n_used: int, rejected: pl.DataFrame, merged: pl.DataFrame
 ) -> tuple[dict[str, Any], pl.DataFrame]:
-    row = {
+    row: dict[str, Any] = {
         "table": table,
         "rows_read": n_read,
         "rows_used": n_used,
@@ -71,9 +73,9 @@ _REJECTED_EMPTY: Final = pl.DataFrame(schema=schemas.REJECTED)
 
 
 def harmonize_tables(
-    labs: Any,
-    patients: Any,
-    events: Any | None = None,
+    labs: FrameLike,
+    patients: FrameLike,
+    events: FrameLike | None = None,
     rule: HarmonizeRule | None = None,
     **rule_fields: Any,
 ) -> HarmonizeResult:

@@ -8,6 +8,7 @@ import polars as pl
 
 from kidneycohort import schemas
 from kidneycohort._frames import conform, require_columns
+from kidneycohort.harmonize._plausible import implausible_date
 from kidneycohort.harmonize._rows import (
     Check,
     _assumption_counts,
@@ -26,6 +27,8 @@ from kidneycohort.io.maps import (
 )
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
 from kidneycohort.vocabulary import fold_code, fold_code_expr
+
+__all__ = ["_clean_events"]
 
 
 def _clean_events(
@@ -70,6 +73,7 @@ def _clean_events(
             for c in as_read
         ),
         (pl.col("event_date").is_null(), "missing_date", pl.lit("event_date is empty")),
+        implausible_date(pl.col("event_date").cast(pl.Date), "event_date", rule),
         (
             pl.col("event").is_null(),
             "unknown_event",

@@ -12,6 +12,7 @@ import polars as pl
 from kidneycohort import schemas, units
 from kidneycohort._frames import conform, require_columns
 from kidneycohort.errors import InputDataError
+from kidneycohort.harmonize._plausible import DAYS_PER_YEAR, implausible_date
 from kidneycohort.harmonize._rows import (
     Check,
     _cascade,
@@ -29,11 +30,16 @@ from kidneycohort.io.maps import (
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
 from kidneycohort.vocabulary import fold_code, fold_code_expr
 
+__all__ = ["_GOOD_COLUMNS", "_LAB_CONTENT", "_collapse_same_day", "_finish_labs", "_prepare_labs"]
+
 # A partial ISO 8601 date: year, or year and month (SDTM --DTC convention).
 _PARTIAL_DATE: Final = r"^\d{4}(?:-\d{2})?$"
 # A result reported as not done ("NOT DONE", "not done: haemolysed", ...).
 _NOT_DONE: Final = r"(?i)^not\s+done\b"
-_NUMBER: Final = r"[+-]?(?:\d+(?:[.,]\d*)?|[.,]\d+)(?:[eE][+-]?\d+)?"
+_NUMBER: Final = r"[+-]?(?:\d{1,3}(?:,\d{3})+(?:\.\d*)?|\d+(?:[.,]\d*)?|[.,]\d+)(?:[eE][+-]?\d+)?"
+# A comma followed by exactly three digits, in well-formed groups ("1,500", "12,000.5").
+_THOUSANDS: Final = r"^[+-]?\d{1,3}(?:,\d{3})+(?:\.\d*)?(?:[eE][+-]?\d+)?$"
+THOUSANDS_NOTE: Final = "',' read as a thousands separator (comma and three digits)"
 
 
 _RESULT_PATTERN: Final = (
@@ -42,24 +48,39 @@ _RESULT_PATTERN: Final = (
 )
 
 
-def _parse_result(text: pl.Expr, rule: HarmonizeRule) -> tuple[pl.Expr, pl.Expr]:
-    """(number, qualifier) of a reported result text; number null when not a result.
+def _parse_result(text: pl.Expr, rule: HarmonizeRule) -> tuple[pl.Expr, pl.Expr, pl.Expr]:
+    """(number, qualifier, note) of a reported result text; number null when not a
+    result, note set when a comma was read as a thousands separator.
 
     Explicit rule: an optional leading ``<``, ``<=``, ``≤`` (-> ``"<"``) or ``>``,
-    ``>=``, ``≥`` (-> ``">"``); one number, with a decimal comma read as a point when
-    ``rule.decimal_comma``; an optional trailing abnormal flag (``H``, ``L``, ``HH``,
-    ``LL``, ``A``, ``*``, ``!``, in brackets or not), which is dropped.
+    ``>=``, ``≥`` (-> ``">"``); one number; an optional trailing abnormal flag (``H``,
+    ``L``, ``HH``, ``LL``, ``A``, ``*``, ``!``, in brackets or not), which is dropped. A
+    comma is the decimal mark when ``rule.decimal_comma`` is true; otherwise a comma
+    followed by exactly three digits (well-formed groups, no other separator) is a
+    thousands separator, and any other single comma is a decimal comma only when the
+    source states no decimal mark (``decimal_comma`` null).
     """
     groups = text.str.extract_groups(_RESULT_PATTERN)
     number_text = groups.struct.field("num")
+    has_comma = number_text.str.contains(",", literal=True)
+    has_point = number_text.str.contains(".", literal=True)
+    thousands = number_text.str.contains(_THOUSANDS)
     if rule.decimal_comma:
-        comma_ok = ~(
-            number_text.str.contains(",", literal=True)
-            & number_text.str.contains(".", literal=True)
+        number_text = pl.when(~(has_comma & has_point)).then(
+            number_text.str.replace(",", ".", literal=True)
         )
-        number_text = pl.when(comma_ok).then(number_text.str.replace(",", ".", literal=True))
+        note = pl.lit(None, pl.String)
     else:
-        number_text = pl.when(~number_text.str.contains(",", literal=True)).then(number_text)
+        decimal = pl.lit(rule.decimal_comma is None) & has_comma & ~has_point
+        number_text = (
+            pl.when(thousands)
+            .then(number_text.str.replace_all(",", "", literal=True))
+            .when(decimal)
+            .then(number_text.str.replace(",", ".", literal=True))
+            .when(~has_comma)
+            .then(number_text)
+        )
+        note = pl.when(thousands).then(pl.lit(THOUSANDS_NOTE))
     number = number_text.cast(pl.Float64, strict=False)
     q = groups.struct.field("q")
     qualifier = (
@@ -68,7 +89,7 @@ def _parse_result(text: pl.Expr, rule: HarmonizeRule) -> tuple[pl.Expr, pl.Expr]
         .when(q.is_in([">", ">=", "≥"]))
         .then(pl.lit(">"))
     )
-    return number, qualifier
+    return number, qualifier, note
 
 
 def _prepare_labs(
@@ -107,7 +128,7 @@ def _prepare_labs(
         ),
     )
     value_text = _text("value")
-    number, parsed_qualifier = _parse_result(pl.col("_value_text"), rule)
+    number, parsed_qualifier, comma_note = _parse_result(pl.col("_value_text"), rule)
     factors = units.unit_factor_table()
     factor_map = dict(
         zip(
@@ -181,6 +202,7 @@ def _prepare_labs(
             number.alias("_number"),
             parsed_qualifier.alias("_parsed_qualifier"),
             pl.col("_value_text").str.contains(_NOT_DONE).alias("_not_done"),
+            comma_note.alias("_comma_note"),
         )
     )
     code_lookup = (
@@ -201,6 +223,9 @@ def _prepare_labs(
         )
         .with_columns(
             pl.coalesce("_parsed_qualifier", "_qualifier_in").alias("_qualifier"),
+            pl.concat_str(["assumption", "_comma_note"], separator="; ", ignore_nulls=True)
+            .replace("", None)
+            .alias("assumption"),
             (pl.col("_number") * pl.col("_factor")).alias("_standard"),
             pl.col("_when").dt.date().alias("_day"),
         )
@@ -220,6 +245,7 @@ def _prepare_labs(
             pl.format("sample_date '{}' does not parse", pl.col("_date_as_read")),
         ),
         (pl.col("_when").is_null(), "missing_date", pl.lit("sample_date is empty")),
+        implausible_date(pl.col("_day"), "sample_date", rule),
         (
             pl.col("_analyte").is_null(),
             "unknown_analyte",
@@ -283,6 +309,16 @@ def _prepare_labs(
             pl.format(
                 "sample {} before birth {}",
                 _date_text(pl.col("_day")),
+                _date_text(pl.col("birth_date")),
+            ),
+        ),
+        (
+            (pl.col("_day") - pl.col("birth_date")).dt.total_days() / DAYS_PER_YEAR
+            > rule.max_age_years,
+            "implausible_age",
+            pl.format(
+                "age at sample over {} years (born {})",
+                pl.lit(rule.max_age_years),
                 _date_text(pl.col("birth_date")),
             ),
         ),

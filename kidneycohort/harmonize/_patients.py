@@ -8,6 +8,7 @@ import polars as pl
 
 from kidneycohort import schemas
 from kidneycohort._frames import conform, require_columns
+from kidneycohort.harmonize._plausible import body_size, patient_checks
 from kidneycohort.harmonize._rows import (
     Check,
     _cascade,
@@ -22,6 +23,8 @@ from kidneycohort.harmonize._rows import (
 from kidneycohort.harmonize._rule import HarmonizeRule
 from kidneycohort.io.readers import AS_READ_SUFFIX, parse_date_columns
 from kidneycohort.vocabulary import fold_code_expr, sex_expr, unknown_sex_error
+
+__all__ = ["_clean_patients", "_finish_patients"]
 
 _PATIENT_DATES: Final = {c: t for c, t in schemas.PATIENTS.items() if t.is_temporal()}
 
@@ -93,7 +96,7 @@ def _clean_patients(
     frame = frame.with_columns(
         pl.when(pl.col("_note") != "").then(pl.col("_note")).alias("assumption")
     ).drop("_note")
-    data = _in_source_order(frame.collect())
+    data = _plausible_body_size(_in_source_order(frame.collect()), rule)
     n_read = data.height
 
     bookkeeping = {"_rid", "source", "source_row", "assumption"}
@@ -141,8 +144,8 @@ def _clean_patients(
                 ),
             )
         )
-    data = data.with_columns(_cascade(checks))
-    rejected = _rejected_rows(data, "patients", checks)
+    data = data.with_columns(_cascade(checks + patient_checks(data.columns, rule)))
+    rejected = _rejected_rows(data, "patients", checks + patient_checks(data.columns, rule))
     used = data.filter(pl.col("_reason").is_null())
     lookup_cols = [c for c in ("birth_date", "death_date") if c in data.columns]
     status = (
@@ -157,6 +160,15 @@ def _clean_patients(
         if c not in status.columns:
             status = status.with_columns(pl.lit(None, pl.Date).alias(c))
     return used, status, rejected, merged, n_read
+
+
+def _plausible_body_size(data: pl.DataFrame, rule: HarmonizeRule) -> pl.DataFrame:
+    """An implausible height or weight set missing, the reason added to ``assumption``."""
+    exprs, notes = body_size(data.columns, rule)
+    if not exprs:
+        return data
+    note = pl.concat_str([pl.col("assumption"), *notes], separator="; ", ignore_nulls=True)
+    return data.with_columns(pl.when(note != "").then(note).alias("assumption")).with_columns(exprs)
 
 
 def _finish_patients(used: pl.DataFrame) -> pl.DataFrame:

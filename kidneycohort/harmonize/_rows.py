@@ -11,17 +11,29 @@ import polars as pl
 
 from kidneycohort.errors import InputDataError
 
+__all__ = [
+    "Check",
+    "_assumption_counts",
+    "_cascade",
+    "_date_text",
+    "_exact_duplicates",
+    "_in_source_order",
+    "_lazy",
+    "_merged_rows",
+    "_rejected_rows",
+    "_text",
+    "_with_row_identity",
+]
+
 
 def _lazy(data: Any, name: str) -> pl.LazyFrame:
     if isinstance(data, pl.LazyFrame):
         return data
     if isinstance(data, pl.DataFrame):
         return data.lazy()
-    try:
-        import pandas as pd
-    except ImportError:  # pragma: no cover - pandas is a dependency
-        pd = None
-    if pd is not None and isinstance(data, pd.DataFrame):
+    import pandas as pd
+
+    if isinstance(data, pd.DataFrame):
         return pl.from_pandas(data).lazy()
     raise InputDataError(
         f"{name}: expected a polars or pandas DataFrame, got {type(data).__name__}"

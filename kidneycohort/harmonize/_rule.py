@@ -12,6 +12,16 @@ from pydantic import Field
 from kidneycohort import _rules, units
 from kidneycohort._rules import RuleModel
 
+__all__ = [
+    "DEFAULT_PLAUSIBLE_RANGES",
+    "MERGE_REASONS",
+    "REASON_CODES",
+    "HarmonizeResult",
+    "HarmonizeRule",
+    "PlausibleRange",
+    "resolve_rules",
+]
+
 REASON_CODES: Final[dict[str, str]] = {
     # rejected (any table)
     "missing_patient_id": "the row has no patient identifier",
@@ -24,6 +34,10 @@ REASON_CODES: Final[dict[str, str]] = {
     "before_birth": "the date is before the patient's birth date",
     "after_death": "the date is after the patient's death date",
     "after_data_cut": "the date is after the data-cut date of the rules",
+    "implausible_date": "the date is before the earliest plausible date (1900-01-01 by "
+    "default) or after today",
+    "implausible_age": "the patient's age (at the sample, or at index) is below 0 or over "
+    "the oldest plausible age (110 years by default)",
     # rejected (labs)
     "unknown_analyte": "the analyte name or LOINC code is not creatinine, cystatin C or "
     "UACR and is not in the analyte map",
@@ -90,10 +104,14 @@ class HarmonizeRule(RuleModel):
         description="Results reported as '<x' or '>x': 'keep' uses x and sets the "
         "qualifier column; 'reject' rejects them with reason qualified_value.",
     )
-    decimal_comma: bool = Field(
-        default=True,
-        description="Read '0,9' as 0.9 (a single comma and no point). When false such "
-        "text is not_a_result.",
+    decimal_comma: bool | None = Field(
+        default=None,
+        description="The decimal mark of the source, when it states one. true: a comma is "
+        "the decimal mark ('1,500' is 1.5). false: a point is ('1,500' is 1500, '0,9' is "
+        "not_a_result). null (not stated): a comma followed by exactly three digits, in "
+        "well-formed groups and with no other separator ('1,500', '12,000.5'), is a "
+        "thousands separator, any other single comma a decimal comma ('0,9' is 0.9); "
+        "each thousands reading is recorded as an assumption and counted.",
     )
     plausible_ranges: dict[str, PlausibleRange] = Field(
         default_factory=lambda: dict(DEFAULT_PLAUSIBLE_RANGES),
@@ -107,6 +125,29 @@ class HarmonizeRule(RuleModel):
     )
     data_cut_date: dt.date | None = Field(
         default=None, description="Rows dated after this day are rejected (after_data_cut)."
+    )
+    earliest_date: dt.date = Field(
+        default=dt.date(1900, 1, 1),
+        description="Dates before this day, or after today, are implausible: a lab row is "
+        "rejected (implausible_date), a patient row too when it is a birth, index or death "
+        "date.",
+    )
+    max_age_years: float = Field(
+        default=110.0,
+        gt=0,
+        description="Oldest plausible age (years): a lab row of a patient older at the "
+        "sample, or a patient whose age at index is outside 0 to this, is rejected "
+        "(implausible_age).",
+    )
+    plausible_height_cm: tuple[float, float] = Field(
+        default=(40.0, 250.0),
+        description="Plausible height range (cm); a height outside is set missing with a "
+        "recorded reason (the patient is kept).",
+    )
+    plausible_weight_kg: tuple[float, float] = Field(
+        default=(1.0, 350.0),
+        description="Plausible weight range (kg); a weight outside is set missing with a "
+        "recorded reason (the patient is kept).",
     )
     date_format: str | None = Field(
         default=None,
@@ -167,3 +208,25 @@ class HarmonizeResult:
     patients: pl.DataFrame
     events: pl.DataFrame | None
     rule: HarmonizeRule = field(default_factory=HarmonizeRule)
+
+    def unusable(self, tables: tuple[str, ...] = ("labs", "patients")) -> list[str]:
+        """One line per table of ``tables`` that has no usable row: the table, the rows
+        read and the top rejection reasons (or that it has no data rows at all)."""
+        lines = []
+        for row in self.accounting.iter_rows(named=True):
+            if row["table"] not in tables or row["rows_used"] > 0:
+                continue
+            if row["rows_read"] == 0:
+                lines.append(f"{row['table']}: no data rows (a header only); nothing to analyse")
+                continue
+            top = (
+                self.accounting_by_reason.filter(pl.col("table") == row["table"])
+                .sort(["rows", "reason"], descending=[True, False])
+                .head(3)
+            )
+            reasons = ", ".join(f"{r} {n}" for r, n in zip(top["reason"], top["rows"], strict=True))
+            lines.append(
+                f"{row['table']}: all {row['rows_read']} rows read were rejected "
+                f"(top reasons: {reasons}); nothing to analyse"
+            )
+        return lines

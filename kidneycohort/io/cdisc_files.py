@@ -28,6 +28,17 @@ import polars as pl
 
 from kidneycohort.errors import InputDataError
 
+__all__ = [
+    "DATASET_JSON_VERSION",
+    "VariableLike",
+    "dataset_json_columns",
+    "read_dataset_json",
+    "read_xpt",
+    "sas_date",
+    "write_dataset_json",
+    "write_xpt",
+]
+
 DATASET_JSON_VERSION: Final = "1.1.0"
 _SAS_EPOCH: Final = dt.date(1960, 1, 1)
 _CHUNK: Final = 20_000
@@ -36,9 +47,13 @@ _CHUNK: Final = 20_000
 class VariableLike(Protocol):
     """What the writers need to know of a variable."""
 
-    name: str
-    label: str
-    kind: str  # "text", "integer", "float" or "date"
+    @property
+    def name(self) -> str: ...
+    @property
+    def label(self) -> str: ...
+    @property
+    def kind(self) -> str:  # "text", "integer", "float" or "date"
+        ...
 
 
 def write_xpt(

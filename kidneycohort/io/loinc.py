@@ -23,6 +23,8 @@ from typing import Final, NamedTuple
 
 import polars as pl
 
+__all__ = ["LOINC_CODES", "LOINC_TO_ANALYTE", "LoincEntry", "loinc_table"]
+
 
 class LoincEntry(NamedTuple):
     """One LOINC code known to kidneycohort."""

@@ -10,6 +10,7 @@ study adds its own codes in :class:`FileSource.values` or in the harmonise rules
 
 from __future__ import annotations
 
+import codecs
 from pathlib import Path
 from typing import Final, Literal
 
@@ -17,6 +18,14 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from kidneycohort.errors import ConfigError
 from kidneycohort.vocabulary import SEX_CODES
+
+__all__ = [
+    "DEFAULT_ANALYTE_NAMES",
+    "DEFAULT_EVENT_CODES",
+    "DEFAULT_SEX_CODES",
+    "FileSource",
+    "TableKind",
+]
 
 TableKind = Literal["labs", "patients", "events"]
 
@@ -133,6 +142,31 @@ class FileSource(BaseModel):
     def _one_char(cls, value: str) -> str:
         if len(value) != 1:
             raise ValueError(f"delimiter must be one character, got {value!r}")
+        return value
+
+    @field_validator("encoding")
+    @classmethod
+    def _known_encoding(cls, value: str) -> str:
+        try:
+            codecs.lookup(value)
+        except LookupError:
+            raise ValueError(
+                f"unknown encoding {value!r}; use a Python codec name such as 'utf-8', "
+                "'latin-1' or 'cp1252'"
+            ) from None
+        return value
+
+    @field_validator("columns")
+    @classmethod
+    def _one_source_per_name(cls, value: dict[str, str]) -> dict[str, str]:
+        seen: dict[str, str] = {}
+        for source, target in value.items():
+            if target in seen:
+                raise ValueError(
+                    f"source columns '{seen[target]}' and '{source}' both map to "
+                    f"'{target}'; map one of them"
+                )
+            seen[target] = source
         return value
 
     def resolved_format(self) -> str:

@@ -29,7 +29,26 @@ import polars as pl
 
 from kidneycohort import schemas
 from kidneycohort.errors import InputDataError, did_you_mean
+from kidneycohort.io._csv_shape import check_csv_shape, delimiter_hint
+from kidneycohort.io._csv_shape import utf8_error_line as utf8_error_line
 from kidneycohort.io.maps import FileSource, TableKind
+
+__all__ = [
+    "AS_READ_SUFFIX",
+    "CANDIDATE_DATE_FORMATS",
+    "ISO",
+    "REQUIRED",
+    "SCHEMAS",
+    "infer_date_format",
+    "parse_date_columns",
+    "read_events",
+    "read_labs",
+    "read_many",
+    "read_patients",
+    "read_source",
+    "scan_source",
+    "suggest_column",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -201,6 +220,7 @@ def _scan_csv(spec: FileSource, path: Path, name: str) -> pl.LazyFrame:
     encoding = codecs.lookup(spec.encoding).name
     if encoding in ("utf-8", "utf-8-sig"):
         _check_utf8_head(path, name)
+        check_csv_shape(path, spec.delimiter, name)
         return pl.scan_csv(path, **options)
     try:
         text = path.read_bytes().decode(spec.encoding)
@@ -209,7 +229,9 @@ def _scan_csv(spec: FileSource, path: Path, name: str) -> pl.LazyFrame:
             f"{name}: not readable as {spec.encoding} (byte {exc.start}); check encoding"
         ) from None
     logger.info("%s: decoded from %s in memory", name, spec.encoding)
-    return pl.scan_csv(text.encode("utf-8"), **options)
+    data = text.encode("utf-8")
+    check_csv_shape(data, spec.delimiter, name)
+    return pl.scan_csv(data, **options)
 
 
 def _read_duckdb(spec: FileSource, path: Path, name: str) -> pl.LazyFrame:
@@ -319,9 +341,18 @@ def _mapped_columns(frame: pl.LazyFrame, spec: FileSource, kind: str, name: str)
         if source_column not in have:
             raise InputDataError(
                 f"{name}: column map names '{source_column}', not in the file"
-                f"{suggest_column(source_column, have)}"
+                f"{suggest_column(source_column, have)}; the file's columns: "
+                f"{_listed(have)}{delimiter_hint(have, spec.delimiter)}"
             )
-    have = [spec.columns.get(c, c) for c in have]
+    renamed = [spec.columns.get(c, c) for c in have]
+    for column in set(renamed):
+        if renamed.count(column) > 1:
+            sources = [c for c in have if spec.columns.get(c, c) == column]
+            raise InputDataError(
+                f"{name}: columns {' and '.join(repr(c) for c in sources)} would both be "
+                f"'{column}' after the column map; map or rename one of them"
+            )
+    have = renamed
     for column in REQUIRED[kind]:
         if column not in have and column not in spec.defaults:
             raise InputDataError(
@@ -329,6 +360,11 @@ def _mapped_columns(frame: pl.LazyFrame, spec: FileSource, kind: str, name: str)
                 f"{suggest_column(column, have)}; map it in columns"
             )
     return have
+
+
+def _listed(names: list[str], limit: int = 12) -> str:
+    shown = ", ".join(names[:limit])
+    return shown + (f" (+{len(names) - limit} more)" if len(names) > limit else "")
 
 
 def _defaults(spec: FileSource, have: list[str]) -> list[pl.Expr]:

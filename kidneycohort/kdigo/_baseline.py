@@ -21,6 +21,14 @@ from kidneycohort.kdigo._categories import (
 )
 from kidneycohort.schemas import BASELINE_CATEGORIES
 
+__all__ = [
+    "BASELINE_CATEGORIES",
+    "BASELINE_CATEGORY_REASONS",
+    "KdigoGridRule",
+    "baseline_categories",
+    "kdigo_grid_counts",
+]
+
 
 class KdigoGridRule(RuleModel):
     """The KDIGO grid at baseline (config key ``kdigo_grid``).
@@ -197,7 +205,7 @@ def baseline_categories(
         equation=pl.lit(equation, dtype=pl.String),
         risk=kdigo_risk_expr("g_category", "a_category"),
     )
-    return out.select(list(BASELINE_CATEGORIES)).cast(BASELINE_CATEGORIES)
+    return out.select(list(BASELINE_CATEGORIES)).cast(pl.Schema(BASELINE_CATEGORIES))
 
 
 @follows_input

@@ -4,7 +4,7 @@ Figure 2); the thresholds apply to unrounded values (see the package docstring).
 
 from __future__ import annotations
 
-from typing import Final
+from typing import TYPE_CHECKING, Final
 
 import numpy as np
 import numpy.typing as npt
@@ -12,6 +12,27 @@ import polars as pl
 
 from kidneycohort.errors import UnknownUnitError, did_you_mean
 from kidneycohort.units import normalize_unit
+
+if TYPE_CHECKING:
+    from polars.expr.whenthen import ChainedThen, Then
+
+__all__ = [
+    "A_CATEGORIES",
+    "A_UPPER_BOUNDS",
+    "G_CATEGORIES",
+    "G_LOWER_BOUNDS",
+    "RISK_GRID",
+    "RISK_LEVELS",
+    "_RANK",
+    "_code",
+    "_reported_in_mmol",
+    "albuminuria_category",
+    "albuminuria_category_expr",
+    "gfr_category",
+    "gfr_category_expr",
+    "kdigo_risk_expr",
+    "risk_grid",
+]
 
 G_CATEGORIES: Final = ("G1", "G2", "G3a", "G3b", "G4", "G5")
 
@@ -99,7 +120,7 @@ def gfr_category_expr(egfr: pl.Expr | str) -> pl.Expr:
     G3a.
     """
     x = _as_expr(egfr).cast(pl.Float64).fill_nan(None).round(_NOISE_DECIMALS)
-    out = pl.when(x.is_null() | (x < 0)).then(pl.lit(None, dtype=pl.String))
+    out: Then | ChainedThen = pl.when(x.is_null() | (x < 0)).then(pl.lit(None, dtype=pl.String))
     for category in G_CATEGORIES:
         out = out.when(x >= G_LOWER_BOUNDS[category]).then(pl.lit(category))
     return out.otherwise(pl.lit(None, dtype=pl.String))

@@ -12,6 +12,8 @@ from kidneycohort.kdigo._categories import _RANK, gfr_category_expr
 from kidneycohort.kdigo._sustained import _KEYS, SustainRule, _confirm, _gfr_results, _results
 from kidneycohort.value_filter import ValueFilterRule
 
+__all__ = ["ckd_status", "kdigo_progression"]
+
 
 # ---- CKD and progression -------------------------------------------------------------------
 @follows_input

@@ -10,7 +10,7 @@ import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, conform, follows_input
+from kidneycohort._frames import FrameLike, as_int, conform, follows_input
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import InputDataError
 from kidneycohort.kdigo._categories import (
@@ -23,6 +23,17 @@ from kidneycohort.schemas import STAGES
 from kidneycohort.uacr import uacr_timeline
 from kidneycohort.units import UACR_MG_G_PER_MG_MMOL
 from kidneycohort.value_filter import ValueFilterRule, apply_value_filter, usable_egfr
+
+__all__ = [
+    "STAGES",
+    "_KEYS",
+    "SustainRule",
+    "_confirm",
+    "_gfr_results",
+    "_results",
+    "category_results",
+    "sustained_stages",
+]
 
 _KEYS: Final = ["patient_id", "_eq", "axis"]
 
@@ -260,8 +271,8 @@ def _confirm(
     # the first candidate at or after the target time of the same sequence: with the
     # sequence and the time packed into one sorted integer the as-of join needs no
     # grouping, and a match in a later sequence is discarded below
-    span = _bits(int(df["_t"].max() or 0) + after + 1)
-    if _bits(int(df["_gid"].max() or 0)) + span <= _PACKED_KEY_BITS:
+    span = _bits(as_int(df["_t"].max() or 0, "last sample time") + after + 1)
+    if _bits(as_int(df["_gid"].max() or 0, "last sequence number")) + span <= _PACKED_KEY_BITS:
         scale = 1 << span
         joined = left.with_columns(
             _key=(pl.col("_gid") * scale + pl.col("_target")).set_sorted()

@@ -11,6 +11,8 @@ from kidneycohort._frames import FrameLike, conform, follows_input, require_colu
 from kidneycohort.kdigo._categories import _RANK, A_CATEGORIES, G_CATEGORIES
 from kidneycohort.kdigo._sustained import _KEYS
 
+__all__ = ["time_to_first_worsening", "transition_matrix", "transitions"]
+
 
 def _in_sequence_order(df: pl.DataFrame, columns: list[str]) -> bool:
     """True when ``df`` is already sorted by ``columns`` (no missing keys)."""

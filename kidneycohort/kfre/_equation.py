@@ -14,6 +14,18 @@ import polars as pl
 from kidneycohort._frames import FrameLike, follows_input, require_columns, to_polars
 from kidneycohort.errors import ConfigError, did_you_mean
 
+__all__ = [
+    "BASELINE_SURVIVAL",
+    "CENTRES",
+    "COEFFICIENTS",
+    "EGFR_BELOW",
+    "KFRE_REASONS",
+    "MIN_AGE_YEARS",
+    "Region",
+    "add_kfre_risk",
+    "kfre_risk",
+]
+
 logger = logging.getLogger(__name__)
 
 

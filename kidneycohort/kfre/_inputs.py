@@ -16,6 +16,8 @@ from kidneycohort.schemas import DAYS_PER_YEAR
 from kidneycohort.uacr import uacr_timeline
 from kidneycohort.value_filter import ValueFilterRule, usable_egfr
 
+__all__ = ["KFRE_SUMMARY_REASONS", "ON_KFRT", "kfre_at_baseline", "kfre_inputs"]
+
 
 @follows_input
 def kfre_inputs(

@@ -13,6 +13,8 @@ from kidneycohort.kfre._inputs import KFRE_SUMMARY_REASONS
 from kidneycohort.kfre._rule import KfreRule
 from kidneycohort.tables import TableRule, suppression_label
 
+__all__ = ["kfre_summary_table"]
+
 _DASH: Final = "–"
 
 
@@ -52,6 +54,19 @@ def _protect(
     display = protect_part(ledger, disclosure, "kfre_summary")
     hidden = [not display(key(row, column)).isdigit() for row, column, _, _ in cells]
     return counts.with_columns(pl.Series("_hidden", hidden, dtype=pl.Boolean))
+
+
+def _denominator_hidden(long: pl.DataFrame) -> pl.Expr:
+    """Whether a row's percentage is of a hidden denominator (it would give it away:
+    count / share)."""
+    hidden_of = long.filter(pl.col("_hidden")).select("_column", "_row")
+    return (
+        pl.when(pl.col("_kind") == "of_n")
+        .then(pl.col("_column").is_in(hidden_of.filter(pl.col("_row") == "n")["_column"]))
+        .when(pl.col("_kind") == "of_applicable")
+        .then(pl.col("_column").is_in(hidden_of.filter(pl.col("_row") == "applicable")["_column"]))
+        .otherwise(pl.lit(False))
+    )
 
 
 CountRow = tuple[str, str, str, str, pl.Expr, str | None, str]
@@ -214,6 +229,7 @@ def kfre_summary_table(
     pct = (100.0 * pl.col("_count") / denominator).round(spec.decimals)
     pct_text = pl.format(" ({}%)", pct.cast(pl.String))
     small_n = (pl.col("_count") >= 1) & (pl.col("_count") <= thr)
+    denominator_hidden = _denominator_hidden(long)
     text = (
         pl.when(pl.col("_hidden") & small_n)
         .then(pl.lit(small))
@@ -221,7 +237,7 @@ def kfre_summary_table(
         .then(pl.lit("*"))
         .when(pl.col("_kind") == "")
         .then(pl.col("_count").cast(pl.String))
-        .when(denominator.is_null() | (denominator == 0))
+        .when(denominator.is_null() | (denominator == 0) | denominator_hidden)
         .then(pl.col("_count").cast(pl.String))
         .otherwise(pl.concat_str([pl.col("_count").cast(pl.String), pct_text]))
     )

@@ -21,6 +21,18 @@ from kidneycohort.errors import ConfigError, did_you_mean
 from kidneycohort.pipeline.config import builtin_config_dir, load_config
 from kidneycohort.pipeline.runner import ProgressObserver, RunResult, run_pipeline
 
+__all__ = [
+    "DEMOS",
+    "DEMO_CONFIG",
+    "DEMO_PATIENTS",
+    "DEMO_SCENARIO",
+    "DemoSpec",
+    "DemoStudy",
+    "demo_config_path",
+    "demo_scenario_path",
+    "run_demo",
+]
+
 logger = logging.getLogger(__name__)
 
 DemoStudy = Literal["trial", "cohort"]

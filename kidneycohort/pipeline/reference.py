@@ -27,6 +27,8 @@ from kidneycohort.pipeline.config._keys import _models_in
 from kidneycohort.pipeline.config._sections import STUDY_FACTS
 from kidneycohort.pipeline.registry import StepRegistry, default_registry
 
+__all__ = ["config_reference", "main", "model_table"]
+
 
 def _type_name(annotation: Any) -> str:
     origin = typing.get_origin(annotation)

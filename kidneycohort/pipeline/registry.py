@@ -19,6 +19,8 @@ from pydantic import BaseModel
 from kidneycohort.errors import ConfigError, did_you_mean
 from kidneycohort.run_folder import FILES, RunFile, RunFolder
 
+__all__ = ["Step", "StepContext", "StepFunction", "StepRegistry", "default_registry"]
+
 logger = logging.getLogger(__name__)
 
 

@@ -8,7 +8,13 @@ so it can never be mistaken for a finished run.
 
 from __future__ import annotations
 
+import errno
 import logging
+import os
+import re
+import shutil
+import signal
+import threading
 import time
 import uuid
 import warnings
@@ -20,7 +26,7 @@ from typing import Any, Protocol
 
 import polars as pl
 
-from kidneycohort.errors import KidneyCohortError
+from kidneycohort.errors import ConfigError, KidneyCohortError
 from kidneycohort.pipeline import placement
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.registry import Step, StepContext
@@ -42,6 +48,8 @@ from kidneycohort.run_folder import (
     write_workbook,
 )
 from kidneycohort.run_folder._manifest import own_version, utc_now_text
+
+__all__ = ["GROUPED_FILES", "ProgressObserver", "RunResult", "run_files", "run_pipeline"]
 
 logger = logging.getLogger("kidneycohort.pipeline")
 
@@ -147,7 +155,7 @@ class _RunState:
             run_id=self.run_id,
             config=config.resolved(),
             overrides=list(config.overrides),
-            inputs=self.inputs,  # type: ignore[arg-type]
+            inputs=self.inputs,
             packages=package_versions(),
             seed=config.study.seed,
             accounting=[AccountingRecord.model_validate(a) for a in self.accounting],
@@ -160,13 +168,22 @@ class _RunState:
 
 
 @contextmanager
-def _run_log(run_dir: Path) -> Iterator[None]:
-    """Log the package at INFO (or lower) into ``run_dir/run.log`` while the run lasts."""
+def _run_log(run_dir: Path, *, file_only: bool = False) -> Iterator[None]:
+    """Log the package at INFO (or lower) into ``run_dir/run.log`` while the run lasts.
+
+    ``file_only`` sends the records to the log file alone (not to the terminal's
+    handlers): a failure's traceback belongs in ``run.log``.
+    """
     handler = logging.FileHandler(run_dir / "run.log", encoding="utf-8")
     handler.setFormatter(logging.Formatter(_LOG_FORMAT))
     handler.setLevel(logging.DEBUG)
     package_logger = logging.getLogger("kidneycohort")
-    old_level = package_logger.level
+    old_level, old_propagate = package_logger.level, package_logger.propagate
+    old_handlers = list(package_logger.handlers)
+    if file_only:
+        for other in old_handlers:
+            package_logger.removeHandler(other)
+        package_logger.propagate = False
     package_logger.addHandler(handler)
     if package_logger.getEffectiveLevel() > logging.INFO:
         package_logger.setLevel(logging.INFO)
@@ -176,6 +193,10 @@ def _run_log(run_dir: Path) -> Iterator[None]:
         handler.close()
         package_logger.removeHandler(handler)
         package_logger.setLevel(old_level)
+        if file_only:
+            for other in old_handlers:
+                package_logger.addHandler(other)
+            package_logger.propagate = old_propagate
 
 
 def run_pipeline(
@@ -217,10 +238,12 @@ def run_pipeline(
     target = Path(out_dir) if out_dir is not None else Path(config.output.dir or "run")
     target = target.resolve()
     progress = progress or _Silent()
-    tmp = placement.prepare(target, force)
+    tmp = placement.prepare(target, force, protected_paths(config))
     state = _RunState(config)
     try:
-        with _run_log(tmp):
+        with _run_log(tmp), _sigterm_as_interrupt():
+            for stale in placement.remove_stale(target):
+                logger.info("removed the unfinished folder of a run that died: %s", stale)
             _execute(state, tmp, progress, reader or read_sources)
             final = state.manifest()
             warning_lines = list(final.warnings)
@@ -232,9 +255,16 @@ def run_pipeline(
             write_manifest(tmp, final)
             logger.info("run complete: %s", target)
     except BaseException as exc:
+        if _is_disk_error(exc, target):
+            _discard(tmp, target, progress)
+            raise _disk_error(target, exc) from None
         _fail(tmp, target, exc, progress)
         raise
-    placement.commit(tmp, target)
+    try:
+        placement.commit(tmp, target)
+    except OSError as exc:
+        _discard(tmp, target, progress)
+        raise _disk_error(target, exc) from None
     # an OMOP source may take the finished run's outputs back (results_schema)
     write_results_after_run(config.data.source, target)
     progress.finish(True)
@@ -242,15 +272,96 @@ def run_pipeline(
 
 
 def _fail(tmp: Path, target: Path, exc: BaseException, progress: ProgressObserver) -> None:
-    """Keep the failed run's log and error beside the target; never a manifest."""
-    with _run_log(tmp):
-        logger.error("run failed: %s: %s", type(exc).__name__, exc, exc_info=exc)
-    (tmp / "error.txt").write_text(f"{type(exc).__name__}: {exc}\n", encoding="utf-8")
-    (tmp / "manifest.json").unlink(missing_ok=True)
-    failed = placement.abandon(tmp, target)
+    """Keep the failed run's log and error beside the target; never a manifest.
+
+    The traceback goes to ``run.log`` only (the terminal gets one line from the CLI).
+    When the log or error file cannot be written (a full disk), the temporary folder is
+    removed whole: nothing half-written stays behind.
+    """
     progress.finish(False)
+    try:
+        (tmp / "manifest.json").unlink(missing_ok=True)
+        with _run_log(tmp, file_only=True):
+            logger.error("run failed: %s: %s", type(exc).__name__, exc, exc_info=exc)
+        (tmp / "error.txt").write_text(f"{type(exc).__name__}: {exc}\n", encoding="utf-8")
+        failed = placement.abandon(tmp, target)
+    except OSError:
+        shutil.rmtree(tmp, ignore_errors=True)
+        placement.release(target)
+        return
     if isinstance(exc, Exception):
         exc.log_path = str(failed / "run.log")  # type: ignore[attr-defined]
+
+
+def _discard(tmp: Path, target: Path, progress: ProgressObserver) -> None:
+    """Remove a run's temporary folder whole (the disk is full or not writable)."""
+    progress.finish(False)
+    shutil.rmtree(tmp, ignore_errors=True)
+    placement.release(target)
+
+
+def _is_disk_error(exc: BaseException, target: Path) -> bool:
+    """A full or read-only disk, or a folder we may not write to, under the target's
+    parent (an unreadable input is not one)."""
+    if not isinstance(exc, OSError | pl.exceptions.PolarsError):
+        return False
+    code = getattr(exc, "errno", None)
+    found = _OS_ERROR.search(str(exc))  # polars and pyarrow say "(os error 28)"
+    if found and code is None:
+        code = int(found.group(1))
+    if code in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
+        return True
+    if not isinstance(exc, OSError):
+        return False
+    name = str(exc.filename or "")
+    return exc.errno in (errno.EACCES, errno.EPERM) and name.startswith(str(target.parent))
+
+
+_OS_ERROR = re.compile(r"\(os error (\d+)\)")
+
+
+def _disk_error(target: Path, exc: BaseException) -> KidneyCohortError:
+    code = getattr(exc, "errno", None)
+    found = _OS_ERROR.search(str(exc))
+    if found and code is None:
+        code = int(found.group(1))
+    reason = "no space left on the device" if code == errno.ENOSPC else os.strerror(code or 0)
+    filename = getattr(exc, "filename", None)
+    where = f" ({filename})" if filename else ""
+    return ConfigError(
+        f"output.dir: cannot write the run folder '{target}': {reason}{where}; "
+        "nothing was written; free space or choose another --out"
+    )
+
+
+@contextmanager
+def _sigterm_as_interrupt() -> Iterator[None]:
+    """While the run lasts, SIGTERM is handled like SIGINT (the run fails cleanly)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def interrupt(signum: int, frame: Any) -> None:
+        raise KeyboardInterrupt(f"signal {signum}")
+
+    previous = signal.signal(signal.SIGTERM, interrupt)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def protected_paths(config: StudyConfig) -> list[Path]:
+    """The config, its recipe and every input file: a run folder may never hold one."""
+    paths = [p for p in (config.config_path, config.recipe_path) if p is not None]
+    for table in ("patients", "labs", "events"):
+        paths.extend(Path(spec.path) for spec in config.data.specs(table))
+    source = config.data.source
+    for attr in ("path", "folder"):
+        value = getattr(source, attr, None) if source is not None else None
+        if value:
+            paths.append(Path(value))
+    return paths
 
 
 def _execute(

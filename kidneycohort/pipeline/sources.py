@@ -9,11 +9,14 @@ import polars as pl
 
 from kidneycohort.errors import InputDataError
 from kidneycohort.io import FileSource, read_source
+from kidneycohort.io.readers import utf8_error_line
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.standard_sources import check_source
 from kidneycohort.pipeline.standard_sources import input_records as standard_input_records
 from kidneycohort.pipeline.standard_sources import read_source as read_standard_source
 from kidneycohort.run_folder import sha256_of
+
+__all__ = ["SOURCE_TABLES", "check_inputs", "input_records", "read_sources"]
 
 # config table -> (run table name, reader kind)
 SOURCE_TABLES = {
@@ -65,16 +68,41 @@ def check_inputs(config: StudyConfig) -> dict[str, list[str]]:
     return out
 
 
+def _collect(frame: pl.LazyFrame, spec: FileSource, where: str) -> pl.DataFrame:
+    """Collect one source; a failure while reading its rows names the file (and line)."""
+    try:
+        return frame.collect()
+    except pl.exceptions.PolarsError as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        path = Path(spec.path)
+        if "utf-8" in first.lower() or "utf8" in first.lower():
+            found = utf8_error_line(path) if path.is_file() else None
+            at = f" at line {found[0]} (byte {found[1]})" if found else ""
+            raise InputDataError(
+                f"{where}: {spec.path}: not readable as UTF-8{at}; set encoding, e.g. "
+                "'latin-1' or 'cp1252'"
+            ) from None
+        raise InputDataError(f"{where}: {spec.path}: cannot be read ({first})") from None
+
+
 def read_sources(config: StudyConfig) -> dict[str, pl.DataFrame]:
     """Read the configured sources into ``patients``, ``raw_labs`` (and ``events``)."""
     if config.data.source is not None:
         return read_standard_source(config.data.source)
     check_inputs(config)
     out: dict[str, pl.DataFrame] = {}
-    for table, (name, _) in SOURCE_TABLES.items():
-        frame = _lazy(config, table)
-        if frame is not None:
-            out[name] = frame.collect()
+    for table, (name, kind) in SOURCE_TABLES.items():
+        specs = config.data.specs(table)
+        frames = []
+        for i, spec in enumerate(specs):
+            where = _where(table, specs, i)
+            try:
+                lazy = read_source(spec, kind)  # type: ignore[arg-type]
+            except InputDataError as exc:
+                raise InputDataError(f"{where}: {exc}") from None
+            frames.append(_collect(lazy, spec, where))
+        if frames:
+            out[name] = frames[0] if len(frames) == 1 else pl.concat(frames, how="diagonal_relaxed")
     return out
 
 

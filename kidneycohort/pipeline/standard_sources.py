@@ -35,6 +35,15 @@ from kidneycohort.io.omop._vocabulary import check_unit_codes, resolve_vocabular
 from kidneycohort.io.sdtm import SdtmSource, read_domain, read_sdtm
 from kidneycohort.run_folder import sha256_of
 
+__all__ = [
+    "StandardSource",
+    "anchor",
+    "check_source",
+    "input_records",
+    "read_source",
+    "write_results_after_run",
+]
+
 logger = logging.getLogger(__name__)
 
 StandardSource = Annotated[OmopSource | SdtmSource, Field(discriminator="kind")]

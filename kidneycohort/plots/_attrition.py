@@ -23,13 +23,15 @@ from plotnine import (
     theme_void,
 )
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_count_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.plots._style import (
     BASE_SIZE,
     check_threshold,
 )
+
+__all__ = ["attrition_boxes", "attrition_figure"]
 
 
 def attrition_boxes(
@@ -277,32 +279,34 @@ def attrition_figure(
     plot = ggplot() + theme_void(base_size=BASE_SIZE)
     if chain.height:
         plot += geom_segment(
-            chain.to_pandas(),
-            aes(x="x0", xend="x1", y="y", yend="y"),
+            data=chain.to_pandas(),
+            mapping=aes(x="x0", xend="x1", y="y", yend="y"),
             arrow=arrow(length=0.08, type="closed"),
         )
     plot += geom_segment(
-        main.to_pandas(),
-        aes(x="x", xend="x", y="y0", yend="y1"),
+        data=main.to_pandas(),
+        mapping=aes(x="x", xend="x", y="y0", yend="y1"),
         arrow=arrow(length=0.08, type="closed"),
     )
     plot += geom_segment(
-        side.to_pandas(),
-        aes(x="x0", xend="x1", y="y", yend="y"),
+        data=side.to_pandas(),
+        mapping=aes(x="x0", xend="x1", y="y", yend="y"),
         arrow=arrow(length=0.08, type="closed"),
     )
     plot += geom_tile(
-        boxes.to_pandas(),
-        aes("x", "y", width="w", height="h", fill="kind"),
+        data=boxes.to_pandas(),
+        mapping=aes("x", "y", width="w", height="h", fill="kind"),
         colour="#333333",
         size=0.5,
     )
     plot += geom_text(
-        boxes.filter(pl.col("kind") != "excluded").to_pandas(), aes("x", "y", label="text"), size=8
+        data=boxes.filter(pl.col("kind") != "excluded").to_pandas(),
+        mapping=aes("x", "y", label="text"),
+        size=8,
     )
     plot += geom_text(
-        ex.with_columns(xl=pl.col("x") - pl.col("w") / 2 + 0.1 / _INCH_PER_X).to_pandas(),
-        aes("xl", "y", label="text"),
+        data=ex.with_columns(xl=pl.col("x") - pl.col("w") / 2 + 0.1 / _INCH_PER_X).to_pandas(),
+        mapping=aes("xl", "y", label="text"),
         size=8,
         ha="left",
     )
@@ -310,10 +314,10 @@ def attrition_figure(
         values={"read": "#FFFFFF", "used": "#E8F1F8", "excluded": "#FFF6E0", "patients": "#EAF6F1"},
         guide=None,
     )
-    x_lo = float((boxes["x"] - boxes["w"] / 2).min()) - 0.05
-    x_hi = float((boxes["x"] + boxes["w"] / 2).max()) + 0.05
-    y_lo = float((boxes["y"] - boxes["h"] / 2).min()) - 0.05
-    y_hi = float((boxes["y"] + boxes["h"] / 2).max()) + 0.05
+    x_lo = as_float((boxes["x"] - boxes["w"] / 2).min(), "attrition: left edge") - 0.05
+    x_hi = as_float((boxes["x"] + boxes["w"] / 2).max(), "attrition: right edge") + 0.05
+    y_lo = as_float((boxes["y"] - boxes["h"] / 2).min(), "attrition: bottom edge") - 0.05
+    y_hi = as_float((boxes["y"] + boxes["h"] / 2).max(), "attrition: top edge") + 0.05
     plot += scale_x_continuous(limits=(x_lo, x_hi), expand=(0, 0))
     plot += scale_y_continuous(limits=(y_lo, y_hi), expand=(0, 0))
     plot += theme(

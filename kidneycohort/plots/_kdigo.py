@@ -21,7 +21,7 @@ from plotnine import (
     theme,
 )
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
@@ -37,6 +37,8 @@ from kidneycohort.plots._style import (
     base_theme,
     check_threshold,
 )
+
+__all__ = ["kdigo_grid_cells", "kdigo_grid_figure", "transition_cells", "transition_heatmap_figure"]
 
 
 def kdigo_grid_cells(
@@ -124,7 +126,7 @@ def kdigo_grid_figure(
     g_labels = [f"{g}  ({G_RANGES[g]})" for g in G_CATEGORIES]
     a_labels = [f"{a}\n{A_RANGES[a]}" for a in A_CATEGORIES]
     plot = (
-        ggplot(cells.to_pandas(), aes("a_category", "g_category"))
+        ggplot(data=cells.to_pandas(), mapping=aes("a_category", "g_category"))
         + base_theme()
         + geom_tile(aes(fill="risk"), colour="white", size=1.5)
         + geom_text(aes(label="label"), size=11)
@@ -241,7 +243,7 @@ def transition_heatmap_figure(
     """
     threshold = check_threshold(small_cell_threshold)
     cells = transition_cells(transition_counts, small_cell_threshold=threshold)
-    top = float(cells["fill"].max() or 0.0)
+    top = as_float(cells["fill"].max() or 0.0, "transitions: largest fill")
     cells = cells.with_columns(
         text_colour=pl.when(pl.col("fill").fill_null(0) > 0.6 * top)
         .then(pl.lit("white"))
@@ -250,7 +252,7 @@ def transition_heatmap_figure(
     present = set(cells["from_category"].to_list())
     order = [c for c in (*G_CATEGORIES, *A_CATEGORIES) if c in present]
     plot = (
-        ggplot(cells.to_pandas(), aes("to_category", "from_category"))
+        ggplot(data=cells.to_pandas(), mapping=aes("to_category", "from_category"))
         + base_theme()
         + geom_tile(aes(fill="fill"), colour="white", size=1)
         + geom_text(aes(label="label", colour="text_colour"), size=9)

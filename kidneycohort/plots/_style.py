@@ -22,6 +22,31 @@ from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES, RISK_GRID, RISK_LEVELS
 
+__all__ = [
+    "ALL_PATIENTS",
+    "A_RANGES",
+    "BASE_SIZE",
+    "EGFR_UNIT_LABEL",
+    "FIG_SIZE",
+    "GROUP_COLOURS",
+    "G_RANGES",
+    "KDIGO_RISK",
+    "KDIGO_RISK_COLOURS",
+    "KDIGO_RISK_LABELS",
+    "KDIGO_RISK_LEVELS",
+    "OKABE_ITO",
+    "RAPID_DECLINE_PER_YEAR",
+    "SLOPE_UNIT_LABEL",
+    "base_theme",
+    "check_threshold",
+    "egfr_unit",
+    "group_palette",
+    "palette_for",
+    "pick",
+    "with_groups",
+    "wrap",
+]
+
 logger = logging.getLogger(__name__)
 
 

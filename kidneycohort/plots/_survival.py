@@ -29,7 +29,7 @@ from plotnine import (
     theme,
 )
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.labels import display_label
@@ -42,6 +42,8 @@ from kidneycohort.plots._style import (
     palette_for,
     pick,
 )
+
+__all__ = ["forest_figure", "forest_rows", "survival_figure", "survival_steps"]
 
 _MEASURE_LABEL: Final = {
     "survival": "Event-free probability (Kaplan–Meier)",
@@ -174,13 +176,15 @@ def survival_figure(
     )
     if band.height:
         plot += geom_ribbon(
-            band.to_pandas(),
-            aes("years", ymin="lower", ymax="upper", fill="group"),
+            data=band.to_pandas(),
+            mapping=aes("years", ymin="lower", ymax="upper", fill="group"),
             alpha=0.2,
         )
     line = steps.filter(pl.col("estimate").is_not_null() & pl.col("estimate").is_not_nan())
     if line.height:
-        plot += geom_line(line.to_pandas(), aes("years", "estimate", colour="group"), size=0.9)
+        plot += geom_line(
+            data=line.to_pandas(), mapping=aes("years", "estimate", colour="group"), size=0.9
+        )
     breaks = [0.0, 0.25, 0.5, 0.75, 1.0]
     labels = [f"{b:.2f}" for b in breaks]
     y_low = -0.02
@@ -198,14 +202,14 @@ def survival_figure(
                 label=small_cell_text(pl.col("n_at_risk"), threshold),
             )
             plot += geom_text(
-                table.to_pandas(),
-                aes("years", "y", label="label", colour="group"),
+                data=table.to_pandas(),
+                mapping=aes("years", "y", label="label", colour="group"),
                 size=7.5,
                 show_legend=False,
             )
             plot += annotate(
                 "text",
-                x=float(table["years"].min()),
+                x=as_float(table["years"].min(), "at_risk: first years"),
                 y=-0.06,
                 label="Number at risk",
                 size=7.5,
@@ -336,7 +340,7 @@ def forest_figure(hazard_ratios: FrameLike) -> ggplot:
     rows = forest_rows(hazard_ratios)
     drawn = rows.filter(pl.col("estimable"))
     order = rows["label"].to_list()[::-1]
-    plot = ggplot(drawn.to_pandas(), aes(y="label")) + base_theme()
+    plot = ggplot(data=drawn.to_pandas(), mapping=aes(y="label")) + base_theme()
     plot += geom_vline(xintercept=1, linetype="dashed", colour="#555555")
     if drawn.height:
         plot += geom_segment(
@@ -347,8 +351,8 @@ def forest_figure(hazard_ratios: FrameLike) -> ggplot:
     if missing.height:
         # placed on the line of no effect so the row keeps its place on the axis
         plot += geom_text(
-            missing.with_columns(x=pl.lit(1.0), text=pl.lit("no estimate")).to_pandas(),
-            aes(x="x", y="label", label="text"),
+            data=missing.with_columns(x=pl.lit(1.0), text=pl.lit("no estimate")).to_pandas(),
+            mapping=aes(x="x", y="label", label="text"),
             size=8,
             colour="#555555",
         )

@@ -5,7 +5,6 @@ trajectories, and the distribution of per-patient slopes.
 from __future__ import annotations
 
 import logging
-import math
 from collections.abc import Mapping
 
 import numpy as np
@@ -30,7 +29,7 @@ from plotnine import (
 )
 from scipy import stats
 
-from kidneycohort._frames import FrameLike, require_columns, to_polars
+from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_count_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.plots._style import (
@@ -45,6 +44,14 @@ from kidneycohort.plots._style import (
     with_groups,
     wrap,
 )
+
+__all__ = [
+    "egfr_time_bins",
+    "egfr_trajectory_figure",
+    "model_trajectory_figure",
+    "slope_distribution",
+    "slope_distribution_figure",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -219,21 +226,21 @@ def egfr_trajectory_figure(
     plot = ggplot() + base_theme()
     if lines.height:
         plot += geom_line(
-            lines.to_pandas(),
-            aes("years_from_index", "egfr", group="patient_id", colour="group"),
+            data=lines.to_pandas(),
+            mapping=aes("years_from_index", "egfr", group="patient_id", colour="group"),
             alpha=0.18,
             size=0.4,
         )
     if ribbon.height:
         plot += geom_ribbon(
-            ribbon.to_pandas(),
-            aes("years", ymin="lower", ymax="upper", fill="group"),
+            data=ribbon.to_pandas(),
+            mapping=aes("years", ymin="lower", ymax="upper", fill="group"),
             alpha=0.25,
         )
     if shown.height:
         frame = shown.to_pandas()
-        plot += geom_line(frame, aes("years", "mean", colour="group"), size=1.1)
-        plot += geom_point(frame, aes("years", "mean", colour="group"), size=1.6)
+        plot += geom_line(data=frame, mapping=aes("years", "mean", colour="group"), size=1.1)
+        plot += geom_point(data=frame, mapping=aes("years", "mean", colour="group"), size=1.6)
     if not (lines.height or shown.height):
         plot += annotate("text", x=0, y=0, label="No eGFR values to show")
     plot += scale_color_manual(values=colours, name="Group")
@@ -245,6 +252,20 @@ def egfr_trajectory_figure(
         caption=wrap(caption),
     )
     return plot
+
+
+def _label_height(df: pl.DataFrame) -> float:
+    """Height of the phase labels: the highest finite upper bound, else the highest mean.
+
+    Upper bounds may be null or NaN throughout (an interval that could not be estimated).
+    """
+    for column in ("upper", "mean"):
+        if column in df.columns:
+            values = df[column].cast(pl.Float64)
+            highest = values.filter(values.is_finite()).max()
+            if highest is not None:
+                return as_float(highest, f"trajectories: highest {column}")
+    return 0.0
 
 
 def model_trajectory_figure(
@@ -283,7 +304,7 @@ def model_trajectory_figure(
     )
     df = df.filter(pl.col("mean").is_not_null() & pl.col("mean").is_not_nan())
     colours = palette_for(df, palette)
-    plot = ggplot(df.to_pandas(), aes("years", "mean", colour="group")) + base_theme()
+    plot = ggplot(data=df.to_pandas(), mapping=aes("years", "mean", colour="group")) + base_theme()
     if {"lower", "upper"} <= set(df.columns):
         band = df.filter(
             pl.col("lower").is_not_null()
@@ -293,19 +314,18 @@ def model_trajectory_figure(
         )
         if band.height:
             plot += geom_ribbon(
-                band.to_pandas(),
-                aes(ymin="lower", ymax="upper", fill="group"),
+                data=band.to_pandas(),
+                mapping=aes(ymin="lower", ymax="upper", fill="group"),
                 alpha=0.22,
                 colour="none",
             )
     plot += geom_line(size=1.1)
     caption = "Model-based mean eGFR with 95% confidence bands."
     if knot_years is not None and df.height:
-        top = float(df["upper"].max() if "upper" in df.columns else df["mean"].max())
-        top = top if math.isfinite(top) else float(df["mean"].max())
+        top = _label_height(df)
         plot += geom_vline(xintercept=knot_years, linetype="dashed", colour="#555555")
         plot += annotate("text", x=knot_years / 2, y=top, label="acute", size=8, va="bottom")
-        right = float(df["years"].max())
+        right = as_float(df["years"].max(), "trajectories: last years")
         plot += annotate(
             "text", x=(knot_years + right) / 2, y=top, label="chronic", size=8, va="bottom"
         )
@@ -407,7 +427,7 @@ def slope_distribution_figure(
         for row in summary.select("group", "n").to_dicts()
     }
     order = sorted(axis_labels)
-    plot = ggplot(values.to_pandas(), aes("group", "slope_per_year")) + base_theme()
+    plot = ggplot(data=values.to_pandas(), mapping=aes("group", "slope_per_year")) + base_theme()
     # a violin needs a spread; a group of one patient gets its box (a line) only
     spread = (
         values.group_by("group")
@@ -417,7 +437,11 @@ def slope_distribution_figure(
     violins = values.join(spread.select("group"), on="group", how="semi")
     if violins.height:
         plot += geom_violin(
-            violins.to_pandas(), aes(fill="group"), alpha=0.35, colour="none", scale="width"
+            data=violins.to_pandas(),
+            mapping=aes(fill="group"),
+            alpha=0.35,
+            colour="none",
+            scale="width",
         )
     if values.height:
         plot += geom_boxplot(aes(colour="group"), width=0.22, outlier_shape="", fill="white")

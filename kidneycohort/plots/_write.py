@@ -24,6 +24,8 @@ from kidneycohort.plots._trajectories import (
 )
 from kidneycohort.run_folder import RunFolder
 
+__all__ = ["FIGURE_TITLES", "FigureRule", "write_figures"]
+
 logger = logging.getLogger(__name__)
 
 
@@ -41,11 +43,15 @@ FIGURE_TITLES: Final[dict[str, str]] = {
 """Figure file stems written by :func:`write_figures` (``survival_<endpoint>`` per endpoint)."""
 
 
+FigureFormat = Literal["png", "svg", "pdf"]
+_DEFAULT_FORMATS: tuple[FigureFormat, ...] = ("png", "svg")
+
+
 class FigureRule(RuleModel):
     """Figure options (config key ``figures``)."""
 
-    formats: list[Literal["png", "svg", "pdf"]] = Field(
-        default_factory=lambda: ["png", "svg"],
+    formats: list[FigureFormat] = Field(
+        default_factory=lambda: list(_DEFAULT_FORMATS),
         min_length=1,
         description="File formats of every figure (each figure is drawn once, saved in each).",
     )

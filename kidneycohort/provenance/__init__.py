@@ -106,7 +106,7 @@ def get_publication(key: str) -> Publication:
 
 def status_counts() -> dict[str, int]:
     """How many registered constants have each status (every status present, zeros too)."""
-    counts = Counter(c.status for c in CONSTANTS)
+    counts: Counter[str] = Counter(c.status for c in CONSTANTS)
     return {status: counts.get(status, 0) for status in STATUSES}
 
 

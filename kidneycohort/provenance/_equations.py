@@ -6,6 +6,8 @@ from typing import Final
 
 from kidneycohort.provenance._model import Constant
 
+__all__ = ["EQUATION_CONSTANTS"]
+
 _PER_YEAR = "factor per year"
 _NUMBER = "1"
 _MG_DL = "mg/dL"

@@ -11,6 +11,8 @@ from typing import Any, Final, Literal
 
 from pydantic import BaseModel
 
+__all__ = ["STATUSES", "Constant", "Publication", "Status", "read_code_location"]
+
 Status = Literal["re-read", "recalled", "derived"]
 
 STATUSES: Final[dict[str, str]] = {

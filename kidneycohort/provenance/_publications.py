@@ -6,6 +6,8 @@ from typing import Final
 
 from kidneycohort.provenance._model import Publication
 
+__all__ = ["PUBLICATIONS"]
+
 PUBLICATIONS: Final[tuple[Publication, ...]] = (
     Publication(
         "levey_2009",

@@ -6,6 +6,8 @@ from typing import Final
 
 from kidneycohort.provenance._model import Constant
 
+__all__ = ["RULE_CONSTANTS"]
+
 _NUMBER = "1"
 _INDEXED = "mL/min/1.73 m2"
 

@@ -37,8 +37,11 @@ from kidneycohort.run_folder._manifest import (
 )
 from kidneycohort.run_folder._reader import RunFolder
 from kidneycohort.run_folder._writer import (
+    XLSX_OPTIONS,
     canonical_order,
+    csv_safe,
     markdown_table,
+    write_csv,
     write_table,
     write_workbook,
 )
@@ -46,6 +49,7 @@ from kidneycohort.run_folder._writer import (
 __all__ = [
     "FILES",
     "RECORDED_PACKAGES",
+    "XLSX_OPTIONS",
     "AccountingRecord",
     "InputRecord",
     "Manifest",
@@ -57,6 +61,7 @@ __all__ = [
     "StudyFacts",
     "canonical_order",
     "check_layout",
+    "csv_safe",
     "declared",
     "file_for",
     "is_written",
@@ -65,6 +70,7 @@ __all__ = [
     "package_versions",
     "read_manifest",
     "sha256_of",
+    "write_csv",
     "write_manifest",
     "write_table",
     "write_workbook",

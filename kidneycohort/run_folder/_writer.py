@@ -16,10 +16,52 @@ import polars as pl
 
 from kidneycohort.run_folder._layout import FILES, RunFile, check_layout
 
-__all__ = ["canonical_order", "markdown_table", "write_table", "write_workbook"]
+__all__ = [
+    "XLSX_OPTIONS",
+    "canonical_order",
+    "csv_safe",
+    "markdown_table",
+    "write_csv",
+    "write_table",
+    "write_workbook",
+]
 
 # A fixed workbook date keeps tables.xlsx identical between runs of the same inputs.
 _XLSX_DATE = dt.datetime(2000, 1, 1, tzinfo=dt.UTC)
+
+
+# Text cells are written as text: xlsxwriter would otherwise turn "=..." into a formula.
+XLSX_OPTIONS: dict[str, Any] = {"strings_to_formulas": False}
+
+# A text cell a spreadsheet would read as a formula (OWASP, CSV injection) ...
+_FORMULA_LEAD = r"^[=+\-@\t\r]"
+# ... unless it is a number, alone or with an interval ("-3.2", "-1.2 (-2.0 to -0.4)").
+_NUMBER_TEXT = (
+    r"^[+-]?(?:\d[\d,]*\.?\d*|\.\d+)(?:[eE][+-]?\d+)?%?"
+    r"(?:\s*[(\[][\d.,\s%;:+\-\u2013\u2212]*(?:to[\d.,\s%+\-\u2013\u2212]*)?[)\]])?$"
+)
+
+
+def csv_safe(df: pl.DataFrame) -> pl.DataFrame:
+    """``df`` with every text cell that starts like a formula (``=``, ``+``, ``-``, ``@``,
+    tab, carriage return) prefixed with a single quote, as OWASP's CSV-injection guidance
+    recommends; numbers (also number text such as ``-3.2``) are left as they are."""
+    text = [c for c, t in df.schema.items() if t in (pl.String, pl.Categorical, pl.Enum)]
+    if not text:
+        return df
+    exprs = []
+    for column in text:
+        value = pl.col(column).cast(pl.String)
+        risky = value.str.contains(_FORMULA_LEAD) & ~(
+            value.str.contains(_NUMBER_TEXT) | value.is_in(["-", "+"])
+        )
+        exprs.append(pl.when(risky).then(pl.lit("'") + value).otherwise(value).alias(column))
+    return df.with_columns(exprs)
+
+
+def write_csv(df: pl.DataFrame, path: Path) -> None:
+    """Write ``df`` as CSV with formula-leading text neutralised (:func:`csv_safe`)."""
+    csv_safe(df).write_csv(path)
 
 
 def _sortable(df: pl.DataFrame) -> list[str]:
@@ -75,14 +117,14 @@ def write_table(
     if entry.kind == "per_patient":
         canonical_order(table).write_parquet(run_dir / paths[0], statistics=False)
     elif entry.kind == "rejected_rows":
-        canonical_order(table).write_csv(run_dir / paths[0])
+        write_csv(canonical_order(table), run_dir / paths[0])
     elif entry.kind == "analysis_dataset":  # the dataset's own order (parameter, subject)
-        table.write_csv(run_dir / paths[0])
+        write_csv(table, run_dir / paths[0])
         table.write_parquet(run_dir / paths[1], statistics=False)
     elif entry.kind == "model":
         table.write_parquet(run_dir / paths[0], statistics=False)
     else:  # shared tables: the builder's row order is the reading order; keep it
-        table.write_csv(run_dir / paths[0])
+        write_csv(table, run_dir / paths[0])
         (run_dir / paths[1]).write_text(markdown_table(table), encoding="utf-8")
     return list(paths)
 
@@ -102,7 +144,7 @@ def write_workbook(
 
     path = run_dir / "tables" / "tables.xlsx"
     path.parent.mkdir(parents=True, exist_ok=True)
-    with xlsxwriter.Workbook(str(path)) as workbook:
+    with xlsxwriter.Workbook(str(path), XLSX_OPTIONS) as workbook:
         workbook.set_properties({"created": _XLSX_DATE})
         for sheet, table in sorted(sheets.items()):
             # Excel limits sheet names to 31 characters

@@ -38,6 +38,8 @@ from kidneycohort.io.omop._ddl import CDM_TABLES, create_table_sql, index_sql
 from kidneycohort.io.omop._spec import DEFAULT_EVENTS
 from kidneycohort.synthetic.cohort import SyntheticCohort
 
+__all__ = ["write_omop"]
+
 logger = logging.getLogger(__name__)
 
 SCHEMA: Final = "cdm"
@@ -334,16 +336,16 @@ def _cdm_source(cohort: SyntheticCohort) -> pl.DataFrame:
 
 def _full(name: str, frame: pl.DataFrame) -> pl.DataFrame:
     """All columns of CDM table ``name`` in order (absent ones null), typed for writing."""
-    kinds = {
-        "integer": pl.Int64,
-        "numeric": pl.Float64,
-        "date": pl.Date,
+    kinds: dict[str, pl.DataType] = {
+        "integer": pl.Int64(),
+        "numeric": pl.Float64(),
+        "date": pl.Date(),
         "timestamp": pl.Datetime("us"),
     }
     if frame.width == 0:
-        return pl.DataFrame(schema={c: kinds.get(k, pl.String) for c, k, _ in CDM_TABLES[name]})
+        return pl.DataFrame(schema={c: kinds.get(k, pl.String()) for c, k, _ in CDM_TABLES[name]})
     return frame.select(
-        (pl.col(c) if c in frame.columns else pl.lit(None)).cast(kinds.get(k, pl.String)).alias(c)
+        (pl.col(c) if c in frame.columns else pl.lit(None)).cast(kinds.get(k, pl.String())).alias(c)
         for c, k, _ in CDM_TABLES[name]
     )
 

@@ -27,10 +27,12 @@ from typing import Final
 import polars as pl
 
 from kidneycohort import units
-from kidneycohort.adam._metadata import Variable
+from kidneycohort.adam._metadata import Kind, Variable
 from kidneycohort.errors import UnknownUnitError
 from kidneycohort.io.cdisc_files import write_dataset_json, write_xpt
 from kidneycohort.synthetic.cohort import SyntheticCohort
+
+__all__ = ["write_sdtm"]
 
 logger = logging.getLogger(__name__)
 
@@ -48,8 +50,8 @@ _END_REASON: Final = {
 _EVENT_TERMS: Final = {"dialysis": "HEMODIALYSIS", "transplant": "KIDNEY TRANSPLANT"}
 
 
-def _v(name: str, label: str, kind: str = "text") -> Variable:
-    return Variable(name, label, kind, "Assigned")  # type: ignore[arg-type]
+def _v(name: str, label: str, kind: Kind = "text") -> Variable:
+    return Variable(name, label, kind, "Assigned")
 
 
 _COMMON: Final = (_v("STUDYID", "Study Identifier"), _v("DOMAIN", "Domain Abbreviation"))

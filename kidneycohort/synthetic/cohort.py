@@ -26,6 +26,8 @@ from kidneycohort.synthetic.trajectories import (
     first_crossing,
 )
 
+__all__ = ["SyntheticCohort", "generate_cohort", "patient_ids"]
+
 logger = logging.getLogger(__name__)
 
 # independent random streams, so that changing one part leaves the others' draws intact

@@ -27,6 +27,15 @@ import polars as pl
 from kidneycohort.errors import ConfigError
 from kidneycohort.synthetic.scenario import Dirty
 
+__all__ = [
+    "DEFECTS_SCHEMA",
+    "LAB_DEFECTS",
+    "TEXT_RESULTS",
+    "UNKNOWN_UNIT",
+    "defect_counts",
+    "inject_defects",
+]
+
 UNKNOWN_UNIT: Final = "U/L"
 TEXT_RESULTS: Final = ("see comment", "haemolysed", "insufficient sample", "cancelled")
 LAB_DEFECTS: Final = (

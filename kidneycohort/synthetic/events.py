@@ -24,6 +24,19 @@ from kidneycohort.synthetic.trajectories import (
     truncated_normal,
 )
 
+__all__ = [
+    "REASON_DEATH",
+    "REASON_END",
+    "REASON_LOST",
+    "EventTimes",
+    "IntArray",
+    "death_rate",
+    "draw_events",
+    "end_of_study_years",
+    "min_gfr_on",
+    "thinned_poisson",
+]
+
 IntArray = npt.NDArray[np.int64]
 
 REASON_DEATH, REASON_LOST, REASON_END = "death", "loss_to_followup", "end_of_study"

@@ -25,6 +25,14 @@ from kidneycohort import units
 from kidneycohort.synthetic.scenario import Scenario
 from kidneycohort.synthetic.trajectories import FloatArray, Population, Trajectories
 
+__all__ = [
+    "MICROSECONDS_PER_DAY",
+    "REPORT_DECIMALS",
+    "format_values",
+    "lognormal_factor",
+    "measure",
+]
+
 MICROSECONDS_PER_DAY = 86_400_000_000
 
 # decimals a laboratory prints for each (analyte, unit key); common practice

@@ -20,6 +20,31 @@ from kidneycohort import units
 from kidneycohort._rules import error_facts, validate_config
 from kidneycohort.errors import ConfigError, UnknownUnitError
 
+__all__ = [
+    "Arm",
+    "Calendar",
+    "CareSchedule",
+    "CovariateEffects",
+    "CreatinineLab",
+    "CystatinLab",
+    "DeathProcess",
+    "Dirty",
+    "Events",
+    "Groups",
+    "Inpatient",
+    "KidneyFailureProcess",
+    "Labs",
+    "Population",
+    "Range",
+    "Scenario",
+    "Site",
+    "Trajectory",
+    "UacrLab",
+    "Visit",
+    "VisitSchedule",
+    "load_scenario",
+]
+
 
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)

@@ -24,6 +24,23 @@ from kidneycohort.synthetic.events import EventTimes, min_gfr_on, thinned_poisso
 from kidneycohort.synthetic.scenario import CareSchedule, Inpatient, Scenario, VisitSchedule
 from kidneycohort.synthetic.trajectories import FloatArray, Population, Trajectories
 
+__all__ = [
+    "DAYS_PER_YEAR",
+    "DAY_OFFSET",
+    "EMERGENCY",
+    "INDEX_VISIT",
+    "INPATIENT",
+    "MINUTES_PER_DAY",
+    "OCCASION_SCHEMA",
+    "OUTPATIENT",
+    "OUTPATIENT_MINUTES",
+    "SETTINGS",
+    "VISIT_MINUTES",
+    "WARD_ROUND_MINUTES",
+    "draw_occasions",
+    "visit_names",
+]
+
 MINUTES_PER_DAY = 1440
 DAYS_PER_YEAR = 365.25
 # working hours of the outpatient laboratory and the inpatient morning round (common practice)

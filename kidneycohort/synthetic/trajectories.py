@@ -24,6 +24,20 @@ from scipy import stats
 
 from kidneycohort.synthetic.scenario import CovariateEffects, Range, Scenario
 
+__all__ = [
+    "REFERENCE_AGE",
+    "REFERENCE_UACR_MG_G",
+    "FloatArray",
+    "Population",
+    "Trajectories",
+    "draw_population",
+    "draw_trajectories",
+    "first_crossing",
+    "gfr_at",
+    "truncated_normal",
+    "truncated_normal_at",
+]
+
 FloatArray = npt.NDArray[np.float64]
 
 REFERENCE_AGE = 60.0

@@ -19,6 +19,16 @@ import yaml
 from kidneycohort.errors import ConfigError
 from kidneycohort.synthetic.cohort import SyntheticCohort, generate_cohort
 
+__all__ = [
+    "CSV_DATETIME_FORMAT",
+    "FORMATS",
+    "PARQUET_OPTIONS",
+    "Format",
+    "write_cohort",
+    "write_frames",
+    "write_table",
+]
+
 logger = logging.getLogger(__name__)
 
 Format = Literal["parquet", "csv", "duckdb", "omop", "sdtm"]

@@ -23,6 +23,8 @@ from kidneycohort.tables._format import (
 )
 from kidneycohort.tables._kdigo import A_MARGIN, G_MARGIN, _one_row_per_patient
 
+__all__ = ["baseline_characteristics_table"]
+
 Characteristic = tuple[str, pl.DataFrame, str]
 """(name, frame of ``patient_id, value``, kind): kind ``mean``/``median`` for numbers."""
 Category = tuple[str, pl.DataFrame, Sequence[str] | None]
@@ -369,9 +371,12 @@ def _protected_text(
         for key in zip(counts["characteristic"], counts["level"], counts["_group"], strict=True)
     ]
     visible = ~pl.col("_text").is_in([suppression_label(rule), HIDDEN])
+    # a percentage of a hidden N would give the N away (count / share)
+    n_shown = {g: display(("N", "", g)).isdigit() for g in counts["_group"].unique().to_list()}
+    n_visible = pl.col("_group").replace_strict(n_shown, return_dtype=pl.Boolean)
     percent = _format_fixed(pl.col("_count") / pl.col("_n") * 100, rule.decimals)
     text = (
-        pl.when(visible & (pl.col("_kind") != "n"))
+        pl.when(visible & n_visible & (pl.col("_kind") != "n"))
         .then(pl.concat_str([pl.col("_text"), pl.lit(" ("), percent, pl.lit("%)")]))
         .otherwise(pl.col("_text"))
     )

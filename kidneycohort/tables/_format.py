@@ -12,6 +12,21 @@ from pydantic import Field
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort._rules import RuleModel
 
+__all__ = [
+    "OVERALL",
+    "_DASH",
+    "_MISSING_LEVEL",
+    "TableRule",
+    "_count_text",
+    "_format_fixed",
+    "_interval",
+    "_is_small",
+    "_p_text",
+    "suppress_small_counts",
+    "suppression_footnote",
+    "suppression_label",
+]
+
 _DASH = "–"
 
 

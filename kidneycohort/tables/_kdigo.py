@@ -17,6 +17,8 @@ from kidneycohort.tables._format import (
     _count_text,
 )
 
+__all__ = ["A_MARGIN", "G_MARGIN", "_one_row_per_patient", "kdigo_grid_table", "transition_table"]
+
 
 def _one_row_per_patient(categories: pl.DataFrame, equation: str | None) -> pl.DataFrame:
     require_columns(categories, ("patient_id",), "categories")

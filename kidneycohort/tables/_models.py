@@ -22,6 +22,8 @@ from kidneycohort.tables._format import (
     suppression_label,
 )
 
+__all__ = ["rate_comparison_table", "slope_table"]
+
 logger = logging.getLogger(__name__)
 
 

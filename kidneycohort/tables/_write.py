@@ -10,7 +10,10 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
+from kidneycohort.run_folder import XLSX_OPTIONS, write_csv
 from kidneycohort.tables._format import _DASH, _format_fixed
+
+__all__ = ["to_markdown", "write_tables"]
 
 logger = logging.getLogger(__name__)
 
@@ -52,11 +55,11 @@ def write_tables(
                 f"write_tables: notes for unknown table '{name}'{did_you_mean(name, tables)}"
             )
     workbook_path = target / workbook_name
-    with xlsxwriter.Workbook(str(workbook_path)) as workbook:
+    with xlsxwriter.Workbook(str(workbook_path), XLSX_OPTIONS) as workbook:
         for name, table in tables.items():
             frame = to_polars(table, name)
             csv_path = target / f"{name}.csv"
-            frame.write_csv(csv_path)
+            write_csv(frame, csv_path)
             written[name] = csv_path
             frame.write_excel(workbook=workbook, worksheet=name, autofit=True)
             lines = list(notes.get(name, ()))

@@ -92,6 +92,11 @@ REASON_CASES: dict[str, tuple[str, dict]] = {
         "labs",
         {"labs": lab(date="2021-06-02"), "rules": {"data_cut_date": dt.date(2021, 6, 1)}},
     ),
+    "implausible_date": ("labs", {"labs": lab(date="2999-01-01")}),
+    "implausible_age": (
+        "patients",
+        {"patients": pl.DataFrame({"patient_id": ["A"], "age_at_index": [130.0]})},
+    ),
     "unknown_analyte": ("labs", {"labs": lab(analyte="2161-8")}),  # urine creatinine
     "missing_value": ("labs", {"labs": lab(value="  ")}),
     # SDTM: LBSTAT = "NOT DONE" rows reach harmonise with this result text

@@ -176,6 +176,26 @@ def test_model_trajectory_figure_marks_the_knot(run: dict) -> None:
     _draw(plot)
 
 
+def test_model_trajectory_figure_without_interval_bounds() -> None:
+    # bounds that could not be estimated (null throughout) leave the knot labels at the
+    # highest mean; this used to fail with float(None)
+    traj = pl.DataFrame(
+        {
+            "group": ["a", "a", "a"],
+            "years": [0.0, 0.5, 1.0],
+            "mean": [60.0, 61.5, 58.0],
+            "lower": [None, None, None],
+            "upper": [None, None, None],
+        },
+        schema_overrides={"lower": pl.Float64, "upper": pl.Float64},
+    )
+    plot = plots.model_trajectory_figure(traj, knot_years=0.25)
+    labels = [layer for layer in plot.layers if layer.geom.__class__.__name__ == "geom_text"]
+    assert labels
+    assert all(layer._data["y"].tolist() == [61.5] for layer in labels)
+    _draw(plot)
+
+
 # ---- slopes -----------------------------------------------------------------------------
 
 

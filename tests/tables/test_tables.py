@@ -331,3 +331,16 @@ def test_to_markdown() -> None:
         "",
         "note one",
     ]
+
+
+@pytest.mark.parametrize("n_small_group", [5, 9, 13])
+def test_no_percentage_of_a_hidden_group_size(n_small_group: int) -> None:
+    # "3 (60.0%)" under a hidden N gives N away (3 / 0.6 = 5): a percentage is printed
+    # only where its denominator is printed too (common practice in disclosure control)
+    table = baseline_characteristics_table(_patients(n_small_group, 40), covariates=[])
+    n_row = table.filter(pl.col("characteristic") == "N").row(0, named=True)
+    for group in ("active", "placebo", "Overall"):
+        if not n_row[group].isdigit():
+            assert not table[group].str.contains("%").any(), table[group].to_list()
+    if n_small_group <= 10:
+        assert n_row["active"] == "<11"

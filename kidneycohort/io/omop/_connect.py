@@ -16,7 +16,7 @@ import logging
 import os
 import re
 import urllib.parse
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from types import TracebackType
 from typing import Any, Final
 
@@ -25,6 +25,8 @@ import pyarrow as pa
 
 from kidneycohort.errors import ConfigError, InputDataError, did_you_mean
 from kidneycohort.io.omop._spec import IDENTIFIER, OmopSource
+
+__all__ = ["OmopConnection", "_secrets_of", "quote_identifier", "quote_literal", "scrub"]
 
 logger = logging.getLogger(__name__)
 
@@ -228,7 +230,9 @@ class OmopConnection:
             cur.close()
 
     # ---- catalogue ----------------------------------------------------------------
-    def require_tables(self, schema: str, tables: dict[str, tuple[str, ...]], setting: str) -> None:
+    def require_tables(
+        self, schema: str, tables: Mapping[str, tuple[str, ...]], setting: str
+    ) -> None:
         """Check that ``schema`` has each table with its columns; one line names the first
         missing schema, table or column and the config setting to change."""
         rows = self.frame(

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 from typing import Final, Literal
 
+__all__ = ["CDM_TABLES", "create_table_sql", "index_sql"]
+
 Column = tuple[str, str, bool]  # name, PostgreSQL type, NOT NULL
 
 CDM_TABLES: Final[dict[str, tuple[Column, ...]]] = {

@@ -43,6 +43,8 @@ from kidneycohort.io.omop._vocabulary import (
     resolve_vocabulary,
 )
 
+__all__ = ["OmopTables", "_check_catalogue", "read_omop"]
+
 logger = logging.getLogger(__name__)
 
 
@@ -298,14 +300,16 @@ def _events(con: OmopConnection, vocab: Vocabulary) -> pl.DataFrame:
                 pl.col("record_id").alias("source_row"),
             )
         )
-    schema = {
-        "patient_id": pl.String,
-        "event_date": pl.Date,
-        "event": pl.String,
-        "end_date": pl.Date,
-        "source": pl.String,
-        "source_row": pl.Int64,
-    }
+    schema = pl.Schema(
+        {
+            "patient_id": pl.String,
+            "event_date": pl.Date,
+            "event": pl.String,
+            "end_date": pl.Date,
+            "source": pl.String,
+            "source_row": pl.Int64,
+        }
+    )
     if vocab.kidney_death:
         deaths = con.frame(_sql.death_sql(spec, vocab.kidney_death), "DEATH").filter(
             pl.col("kidney_cause") == 1
@@ -322,7 +326,7 @@ def _events(con: OmopConnection, vocab: Vocabulary) -> pl.DataFrame:
         )
     if not parts:
         return pl.DataFrame(schema=schema)
-    return pl.concat([p.cast(schema) for p in parts]).sort("source", "source_row")  # type: ignore[arg-type]
+    return pl.concat([p.cast(schema) for p in parts]).sort("source", "source_row")
 
 
 # ---- whole read ------------------------------------------------------------------------

@@ -25,6 +25,8 @@ from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.io.omop._connect import _secrets_of, quote_identifier, quote_literal, scrub
 from kidneycohort.io.omop._spec import OmopSource
 
+__all__ = ["RESULT_TABLES", "write_results"]
+
 logger = logging.getLogger(__name__)
 
 RESULT_TABLES: Final = ("egfr", "baseline", "slopes", "endpoints")

@@ -29,12 +29,23 @@ from pydantic import Field, field_validator, model_validator
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import ConfigError
 
+__all__ = [
+    "DEFAULT_EVENTS",
+    "IDENTIFIER",
+    "OPERATOR_QUALIFIERS",
+    "CodeSet",
+    "CohortGroups",
+    "EventConcepts",
+    "OmopSource",
+    "check_source",
+]
+
 # Identifiers we accept from a config (schema, table names): a plain SQL identifier.
 IDENTIFIER: Final = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
 
 # LOINC codes read by default, per analyte (a subset of kidneycohort.io.loinc; each code
 # must be in the database's CONCEPT table, else the read stops naming it).
-DEFAULT_LAB_CODES: Final[dict[str, list[str]]] = {
+DEFAULT_LAB_CODES: Final[dict[Literal["creatinine", "cystatin_c", "uacr"], list[str]]] = {
     "creatinine": ["2160-0", "14682-9"],
     "cystatin_c": ["33863-2"],
     "uacr": ["9318-7", "14959-1"],

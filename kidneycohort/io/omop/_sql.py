@@ -15,6 +15,20 @@ from typing import Final
 from kidneycohort.io.omop._connect import quote_identifier, quote_literal
 from kidneycohort.io.omop._spec import OmopSource
 
+__all__ = [
+    "COHORT_COLUMNS",
+    "EVENT_TABLES",
+    "REQUIRED_COLUMNS",
+    "VOCABULARY_COLUMNS",
+    "cohort_sql",
+    "death_sql",
+    "event_sql",
+    "measurement_sql",
+    "observation_sql",
+    "person_sql",
+    "table",
+]
+
 # Columns each CDM table must have (OMOP CDM v5.4) for the reader.
 REQUIRED_COLUMNS: Final[dict[str, tuple[str, ...]]] = {
     "person": (

@@ -26,6 +26,8 @@ from kidneycohort.errors import ConfigError, InputDataError
 from kidneycohort.io.omop._connect import OmopConnection, quote_identifier, quote_literal
 from kidneycohort.io.omop._spec import OPERATOR_QUALIFIERS, OmopSource
 
+__all__ = ["UCUM", "Vocabulary", "check_unit_codes", "resolve_vocabulary"]
+
 logger = logging.getLogger(__name__)
 
 LOINC, UCUM, GENDER, VISIT, OPERATOR = "LOINC", "UCUM", "Gender", "Visit", "Meas Value Operator"
@@ -134,7 +136,7 @@ def resolve_vocabulary(con: OmopConnection) -> Vocabulary:
         pairs += [(spec.kidney_death_causes.vocabulary, c) for c in spec.kidney_death_causes.codes]
     found = _lookup(con, pairs)
 
-    labs = {
+    labs: dict[int, str] = {
         concept: analyte
         for analyte, codes in spec.labs.items()
         for ids in _ids(found, LOINC, codes, f"data.source.labs.{analyte}").values()
@@ -169,8 +171,8 @@ def resolve_vocabulary(con: OmopConnection) -> Vocabulary:
         operators |= dict.fromkeys(ids, qualifier)
     events: dict[tuple[str, str], list[int]] = {}
     for i, e in enumerate(spec.events):
-        ids = _ids(found, e.vocabulary, e.codes, f"data.source.events[{i}]")
-        events.setdefault((e.table, e.event), []).extend(c for v in ids.values() for c in v)
+        by_code = _ids(found, e.vocabulary, e.codes, f"data.source.events[{i}]")
+        events.setdefault((e.table, e.event), []).extend(c for v in by_code.values() for c in v)
     kidney_death: list[int] = []
     if spec.kidney_death_causes is not None:
         causes = spec.kidney_death_causes

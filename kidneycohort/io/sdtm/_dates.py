@@ -22,6 +22,8 @@ from typing import Final, Literal
 
 import polars as pl
 
+__all__ = ["PARTIAL_DATE_RULES", "impute", "is_partial", "iso_datetime", "read_dtc"]
+
 PartialDateRule = Literal["reject", "first", "middle"]
 PARTIAL_DATE_RULES: Final = ("reject", "first", "middle")
 

@@ -37,6 +37,8 @@ from kidneycohort.io.readers import AS_READ_SUFFIX
 from kidneycohort.io.sdtm._dates import read_dtc
 from kidneycohort.io.sdtm._spec import SdtmSource
 
+__all__ = ["SdtmTables", "read_domain", "read_sdtm"]
+
 logger = logging.getLogger(__name__)
 
 _SEX: dict[str, str] = {"F": "female", "M": "male"}
@@ -232,15 +234,15 @@ def read_patients(
 # ---- events ----------------------------------------------------------------------------
 def read_events(spec: SdtmSource, domain: pl.DataFrame | None) -> pl.DataFrame:
     """Dialysis / transplant records of the event domain -> canonical raw events."""
-    schema = {
-        "patient_id": pl.String,
+    schema: dict[str, pl.DataType] = {
+        "patient_id": pl.String(),
         "event_date": pl.Datetime("us"),
-        "event_date" + AS_READ_SUFFIX: pl.String,
-        "event": pl.String,
+        "event_date" + AS_READ_SUFFIX: pl.String(),
+        "event": pl.String(),
         "end_date": pl.Datetime("us"),
-        "source": pl.String,
-        "source_row": pl.Int64,
-        "assumption": pl.String,
+        "source": pl.String(),
+        "source_row": pl.Int64(),
+        "assumption": pl.String(),
     }
     if domain is None:
         return pl.DataFrame(schema=schema)
@@ -267,7 +269,7 @@ def read_events(spec: SdtmSource, domain: pl.DataFrame | None) -> pl.DataFrame:
         _notes([note]),
     )
     # only records of the listed terms are events; others are not part of the study's read
-    return rows.filter(pl.col("event").is_not_null()).cast(schema)  # type: ignore[arg-type]
+    return rows.filter(pl.col("event").is_not_null()).cast(pl.Schema(schema))
 
 
 def read_sdtm(source: SdtmSource | Mapping[str, Any]) -> SdtmTables:

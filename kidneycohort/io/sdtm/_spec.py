@@ -18,8 +18,14 @@ from pydantic import Field, model_validator
 
 from kidneycohort._rules import RuleModel
 
-DEFAULT_TEST_CODES: Final = {"CREAT": "creatinine", "CYSTC": "cystatin_c", "ALBCREAT": "uacr"}
-DEFAULT_EVENT_TERMS: Final = {
+__all__ = ["DEFAULT_TEST_CODES", "SdtmSource"]
+
+DEFAULT_TEST_CODES: Final[dict[str, Literal["creatinine", "cystatin_c", "uacr"]]] = {
+    "CREAT": "creatinine",
+    "CYSTC": "cystatin_c",
+    "ALBCREAT": "uacr",
+}
+DEFAULT_EVENT_TERMS: Final[dict[str, Literal["dialysis", "transplant", "kidney_death"]]] = {
     "HEMODIALYSIS": "dialysis",
     "HAEMODIALYSIS": "dialysis",
     "PERITONEAL DIALYSIS": "dialysis",

@@ -138,7 +138,9 @@ class CompetingRisks:
         if self.fine_gray_ is not None and hasattr(self.fine_gray_, "cumulative_incidence_"):
             predicted = self.fine_gray_.cumulative_incidence_
             parts.append(predicted.with_columns(pl.lit(rows.event_label).alias("cause")))
-        return pl.concat(p.select(list(CURVE_COLUMNS)) for p in parts).cast(CURVE_COLUMNS)
+        return pl.concat(p.select(list(CURVE_COLUMNS)) for p in parts).cast(
+            pl.Schema(CURVE_COLUMNS)
+        )
 
     def _check_fitted(self) -> None:
         if not hasattr(self, "rows_"):

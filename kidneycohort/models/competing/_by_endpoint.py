@@ -59,10 +59,12 @@ def competing_risks_tables(
             )
         )
     return (
-        pl.concat(hazards, how="diagonal_relaxed").cast(COMPETING_HAZARDS)
+        pl.concat(hazards, how="diagonal_relaxed").cast(pl.Schema(COMPETING_HAZARDS))
         if hazards
         else pl.DataFrame(schema=COMPETING_HAZARDS),
-        pl.concat(tests, how="diagonal_relaxed").select(list(COMPETING_TESTS)).cast(COMPETING_TESTS)
+        pl.concat(tests, how="diagonal_relaxed")
+        .select(list(COMPETING_TESTS))
+        .cast(pl.Schema(COMPETING_TESTS))
         if tests
         else pl.DataFrame(schema=COMPETING_TESTS),
     )

@@ -220,8 +220,8 @@ def _endpoint_causes(frame: pl.DataFrame, spec: CompetingRisksRule) -> tuple[pl.
         .then(COMPETING)
         .otherwise(CENSORED)
     )
-    label = pl.when(death).then(pl.col("reason").cast(pl.String).fill_null("death"))
-    label = label.otherwise(pl.col("reason").cast(pl.String))
+    reason = pl.col("reason").cast(pl.String)
+    label = pl.when(death).then(reason.fill_null("death")).otherwise(reason)
     return frame.with_columns(cause.cast(pl.Int8).alias("_cause"), label.alias("_label")), wanted
 
 
@@ -361,7 +361,11 @@ def prepare_competing_rows(
     if group_source and group_source[0] not in frame.columns and patients is None:
         frame = frame.with_columns(pl.lit("all").alias(group_source[0]))
     frame = _join_patients(frame, patients, [*group_source, *extra])
-    group_expr = pl.col(spec.group_column).cast(pl.String) if group_source else pl.lit("all")
+    group_expr = (
+        pl.col(spec.group_column).cast(pl.String)
+        if spec.group_column is not None
+        else pl.lit("all")
+    )
     frame = frame.with_columns(group_expr.alias("_group"))
     kept, dropped = split_complete_cases(frame, list(dict.fromkeys(extra)))
     if dropped.height:
@@ -430,7 +434,7 @@ def subset_rows(rows: CompetingRows, keep: np.ndarray, terms: list[int]) -> Comp
         group=rows.group[keep],
         groups=rows.groups,
         reference_group=rows.reference_group,
-        design=rows.design[np.ix_(keep, terms)],
+        design=rows.design[np.ix_(keep, np.asarray(terms, dtype=np.intp))],
         terms=[rows.terms[i] for i in terms],
         families=[],
         strata=None if rows.strata is None else rows.strata[keep],

@@ -85,6 +85,21 @@ def check_levels_have_events(rows: CompetingRows, cause: int, cause_label: str) 
     return EventCheck(keep, dropped, None)
 
 
+def _hazard_ratio(estimate: tuple[float, float] | None, z: float) -> dict[str, float | None]:
+    """Hazard ratio, its interval, p, log hazard ratio and its SE from ``(log HR, SE)``."""
+    if estimate is None:
+        return dict.fromkeys(("hr", "hr_lower", "hr_upper", "p", "log_hr", "se"))
+    b, s = estimate
+    return {
+        "hr": float(np.exp(b)),
+        "hr_lower": float(np.exp(b - z * s)),
+        "hr_upper": float(np.exp(b + z * s)),
+        "p": float(2.0 * stats.norm.sf(abs(b / s))),
+        "log_hr": b,
+        "se": s,
+    }
+
+
 def hazard_rows(
     *,
     model: str,
@@ -104,26 +119,23 @@ def hazard_rows(
     records = []
     for i, term in enumerate(terms):
         reason = reasons.get(term)
-        usable = beta is not None and se is not None and reason is None
-        if usable and not (np.isfinite(beta[i]) and np.isfinite(se[i]) and se[i] > 0):
-            usable, reason = False, "standard error not finite; the estimate is not reported"
-        b = float(beta[i]) if usable else None
-        s = float(se[i]) if usable else None
+        estimate: tuple[float, float] | None = None
+        if beta is not None and se is not None and reason is None:
+            b, s = float(beta[i]), float(se[i])
+            if np.isfinite(b) and np.isfinite(s) and s > 0:
+                estimate = (b, s)
+            else:
+                reason = "standard error not finite; the estimate is not reported"
         records.append(
             {
                 "model": model,
                 "cause": cause,
                 "term": term,
-                "hr": None if b is None else float(np.exp(b)),
-                "hr_lower": None if b is None else float(np.exp(b - z * s)),
-                "hr_upper": None if b is None else float(np.exp(b + z * s)),
-                "p": None if b is None else float(2.0 * stats.norm.sf(abs(b / s))),
-                "log_hr": b,
-                "se": s,
+                **_hazard_ratio(estimate, z),
                 "n_patients": n_patients,
                 "n_events": n_events,
-                "estimable": usable,
-                "reason": None if usable else reason,
+                "estimable": estimate is not None,
+                "reason": None if estimate is not None else reason,
             }
         )
     return pl.DataFrame(records, schema=HAZARD_COLUMNS)

@@ -62,7 +62,7 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Literal
+from typing import Literal, TypedDict
 
 import numpy as np
 
@@ -158,6 +158,19 @@ def moment_start(blocks: PatientBlocks) -> np.ndarray | None:
     return (vectors * np.maximum(values, floor)) @ vectors.T
 
 
+class _Factorised(TypedDict):
+    """The per-patient factorisation at one parameter vector (see the module docstring)."""
+
+    factor: np.ndarray
+    group_weights: np.ndarray
+    weights: np.ndarray | None  # per patient; None with one residual group
+    cross: np.ndarray
+    lam_cross: np.ndarray
+    lower: np.ndarray
+    stacked: np.ndarray
+    solved: np.ndarray
+
+
 class ProfiledDeviance:
     """Profiled deviance of ``blocks`` as a function of the covariance parameters.
 
@@ -244,7 +257,7 @@ class ProfiledDeviance:
 
     # ---- evaluation -----------------------------------------------------------------
 
-    def _factorise(self, x: np.ndarray) -> dict[str, np.ndarray]:
+    def _factorise(self, x: np.ndarray) -> _Factorised:
         """Per-patient pieces shared by the value, the gradient and the predictions."""
         factor = self.factor(x)
         group_weights, weights = self._weights(x)
@@ -293,7 +306,7 @@ class ProfiledDeviance:
     def _gradient(
         self,
         x: np.ndarray,
-        parts: dict[str, np.ndarray],
+        parts: _Factorised,
         beta: np.ndarray,
         chol: np.ndarray,
         rss: float,
@@ -322,12 +335,12 @@ class ProfiledDeviance:
     def _ratio_gradient(
         self,
         codes: np.ndarray,
-        parts: dict[str, np.ndarray],
+        parts: _Factorised,
         beta: np.ndarray,
         chol: np.ndarray,
         scale: float,
     ) -> np.ndarray:
-        blocks, w = self.blocks, parts["weights"]
+        blocks, w = self.blocks, parts["group_weights"][codes]  # the per-patient weights
         cross = blocks.random_cross
         relative = forward_solve(
             parts["lower"], np.broadcast_to(parts["factor"].T[:, :, None], cross.shape)

@@ -82,9 +82,16 @@ class _Counter:
                 evaluation = self.deviance(x)
         except (np.linalg.LinAlgError, FloatingPointError) as error:
             raise OptimisationFailed(f"deviance not computable ({error})") from None
-        if not np.isfinite(evaluation.value) or not np.all(np.isfinite(evaluation.gradient)):
+        if not np.isfinite(evaluation.value) or not np.all(np.isfinite(_gradient(evaluation))):
             raise OptimisationFailed("deviance or gradient not finite")
         return evaluation
+
+
+def _gradient(evaluation: Evaluation) -> np.ndarray:
+    """The gradient of an evaluation; the optimiser asks for it at every evaluation."""
+    if evaluation.gradient is None:
+        raise OptimisationFailed("deviance evaluated without its gradient")
+    return evaluation.gradient
 
 
 def _held_at_bound(x: np.ndarray, gradient: np.ndarray, lower: np.ndarray) -> np.ndarray:
@@ -100,7 +107,7 @@ def _hessian(counter: _Counter, x: np.ndarray) -> np.ndarray:
         up, down = x.copy(), x.copy()
         up[k] += step
         down[k] -= step
-        hessian[:, k] = (counter(up).gradient - counter(down).gradient) / (2.0 * step)
+        hessian[:, k] = (_gradient(counter(up)) - _gradient(counter(down))) / (2.0 * step)
     return (hessian + hessian.T) / 2.0
 
 
@@ -123,8 +130,9 @@ def _newton_direction(
 
 
 def _projected_norm(evaluation: Evaluation, x: np.ndarray, lower: np.ndarray) -> float:
-    free = ~_held_at_bound(x, evaluation.gradient, lower)
-    return float(np.abs(evaluation.gradient[free]).max()) if free.any() else 0.0
+    gradient = _gradient(evaluation)
+    free = ~_held_at_bound(x, gradient, lower)
+    return float(np.abs(gradient[free]).max()) if free.any() else 0.0
 
 
 def _better(
@@ -148,8 +156,9 @@ def _newton_polish(
     steps = 0
     while steps < _NEWTON_STEPS:
         steps += 1
-        free = ~_held_at_bound(x, current.gradient, lower)
-        direction, decrement = _newton_direction(_hessian(counter, x), current.gradient, free)
+        gradient = _gradient(current)
+        free = ~_held_at_bound(x, gradient, lower)
+        direction, decrement = _newton_direction(_hessian(counter, x), gradient, free)
         improved = False
         for length in (1.0, 0.5, 0.25, 0.125, 1 / 16, 1 / 64):
             trial = np.clip(x + length * direction, lower, upper)
@@ -198,7 +207,7 @@ def minimise_deviance(
 
     def value_and_gradient(x: np.ndarray) -> tuple[float, np.ndarray]:
         evaluation = counter(x)
-        return evaluation.value * scale, evaluation.gradient * scale
+        return evaluation.value * scale, _gradient(evaluation) * scale
 
     search = optimize.minimize(
         value_and_gradient,

@@ -38,7 +38,10 @@ ESTIMATE_COLUMNS = ("estimate", "se", "lower", "upper", "p")
 
 
 def _wald_frame(
-    labels: dict[str, Sequence[object]], estimate: np.ndarray, se: np.ndarray, confidence: float
+    labels: dict[str, Sequence[object] | pl.Series],
+    estimate: np.ndarray,
+    se: np.ndarray,
+    confidence: float,
 ) -> pl.DataFrame:
     z = stats.norm.ppf(0.5 + confidence / 2.0)
     with np.errstate(divide="ignore", invalid="ignore"):

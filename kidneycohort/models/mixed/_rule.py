@@ -8,6 +8,8 @@ from pydantic import Field, model_validator
 
 from kidneycohort._rules import RuleModel
 
+__all__ = ["TRAJECTORY_COLUMNS", "RandomEffects", "SlopeModelRule"]
+
 RandomEffects = Literal["unstructured", "diagonal", "intercept_and_slope", "intercept"]
 
 

@@ -20,6 +20,8 @@ from kidneycohort.models.mixed._fitters import fit_exact, fit_statsmodels
 from kidneycohort.models.mixed._rule import TRAJECTORY_COLUMNS, SlopeModelRule
 from kidneycohort.schemas import SLOPE_MODEL_FIT
 
+__all__ = ["SlopeModel"]
+
 logger = logging.getLogger(__name__)
 
 

@@ -46,6 +46,12 @@ def evaluable_rows(endpoints: FrameLike) -> pl.DataFrame:
     return to_polars(endpoints, "endpoints").filter(pl.col("event").is_not_null())
 
 
+def _cox_fit(
+    rule: SurvivalRule, rows: pl.DataFrame, patients: pl.DataFrame, endpoint: str
+) -> CoxModel:
+    return CoxModel(rule, endpoint=endpoint).fit(rows, patients)
+
+
 def _fit_each_endpoint(
     rows: pl.DataFrame, fit: Callable[[str], Fitted], what: str
 ) -> list[tuple[str, Fitted]]:

@@ -19,6 +19,8 @@ from kidneycohort.models.survival._data import _prepare, _warn_all
 from kidneycohort.models.survival._estimability import with_estimability
 from kidneycohort.models.survival._rule import SurvivalRule
 
+__all__ = ["CoxModel"]
+
 logger = logging.getLogger(__name__)
 
 

@@ -25,6 +25,8 @@ from kidneycohort.models.survival._data import (
 )
 from kidneycohort.models.survival._rule import CURVE_COLUMNS, SurvivalRule
 
+__all__ = ["CumulativeIncidence", "KaplanMeier"]
+
 
 class _CurveModel:
     """Shared configuration of the curve estimators."""

@@ -7,6 +7,7 @@ from __future__ import annotations
 import logging
 import warnings
 from collections.abc import Sequence
+from typing import SupportsFloat
 
 import numpy as np
 import pandas as pd
@@ -17,6 +18,8 @@ from kidneycohort.errors import InputDataError, StatisticalWarning, did_you_mean
 from kidneycohort.models._design import split_complete_cases, with_group
 from kidneycohort.models.survival._rule import AT_RISK_COLUMNS
 
+__all__ = ["_curve_frame", "_estimates_at", "_finite", "_prepare", "_warn_all", "numbers_at_risk"]
+
 logger = logging.getLogger(__name__)
 
 
@@ -25,7 +28,7 @@ def _prepare(
     patients: FrameLike | None,
     *,
     endpoint: str | None,
-    group_column: str,
+    group_column: str | None,
     extra_columns: Sequence[str] = (),
 ) -> tuple[pl.DataFrame, pl.DataFrame, str]:
     """One endpoint's rows with ``group`` (and ``extra_columns`` from patients), complete
@@ -157,8 +160,8 @@ def _curve_frame(
     )
 
 
-def _finite(value: object) -> float | None:
-    number = float(value)  # type: ignore[arg-type]
+def _finite(value: SupportsFloat) -> float | None:
+    number = float(value)
     return number if np.isfinite(number) else None
 
 

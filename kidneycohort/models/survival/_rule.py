@@ -6,6 +6,8 @@ from pydantic import Field
 
 from kidneycohort._rules import RuleModel
 
+__all__ = ["AT_RISK_COLUMNS", "CURVE_COLUMNS", "SurvivalRule"]
+
 CURVE_COLUMNS = ("group", "years", "estimate", "lower", "upper", "measure")
 
 

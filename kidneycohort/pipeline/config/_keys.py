@@ -14,6 +14,8 @@ from pydantic import BaseModel
 from kidneycohort._rules import rule_error_message, short_repr, validate_config
 from kidneycohort.errors import ConfigError, did_you_mean
 
+__all__ = ["_models_in", "absolute", "check_keys", "validate_section"]
+
 
 # ---- unknown keys, with suggestions -----------------------------------------------------
 def _models_in(annotation: Any, kind: str = "") -> list[tuple[type[BaseModel], str]]:

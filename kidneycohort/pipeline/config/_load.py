@@ -31,6 +31,8 @@ from kidneycohort.pipeline.config._sections import (
 from kidneycohort.pipeline.config._yaml import apply_overrides, deep_merge, read_yaml
 from kidneycohort.pipeline.registry import StepRegistry, default_registry
 
+__all__ = ["load_config"]
+
 
 # ---- entry point ------------------------------------------------------------------------
 def load_config(

@@ -15,6 +15,16 @@ from kidneycohort.pipeline.config._yaml import read_yaml
 from kidneycohort.pipeline.registry import Step
 from kidneycohort.pipeline.standard_sources import anchor as anchor_source
 
+__all__ = [
+    "_anchor_paths",
+    "builtin_config_dir",
+    "builtin_recipe_dir",
+    "check_chain",
+    "find_recipe",
+    "load_recipe",
+    "source_tables",
+]
+
 
 # ---- recipes ----------------------------------------------------------------------------
 def builtin_recipe_dir() -> Path:
@@ -111,7 +121,38 @@ def _anchor_paths(data: DataSection, config_dir: Path) -> DataSection:
     for table in ("patients", "labs", "events"):
         value = getattr(data, table)
         if isinstance(value, list):
-            update[table] = [anchor(s) for s in value]
+            update[table] = _distinct_labels([anchor(s) for s in value], table, config_dir)
         elif value is not None:
             update[table] = anchor(value)
     return data.model_copy(update=update)
+
+
+def _distinct_labels(specs: list[FileSource], table: str, config_dir: Path) -> list[FileSource]:
+    """Files of one table that share a file stem are labelled by their path instead
+    (``site_a/labs``), so the manifest and rejected rows tell them apart; the same file
+    twice, or one explicit label twice, is an error."""
+    paths = [Path(s.path).resolve() for s in specs]
+    for i, path in enumerate(paths):
+        if path in paths[:i]:
+            raise ConfigError(
+                f"data.{table}[{i}]: '{specs[i].path}' is the same file as "
+                f"data.{table}[{paths.index(path)}]; list it once"
+            )
+    stems = [s.source_name() for s in specs]
+    out = []
+    for spec, stem, path in zip(specs, stems, paths, strict=True):
+        if spec.name is None and stems.count(stem) > 1:
+            try:
+                label = path.relative_to(config_dir.resolve()).with_suffix("").as_posix()
+            except ValueError:
+                label = path.with_suffix("").as_posix()
+            spec = spec.model_copy(update={"name": label})
+        out.append(spec)
+    labels = [s.source_name() for s in out]
+    for i, label in enumerate(labels):
+        if label in labels[:i]:
+            raise ConfigError(
+                f"data.{table}[{i}].name: label '{label}' is also the label of "
+                f"data.{table}[{labels.index(label)}]; give each file its own name"
+            )
+    return out

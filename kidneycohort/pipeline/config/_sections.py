@@ -15,6 +15,16 @@ from kidneycohort.io.maps import FileSource
 from kidneycohort.pipeline.registry import Step
 from kidneycohort.pipeline.standard_sources import StandardSource
 
+__all__ = [
+    "FIXED_SECTIONS",
+    "STUDY_FACTS",
+    "DataSection",
+    "OutputSection",
+    "Recipe",
+    "StudyConfig",
+    "StudySection",
+]
+
 FIXED_SECTIONS = ("study", "data", "output")
 
 
@@ -55,7 +65,12 @@ class StudySection(_Strict):
         description="Group every difference and hazard ratio is taken against (default: "
         "the first group in sorted order).",
     )
-    seed: int = Field(0, description="Seed for any resampling a step does; recorded.")
+    seed: int = Field(
+        0,
+        ge=0,
+        lt=2**63,
+        description="Seed for any resampling a step does (0 to 2^63 - 1); recorded.",
+    )
     description: str = Field("", description="Free text shown in the report header.")
 
     @model_validator(mode="after")

@@ -18,6 +18,8 @@ from kidneycohort.adam import AdamRule
 from kidneycohort.errors import ConfigError
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 
+__all__ = ["add_adam"]
+
 logger = logging.getLogger(__name__)
 
 

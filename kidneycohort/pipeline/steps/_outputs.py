@@ -94,7 +94,10 @@ def _shared_tables(ctx: StepContext, disclosure: Any, *, cohort_tables: bool) ->
 def _kfre_summary(ctx: StepContext, group: str | None, disclosure: Any) -> pl.DataFrame:
     """The KFRE summary table, when the run computed KFRE (empty otherwise)."""
     from kidneycohort.kfre import KfreRule, kfre_summary_table
+    from kidneycohort.tables import TableRule
 
+    table_rule = ctx.options
+    assert isinstance(table_rule, TableRule)
     rows = ctx.tables.get("kfre")
     if rows is None:
         return pl.DataFrame(
@@ -104,7 +107,7 @@ def _kfre_summary(ctx: StepContext, group: str | None, disclosure: Any) -> pl.Da
         rows,
         group_column=group,
         rule=section(ctx, "kfre", KfreRule),
-        table_rule=ctx.options,
+        table_rule=table_rule,
         disclosure=disclosure,
     )
 

@@ -7,6 +7,7 @@ from typing import Any
 import polars as pl
 
 from kidneycohort import schemas
+from kidneycohort.errors import InputDataError
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 from kidneycohort.pipeline.steps._facts import check_primary, records
 
@@ -34,6 +35,9 @@ def add_harmonize(registry: StepRegistry) -> None:
             ctx.tables.get("events"),
             rule=ctx.options,  # type: ignore[arg-type]
         )
+        nothing = result.unusable()
+        if nothing:
+            raise InputDataError("; ".join(nothing))
         ctx.accounting.extend(
             records(
                 result.accounting,
