@@ -202,9 +202,13 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.provenance import get_publication as get_publication
     from kidneycohort.provenance import read_code_location as read_code_location
     from kidneycohort.provenance import status_counts as status_counts
+    from kidneycohort.report import ReportRule as ReportRule
     from kidneycohort.report import build_report_context as build_report_context
+    from kidneycohort.report import find_browser as find_browser
     from kidneycohort.report import methods_from_config as methods_from_config
+    from kidneycohort.report import print_pdf as print_pdf
     from kidneycohort.report import render_report as render_report
+    from kidneycohort.report import require_browser as require_browser
     from kidneycohort.report import write_report as write_report
     from kidneycohort.run_folder import AccountingRecord as AccountingRecord
     from kidneycohort.run_folder import InputRecord as InputRecord
@@ -436,7 +440,16 @@ _PUBLIC: dict[str, str] = {
     },
     **{
         name: "kidneycohort.report"
-        for name in ("write_report", "render_report", "build_report_context", "methods_from_config")
+        for name in (
+            "write_report",
+            "render_report",
+            "build_report_context",
+            "methods_from_config",
+            "ReportRule",
+            "print_pdf",
+            "find_browser",
+            "require_browser",
+        )
     },
     **{
         name: "kidneycohort.synthetic"

@@ -343,12 +343,12 @@ def _slope_model(config: Config, labels: Mapping[str, str], facts: Mapping[str, 
     out = [
         f"eGFR over time{f' ({labels.get(equation, equation)})' if equation else ''} was "
         f"analysed with a linear mixed model: fixed effects {fixed}; random effects "
-        f"{_STRUCTURES.get(rule.get('random_effects'), rule.get('random_effects'))} per "
+        f"{_STRUCTURES.get(str(rule.get('random_effects')), rule.get('random_effects'))} per "
         "patient, with simpler structures tried in turn if the model did not converge."
     ]
     fit = facts.get("slope_model_fit") or []
     estimation = "restricted maximum likelihood (REML)"
-    engine = _ENGINES.get(rule.get("engine"), rule.get("engine"))
+    engine = _ENGINES.get(str(rule.get("engine")), rule.get("engine"))
     out.append(f"The model was estimated by {estimation} with {engine}.")
     for row in fit:
         structure = _STRUCTURES.get(row.get("structure"), row.get("structure"))
