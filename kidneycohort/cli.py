@@ -295,6 +295,9 @@ def _guarded_run(func: F) -> F:
     return wrapper  # type: ignore[return-value]
 
 
+_READER_COLUMNS = frozenset({"source_row", "source", "assumption"})
+
+
 @cli.command("validate")
 @click.argument("config", type=click.Path(path_type=Path))
 @click.option("--set", "overrides", multiple=True, metavar="KEY=VALUE", help=_SET_HELP)
@@ -320,8 +323,11 @@ def validate_cmd(config: Path, overrides: tuple[str, ...], no_data: bool) -> Non
     click.echo(f"config {config}: valid")
     click.echo(f"recipe {study.recipe.name}: {' -> '.join(s.name for s in study.steps)}")
     for table, names in columns.items():
-        click.echo(f"data.{table}: {len(names)} columns readable")
-    click.echo(f"run folder: {study.output.dir}")
+        # the columns as the stages will see them (after the config's column map), without
+        # the reader's own bookkeeping columns
+        shown = [n for n in names if n not in _READER_COLUMNS and not n.endswith("_as_read")]
+        click.echo(f"data.{table}: read as {', '.join(shown)}")
+    click.echo(f"run folder: {study.output.dir} (unless run --out names another)")
 
 
 @cli.command("run")

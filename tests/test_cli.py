@@ -58,6 +58,9 @@ def test_validate_ok(tmp_path: Path) -> None:
     result = _invoke("validate", str(_study(tmp_path)))
     assert result.exit_code == 0, result.output
     assert "valid" in result.output and "harmonize" in result.output
+    # the columns each table is read as (after the column map), not the reader's own
+    labs = next(line for line in result.output.splitlines() if line.startswith("data.labs"))
+    assert "patient_id" in labs and "source_row" not in labs and "_as_read" not in labs
 
 
 @pytest.mark.parametrize(
