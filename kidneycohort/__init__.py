@@ -188,6 +188,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.plots import kdigo_grid_cells as kdigo_grid_cells
     from kidneycohort.plots import kdigo_grid_figure as kdigo_grid_figure
     from kidneycohort.plots import model_trajectory_figure as model_trajectory_figure
+    from kidneycohort.plots import slope_density as slope_density
     from kidneycohort.plots import slope_distribution as slope_distribution
     from kidneycohort.plots import slope_distribution_figure as slope_distribution_figure
     from kidneycohort.plots import survival_figure as survival_figure
@@ -432,6 +433,7 @@ _PUBLIC: dict[str, str] = {
             "kdigo_grid_figure",
             "transition_cells",
             "transition_heatmap_figure",
+            "slope_density",
             "slope_distribution",
             "slope_distribution_figure",
             "survival_steps",

@@ -10,7 +10,7 @@ import polars as pl
 from pydantic import Field
 
 from kidneycohort import schemas
-from kidneycohort._frames import FrameLike, as_int, conform, follows_input
+from kidneycohort._frames import FrameLike, as_int, conform, follows_input, to_polars
 from kidneycohort._rules import RuleModel
 from kidneycohort.errors import InputDataError
 from kidneycohort.kdigo._categories import (
@@ -408,8 +408,73 @@ def sustained_stages(
         stage order.
     """
     rule = rule or SustainRule()
-    results = _results(egfr, labs, patients, rule, value_filter)
-    return _stages_from_results(_confirm(results, rule, labels=False), results)
+    parts = _patient_chunks(egfr, labs, patients)
+    if parts is None:
+        results = _results(egfr, labs, patients, rule, value_filter)
+        return _stages_from_results(_confirm(results, rule, labels=False), results)
+    stages = []
+    for part_egfr, part_labs, part_patients in parts:
+        results = _results(part_egfr, part_labs, part_patients, rule, value_filter)
+        stages.append(_stages_from_results(_confirm(results, rule, labels=False), results))
+        del results
+    return pl.concat(stages)
+
+
+# Results (eGFR plus UACR rows) derived at once. Larger inputs are split into ranges of
+# patients: the working tables of the value filter, the sort and the as-of join are
+# several times the input, so their peak grows with the chunk, not with the cohort.
+_CHUNK_ROWS: Final = 2_000_000
+
+
+def _patient_range(ids: pl.Expr, low: str | None, high: str | None) -> pl.Expr:
+    """Patients with ``low <= id < high`` (missing ids with the first range)."""
+    text = ids.cast(pl.String)
+    inside = pl.lit(True)
+    if low is not None:
+        inside = inside & (text >= low)
+    if high is not None:
+        inside = inside & (text < high)
+    return inside if low is not None else (inside | text.is_null())
+
+
+def _patient_chunks(
+    egfr: FrameLike | None, labs: FrameLike | None, patients: FrameLike | None
+) -> list[tuple[pl.DataFrame | None, pl.DataFrame | None, pl.DataFrame | None]] | None:
+    """The inputs split into consecutive ranges of patient ids, or ``None`` when small.
+
+    Stages are a per-patient derivation (the partition rule) and come out sorted by
+    patient id first, so the stages of consecutive id ranges, concatenated in order,
+    are the stages of the whole cohort, row for row.
+    """
+    egfr_df = to_polars(egfr, "egfr") if egfr is not None else None
+    labs_df = to_polars(labs, "labs") if labs is not None else None
+    if labs_df is not None and "analyte" in labs_df.columns:
+        # only UACR rows make the A axis; the other labs need not be split
+        labs_df = labs_df.filter(pl.col("analyte").cast(pl.String) == "uacr")
+    frames = [f for f in (egfr_df, labs_df) if f is not None and "patient_id" in f.columns]
+    rows = sum(f.height for f in frames)
+    if rows <= _CHUNK_ROWS:
+        return None
+    ids = (
+        pl.concat([f.select(pl.col("patient_id").cast(pl.String)) for f in frames])
+        .drop_nulls()
+        .unique()
+        .sort("patient_id")["patient_id"]
+    )
+    n_chunks = min(-(-rows // _CHUNK_ROWS), max(ids.len(), 1))
+    cuts = [ids[i * ids.len() // n_chunks] for i in range(1, n_chunks)]
+    bounds = list(zip([None, *cuts], [*cuts, None], strict=True))
+    patients_df = to_polars(patients, "patients") if patients is not None else None
+
+    def part(frame: pl.DataFrame | None, low: str | None, high: str | None) -> pl.DataFrame | None:
+        if frame is None or "patient_id" not in frame.columns:
+            return frame
+        return frame.filter(_patient_range(pl.col("patient_id"), low, high))
+
+    return [
+        (part(egfr_df, low, high), part(labs_df, low, high), part(patients_df, low, high))
+        for low, high in bounds
+    ]
 
 
 def _stages_from_results(confirmed_results: pl.DataFrame, results: pl.DataFrame) -> pl.DataFrame:

@@ -28,6 +28,7 @@ import polars as pl
 
 from kidneycohort.errors import ConfigError, KidneyCohortError
 from kidneycohort.pipeline import placement
+from kidneycohort.pipeline._peak_memory import StepPeakMemory
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.registry import Step, StepContext
 from kidneycohort.pipeline.sources import input_records, read_sources
@@ -95,7 +96,10 @@ class RunResult:
     run_dir : pathlib.Path
         The run folder, in place.
     tables : dict
-        Every table the run held at the end (including in-memory ones).
+        The tables the run held at the end: ``cohort``, the shared tables and models,
+        in-memory objects, and per-row tables a last step made. Per-row tables no
+        later step read (labs, eGFR, stages, ...) were released after their last use;
+        read them from the run folder.
     manifest : Manifest
         The manifest as written.
     warnings : list of str
@@ -384,24 +388,68 @@ def _execute(
         progress.start(["read"] + [s.name for s in config.steps])
         progress.step_started("read")
         started = time.perf_counter()
-        state.tables.update(reader(config))
-        state.inputs = input_records(config, state.tables)
+        with StepPeakMemory() as memory:
+            state.tables.update(reader(config))
+            state.inputs = input_records(config, state.tables)
         seconds = time.perf_counter() - started
         rows = _rows(state.tables.get("raw_labs"))
-        state.steps.append(StepRecord(name="read", seconds=round(seconds, 3), rows_out=rows))
+        state.steps.append(
+            StepRecord(
+                name="read", seconds=round(seconds, 3), rows_out=rows, peak_rss_mib=memory.peak_mib
+            )
+        )
         logger.info("step read: %s rows of labs in %.2f s", rows, seconds)
         progress.step_finished("read", seconds, rows)
-        for step in config.steps:
+        last_use = _last_use(config.steps)
+        for index, step in enumerate(config.steps):
             folder = None
             if step.reads_folder:
                 _finish_tables(run_dir, state.tables, config)
                 state.caught = list(caught)
                 folder = RunFolder(run_dir, manifest=state.manifest())
             _run_step(step, state, run_dir, progress, folder)
+            _release(state.tables, last_use, index, config)
         _finish_tables(run_dir, state.tables, config)
         state.caught = list(caught)
     for w in state.caught:
         logger.warning("%s", _format_warning(w))
+
+
+# Tables kept to the end of a run whatever the steps need: the patients (``cohort``) and
+# every table the run folder's workbook or a caller reads back from ``RunResult.tables``.
+_KEPT = frozenset({"cohort"})
+
+
+def _last_use(steps: list[Step]) -> dict[str, int]:
+    """For each table, the index of the last step that reads (or else makes) it."""
+    last: dict[str, int] = {}
+    for index, step in enumerate(steps):
+        for name in (*step.needs, *step.optional_needs, *step.makes):
+            last[name] = index
+    return last
+
+
+def _release(
+    tables: dict[str, Any], last_use: Mapping[str, int], index: int, config: StudyConfig
+) -> None:
+    """Drop the per-row tables no later step reads (they are in the run folder already).
+
+    Kept: ``cohort``, shared tables and models (small; the workbook and callers read
+    them) and objects that are not data frames. Lab-level and per-patient tables of a
+    million patients are gigabytes; holding them to the end set the run's peak.
+    """
+    files = run_files(config)
+    for name in [n for n, i in last_use.items() if i == index]:
+        table = tables.get(name)
+        if (
+            name in _KEPT
+            or not isinstance(table, pl.DataFrame)
+            or name.startswith(("tables/", "models/"))
+            or (name in files and files[name].kind == "shared_table")
+        ):
+            continue
+        del tables[name]
+        logger.debug("released table %s after step %s", name, config.steps[index].name)
 
 
 def run_files(config: StudyConfig) -> dict[str, RunFile]:
@@ -451,9 +499,31 @@ def _run_step(
     progress: ProgressObserver,
     folder: RunFolder | None,
 ) -> None:
-    config, tables = state.config, state.tables
     progress.step_started(step.name)
     started = time.perf_counter()
+    with StepPeakMemory() as memory:
+        made = _call_step(step, state, run_dir, folder)
+    seconds = time.perf_counter() - started
+    rows_out = _rows(made[step.makes[0]]) if step.makes else None
+    logger.info(
+        "step %s: %s rows in %.2f s, peak %s MiB", step.name, rows_out, seconds, memory.peak_mib
+    )
+    progress.step_finished(step.name, seconds, rows_out)
+    state.steps.append(
+        StepRecord(
+            name=step.name,
+            seconds=round(seconds, 3),
+            rows_out=rows_out,
+            peak_rss_mib=memory.peak_mib,
+        )
+    )
+
+
+def _call_step(
+    step: Step, state: _RunState, run_dir: Path, folder: RunFolder | None
+) -> dict[str, Any]:
+    """Run one step, check what it made against its declaration, write its tables."""
+    config, tables = state.config, state.tables
     given = {n: tables[n] for n in step.needs}
     given.update({n: tables[n] for n in step.optional_needs if n in tables})
     context = StepContext(
@@ -481,11 +551,7 @@ def _run_step(
     for name in step.makes:
         tables[name] = made[name]
         write_table(run_dir, name, _with_group(name, made[name], tables), run_files(config))
-    seconds = time.perf_counter() - started
-    rows_out = _rows(made[step.makes[0]]) if step.makes else None
-    logger.info("step %s: %s rows in %.2f s", step.name, rows_out, seconds)
-    progress.step_finished(step.name, seconds, rows_out)
-    state.steps.append(StepRecord(name=step.name, seconds=round(seconds, 3), rows_out=rows_out))
     state.accounting.extend(context.accounting)
     state.by_reason.extend(context.accounting_by_reason)
     state.merged.extend(context.merged_by_reason)
+    return made

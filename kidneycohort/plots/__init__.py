@@ -42,6 +42,11 @@ from kidneycohort.plots._kdigo import (
     transition_cells,
     transition_heatmap_figure,
 )
+from kidneycohort.plots._slopes import (
+    slope_density,
+    slope_distribution,
+    slope_distribution_figure,
+)
 from kidneycohort.plots._style import (
     ALL_PATIENTS,
     GROUP_COLOURS,
@@ -61,8 +66,6 @@ from kidneycohort.plots._trajectories import (
     egfr_time_bins,
     egfr_trajectory_figure,
     model_trajectory_figure,
-    slope_distribution,
-    slope_distribution_figure,
 )
 from kidneycohort.plots._write import (
     FIGURE_TITLES,
@@ -89,6 +92,7 @@ __all__ = [
     "kdigo_grid_cells",
     "kdigo_grid_figure",
     "model_trajectory_figure",
+    "slope_density",
     "slope_distribution",
     "slope_distribution_figure",
     "survival_figure",

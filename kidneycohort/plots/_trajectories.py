@@ -1,5 +1,5 @@
-"""eGFR over time: binned means with a faint sample of patients, model-based mean
-trajectories, and the distribution of per-patient slopes.
+"""eGFR over time: binned means with a faint sample of patients, and model-based mean
+trajectories (the slope distribution is in ``_slopes``).
 """
 
 from __future__ import annotations
@@ -12,30 +12,23 @@ import polars as pl
 from plotnine import (
     aes,
     annotate,
-    coord_flip,
     facet_wrap,
-    geom_boxplot,
-    geom_hline,
     geom_line,
     geom_point,
     geom_ribbon,
-    geom_violin,
     geom_vline,
     ggplot,
     labs,
     scale_color_manual,
     scale_fill_manual,
-    scale_x_discrete,
 )
 from scipy import stats
 
 from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
-from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_count_text
+from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD
 from kidneycohort.errors import InputDataError
 from kidneycohort.plots._style import (
     EGFR_UNIT_LABEL,
-    RAPID_DECLINE_PER_YEAR,
-    SLOPE_UNIT_LABEL,
     base_theme,
     check_threshold,
     egfr_unit,
@@ -49,8 +42,6 @@ __all__ = [
     "egfr_time_bins",
     "egfr_trajectory_figure",
     "model_trajectory_figure",
-    "slope_distribution",
-    "slope_distribution_figure",
 ]
 
 logger = logging.getLogger(__name__)
@@ -220,7 +211,8 @@ def egfr_trajectory_figure(
     ).sort("patient_id", "years_from_index")
     caption = (
         f"Thick lines: mean of patient means per {bin_years:g}-year bin with 95% CI; "
-        f"faint lines: up to {sample_patients} randomly chosen patients per group. "
+        f"faint lines: {lines['patient_id'].n_unique()} patients drawn at random (up to "
+        f"{sample_patients} per group, seed {seed}). "
         f"Bins with fewer than {threshold + 1} patients are not shown."
     )
     plot = ggplot() + base_theme()
@@ -339,127 +331,5 @@ def model_trajectory_figure(
         y=f"Fitted eGFR ({EGFR_UNIT_LABEL})",
         title="Fitted mean eGFR trajectories",
         caption=wrap(caption),
-    )
-    return plot
-
-
-def slope_distribution(
-    slopes: FrameLike,
-    groups: FrameLike | None = None,
-    *,
-    equation: str | None = None,
-    rapid_decline_threshold: float = RAPID_DECLINE_PER_YEAR,
-) -> pl.DataFrame:
-    """Summary of per-patient eGFR slopes by group (the slope figure's numbers).
-
-    Only slopes flagged ``eligible`` (when the column exists) with a finite value are
-    summarised; the others are counted in ``n_not_eligible``. Rapid decline is a slope
-    below ``rapid_decline_threshold``:
-
-    .. math:: \\text{rapid} \\iff b_i < -5\\ \\text{mL/min/1.73 m}^2/\\text{year}
-
-    (KDIGO 2012 [2]_, sustained decline of more than 5 per year).
-
-    Returns
-    -------
-    polars.DataFrame
-        ``group``, ``n``, ``n_not_eligible``, ``mean``, ``median``, ``q1``, ``q3``,
-        ``n_rapid``, ``pct_rapid``.
-    """
-    df = to_polars(slopes, "slopes")
-    require_columns(df, ("patient_id", "slope_per_year"), "slopes")
-    df = pick(df, "equation", equation, "slopes")
-    df = with_groups(df, groups, "slopes")
-    usable = pl.col("slope_per_year").is_not_null() & pl.col("slope_per_year").is_not_nan()
-    if "eligible" in df.columns:
-        usable = usable & pl.col("eligible").fill_null(False)
-    value = pl.col("slope_per_year").filter(usable)
-    return (
-        df.group_by("group")
-        .agg(
-            n=usable.sum().cast(pl.Int64),
-            n_not_eligible=(~usable).sum().cast(pl.Int64),
-            mean=value.mean(),
-            median=value.median(),
-            q1=value.quantile(0.25, interpolation="linear"),
-            q3=value.quantile(0.75, interpolation="linear"),
-            n_rapid=(usable & (pl.col("slope_per_year") < rapid_decline_threshold))
-            .sum()
-            .cast(pl.Int64),
-        )
-        .with_columns(
-            pct_rapid=pl.when(pl.col("n") > 0).then(100.0 * pl.col("n_rapid") / pl.col("n"))
-        )
-        .sort("group")
-    )
-
-
-def slope_distribution_figure(
-    slopes: FrameLike,
-    groups: FrameLike | None = None,
-    *,
-    equation: str | None = None,
-    rapid_decline_threshold: float = RAPID_DECLINE_PER_YEAR,
-    small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD,
-    palette: Mapping[str, str] | None = None,
-) -> ggplot:
-    """Distribution of per-patient eGFR slopes by group, with the rapid-decline threshold.
-
-    Violin (density) with a box of median and quartiles per group; individual values are
-    not drawn. The dashed line marks ``rapid_decline_threshold``. Group labels carry the
-    number of patients (small-cell protected).
-
-    Returns
-    -------
-    plotnine.ggplot
-    """
-    threshold = check_threshold(small_cell_threshold)
-    df = pick(to_polars(slopes, "slopes"), "equation", equation, "slopes")
-    summary = slope_distribution(df, groups, rapid_decline_threshold=rapid_decline_threshold)
-    df = with_groups(df, groups, "slopes")
-    usable = pl.col("slope_per_year").is_not_null() & pl.col("slope_per_year").is_not_nan()
-    if "eligible" in df.columns:
-        usable = usable & pl.col("eligible").fill_null(False)
-    values = df.filter(usable).select("group", "slope_per_year")
-    colours = palette_for(df, palette)
-    axis_labels = {
-        row["group"]: f"{row['group']}\n(n={small_count_text(row['n'], threshold)})"
-        for row in summary.select("group", "n").to_dicts()
-    }
-    order = sorted(axis_labels)
-    plot = ggplot(data=values.to_pandas(), mapping=aes("group", "slope_per_year")) + base_theme()
-    # a violin needs a spread; a group of one patient gets its box (a line) only
-    spread = (
-        values.group_by("group")
-        .agg(sd=pl.col("slope_per_year").std(), n=pl.len())
-        .filter((pl.col("n") > 2) & (pl.col("sd") > 0))
-    )
-    violins = values.join(spread.select("group"), on="group", how="semi")
-    if violins.height:
-        plot += geom_violin(
-            data=violins.to_pandas(),
-            mapping=aes(fill="group"),
-            alpha=0.35,
-            colour="none",
-            scale="width",
-        )
-    if values.height:
-        plot += geom_boxplot(aes(colour="group"), width=0.22, outlier_shape="", fill="white")
-    else:
-        plot += annotate("text", x=1, y=0, label="No eligible slopes")
-    plot += geom_hline(yintercept=rapid_decline_threshold, linetype="dashed", colour="#333333")
-    plot += geom_hline(yintercept=0, colour="#999999", size=0.3)
-    plot += scale_x_discrete(limits=order, labels=[axis_labels[g] for g in order])
-    plot += scale_color_manual(values=colours, guide=None)
-    plot += scale_fill_manual(values=colours, guide=None)
-    plot += coord_flip()
-    plot += labs(
-        x="",
-        y=f"eGFR slope ({SLOPE_UNIT_LABEL})",
-        title="Per-patient eGFR slopes",
-        caption=(
-            f"Dashed line: rapid decline (slope below {rapid_decline_threshold:g} "
-            f"{SLOPE_UNIT_LABEL}). Boxes: median and quartiles; shapes: density."
-        ),
     )
     return plot

@@ -15,13 +15,10 @@ from pydantic import Field
 from kidneycohort._rules import RuleModel, resolve_rules
 from kidneycohort.plots._attrition import attrition_figure
 from kidneycohort.plots._kdigo import kdigo_grid_figure, transition_heatmap_figure
+from kidneycohort.plots._slopes import slope_distribution_figure
 from kidneycohort.plots._style import check_threshold, group_palette
 from kidneycohort.plots._survival import forest_figure, survival_figure
-from kidneycohort.plots._trajectories import (
-    egfr_trajectory_figure,
-    model_trajectory_figure,
-    slope_distribution_figure,
-)
+from kidneycohort.plots._trajectories import egfr_trajectory_figure, model_trajectory_figure
 from kidneycohort.run_folder import RunFolder
 
 __all__ = ["FIGURE_TITLES", "FigureRule", "write_figures"]
@@ -103,11 +100,23 @@ def _lab_figures(run: RunFolder, palette: dict[str, str], threshold: int) -> dic
     out: dict[str, Any] = {}
     groups = run.patient_groups()
     if run.has("egfr"):
-        egfr = run.table("egfr")
+        # one equation's rows and the columns the figure reads: the lab-level table is
+        # the largest of the run
+        scan = run.scan("egfr")
+        have = scan.collect_schema().names()
+        equation = None
+        if "equation" in have:
+            equation = _pick_equation(
+                scan.select("equation").unique().collect(), run.primary_equation
+            )
+            if equation is not None:
+                scan = scan.filter(pl.col("equation") == equation)
+        egfr_columns = ("patient_id", "equation", "years_from_index", "egfr", "egfr_unit", "group")
+        egfr = scan.select([c for c in egfr_columns if c in have]).collect()
         out["egfr_trajectories"] = egfr_trajectory_figure(
             egfr,
             groups,
-            equation=_pick_equation(egfr, run.primary_equation),
+            equation=equation,
             seed=run.seed,
             small_cell_threshold=threshold,
             palette=palette,
@@ -117,7 +126,9 @@ def _lab_figures(run: RunFolder, palette: dict[str, str], threshold: int) -> dic
             run.table("models/trajectories"), knot_years=run.knot_years, palette=palette
         )
     if run.has("slopes"):
-        slopes = run.table("slopes")
+        have = run.scan("slopes").collect_schema().names()
+        slope_columns = ("patient_id", "equation", "slope_per_year", "eligible", "group")
+        slopes = run.table("slopes", [c for c in slope_columns if c in have])
         out["slope_distribution"] = slope_distribution_figure(
             slopes,
             groups,

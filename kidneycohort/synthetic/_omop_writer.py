@@ -179,7 +179,9 @@ def _observation(patients: pl.DataFrame, labs: pl.DataFrame) -> pl.DataFrame:
         pl.col("sample_date").max().dt.date().alias("_last"),
     )
     frame = patients.join(first, on="person_id", how="left")
-    start = pl.min_horizontal("index_date", "_first")
+    # an observation period never opens before birth (a sample dated before the
+    # birth date is a defect of that row, not of the person's observation)
+    start = pl.max_horizontal(pl.min_horizontal("index_date", "_first"), "birth_date")
     end = pl.coalesce("end_of_followup", pl.max_horizontal("index_date", "_last"))
     return frame.select(
         pl.col("person_id").alias("observation_period_id"),

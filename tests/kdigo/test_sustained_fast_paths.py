@@ -85,3 +85,18 @@ def test_confirmation_time_is_compared_exactly(after):
     res = category_results(egfr_table(rows), rule=SustainRule(confirm_after_days=after))
     expected = [True, False, after <= 89, False]
     assert res["confirmed"].to_list() == expected
+
+
+@pytest.mark.parametrize("chunk_rows", [1, 40, 400])
+def test_stages_by_patient_chunks_equal_the_whole_cohort(monkeypatch, chunk_rows):
+    """Large inputs are derived in ranges of patient ids (the partition rule); the
+    concatenated stages equal those of the whole cohort row for row, including a
+    patient with results on one axis only and the ties of the same-day repeats."""
+    egfr, labs = _cohort()
+    rule = SustainRule(confirm_after_days=80, confirm_within_days=400)
+    whole = sustained_stages(egfr, labs, PATIENTS, rule=rule)
+    monkeypatch.setattr(_sustained, "_CHUNK_ROWS", chunk_rows)
+    assert _sustained._patient_chunks(egfr, labs, PATIENTS) is not None
+    chunked = sustained_stages(egfr, labs, PATIENTS, rule=rule)
+    assert_frame_equal(chunked, whole)
+    assert_frame_equal(transition_matrix(chunked), transition_matrix(whole))

@@ -98,6 +98,8 @@ def test_every_file_of_the_cohort_recipe(cohort_run) -> None:
     manifest = json.loads((run / "manifest.json").read_text())
     assert manifest["study"]["recipe"] == "cohort_progression"
     assert [s["name"] for s in manifest["steps"]][1:] == manifest["config"]["recipe_steps"]
+    if Path("/proc/self/status").exists():  # each step's peak memory beside its time
+        assert all(s["peak_rss_mib"] > 0 for s in manifest["steps"])
 
 
 def test_cohort_slope_model_equals_a_direct_fit(cohort_run) -> None:

@@ -9,7 +9,8 @@ polars tables with the column names the figures and tables read:
 - curves: ``group, years, estimate, lower, upper, measure``
 - numbers at risk: ``group, years, n_at_risk``
 - Cox: ``term, hr, hr_lower, hr_upper, p`` and the proportional-hazards check
-  ``term, test_statistic, p``.
+  ``term, test_statistic, p`` (:func:`proportional_hazards_test`, the Grambsch–Therneau
+  test, vectorised).
 """
 
 from __future__ import annotations
@@ -29,10 +30,18 @@ from kidneycohort.models.survival._curves import (
 from kidneycohort.models.survival._data import (
     numbers_at_risk,
 )
+from kidneycohort.models.survival._efron import (
+    VectorisedCoxPHFitter,
+    efron_derivatives,
+)
 from kidneycohort.models.survival._estimability import (
     MAX_LOG_HR_SE,
     NOT_ESTIMABLE_REASONS,
     estimability_note,
+)
+from kidneycohort.models.survival._ph_test import (
+    proportional_hazards_test,
+    schoenfeld_residuals,
 )
 from kidneycohort.models.survival._rule import (
     CompetingRisksPart,
@@ -47,9 +56,13 @@ __all__ = [
     "CumulativeIncidence",
     "KaplanMeier",
     "SurvivalRule",
+    "VectorisedCoxPHFitter",
+    "efron_derivatives",
     "estimability_note",
     "evaluable_rows",
     "hazard_ratio_table",
     "numbers_at_risk",
+    "proportional_hazards_test",
+    "schoenfeld_residuals",
     "survival_curves_by_endpoint",
 ]

@@ -9,14 +9,15 @@ import numpy as np
 import polars as pl
 from lifelines import CoxPHFitter
 from lifelines.exceptions import ConvergenceError as LifelinesConvergenceError
-from lifelines.statistics import proportional_hazard_test
 
 from kidneycohort._frames import FrameLike
 from kidneycohort._rules import resolve_rules
 from kidneycohort.errors import ConvergenceError, InputDataError, did_you_mean
 from kidneycohort.models._design import capture_warnings, encode_covariates
 from kidneycohort.models.survival._data import _prepare, _warn_all
+from kidneycohort.models.survival._efron import VectorisedCoxPHFitter
 from kidneycohort.models.survival._estimability import with_estimability
+from kidneycohort.models.survival._ph_test import proportional_hazards_test
 from kidneycohort.models.survival._rule import SurvivalRule
 
 __all__ = ["CoxModel"]
@@ -32,11 +33,13 @@ class CoxModel:
         h_i(t) = h_{0,s(i)}(t) \exp(\beta^\top x_i)
 
     with a baseline hazard per stratum :math:`s(i)`, Efron's handling of ties (lifelines
-    ``CoxPHFitter``). The group enters as indicators of each group against
+    ``CoxPHFitter``, its Newton derivatives vectorised: :class:`VectorisedCoxPHFitter`).
+    The group enters as indicators of each group against
     ``reference_group`` (terms ``<group_column>=<level>``); text covariates likewise.
     Beside the fit, the proportional-hazards assumption is checked per term by the
-    scaled-Schoenfeld-residual test with Kaplan–Meier time transform (lifelines
-    ``proportional_hazard_test(time_transform="km")``).
+    scaled-Schoenfeld-residual test of Grambsch and Therneau with Kaplan–Meier time
+    transform (:func:`~kidneycohort.models.survival.proportional_hazards_test`, vectorised;
+    the statistics of lifelines' ``proportional_hazard_test(time_transform="km")``).
 
     Parameters
     ----------
@@ -54,8 +57,11 @@ class CoxModel:
     Attributes
     ----------
     fitter_ : lifelines.CoxPHFitter
+        A :class:`VectorisedCoxPHFitter` (a ``CoxPHFitter`` subclass).
     ph_test_ : polars.DataFrame
         ``term, test_statistic, p``.
+    ph_global_ : polars.DataFrame
+        The global test: ``term`` ("GLOBAL"), ``test_statistic, df, p``.
     n_patients_, n_events_ : int
     excluded_ : polars.DataFrame
         ``patient_id, reason`` of rows left out (missing covariate or stratum).
@@ -133,7 +139,7 @@ class CoxModel:
                 f"CoxModel ({self.endpoint_}): no events among {rows.height} patients; a hazard "
                 "ratio cannot be estimated - report the event counts instead"
             )
-        fitter = CoxPHFitter(alpha=1.0 - self.rule.confidence)
+        fitter = VectorisedCoxPHFitter(alpha=1.0 - self.rule.confidence)
         try:
             with capture_warnings() as captured:
                 fitter.fit(
@@ -157,17 +163,18 @@ class CoxModel:
         self.fitter_ = fitter
         self.terms_ = names
         self._summary = self._tidy_summary(fitter, names, rows, group_column)
-        with capture_warnings() as captured:
-            test = proportional_hazard_test(fitter, frame, time_transform="km")
-        _warn_all(captured.convergence, f"proportional-hazards test ({self.endpoint_})")
-        ph = test.summary
-        self.ph_test_ = pl.DataFrame(
-            {
-                "term": [str(t) for t in ph.index],
-                "test_statistic": ph["test_statistic"].to_numpy(dtype=float),
-                "p": ph["p"].to_numpy(dtype=float),
-            }
+        ph = proportional_hazards_test(
+            data["_years"].to_numpy(),
+            data["_event"].to_numpy(),
+            data.select(names).to_numpy(),
+            fitter.params_.loc[names].to_numpy(dtype=float),
+            fitter.variance_matrix_.loc[names, names].to_numpy(dtype=float),
+            strata=[data[n].to_numpy() for n in strata_names] or None,
+            time_transform="km",
+            names=names,
         )
+        self.ph_test_ = ph.filter(pl.col("term") != "GLOBAL").select("term", "test_statistic", "p")
+        self.ph_global_ = ph.filter(pl.col("term") == "GLOBAL")
         flagged = self.ph_test_.filter(pl.col("p") < 0.05)
         if flagged.height:
             logger.info(

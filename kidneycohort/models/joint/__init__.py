@@ -1,0 +1,28 @@
+"""Slope analysis under informative dropout: a shared-random-effects joint model of eGFR
+and dropout (:class:`JointSlopeModel`), and sensitivity analyses of the slope difference
+under missing-not-at-random dropout (delta adjustment with a tipping point; eGFR set to a
+stated value at kidney failure).
+"""
+
+from __future__ import annotations
+
+from kidneycohort.models.joint._dropout_sensitivity import (
+    DeltaAdjustedResult,
+    StatedValueResult,
+    delta_adjusted_slopes,
+    stated_value_at_kidney_failure,
+)
+from kidneycohort.models.joint._model import JointSlopeModel
+from kidneycohort.models.joint._rule import JointSlopeRule
+from kidneycohort.models.joint._simulate import JointCohortTruth, simulate_joint_cohort
+
+__all__ = [
+    "DeltaAdjustedResult",
+    "JointCohortTruth",
+    "JointSlopeModel",
+    "JointSlopeRule",
+    "StatedValueResult",
+    "delta_adjusted_slopes",
+    "simulate_joint_cohort",
+    "stated_value_at_kidney_failure",
+]
