@@ -8,6 +8,8 @@ from pydantic import Field
 
 from kidneycohort._rules import RuleModel
 
+__all__ = ["NOT_ESTIMABLE_NOTES", "SUMMARY_COLUMNS", "JointSlopeRule"]
+
 SUMMARY_COLUMNS = (
     "model",
     "contrast",
