@@ -180,6 +180,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.plots import FigureRule as FigureRule
     from kidneycohort.plots import attrition_boxes as attrition_boxes
     from kidneycohort.plots import attrition_figure as attrition_figure
+    from kidneycohort.plots import draw_figures as draw_figures
     from kidneycohort.plots import egfr_time_bins as egfr_time_bins
     from kidneycohort.plots import egfr_trajectory_figure as egfr_trajectory_figure
     from kidneycohort.plots import forest_figure as forest_figure
@@ -187,6 +188,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.plots import group_palette as group_palette
     from kidneycohort.plots import kdigo_grid_cells as kdigo_grid_cells
     from kidneycohort.plots import kdigo_grid_figure as kdigo_grid_figure
+    from kidneycohort.plots import missing_category_note as missing_category_note
     from kidneycohort.plots import model_trajectory_figure as model_trajectory_figure
     from kidneycohort.plots import slope_density as slope_density
     from kidneycohort.plots import slope_distribution as slope_distribution
@@ -420,6 +422,7 @@ _PUBLIC: dict[str, str] = {
         name: "kidneycohort.plots"
         for name in (
             "write_figures",
+            "draw_figures",
             "FigureRule",
             "attrition_boxes",
             "attrition_figure",
@@ -431,6 +434,7 @@ _PUBLIC: dict[str, str] = {
             "group_palette",
             "kdigo_grid_cells",
             "kdigo_grid_figure",
+            "missing_category_note",
             "transition_cells",
             "transition_heatmap_figure",
             "slope_density",

@@ -39,6 +39,7 @@ from kidneycohort.plots._attrition import (
 from kidneycohort.plots._kdigo import (
     kdigo_grid_cells,
     kdigo_grid_figure,
+    missing_category_note,
     transition_cells,
     transition_heatmap_figure,
 )
@@ -70,6 +71,7 @@ from kidneycohort.plots._trajectories import (
 from kidneycohort.plots._write import (
     FIGURE_TITLES,
     FigureRule,
+    draw_figures,
     write_figures,
 )
 
@@ -84,6 +86,7 @@ __all__ = [
     "FigureRule",
     "attrition_boxes",
     "attrition_figure",
+    "draw_figures",
     "egfr_time_bins",
     "egfr_trajectory_figure",
     "forest_figure",
@@ -91,6 +94,7 @@ __all__ = [
     "group_palette",
     "kdigo_grid_cells",
     "kdigo_grid_figure",
+    "missing_category_note",
     "model_trajectory_figure",
     "slope_density",
     "slope_distribution",
