@@ -5,10 +5,12 @@ as base64 PNG data URIs and the CSS is inline, so the file opens offline with no
 and fetches nothing. It is built from aggregates only (:func:`build_report_context`): no
 patient identifier or individual date is ever handed to the template.
 
-Sections (always all eleven, in this order; a section whose files the recipe did not
-make says so): summary, data and attrition, eGFR equations, baseline characteristics,
-trajectories and slopes, KDIGO categories and transitions, endpoints and survival,
-tables, methods, cautions, provenance.
+Sections, in this order: summary, data and attrition, eGFR equations, baseline
+characteristics, trajectories and slopes, KDIGO categories (and transitions),
+endpoints and survival, tables, methods, cautions, provenance. Summary, data, methods,
+cautions and provenance are always there; every other section appears only when the
+run made its figures or tables (a run without transition tables has no "transitions"
+in its KDIGO heading; a run without KDIGO data has no KDIGO section).
 """
 
 from __future__ import annotations

@@ -31,7 +31,7 @@ from kidneycohort.run_folder import FILES, RunFolder
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["SECTIONS", "Figure", "Table", "build_report_context"]
+__all__ = ["ALWAYS", "SECTIONS", "Figure", "Table", "build_report_context", "present_sections"]
 
 SECTIONS: Final = (
     ("summary", "Summary"),
@@ -46,7 +46,12 @@ SECTIONS: Final = (
     ("cautions", "Cautions"),
     ("provenance", "Provenance"),
 )
-"""(anchor, heading) of every report section, in order."""
+"""(anchor, heading) of every report section, in order. A section whose data the run
+does not have is left out (:func:`present_sections`); the KDIGO section is headed
+"KDIGO categories" when the run made no transition table or figure."""
+
+ALWAYS: Final = frozenset({"summary", "data", "methods", "cautions", "provenance"})
+"""Sections every report has, whatever the run made."""
 
 # shared tables of the run-folder contract: (title, section), in the order listed
 TABLES: Final[dict[str, tuple[str, str]]] = {
@@ -414,6 +419,40 @@ def _provenance(run: RunFolder) -> dict[str, Any]:
     }
 
 
+def present_sections(
+    figures: dict[str, list[Figure]],
+    tables: dict[str, list[Table]],
+    *,
+    equations: bool,
+    index: bool,
+) -> list[dict[str, Any]]:
+    """The sections a report shows, numbered in order: those of :data:`ALWAYS`, and
+    each other section only when the run has figures or tables for it.
+
+    Parameters
+    ----------
+    figures, tables
+        What each section would show, by section id.
+    equations, index
+        Whether the run records eGFR equations; whether it wrote shared tables.
+
+    Returns
+    -------
+    list of dict
+        ``{"id", "title", "number"}`` per section shown.
+    """
+    has = {key for key, _ in SECTIONS if figures.get(key) or tables.get(key)}
+    has |= ALWAYS | ({"equations"} if equations else set()) | ({"tables"} if index else set())
+    titles = dict(SECTIONS)
+    transitions = any(f.stem == "transition_matrix" for f in figures.get("kdigo", [])) or any(
+        t.name == "transition_matrix" for t in tables.get("kdigo", [])
+    )
+    if not transitions:
+        titles["kdigo"] = "KDIGO categories"
+    shown = [key for key, _ in SECTIONS if key in has]
+    return [{"id": key, "title": titles[key], "number": i + 1} for i, key in enumerate(shown)]
+
+
 def build_report_context(
     run_dir: str | Path | RunFolder, *, rule: ReportRule | None = None
 ) -> dict[str, Any]:
@@ -423,14 +462,16 @@ def build_report_context(
     ----------
     run_dir
         The run folder (a path or a :class:`~kidneycohort.run_folder.RunFolder`). Absent
-        files are tolerated: the sections they feed say that the run did not make them.
+        files are tolerated: a section without data is left out
+        (:func:`present_sections`).
     rule
         Report options; by default the run's ``report`` config section.
 
     Returns
     -------
     dict
-        Template variables: ``title``, ``sections``, ``summary``, ``figures`` (by section),
+        Template variables: ``title``, ``sections`` (those shown), ``present`` (their
+        ids), ``summary``, ``figures`` (by section),
         ``tables`` (by section), ``equations``, ``methods``, ``cautions``, ``warnings``,
         ``provenance``, ``accounting``.
 
@@ -449,8 +490,10 @@ def build_report_context(
     equations = equation_rows(run, study.equations or ([equation] if equation else []), threshold)
     labels = {e["id"]: e["label"] for e in equations}
     tables, index = _tables(run)
+    figures = _figures(run)
     accounting, by_reason = _accounting(run, threshold)
     provenance = _provenance(run)
+    sections = present_sections(figures, tables, equations=bool(equations), index=bool(index))
     return {
         "title": study.name or run.path.name,
         "description": study.description or "",
@@ -458,12 +501,11 @@ def build_report_context(
         "created_utc": provenance["created_utc"],
         "primary_equation": labels.get(equation, equation) if equation else "",
         "threshold": threshold,
-        "sections": [
-            {"id": key, "title": title, "number": i + 1} for i, (key, title) in enumerate(SECTIONS)
-        ],
+        "sections": sections,
+        "present": [section["id"] for section in sections],
         "headline": headline(run, rule, display),
         "summary": _summary(run, threshold, display),
-        "figures": _figures(run),
+        "figures": figures,
         "tables": tables,
         "table_index": index,
         "xlsx": "tables/tables.xlsx" if (run.path / "tables" / "tables.xlsx").is_file() else "",

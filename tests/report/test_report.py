@@ -185,23 +185,33 @@ def test_methods_tolerate_missing_and_unknown_keys() -> None:
     assert "made_up_eq (not in the kidneycohort equation registry)" in sections["Estimated GFR"][1]
 
 
-def test_absent_files_leave_sections_that_say_so(tmp_path: Path, full: dict) -> None:
+def test_sections_without_data_are_left_out(tmp_path: Path, full: dict) -> None:
     run = tmp_path / "cohort"
     shutil.copytree(full["run"], run)
     shutil.rmtree(run / "figures")
-    for name in (
-        "models/kdigo_grid.parquet",
-        "models/transition_counts.parquet",
-        "tables/kdigo_grid.csv",
-        "tables/transition_matrix.csv",
-    ):
+    for name in ("models/transition_counts.parquet", "tables/transition_matrix.csv"):
         (run / name).unlink()
+    plots.write_figures(run, formats=("png",), dpi=50)
+    page = Page()
+    page.feed(write_report(run).read_text(encoding="utf-8"))
+    # the grid is still there: the section stays, without "transitions" in its heading
+    titles = [h.split(". ", 1)[1] for h in page.h2]
+    assert "KDIGO categories" in titles
+    assert "KDIGO categories and transitions" not in titles
+    for name in ("models/kdigo_grid.parquet", "tables/kdigo_grid.csv"):
+        (run / name).unlink()
+    shutil.rmtree(run / "figures")
     plots.write_figures(run, formats=("png",), dpi=50)
     html = write_report(run).read_text(encoding="utf-8")
     page = Page()
     page.feed(html)
-    assert len(page.h2) == len(SECTIONS)
-    assert "This run has no KDIGO grid or category transitions." in html
+    titles = [h.split(". ", 1)[1] for h in page.h2]
+    assert not [t for t in titles if t.startswith("KDIGO")]
+    assert 'id="kdigo"' not in html and 'href="#kdigo"' not in html
+    # the others keep their order and are numbered without a gap
+    assert [int(h.split(".")[0]) for h in page.h2] == list(range(1, len(SECTIONS)))
+    order = [title for _, title in SECTIONS]
+    assert titles == [t for t in order if not t.startswith("KDIGO")]
 
 
 def test_minimal_folder_renders(tmp_path: Path) -> None:
@@ -211,9 +221,15 @@ def test_minimal_folder_renders(tmp_path: Path) -> None:
     html = write_report(tmp_path).read_text(encoding="utf-8")
     page = Page()
     page.feed(html)
-    assert len(page.h2) == len(SECTIONS)
+    # a run that made nothing: only the sections every report has
+    assert page.h2 == [
+        "1. Summary",
+        "2. Data and attrition",
+        "3. Methods",
+        "4. Cautions",
+        "5. Provenance",
+    ]
     assert "The manifest records no configuration." in html
-    assert "The run records no eGFR equations." in html
     empty = tmp_path / "no_manifest"
     empty.mkdir()
     assert "no_manifest" in write_report(empty).read_text(encoding="utf-8")
