@@ -1,13 +1,9 @@
 """kidneycohort: kidney-function cohort analysis.
 
-The public API is listed here and nothing is defined in this module. Tables go in as
-polars or pandas DataFrames and come back as polars DataFrames.
-
-Names load on first use (PEP 562), so ``import kidneycohort`` and the command line stay
-fast while statsmodels, lifelines and plotnine are imported only by the stages that
-need them. Every public name is spelled out in ``_PUBLIC`` below, and ``dir()`` and
-``__all__`` list them all; the ``TYPE_CHECKING`` block imports each of them for type
-checkers (``tests/test_exports.py`` keeps the two in step).
+The public API is listed here; nothing is defined in this module. Names load on first
+use (PEP 562), so ``import kidneycohort`` and the command line stay fast. ``_PUBLIC``
+spells out every public name (``dir()`` and ``__all__`` list them), and the
+``TYPE_CHECKING`` block imports each for type checkers (``tests/test_exports.py``).
 
 >>> import kidneycohort as kc
 >>> round(float(kc.evaluate("ckd_epi_2021_cr", creatinine_mg_dl=1.0, age=60, sex="female")), 1)
@@ -188,8 +184,9 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.plots import group_palette as group_palette
     from kidneycohort.plots import kdigo_grid_cells as kdigo_grid_cells
     from kidneycohort.plots import kdigo_grid_figure as kdigo_grid_figure
-    from kidneycohort.plots import missing_category_note as missing_category_note
     from kidneycohort.plots import model_trajectory_figure as model_trajectory_figure
+    from kidneycohort.plots import patient_flow_boxes as patient_flow_boxes
+    from kidneycohort.plots import patient_flow_figure as patient_flow_figure
     from kidneycohort.plots import slope_density as slope_density
     from kidneycohort.plots import slope_distribution as slope_distribution
     from kidneycohort.plots import slope_distribution_figure as slope_distribution_figure
@@ -434,7 +431,8 @@ _PUBLIC: dict[str, str] = {
             "group_palette",
             "kdigo_grid_cells",
             "kdigo_grid_figure",
-            "missing_category_note",
+            "patient_flow_boxes",
+            "patient_flow_figure",
             "transition_cells",
             "transition_heatmap_figure",
             "slope_density",

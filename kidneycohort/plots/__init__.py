@@ -39,9 +39,12 @@ from kidneycohort.plots._attrition import (
 from kidneycohort.plots._kdigo import (
     kdigo_grid_cells,
     kdigo_grid_figure,
-    missing_category_note,
     transition_cells,
     transition_heatmap_figure,
+)
+from kidneycohort.plots._patient_flow import (
+    patient_flow_boxes,
+    patient_flow_figure,
 )
 from kidneycohort.plots._slopes import (
     slope_density,
@@ -94,8 +97,9 @@ __all__ = [
     "group_palette",
     "kdigo_grid_cells",
     "kdigo_grid_figure",
-    "missing_category_note",
     "model_trajectory_figure",
+    "patient_flow_boxes",
+    "patient_flow_figure",
     "slope_density",
     "slope_distribution",
     "slope_distribution_figure",

@@ -17,6 +17,7 @@ from kidneycohort._rules import RuleModel, resolve_rules
 from kidneycohort.labels import display_label, label_map
 from kidneycohort.plots._attrition import attrition_figure
 from kidneycohort.plots._kdigo import kdigo_grid_figure, transition_heatmap_figure
+from kidneycohort.plots._patient_flow import flow_note, patient_flow_figure
 from kidneycohort.plots._slopes import slope_distribution_figure
 from kidneycohort.plots._style import check_threshold, group_palette
 from kidneycohort.plots._survival import forest_figure, survival_figure
@@ -30,7 +31,8 @@ logger = logging.getLogger(__name__)
 
 
 FIGURE_TITLES: Final[dict[str, str]] = {
-    "attrition": "Data flow: rows read, excluded and analysed",
+    "patient_flow": "Patient flow by group",
+    "attrition": "Rows read, excluded and used by input table",
     "egfr_trajectories": "eGFR over time",
     "model_trajectories": "Fitted mean eGFR trajectories",
     "slope_distribution": "Per-patient eGFR slopes",
@@ -143,8 +145,35 @@ def _attrition(run: RunFolder, threshold: int) -> Any | None:
     return attrition_figure(
         [a.model_dump() for a in manifest.accounting],
         [r.model_dump() for r in manifest.accounting_by_reason] or None,
-        patients=run.printed_patient_flow() or None,
         small_cell_threshold=threshold,
+    )
+
+
+def _patient_flow(run: RunFolder, threshold: int, shown: _Display) -> Any | None:
+    """The CONSORT-style flow by group, counts protected with the baseline table's N
+    (printed there, so kept here)."""
+    flow = run.patient_flow_by_group(shown.primary)
+    if flow.is_empty():
+        return None
+    elsewhere: list[tuple[str, str]] = []
+    table = run.table_or_none("tables/baseline_characteristics")
+    if table is not None and "characteristic" in table.columns:
+        n_row = table.filter(pl.col("characteristic") == "N")
+        printed = {c: str(n_row[c][0]) for c in table.columns if n_row.height}
+        elsewhere = [
+            (g, s) for g, s, n in flow.rows() if printed.get(g) == str(n) and s == flow["step"][-1]
+        ]
+    unknown = sum(
+        r.rows
+        for r in run.manifest.accounting_by_reason
+        if r.table == "labs" and r.reason == "unknown_patient"
+    )
+    return patient_flow_figure(
+        flow,
+        labels=shown.labels,
+        small_cell_threshold=threshold,
+        shown_elsewhere=elsewhere,
+        note=flow_note(unknown),
     )
 
 
@@ -332,6 +361,9 @@ def draw_figures(
     shown = _Display(run)
     palette = shown.palette(group_palette(run.group_labels()))
     plots: dict[str, Any] = {}
+    patient_flow = _patient_flow(run, threshold, shown)
+    if patient_flow is not None:
+        plots["patient_flow"] = patient_flow
     attrition = _attrition(run, threshold)
     if attrition is not None:
         plots["attrition"] = attrition

@@ -120,9 +120,11 @@ def _figures(run: RunFolder) -> dict[str, list[Figure]]:
     wanted: list[tuple[str, str, str, str]] = [
         (
             "data",
-            "attrition",
-            titles["attrition"],
-            "Rows by input table; patients through the derivations.",
+            "patient_flow",
+            titles["patient_flow"],
+            "Patients of the patients table by group, from enrolment to the analysis; the "
+            "rows of every input table are accounted for in the tables above "
+            "(figures/attrition.png draws them).",
         ),
         ("slopes", "egfr_trajectories", titles["egfr_trajectories"], ""),
         ("slopes", "model_trajectories", titles["model_trajectories"], ""),

@@ -612,6 +612,7 @@ def test_write_figures_draws_what_the_folder_has(tmp_path: Path, run: dict) -> N
     assert stems == [
         "attrition",
         "egfr_trajectories",
+        "patient_flow",
         "slope_distribution",
         "survival_egfr_decline_40pct",
         "survival_kidney_failure",

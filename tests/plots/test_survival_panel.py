@@ -20,6 +20,7 @@ import pytest
 from lifelines import KaplanMeierFitter
 
 from kidneycohort import plots
+from kidneycohort.plots._kdigo import missing_category_note
 from kidneycohort.plots._survival_panel import (
     censor_marks,
     hazard_ratio_lines,
@@ -234,7 +235,7 @@ def test_kdigo_grid_notes_patients_without_a_category() -> None:
             "n_display": ["40", "30", "<11", "<11", "40", "12", "82"],
         }
     )
-    note = plots.missing_category_note(grid)
+    note = missing_category_note(grid)
     assert note.startswith("Not in the grid: 12 patients without a GFR category")
     plot = plots.kdigo_grid_figure(grid)
     assert "12 patients without a GFR category" in plot.labels.get("caption", "").replace("\n", " ")
@@ -248,9 +249,9 @@ def test_kdigo_grid_notes_patients_without_a_category() -> None:
         .otherwise(pl.col("g_category")),
     )
     # raw counts (no printed texts): the sum 12 is shown; a sum of 1..10 would not be
-    assert "12 patients without an albuminuria category" in plots.missing_category_note(raw)
-    assert "<11 patients" in plots.missing_category_note(raw.head(3))
-    assert plots.missing_category_note(grid.filter(pl.col("g_category") != "missing")) == ""
+    assert "12 patients without an albuminuria category" in missing_category_note(raw)
+    assert "<11 patients" in missing_category_note(raw.head(3))
+    assert missing_category_note(grid.filter(pl.col("g_category") != "missing")) == ""
 
 
 def test_transition_panels_have_their_own_axes() -> None:
