@@ -230,6 +230,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.run_folder import package_versions as package_versions
     from kidneycohort.run_folder import read_manifest as read_manifest
     from kidneycohort.run_folder import sha256_of as sha256_of
+    from kidneycohort.run_folder import table_footnotes as table_footnotes
     from kidneycohort.run_folder import write_csv as write_csv
     from kidneycohort.run_folder import write_manifest as write_manifest
     from kidneycohort.run_folder import write_table as write_table
@@ -503,6 +504,7 @@ _PUBLIC: dict[str, str] = {
             "canonical_order",
             "check_layout",
             "csv_safe",
+            "table_footnotes",
             "write_csv",
             "declared",
             "file_for",
@@ -531,37 +533,14 @@ _PUBLIC: dict[str, str] = {
     },
 }
 
-_SUBMODULES = (
-    "adam",
-    "ages",
-    "baseline",
-    "cautions",
-    "cli",
-    "data_contract",
-    "disclosure",
-    "value_filter",
-    "egfr",
-    "endpoints",
-    "equations",
-    "errors",
-    "harmonize",
-    "io",
-    "kdigo",
-    "kfre",
-    "labels",
-    "models",
-    "pipeline",
-    "plots",
-    "provenance",
-    "report",
-    "run_folder",
-    "schemas",
-    "slopes",
-    "synthetic",
-    "tables",
-    "uacr",
-    "units",
-    "vocabulary",
+# the public submodules, loaded on first use like the names of _PUBLIC
+_SUBMODULES = tuple(
+    """
+    adam ages baseline cautions cli data_contract disclosure value_filter egfr
+    endpoints equations errors harmonize io kdigo kfre labels models pipeline plots
+    provenance report run_folder schemas slopes synthetic tables uacr units
+    vocabulary
+    """.split()
 )
 
 __all__ = [

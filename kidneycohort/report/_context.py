@@ -19,7 +19,7 @@ from typing import Any, Final
 import polars as pl
 
 from kidneycohort.cautions import CAUTIONS
-from kidneycohort.disclosure import HIDDEN, disclosure_footnote, small_count_text, suppression_label
+from kidneycohort.disclosure import small_count_text
 from kidneycohort.errors import InputDataError
 from kidneycohort.labels import display_label, label_map
 from kidneycohort.plots import FIGURE_TITLES, forest_rows, slope_distribution
@@ -27,7 +27,7 @@ from kidneycohort.report._equations import equation_rows
 from kidneycohort.report._headline import headline
 from kidneycohort.report._methods import methods_from_config, readable_key
 from kidneycohort.report._rule import ReportRule
-from kidneycohort.run_folder import FILES, RunFolder
+from kidneycohort.run_folder import FILES, RunFolder, table_footnotes
 
 logger = logging.getLogger(__name__)
 
@@ -96,6 +96,7 @@ class Table:
     rows: list[list[str]]
     files: list[str] = field(default_factory=list)
     note: str = ""
+    notes: list[str] = field(default_factory=list)
 
 
 def _cells(df: pl.DataFrame) -> list[list[str]]:
@@ -160,17 +161,14 @@ def _shared_table(run: RunFolder, name: str) -> Table:
     if bad:
         logger.warning("tables/%s.csv has individual-level column %s; not printed", name, bad[0])
         return Table(name, title, [], [], files, f"Not printed: it has the column '{bad[0]}'.")
-    notes = []
-    hidden = {suppression_label(run.small_cell_threshold), HIDDEN}
-    texts = df.select(pl.all().cast(pl.String))
-    if any(texts[c].str.split(" ").list.first().is_in(list(hidden)).any() for c in texts.columns):
-        notes.append(disclosure_footnote(run.small_cell_threshold))
+    # the footnotes the Markdown file and the workbook print under the same table
+    notes = table_footnotes(name, df)
     if df.height > MAX_TABLE_ROWS:
         notes.append(
             f"First {MAX_TABLE_ROWS} of {df.height:,} rows; the full table is in the files."
         )
         df = df.head(MAX_TABLE_ROWS)
-    return Table(name, title, list(df.columns), _cells(df), files, " ".join(notes))
+    return Table(name, title, list(df.columns), _cells(df), files, notes=notes)
 
 
 def _model_tables(run: RunFolder) -> dict[str, list[Table]]:

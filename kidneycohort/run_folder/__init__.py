@@ -12,6 +12,7 @@ through both, for the figures, the report and your own analysis:
 
 from __future__ import annotations
 
+from kidneycohort.run_folder._footnotes import table_footnotes
 from kidneycohort.run_folder._layout import (
     FILES,
     RunFile,
@@ -70,6 +71,7 @@ __all__ = [
     "package_versions",
     "read_manifest",
     "sha256_of",
+    "table_footnotes",
     "write_csv",
     "write_manifest",
     "write_table",
