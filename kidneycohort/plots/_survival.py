@@ -378,7 +378,8 @@ def forest_rows(
     Returns
     -------
     polars.DataFrame
-        ``endpoint``, ``term``, ``subgroup`` (null when absent), ``hr``, ``hr_lower``,
+        ``endpoint``, ``term``, ``endpoint_label`` and ``comparison`` (as a reader
+        says them), ``subgroup`` (null when absent), ``hr``, ``hr_lower``,
         ``hr_upper``, ``p``, ``estimable`` (finite, positive limits), ``label``
         (``"endpoint · term: HR (lower–upper)"`` or ``"not estimable"``),
         ``row`` (1 = top).
@@ -439,11 +440,15 @@ def forest_rows(
     return df.select(
         "endpoint",
         "term",
-        pl.col("subgroup").cast(pl.String),
-        pl.col("hr").cast(pl.Float64),
-        pl.col("hr_lower").cast(pl.Float64),
-        pl.col("hr_upper").cast(pl.Float64),
-        pl.col("p").cast(pl.Float64),
+        endpoint_label=pl.col("endpoint")
+        .cast(pl.String)
+        .replace_strict(endpoints, default=pl.col("endpoint")),
+        comparison=pl.col("term").cast(pl.String).replace_strict(terms, default=pl.col("term")),
+        subgroup=pl.col("subgroup").cast(pl.String),
+        hr=pl.col("hr").cast(pl.Float64),
+        hr_lower=pl.col("hr_lower").cast(pl.Float64),
+        hr_upper=pl.col("hr_upper").cast(pl.Float64),
+        p=pl.col("p").cast(pl.Float64),
         estimable=estimable.fill_null(False),
         label=pl.concat_str(name, pl.lit(":  "), pl.when(estimable).then(ci).otherwise(why)),
         row=pl.int_range(1, pl.len() + 1),

@@ -171,17 +171,36 @@ def _shared_table(run: RunFolder, name: str) -> Table:
     return Table(name, title, list(df.columns), _cells(df), files, notes=notes)
 
 
-def _model_tables(run: RunFolder) -> dict[str, list[Table]]:
+def _p_text(p: pl.Expr | pl.Series) -> pl.Expr:
+    """A p value as the shared tables print it: three decimals, ``<0.001`` below."""
+    value = pl.lit(p) if isinstance(p, pl.Series) else p
+    return (
+        pl.when(value.is_null() | value.is_nan())
+        .then(pl.lit(""))
+        .when(value < 0.001)
+        .then(pl.lit("<0.001"))
+        .otherwise(value.round(3).cast(pl.String).str.pad_end(5, "0"))
+    )
+
+
+def _reference(run: RunFolder) -> str | None:
+    """The study's reference group (``study.reference_group``)."""
+    value = (run.manifest.config.get("study") or {}).get("reference_group")
+    return str(value) if value else None
+
+
+def _model_tables(run: RunFolder, labels: dict[str, str]) -> dict[str, list[Table]]:
     out: dict[str, list[Table]] = {"endpoints": [], "slopes": []}
     hazard_ratios = run.table_or_none("models/hazard_ratios")
     if hazard_ratios is not None and hazard_ratios.height:
-        rows = forest_rows(hazard_ratios)
-        shown = hazard_ratios.select("endpoint", "term", "subgroup").with_columns(
-            **{
-                "hazard ratio (95% CI)": rows["label"].str.split(":  ").list.last(),
-                "p": rows["p"].round_sig_figs(2).cast(pl.String),
-                "proportional hazards p": hazard_ratios["ph_p"].round_sig_figs(2).cast(pl.String),
-            }
+        rows = forest_rows(hazard_ratios, labels=labels, reference_group=_reference(run))
+        shown = rows.select(
+            pl.col("endpoint_label").alias("endpoint"),
+            "comparison",
+            "subgroup",
+            rows["label"].str.split(":  ").list.last().alias("hazard ratio (95% CI)"),
+            _p_text(pl.col("p")).alias("p"),
+            _p_text(hazard_ratios["ph_p"].cast(pl.Float64)).alias("proportional hazards p"),
         )
         out["endpoints"].append(
             Table("hazard_ratios", "Hazard ratios (Cox models)", list(shown.columns), _cells(shown))
@@ -195,13 +214,13 @@ def _model_tables(run: RunFolder) -> dict[str, list[Table]]:
     return out
 
 
-def _tables(run: RunFolder) -> tuple[dict[str, list[Table]], list[Table]]:
+def _tables(run: RunFolder, labels: dict[str, str]) -> tuple[dict[str, list[Table]], list[Table]]:
     """Tables by section, and the index of shared tables for the Tables section."""
     tables: dict[str, list[Table]] = {key: [] for key, _ in SECTIONS}
     index = [_shared_table(run, name) for name in TABLES if run.has(f"tables/{name}")]
     for table in index:
         tables[TABLES[table.name][1]].append(table)
-    for section, extra in _model_tables(run).items():
+    for section, extra in _model_tables(run, labels).items():
         tables[section].extend(extra)
     return tables, index
 
@@ -270,7 +289,8 @@ def _summary(run: RunFolder, threshold: int, labels: dict[str, str]) -> list[str
     lines += _event_lines(run, labels)
     hazard_ratios = run.table_or_none("models/hazard_ratios")
     if hazard_ratios is not None and hazard_ratios.height:
-        lines += [f"Hazard ratio, {label}." for label in forest_rows(hazard_ratios)["label"]]
+        rows = forest_rows(hazard_ratios, labels=labels, reference_group=_reference(run))
+        lines += [f"Hazard ratio, {label.replace(':  ', ': ')}." for label in rows["label"]]
     return lines
 
 
@@ -489,7 +509,7 @@ def build_report_context(
     equation = study.primary_equation
     equations = equation_rows(run, study.equations or ([equation] if equation else []), threshold)
     labels = {e["id"]: e["label"] for e in equations}
-    tables, index = _tables(run)
+    tables, index = _tables(run, display)
     figures = _figures(run)
     accounting, by_reason = _accounting(run, threshold)
     provenance = _provenance(run)

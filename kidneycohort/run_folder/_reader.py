@@ -73,13 +73,18 @@ class RunFolder:
         return name in FILES and self._data_file(name).is_file()
 
     def scan(self, name: str) -> pl.LazyFrame:
-        """Table ``name`` as a lazy frame (CSV files are read as text)."""
+        """Table ``name`` as a lazy frame (CSV files are read as text, without the quote
+        :func:`~kidneycohort.run_folder.csv_safe` puts before formula-like text)."""
         path = self._data_file(name)
         if not path.is_file():
             raise InputDataError(f"run folder: '{path.name}' was not written by this run")
         if path.suffix == ".parquet":
             return pl.scan_parquet(path)
-        return pl.scan_csv(path, infer_schema=False)
+        # text cells as written before the CSV writer's guard against formulas (a quote
+        # before a leading = + - @): the report prints "-4.58 to -3.84", not "'-4.58 ..."
+        return pl.scan_csv(path, infer_schema=False).with_columns(
+            pl.all().str.replace(r"^'([=+\-@\t\r])", "$1")
+        )
 
     def table(self, name: str, columns: list[str] | None = None) -> pl.DataFrame:
         """Table ``name`` (only ``columns`` when given)."""
