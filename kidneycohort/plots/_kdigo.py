@@ -165,7 +165,7 @@ def kdigo_grid_figure(
             x="Albuminuria category (UACR)",
             y=f"GFR category ({EGFR_UNIT_LABEL})",
             title="Patients by KDIGO GFR and albuminuria category",
-            caption=wrap(caption, 95),
+            caption=wrap(caption, 82),
         )
     )
     return plot

@@ -116,7 +116,7 @@ def _figure(run: RunFolder, stem: str, title: str, caption: str = "") -> Figure 
     return Figure(stem=stem, title=title, data_uri=uri, caption=caption)
 
 
-def _figures(run: RunFolder) -> dict[str, list[Figure]]:
+def _figures(run: RunFolder, labels: dict[str, str]) -> dict[str, list[Figure]]:
     titles = FIGURE_TITLES
     wanted: list[tuple[str, str, str, str]] = [
         (
@@ -136,7 +136,7 @@ def _figures(run: RunFolder) -> dict[str, list[Figure]]:
     folder = run.path / "figures"
     for path in sorted(folder.glob("survival*.png")) if folder.is_dir() else []:
         endpoint = path.stem.removeprefix("survival").lstrip("_")
-        title = f"Time to {display_label(endpoint)}" if endpoint else titles["survival"]
+        title = f"Time to {display_label(endpoint, labels)}" if endpoint else titles["survival"]
         wanted.append(("endpoints", path.stem, title, ""))
     wanted.append(("endpoints", "forest_hazard_ratios", titles["forest_hazard_ratios"], ""))
     figures: dict[str, list[Figure]] = {key: [] for key, _ in SECTIONS}
@@ -219,7 +219,10 @@ def _tables(run: RunFolder, labels: dict[str, str]) -> tuple[dict[str, list[Tabl
     tables: dict[str, list[Table]] = {key: [] for key, _ in SECTIONS}
     index = [_shared_table(run, name) for name in TABLES if run.has(f"tables/{name}")]
     for table in index:
-        tables[TABLES[table.name][1]].append(table)
+        # an empty table (e.g. competing risks without a competing death) is listed in
+        # the Tables section, not printed as a heading over nothing
+        if table.rows or table.note:
+            tables[TABLES[table.name][1]].append(table)
     for section, extra in _model_tables(run, labels).items():
         tables[section].extend(extra)
     return tables, index
@@ -510,7 +513,7 @@ def build_report_context(
     equations = equation_rows(run, study.equations or ([equation] if equation else []), threshold)
     labels = {e["id"]: e["label"] for e in equations}
     tables, index = _tables(run, display)
-    figures = _figures(run)
+    figures = _figures(run, display)
     accounting, by_reason = _accounting(run, threshold)
     provenance = _provenance(run)
     sections = present_sections(figures, tables, equations=bool(equations), index=bool(index))

@@ -260,3 +260,14 @@ def test_bad_run_folder(tmp_path: Path) -> None:
     (tmp_path / "manifest.json").write_text("[1, 2", encoding="utf-8")
     with pytest.raises(InputDataError, match=r"manifest\.json: not valid JSON"):
         write_report(tmp_path)
+
+
+def test_an_empty_table_is_listed_not_printed(tmp_path: Path, full: dict) -> None:
+    run = tmp_path / "run"
+    shutil.copytree(full["run"], run)
+    (run / "tables/incidence_rates.csv").write_text("endpoint,group,events\n", encoding="utf-8")
+    html = write_report(run).read_text(encoding="utf-8")
+    endpoints = html.split('id="endpoints"', 1)[1].split('class="section-heading"', 1)[0]
+    assert "<h3>Incidence rates</h3>" not in endpoints
+    assert "The table is empty." not in html
+    assert "Incidence rates (no rows in this run)" in html
