@@ -236,7 +236,12 @@ def _group_counts(run: RunFolder) -> pl.DataFrame | None:
     return groups.group_by("group").agg(patients=pl.len()).sort("group")
 
 
-def _slope_lines(run: RunFolder, threshold: int) -> list[str]:
+def _shown_groups(text: str, labels: dict[str, str]) -> str:
+    """A group, or a contrast ``a - b`` of groups, in display labels."""
+    return " - ".join(display_label(part, labels) for part in str(text).split(" - "))
+
+
+def _slope_lines(run: RunFolder, threshold: int, labels: dict[str, str]) -> list[str]:
     lines: list[str] = []
     slopes = run.table_or_none("slopes")
     if slopes is not None and slopes.height:
@@ -244,7 +249,7 @@ def _slope_lines(run: RunFolder, threshold: int) -> list[str]:
         equation = run.primary_equation if run.primary_equation in have else min(have)
         dist = slope_distribution(slopes, run.patient_groups(), equation=equation)
         lines += [
-            f"Median eGFR slope, {row['group']}: {row['median']:.2f} mL/min/1.73 m² per year "
+            f"Median eGFR slope, {_shown_groups(row['group'], labels)}: {row['median']:.2f} mL/min/1.73 m² per year "
             f"(IQR {row['q1']:.2f} to {row['q3']:.2f}; n={row['n']:,})."
             for row in dist.filter(pl.col("n") > threshold).to_dicts()
         ]
@@ -260,7 +265,8 @@ def _slope_lines(run: RunFolder, threshold: int) -> list[str]:
         differences = summary.filter(pl.col("contrast").str.contains(" - "))
         for row in (differences if differences.height else summary.head(6)).to_dicts():
             lines.append(
-                f"{readable_key(str(row['quantity']))}, {row['contrast']}: {_estimate_text(row)}."
+                f"{readable_key(str(row['quantity']))}, {_shown_groups(row['contrast'], labels)}: "
+                f"{_estimate_text(row)}."
             )
     return lines
 
@@ -286,9 +292,9 @@ def _summary(run: RunFolder, threshold: int, labels: dict[str, str]) -> list[str
         lines.append("Patients: " + "; ".join(f"{k} {v}" for k, v in flow.items()) + ".")
     group_sizes = _printed_group_sizes(run, threshold)
     if len(group_sizes) > 1:
-        listed = ", ".join(f"{g} ({n})" for g, n in group_sizes.items())
+        listed = ", ".join(f"{display_label(g, labels)} ({n})" for g, n in group_sizes.items())
         lines.append(f"Groups: {listed}.")
-    lines += _slope_lines(run, threshold)
+    lines += _slope_lines(run, threshold, labels)
     lines += _event_lines(run, labels)
     hazard_ratios = run.table_or_none("models/hazard_ratios")
     if hazard_ratios is not None and hazard_ratios.height:
@@ -546,7 +552,9 @@ def build_report_context(
         "accounting": accounting,
         "accounting_by_reason": by_reason,
         # as the baseline table prints them (one protection for every output)
-        "groups": [[g, n] for g, n in _printed_group_sizes(run, threshold).items()],
+        "groups": [
+            [display_label(g, display), n] for g, n in _printed_group_sizes(run, threshold).items()
+        ],
         "provenance": provenance,
         "generated": dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M UTC"),
     }

@@ -271,3 +271,18 @@ def test_an_empty_table_is_listed_not_printed(tmp_path: Path, full: dict) -> Non
     assert "<h3>Incidence rates</h3>" not in endpoints
     assert "The table is empty." not in html
     assert "Incidence rates (no rows in this run)" in html
+
+
+def test_summary_and_group_table_use_group_labels(tmp_path: Path, full: dict) -> None:
+    run = tmp_path / "run"
+    shutil.copytree(full["run"], run)
+    manifest = json.loads((run / "manifest.json").read_text(encoding="utf-8"))
+    groups = sorted(full["patients"]["group"].unique().to_list())
+    manifest["config"]["report"] = {"labels": {groups[0]: "Arm One (invented)"}}
+    (run / "manifest.json").write_text(json.dumps(manifest), encoding="utf-8")
+    context = build_report_context(run)
+    summary = " ".join(context["summary"])
+    assert "Arm One (invented)" in summary
+    assert f"Median eGFR slope, {groups[0]}:" not in summary
+    assert any(line.startswith("Median eGFR slope, Arm One") for line in context["summary"])
+    assert "Arm One (invented)" in [g for g, _ in context["groups"]]
