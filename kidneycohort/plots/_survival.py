@@ -242,13 +242,13 @@ def survival_figure(
             "text",
             x=0.02 * x_max,
             y=lo + 0.06 * span if falling else hi - 0.06 * span,
-            label="\n".join(hazard_ratio_text),
+            label="\n".join(line for text in hazard_ratio_text for line in textwrap.wrap(text, 70)),
             size=8,
             ha="left",
             va="bottom" if falling else "top",
         )
     if at_risk is not None:
-        plot, rows = _at_risk_rows(plot, at_risk, endpoint, lo, span, threshold)
+        plot, rows = _at_risk_rows(plot, at_risk, endpoint, (lo, span, x_max), threshold)
         if rows:
             breaks = list(rows.values()) + breaks
             labels = list(rows) + labels
@@ -278,11 +278,19 @@ def survival_figure(
 
 
 def _at_risk_rows(
-    plot: ggplot, at_risk: FrameLike, endpoint: str, lo: float, span: float, threshold: int
+    plot: ggplot,
+    at_risk: FrameLike,
+    endpoint: str,
+    axis: tuple[float, float, float],
+    threshold: int,
 ) -> tuple[ggplot, dict[str, float]]:
-    """The number-at-risk table under the axis: the layers, and each group's row height."""
+    """The number-at-risk table under the axis (``axis``: the probability axis' start and
+    span, the last time of the curves): the layers, and each group's row height. Times
+    past the end of the curves are left out (columns of zeros would stretch the axis)."""
+    lo, span, x_max = axis
     risk = to_polars(at_risk, "at_risk")
     require_columns(risk, ("group", "years", "n_at_risk"), "at_risk")
+    risk = risk.filter(pl.col("years").cast(pl.Float64) <= x_max + 1e-9)
     if "endpoint" in risk.columns and endpoint:
         risk = risk.filter(pl.col("endpoint") == endpoint)
     risk = risk.with_columns(pl.col("group").cast(pl.String).fill_null("no group"))

@@ -277,3 +277,27 @@ def test_transition_panels_have_their_own_axes() -> None:
     a_panel = next(t for t in panels if any(c.startswith("A") for c in t))
     assert g_panel == {"G2", "G3a", "G3b"}  # no albuminuria columns in the GFR panel
     assert a_panel == {"A1", "A2", "A3"}
+
+
+def test_at_risk_columns_stop_with_the_curves_and_long_text_wraps() -> None:
+    at_risk = pl.DataFrame(
+        {
+            "endpoint": "kidney_failure",
+            "group": ["a"] * 6 + ["b"] * 6,
+            "years": [0.0, 1.0, 2.0, 3.0, 4.0, 5.0] * 2,
+            "n_at_risk": [40, 38, 30, 22, 0, 0, 41, 39, 33, 25, 0, 0],
+        }
+    )
+    long = "HR Active drug vs Placebo: not estimable (" + "too few events " * 5 + ")"
+    plot = plots.survival_figure(
+        _curves(), at_risk, endpoint="kidney_failure", hazard_ratio_text=[long]
+    )
+    table = _layer_data(plot, "label")
+    assert sorted(set(table["years"])) == [0.0, 1.0, 2.0, 3.0]  # the curves end at 3 years
+    text = next(
+        layer.geom.aes_params["label"]
+        for layer in plot.layers
+        if "label" in layer.geom.aes_params and "HR" in str(layer.geom.aes_params["label"])
+    )
+    assert max(len(line) for line in text.splitlines()) <= 70
+    assert " ".join(text.split()) == " ".join(long.split())  # wrapped, nothing lost
