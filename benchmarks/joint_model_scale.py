@@ -48,7 +48,9 @@ def main() -> None:
     parser.add_argument("--nodes", type=int, default=3)
     args = parser.parse_args()
     rows = []
-    print(f"{'patients':>9} {'values':>8} {'events':>7} {'seconds':>8} {'peak MB':>8} {'growth':>7}")
+    print(
+        f"{'patients':>9} {'values':>8} {'events':>7} {'seconds':>8} {'peak MB':>8} {'growth':>7}"
+    )
     for size in args.sizes:
         rows.append(run(size, args.knot, args.nodes))
         patients, values, events, seconds, peak = rows[-1]

@@ -57,6 +57,7 @@ ALWAYS: Final = frozenset({"summary", "data", "methods", "cautions", "provenance
 TABLES: Final[dict[str, tuple[str, str]]] = {
     "baseline_characteristics": ("Baseline characteristics", "baseline"),
     "slope_table": ("eGFR slopes", "slopes"),
+    "dropout_analysis": ("eGFR slopes under informative dropout", "slopes"),
     "kdigo_grid": ("KDIGO GFR x albuminuria grid", "kdigo"),
     "transition_matrix": ("KDIGO category transitions", "kdigo"),
     "endpoint_table": ("Endpoints", "endpoints"),
@@ -320,6 +321,23 @@ def _method_facts(run: RunFolder) -> dict[str, Any]:
     }
 
 
+def _dropout_methods(run: RunFolder) -> list[dict[str, Any]]:
+    """The paragraph the dropout analysis wrote about itself (models/dropout_methods)."""
+    dropout = run.table_or_none("models/dropout_methods")
+    if dropout is None or dropout.is_empty() or "paragraph" not in dropout.columns:
+        return []
+    sentences = dropout["paragraph"].drop_nulls().to_list()
+    return [{"section": "Slopes under informative dropout", "sentences": sentences}]
+
+
+def _with_analysis_methods(
+    methods: list[dict[str, Any]], extra: list[dict[str, Any]]
+) -> list[dict[str, Any]]:
+    """``extra`` paragraphs placed before software and the list of other settings."""
+    tail = [m for m in methods if m["section"] in ("Software", "Other settings")]
+    return [m for m in methods if m not in tail] + extra + tail
+
+
 def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:
     """Patients per group as the baseline table prints them (its N row)."""
     table = run.table_or_none("tables/baseline_characteristics")
@@ -539,8 +557,9 @@ def build_report_context(
         "table_index": index,
         "xlsx": "tables/tables.xlsx" if (run.path / "tables" / "tables.xlsx").is_file() else "",
         "equations": equations,
-        "methods": methods_from_config(
-            manifest.config, {**display, **labels}, facts=_method_facts(run)
+        "methods": _with_analysis_methods(
+            methods_from_config(manifest.config, {**display, **labels}, facts=_method_facts(run)),
+            _dropout_methods(run),
         ),
         "cautions": list(CAUTIONS),
         "warnings": [

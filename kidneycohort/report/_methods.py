@@ -303,6 +303,17 @@ def _censoring(config: Config) -> list[str]:
             "Patients without an eGFR-based event were censored at the end of follow-up "
             "(kidney failure, end of follow-up or the data cut, whichever came first)."
         )
+    death = rule.get("death_before_event")
+    if death == "competing":
+        out.append(
+            "Death before an eGFR-based endpoint was a competing event at the death date "
+            "(cumulative incidence, subdistribution hazards)."
+        )
+    elif death:
+        out.append(
+            "Death before an eGFR-based endpoint was censored at the last eGFR assessment "
+            "(cause-specific analysis), not counted as a competing event."
+        )
     if study.get("data_cut"):
         out.append(f"Follow-up ended at the data cut of {study['data_cut']} at the latest.")
     return out

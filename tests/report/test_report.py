@@ -286,3 +286,13 @@ def test_summary_and_group_table_use_group_labels(tmp_path: Path, full: dict) ->
     assert f"Median eGFR slope, {groups[0]}:" not in summary
     assert any(line.startswith("Median eGFR slope, Arm One") for line in context["summary"])
     assert "Arm One (invented)" in [g for g, _ in context["groups"]]
+
+
+def test_methods_say_how_death_before_a_laboratory_endpoint_was_handled() -> None:
+    for rule, phrase in (
+        ("competing", "a competing event at the death date"),
+        ("censor_at_last_assessment", "censored at the last eGFR assessment"),
+    ):
+        config = {"endpoints": {"rule": {"death_before_event": rule}}}
+        text = " ".join(s for m in methods_from_config(config) for s in m["sentences"])
+        assert phrase in text

@@ -6,6 +6,13 @@ stated value at kidney failure).
 
 from __future__ import annotations
 
+from kidneycohort.models.joint._analysis import (
+    DropoutAnalysis,
+    DropoutAnalysisRule,
+    StatedValuePart,
+    TippingPointPart,
+    dropout_analysis,
+)
 from kidneycohort.models.joint._dropout_sensitivity import (
     DeltaAdjustedResult,
     StatedValueResult,
@@ -18,11 +25,16 @@ from kidneycohort.models.joint._simulate import JointCohortTruth, simulate_joint
 
 __all__ = [
     "DeltaAdjustedResult",
+    "DropoutAnalysis",
+    "DropoutAnalysisRule",
     "JointCohortTruth",
     "JointSlopeModel",
     "JointSlopeRule",
+    "StatedValuePart",
     "StatedValueResult",
+    "TippingPointPart",
     "delta_adjusted_slopes",
+    "dropout_analysis",
     "simulate_joint_cohort",
     "stated_value_at_kidney_failure",
 ]

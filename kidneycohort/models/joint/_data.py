@@ -152,8 +152,9 @@ def _rows_with_reasons(
         pl.col("years_from_index").cast(pl.Float64),
         pl.col("egfr").cast(pl.Float64),
     )
-    how = "left"
-    rows = values.join(patients, on="patient_id", how=how).join(dropout, on="patient_id", how=how)
+    rows = values.join(patients, on="patient_id", how="left").join(
+        dropout, on="patient_id", how="left"
+    )
     if whole_cohort:
         rows = rows.with_columns(pl.col("_group").fill_null(WHOLE_COHORT))
     years = pl.col("years_from_index")

@@ -41,7 +41,8 @@ References
 from __future__ import annotations
 
 import itertools
-from collections.abc import Sequence
+import warnings
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -50,11 +51,9 @@ import polars as pl
 from scipy import stats
 
 from kidneycohort._frames import FrameLike
-from kidneycohort.errors import ConvergenceError, InputDataError
+from kidneycohort.errors import ConvergenceError, InputDataError, StatisticalWarning
 from kidneycohort.models.joint._data import JointData, dropout_times, time_design, with_values
-from kidneycohort.models.joint._fit import maximise
-from kidneycohort.models.joint._likelihood import JointLikelihood
-from kidneycohort.models.joint._model import JointSlopeModel
+from kidneycohort.models.joint._model import JointSlopeModel, fit_separate_mixed_model
 
 __all__ = [
     "DeltaAdjustedResult",
@@ -63,7 +62,30 @@ __all__ = [
     "stated_value_at_kidney_failure",
 ]
 
-_BISECTION_STEPS = 10
+_BISECTION_STEPS = 7  # the bracket shrinks 128-fold
+# Newton decrement per value (deviance units) at which a completed-data refit counts as
+# converged: 1e-8 leaves a log-likelihood gap of at most 0.5e-8 per value, far below
+# what moves a slope difference; the engine's default 1e-10 refused near-flat optima
+# next to the covariance boundary on small completed data sets
+_REFIT_TOLERANCE = 1e-8
+# doublings of the extreme delta when the whole grid agrees
+_EXTENSIONS = 4
+# completed-data refits (not) at the covariance boundary since the last reset
+_BOUNDARY_FITS = {False: 0, True: 0}
+
+
+def _boundary_note() -> str:
+    """A note on refits at the boundary since the last call (and reset the count)."""
+    at, total = _BOUNDARY_FITS[True], _BOUNDARY_FITS[True] + _BOUNDARY_FITS[False]
+    _BOUNDARY_FITS[False] = _BOUNDARY_FITS[True] = 0
+    if not at:
+        return ""
+    return (
+        f"{at} of {total} refits ended at the boundary of the random-effects covariance "
+        "(a variance at zero or a correlation at +/-1); their fixed effects are valid"
+    )
+
+
 _TABLE_COLUMNS = ("delta", "estimate", "se", "lower", "upper", "p", "df", "significant")
 
 
@@ -72,28 +94,27 @@ def _slope_fit(
 ) -> tuple[float, float]:
     """Slope difference (first non-reference - reference; chronic with a knot) and its
     variance from the observed-data mixed model (ML, the dropout model left out) refitted
-    to these values, started from the observed-data estimates."""
-    data, lay, observed = model.data_, model.layout_, model.mixed_
-    assert observed is not None
-    completed = with_values(data, patient, years, response)
-    likelihood = JointLikelihood(
-        completed,
-        lay,
-        association="current_value",
-        cuts=np.empty(0),
-        quadrature_nodes=3,
-        longitudinal_only=True,
-    )
-    free = np.zeros(lay.size, dtype=bool)
-    free[lay.beta.start : lay.chol.stop] = True
-    fit = maximise(likelihood, observed.x, free, tolerance=model.rule.tolerance, max_iterations=500)
-    if fit.covariance is None or not fit.converged:
-        raise ConvergenceError(
-            f"delta-adjusted analysis: a completed data set could not be fitted ({fit.message})"
+    to these values by the exact engine (closed-form profiled likelihood, no quadrature:
+    the eGFR model alone is Gaussian)."""
+    data = model.data_
+    with warnings.catch_warnings():
+        # a boundary covariance leaves the fixed effects valid; it is counted in the
+        # result's note (``boundary_fits``) instead of one warning per completed data set
+        warnings.simplefilter("ignore", StatisticalWarning)
+        fit = fit_separate_mixed_model(
+            with_values(data, patient, years, response),
+            model.slope_terms_,
+            tolerance=_REFIT_TOLERANCE,
         )
-    contrast = np.zeros(lay.size)
-    contrast[lay.beta.start + 2 * lay.q - 1], contrast[lay.beta.start + lay.q - 1] = 1.0, -1.0
-    return float(contrast @ fit.x), float(contrast @ fit.covariance @ contrast)
+    _BOUNDARY_FITS[bool(fit.convergence.boundary)] += 1
+    if not fit.convergence.converged:
+        raise ConvergenceError(
+            f"delta-adjusted analysis: a completed data set could not be fitted ({fit.describe()})"
+        )
+    q = 1 + len(model.slope_terms_)
+    contrast = np.zeros(fit.fixed_effects.size)
+    contrast[2 * q - 1], contrast[q - 1] = 1.0, -1.0
+    return float(contrast @ fit.fixed_effects), float(contrast @ fit.fixed_covariance @ contrast)
 
 
 def rubin(estimates: np.ndarray, variances: np.ndarray) -> tuple[float, float, float, float]:
@@ -203,8 +224,10 @@ class DeltaAdjustedResult:
             "imputed values of the non-reference arm were shifted by delta mL/min/1.73 m² "
             "per year since dropout, each completed data set was analysed by the slope "
             "mixed model and the results combined by Rubin's rules (Rubin 1987; Carpenter "
-            f"& Kenward 2013). For the {self.quantity} difference {self.contrast}, {point} "
-            f"(two-sided alpha {self.alpha:g}; bisection between grid values)."
+            f"& Kenward 2013). For the {self.quantity.replace('_', ' ')} difference "
+            f"{self.contrast}, {point} (two-sided alpha {self.alpha:g}; the extreme delta "
+            "doubled up to four times when the grid agreed; bisection between the deltas "
+            "that bracket the change)."
         )
 
 
@@ -242,10 +265,12 @@ def delta_adjusted_slopes(
     """
     if imputations < 2:
         raise InputDataError("delta_adjusted_slopes: imputations must be at least 2")
+    _boundary_note()  # reset the count
     model = _observed_model(egfr, patients, endpoints, options)
     data = model.data_
     imputed = _draw(model, _planned_years(data, planned_years), imputations, seed)
     results = {float(d): _pooled(model, imputed, float(d)) for d in sorted(set(deltas))}
+    _extend_grid(results, model, imputed, alpha)
     tipping = _tipping_point(results, model, imputed, alpha)
     rows = sorted(results.items())
     z = stats.t.ppf(1 - alpha / 2, [r[2] for _, r in rows])
@@ -262,7 +287,11 @@ def delta_adjusted_slopes(
         }
     ).select(_TABLE_COLUMNS)
     quantity = "chronic_slope" if data.knot is not None else "slope"
-    note = "" if tipping is not None else "no change of conclusion over the deltas examined"
+    notes = [
+        "" if tipping is not None else "no change of conclusion over the deltas examined",
+        _boundary_note(),
+    ]
+    note = "; ".join(n for n in notes if n)
     return DeltaAdjustedResult(
         table,
         tipping,
@@ -273,6 +302,30 @@ def delta_adjusted_slopes(
         int(imputed.patient.size),
         note,
     )
+
+
+def _extend_grid(
+    results: dict[float, tuple[float, float, float, float]],
+    model: JointSlopeModel,
+    imputed: _Imputations,
+    alpha: float,
+) -> None:
+    """When the whole grid agrees, double the extreme delta on the side where p is
+    largest (towards a changed conclusion) up to :data:`_EXTENSIONS` times, so that a
+    tipping point beyond the grid is still found; the added deltas join the table."""
+    conclusions = {results[d][3] < alpha for d in results}
+    if len(conclusions) > 1:
+        return
+    (grid_conclusion,) = conclusions
+    low, high = min(results), max(results)
+    edge = low if results[low][3] >= results[high][3] else high
+    if edge == 0.0:
+        edge = -1.0 if edge == high else 1.0
+    for _ in range(_EXTENSIONS):
+        edge *= 2.0
+        results[edge] = _pooled(model, imputed, edge)
+        if (results[edge][3] < alpha) != grid_conclusion:
+            return
 
 
 def _tipping_point(
@@ -309,12 +362,15 @@ class StatedValueResult:
     value: float
     endpoint: str
     added_values: int
+    note: str = ""
 
-    def methods_text(self) -> str:
+    def methods_text(self, count_text: Callable[[int], str] = str) -> str:
+        """The methods paragraph; ``count_text`` prints the count of patients (e.g.
+        :func:`kidneycohort.disclosure.small_count_text` for a public release)."""
         return (
             f"As an alternative analysis, an eGFR value of {self.value:g} mL/min/1.73 m² was "
             f"added at the time of {self.endpoint.replace('_', ' ')} for the "
-            f"{self.added_values} patients who reached it, and the slope mixed model was "
+            f"{count_text(self.added_values)} patients who reached it, and the slope mixed model was "
             "refitted (maximum likelihood), so that kidney failure counts as the low eGFR it "
             "stands for."
         )
@@ -348,6 +404,7 @@ def stated_value_at_kidney_failure(
     who = index[known]
     when = failed["dropout_years"].to_numpy()[known]
     z = float(stats.norm.ppf(0.5 + confidence / 2.0))
+    _boundary_note()  # reset the count
     rows = []
     for analysis, patient, years, response in (
         ("observed", data.row_patient, data.row_years, data.row_response),
@@ -372,4 +429,6 @@ def stated_value_at_kidney_failure(
                 "p": float(2.0 * stats.norm.sf(abs(estimate) / se)),
             }
         )
-    return StatedValueResult(pl.DataFrame(rows), float(value), failure_endpoint, int(who.size))
+    return StatedValueResult(
+        pl.DataFrame(rows), float(value), failure_endpoint, int(who.size), _boundary_note()
+    )

@@ -43,6 +43,16 @@ class JointOptimum:
     grid: Grid
 
 
+def _value_and_gradient(
+    likelihood: JointLikelihood, x: np.ndarray, grid: Grid
+) -> tuple[float, np.ndarray]:
+    """The log-likelihood and its gradient at ``x`` on a fixed grid."""
+    out = likelihood(x, grid)
+    if not isinstance(out, tuple) or out[1] is None:
+        raise TypeError("the joint likelihood returned no gradient")
+    return out[0], out[1]
+
+
 def numerical_hessian(
     likelihood: JointLikelihood, x: np.ndarray, grid: Grid, free: np.ndarray
 ) -> np.ndarray:
@@ -54,8 +64,8 @@ def numerical_hessian(
         up, down = x.copy(), x.copy()
         up[k] += step
         down[k] -= step
-        grad_up = likelihood(up, grid)[1]
-        grad_down = likelihood(down, grid)[1]
+        grad_up = _value_and_gradient(likelihood, up, grid)[1]
+        grad_down = _value_and_gradient(likelihood, down, grid)[1]
         hessian[:, column] = (grad_up[index] - grad_down[index]) / (2.0 * step)
     return (hessian + hessian.T) / 2.0
 
@@ -82,7 +92,7 @@ def _stage(
         x = x0.copy()
         x[index] += transform @ z
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            value, grad = likelihood(x, grid)
+            value, grad = _value_and_gradient(likelihood, x, grid)
         if not np.isfinite(value) or not np.all(np.isfinite(grad)):
             return 1e300, np.zeros_like(z)
         return -value, -(transform.T @ grad[index])
@@ -104,7 +114,7 @@ def _newton(
 ) -> tuple[np.ndarray, np.ndarray, float, int]:
     """Newton steps with step halving; returns x, Hessian, decrement, steps taken."""
     index = np.flatnonzero(free)
-    value, grad = likelihood(x, grid)
+    value, grad = _value_and_gradient(likelihood, x, grid)
     hessian = numerical_hessian(likelihood, x, grid, free)
     decrement = np.inf
     for step_count in range(1, _NEWTON_STEPS + 1):
@@ -121,7 +131,7 @@ def _newton(
         while scale > 1e-4:
             trial = x.copy()
             trial[index] += scale * direction
-            trial_value, trial_grad = likelihood(trial, grid)
+            trial_value, trial_grad = _value_and_gradient(likelihood, trial, grid)
             if np.isfinite(trial_value) and trial_value >= value - 1e-10:
                 break
             scale /= 2.0

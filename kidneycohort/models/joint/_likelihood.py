@@ -192,7 +192,9 @@ class JointLikelihood:
         mesh = np.meshgrid(*([nodes] * q), indexing="ij")
         self.unit_nodes = np.stack([m.ravel() for m in mesh], axis=1)  # (K, q)
         log_w = np.meshgrid(*([np.log(weights)] * q), indexing="ij")
-        self.log_weights = sum(w.ravel() for w in log_w) - q / 2.0 * _LOG_2PI
+        self.log_weights: np.ndarray = (
+            np.sum([w.ravel() for w in log_w], axis=0) - q / 2.0 * _LOG_2PI
+        )
 
     # ---- the adaptive grid --------------------------------------------------------
 

@@ -17,17 +17,21 @@ from kidneycohort.models.joint._data import JointData, joint_data, reorder_group
 from kidneycohort.models.joint._fit import JointOptimum, maximise
 from kidneycohort.models.joint._likelihood import JointLikelihood, Layout
 from kidneycohort.models.joint._rule import NOT_ESTIMABLE_NOTES, SUMMARY_COLUMNS, JointSlopeRule
-from kidneycohort.models.mixed._engine import MixedModelFit, fit_mixed_model, patient_blocks
+from kidneycohort.models.mixed import MixedModelFit, fit_mixed_model, patient_blocks
 
 logger = logging.getLogger(__name__)
 
 __all__ = ["JointSlopeModel", "fit_separate_mixed_model"]
 
 
-def fit_separate_mixed_model(data: JointData, slope_terms: list[str]) -> MixedModelFit:
+def fit_separate_mixed_model(
+    data: JointData, slope_terms: list[str], *, tolerance: float | None = None
+) -> MixedModelFit:
     """The same eGFR model alone, by ML (exact engine), on the same patients and values;
-    the joint model's starting values."""
+    the joint model's starting values. ``tolerance``: the engine's convergence tolerance
+    (Newton decrement per value), its default when ``None``."""
     terms = ["intercept", *slope_terms]
+    overrides: dict[str, Any] = {} if tolerance is None else {"tolerance": tolerance}
     code = data.group_code[data.row_patient]
     design = data.row_design
     columns = [(code == g)[:, None] * design for g in range(len(data.groups))]
@@ -42,6 +46,7 @@ def fit_separate_mixed_model(data: JointData, slope_terms: list[str]) -> MixedMo
         ),
         method="ml",
         fallback=False,
+        **overrides,
     )
 
 
@@ -273,7 +278,7 @@ class JointSlopeModel:
             parts = {"slope": {1: 1.0}}
         else:
             parts = {"acute_change": {1: knot}, "chronic_slope": {2: 1.0}}
-        rows = []
+        rows: list[tuple[str, str, np.ndarray]] = []
 
         def weights(group: int, terms: dict[int, float]) -> np.ndarray:
             out = np.zeros(size)
@@ -473,9 +478,10 @@ class JointSlopeModel:
             if spec.knot_years is None
             else f"a random intercept and acute and chronic slopes (knot at {spec.knot_years:g} years)"
         )
+        dropout = " or ".join(e.replace("_", " ") for e in spec.dropout_endpoints)
         return (
             "To account for informative dropout, eGFR and the time to dropout "
-            f"({' or '.join(spec.dropout_endpoints)}, whichever came first) were modelled "
+            f"({dropout}, whichever came first) were modelled "
             "jointly with a shared-random-effects model (Henderson, Diggle & Dobson 2000; "
             f"Rizopoulos 2012): a linear mixed model of eGFR with {slopes} by group, and a "
             f"proportional-hazards model of dropout with {base}, the group, and {link} as "

@@ -83,10 +83,13 @@ def test_delta_moves_the_difference_monotonically_and_the_tipping_point_brackets
 
 def test_no_change_of_conclusion_gives_no_tipping_point(cohort):
     egfr, patients, endpoints = cohort
+    # positive deltas make the active arm look better still: the grid agrees, and so do
+    # its four doublings outwards (1, 2, 4, 8 per year)
     result = delta_adjusted_slopes(
-        egfr, patients, endpoints, reference_group="placebo", deltas=(-2.0, -1.0), imputations=3
+        egfr, patients, endpoints, reference_group="placebo", deltas=(0.5, 1.0), imputations=3
     )
     assert result.tipping_point is None
+    assert result.table["delta"].max() == 8.0
     assert result.note and "did not change" in result.methods_text()
 
 
