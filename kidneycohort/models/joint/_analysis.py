@@ -141,16 +141,10 @@ def _tipping_rows(
         )
     except (ConvergenceError, InputDataError) as error:
         return _not_estimable("delta_adjusted", _reason(error), str(error)), None
-    grid = set(part.deltas)
     table = result.table.select(
         pl.lit("delta_adjusted").alias("analysis"),
         "delta",
-        pl.when(pl.col("delta").is_in(list(grid)))
-        .then(pl.lit("grid"))
-        .when(pl.col("delta").is_between(min(grid), max(grid)))
-        .then(pl.lit("bisection"))
-        .otherwise(pl.lit("extension"))
-        .alias("step"),
+        "step",
         pl.lit(result.contrast).alias("contrast"),
         pl.lit(result.quantity).alias("quantity"),
         "estimate",

@@ -86,7 +86,7 @@ def _boundary_note() -> str:
     )
 
 
-_TABLE_COLUMNS = ("delta", "estimate", "se", "lower", "upper", "p", "df", "significant")
+_TABLE_COLUMNS = ("delta", "step", "estimate", "se", "lower", "upper", "p", "df", "significant")
 
 
 def _slope_fit(
@@ -196,8 +196,9 @@ def _pooled(
 class DeltaAdjustedResult:
     """Result of :func:`delta_adjusted_slopes`.
 
-    ``table``: ``delta, estimate, se, lower, upper, p, df, significant`` (one row per
-    delta evaluated, bisection steps included, sorted); ``tipping_point``: the delta at
+    ``table``: ``delta, step, estimate, se, lower, upper, p, df, significant`` (one row
+    per delta evaluated, sorted; ``step`` says whether the delta is from the ``grid``, an
+    ``extension`` beyond it or a ``bisection`` step); ``tipping_point``: the delta at
     which p crosses alpha (``None`` when the conclusion does not change over the grid);
     ``contrast`` and ``quantity`` name the difference.
     """
@@ -270,7 +271,8 @@ def delta_adjusted_slopes(
     data = model.data_
     imputed = _draw(model, _planned_years(data, planned_years), imputations, seed)
     results = {float(d): _pooled(model, imputed, float(d)) for d in sorted(set(deltas))}
-    _extend_grid(results, model, imputed, alpha)
+    grid = set(results)
+    extended = _extend_grid(results, model, imputed, alpha)
     tipping = _tipping_point(results, model, imputed, alpha)
     rows = sorted(results.items())
     z = stats.t.ppf(1 - alpha / 2, [r[2] for _, r in rows])
@@ -284,6 +286,10 @@ def delta_adjusted_slopes(
             "p": [r[3] for _, r in rows],
             "df": [r[2] for _, r in rows],
             "significant": [r[3] < alpha for _, r in rows],
+            "step": [
+                "grid" if d in grid else "extension" if d in extended else "bisection"
+                for d, _ in rows
+            ],
         }
     ).select(_TABLE_COLUMNS)
     quantity = "chronic_slope" if data.knot is not None else "slope"
@@ -309,23 +315,26 @@ def _extend_grid(
     model: JointSlopeModel,
     imputed: _Imputations,
     alpha: float,
-) -> None:
+) -> set[float]:
     """When the whole grid agrees, double the extreme delta on the side where p is
     largest (towards a changed conclusion) up to :data:`_EXTENSIONS` times, so that a
-    tipping point beyond the grid is still found; the added deltas join the table."""
+    tipping point beyond the grid is still found; the added deltas (returned) join the table."""
     conclusions = {results[d][3] < alpha for d in results}
+    added: set[float] = set()
     if len(conclusions) > 1:
-        return
+        return added
     (grid_conclusion,) = conclusions
     low, high = min(results), max(results)
     edge = low if results[low][3] >= results[high][3] else high
-    if edge == 0.0:
-        edge = -1.0 if edge == high else 1.0
+    if edge == 0.0:  # a grid of zero alone: shift towards no difference
+        edge = -1.0 if results[edge][0] > 0 else 1.0
     for _ in range(_EXTENSIONS):
         edge *= 2.0
         results[edge] = _pooled(model, imputed, edge)
+        added.add(edge)
         if (results[edge][3] < alpha) != grid_conclusion:
-            return
+            break
+    return added
 
 
 def _tipping_point(

@@ -71,6 +71,14 @@ def test_a_grid_that_agrees_is_extended_until_the_conclusion_changes() -> None:
     table = dropout_analysis(*clear, rule=rule).sensitivity.sort("delta")
     assert table.filter(pl.col("delta") == 0.0)["p"][0] < 0.05
     assert "extension" in table["step"].to_list()
+    # the bisection steps lie inside the bracket the extension found, and only the grid
+    # and the extension reach the shared table
+    outer = table.filter(pl.col("step") != "bisection")["delta"].sort()
+    bisection = table.filter(pl.col("step") == "bisection")["delta"]
+    assert bisection.len() > 0
+    assert ((bisection > outer[0]) & (bisection < outer[1])).all()
+    shown = dropout_table(pl.DataFrame(schema=DROPOUT_SLOPES), table)
+    assert shown.height == outer.len()
     tipping = table["tipping_point"][0]
     assert tipping is not None and tipping < 0
     below = table.filter(pl.col("delta") <= tipping)["p"]
