@@ -252,6 +252,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.run_folder import table_footnotes as table_footnotes
     from kidneycohort.run_folder import write_csv as write_csv
     from kidneycohort.run_folder import write_manifest as write_manifest
+    from kidneycohort.run_folder import write_sheets as write_sheets
     from kidneycohort.run_folder import write_table as write_table
     from kidneycohort.run_folder import write_workbook as write_workbook
     from kidneycohort.slopes import SlopeRule as SlopeRule
@@ -364,7 +365,7 @@ _PUBLIC: dict[str, str] = _by_module(
             "RunFolder RunFile Manifest AccountingRecord InputRecord OutputRecord ReasonCount "
             "StepRecord StudyFacts canonical_order check_layout csv_safe write_csv declared "
             "file_for is_written markdown_table output_records package_versions read_manifest "
-            "sha256_of write_manifest write_table write_workbook table_footnotes"
+            "sha256_of write_manifest write_table write_workbook table_footnotes write_sheets"
         ),
         "kidneycohort.provenance": (
             "Constant Publication constants_table get_constant get_publication "

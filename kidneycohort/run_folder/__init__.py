@@ -43,6 +43,7 @@ from kidneycohort.run_folder._writer import (
     csv_safe,
     markdown_table,
     write_csv,
+    write_sheets,
     write_table,
     write_workbook,
 )
@@ -74,6 +75,7 @@ __all__ = [
     "table_footnotes",
     "write_csv",
     "write_manifest",
+    "write_sheets",
     "write_table",
     "write_workbook",
 ]

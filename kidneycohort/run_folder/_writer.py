@@ -23,6 +23,7 @@ __all__ = [
     "csv_safe",
     "markdown_table",
     "write_csv",
+    "write_sheets",
     "write_table",
     "write_workbook",
 ]
@@ -152,20 +153,41 @@ def write_workbook(
     path.parent.mkdir(parents=True, exist_ok=True)
     with xlsxwriter.Workbook(str(path), XLSX_OPTIONS) as workbook:
         workbook.set_properties({"created": _XLSX_DATE})
-        styles = _Styles(workbook)
-        listed: list[tuple[str, str]] = []
-        for sheet, table in sorted(sheets.items()):
-            notes = table_footnotes(sheet, table)
-            # Excel limits sheet names to 31 characters
-            _write_sheet(workbook.add_worksheet(sheet[:31]), table, notes, styles)
-            listed += [(sheet, note) for note in notes]
+        ordered = dict(sorted(sheets.items()))
+        write_sheets(workbook, ordered, {n: table_footnotes(n, t) for n, t in ordered.items()})
+    return "tables/tables.xlsx"
+
+
+def write_sheets(
+    workbook: Any, tables: Mapping[str, pl.DataFrame], notes: Mapping[str, Sequence[str]]
+) -> None:
+    """Each table on its own sheet of an open xlsxwriter ``workbook`` (a frozen, styled
+    header row; numbers as numbers with the printed decimals; columns as wide as their
+    text; its footnotes under it), then a ``footnotes`` sheet listing every footnote by
+    table when there are any.
+
+    Parameters
+    ----------
+    workbook : xlsxwriter.Workbook
+        Open, created with :data:`XLSX_OPTIONS`.
+    tables : mapping
+        ``{sheet name: table}`` in sheet order (names of at most 31 characters).
+    notes : mapping
+        ``{sheet name: footnotes}``.
+    """
+    styles = _Styles(workbook)
+    listed: list[tuple[str, str]] = []
+    for name, table in tables.items():
+        lines = list(notes.get(name, ()))
+        _write_sheet(workbook.add_worksheet(name[:31]), table, lines, styles)
+        listed += [(name, line) for line in lines]
+    if listed:
         _write_sheet(
             workbook.add_worksheet("footnotes"),
             pl.DataFrame(listed, schema=["table", "footnote"], orient="row"),
             [],
             styles,
         )
-    return "tables/tables.xlsx"
 
 
 class _Styles:
