@@ -199,6 +199,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.plots import FigureRule as FigureRule
     from kidneycohort.plots import attrition_boxes as attrition_boxes
     from kidneycohort.plots import attrition_figure as attrition_figure
+    from kidneycohort.plots import draw_figures as draw_figures
     from kidneycohort.plots import egfr_time_bins as egfr_time_bins
     from kidneycohort.plots import egfr_trajectory_figure as egfr_trajectory_figure
     from kidneycohort.plots import forest_figure as forest_figure
@@ -207,6 +208,8 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.plots import kdigo_grid_cells as kdigo_grid_cells
     from kidneycohort.plots import kdigo_grid_figure as kdigo_grid_figure
     from kidneycohort.plots import model_trajectory_figure as model_trajectory_figure
+    from kidneycohort.plots import patient_flow_boxes as patient_flow_boxes
+    from kidneycohort.plots import patient_flow_figure as patient_flow_figure
     from kidneycohort.plots import slope_density as slope_density
     from kidneycohort.plots import slope_distribution as slope_distribution
     from kidneycohort.plots import slope_distribution_figure as slope_distribution_figure
@@ -222,9 +225,13 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.provenance import get_publication as get_publication
     from kidneycohort.provenance import read_code_location as read_code_location
     from kidneycohort.provenance import status_counts as status_counts
+    from kidneycohort.report import ReportRule as ReportRule
     from kidneycohort.report import build_report_context as build_report_context
+    from kidneycohort.report import find_browser as find_browser
     from kidneycohort.report import methods_from_config as methods_from_config
+    from kidneycohort.report import print_pdf as print_pdf
     from kidneycohort.report import render_report as render_report
+    from kidneycohort.report import require_browser as require_browser
     from kidneycohort.report import write_report as write_report
     from kidneycohort.run_folder import AccountingRecord as AccountingRecord
     from kidneycohort.run_folder import InputRecord as InputRecord
@@ -246,8 +253,10 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.run_folder import package_versions as package_versions
     from kidneycohort.run_folder import read_manifest as read_manifest
     from kidneycohort.run_folder import sha256_of as sha256_of
+    from kidneycohort.run_folder import table_footnotes as table_footnotes
     from kidneycohort.run_folder import write_csv as write_csv
     from kidneycohort.run_folder import write_manifest as write_manifest
+    from kidneycohort.run_folder import write_sheets as write_sheets
     from kidneycohort.run_folder import write_table as write_table
     from kidneycohort.run_folder import write_workbook as write_workbook
     from kidneycohort.slopes import SlopeRule as SlopeRule
@@ -342,10 +351,12 @@ _PUBLIC: dict[str, str] = _by_module(
             "egfr_trajectory_figure model_trajectory_figure forest_rows forest_figure "
             "group_palette kdigo_grid_cells kdigo_grid_figure transition_cells "
             "transition_heatmap_figure slope_density slope_distribution "
-            "slope_distribution_figure survival_steps survival_figure"
+            "slope_distribution_figure survival_steps survival_figure draw_figures "
+            "patient_flow_boxes patient_flow_figure"
         ),
         "kidneycohort.report": (
-            "write_report render_report build_report_context methods_from_config"
+            "write_report render_report build_report_context methods_from_config ReportRule "
+            "print_pdf find_browser require_browser"
         ),
         "kidneycohort.synthetic": (
             "generate_cohort write_cohort load_scenario Scenario SyntheticCohort"
@@ -359,7 +370,7 @@ _PUBLIC: dict[str, str] = _by_module(
             "RunFolder RunFile Manifest AccountingRecord InputRecord OutputRecord ReasonCount "
             "StepRecord StudyFacts canonical_order check_layout csv_safe write_csv declared "
             "file_for is_written markdown_table output_records package_versions read_manifest "
-            "sha256_of write_manifest write_table write_workbook"
+            "sha256_of write_manifest write_table write_workbook table_footnotes write_sheets"
         ),
         "kidneycohort.provenance": (
             "Constant Publication constants_table get_constant get_publication "

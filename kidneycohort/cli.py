@@ -441,6 +441,28 @@ def demo_cmd(
         click.echo(SHORT_CAUTION)
 
 
+@cli.command("report")
+@click.argument("run_dir", type=click.Path(path_type=Path))
+@click.option(
+    "--pdf", is_flag=True, help="Also print the report to report.pdf (headless Chromium)."
+)
+@_guarded
+def report_cmd(run_dir: Path, pdf: bool) -> None:
+    """Render RUN_DIR/report.html again from the run folder (and, with --pdf, report.pdf).
+
+    The PDF is printed by headless Chromium or Chrome (found on PATH, or named by the
+    KIDNEYCOHORT_CHROMIUM environment variable); without one, --pdf exits with code 2.
+    """
+    from kidneycohort.report import print_pdf, require_browser, write_report
+
+    browser = require_browser() if pdf else None  # fails before anything is written
+    html = write_report(run_dir)
+    click.echo(f"report: {html}")
+    if pdf:
+        click.echo(f"pdf: {print_pdf(html, browser=browser)}")
+    click.echo(SHORT_CAUTION)
+
+
 def main() -> None:
     """Console entry point."""
     # before any command imports polars: freed memory leaves the resident size at once

@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import itertools
 import warnings
-from collections.abc import Callable, Hashable, Iterable, Mapping
+from collections.abc import Callable, Hashable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Final
 
@@ -49,6 +49,7 @@ __all__ = [
     "disclosure_footnote",
     "protect_part",
     "protected_flow",
+    "protected_group_flow",
     "protected_texts",
     "small_cell_text",
     "small_count_text",
@@ -419,6 +420,67 @@ def protected_flow(
         ledger.relate([("flow", after), left_out], ("flow", before))
     display = protect_part(ledger, disclosure, "patient_flow")
     return {name: display(("flow", name)) for name in names}
+
+
+def protected_group_flow(
+    counts: Mapping[tuple[str, str], int],
+    steps: Sequence[str],
+    groups: Sequence[str],
+    threshold: int = DEFAULT_SMALL_CELL_THRESHOLD,
+    *,
+    shown_elsewhere: Iterable[tuple[str, str]] = (),
+    disclosure: SharedDisclosure | None = None,
+) -> dict[tuple[str, str, str], str]:
+    """A patient flow by group (CONSORT style) as printed: each group's steps, the
+    patients left out between two steps (printed as exclusion boxes), and the total of
+    the first step over the groups.
+
+    The known relations are entered (a step = the next step + those left out before
+    it; the first step's total = the sum over groups), so a small count is hidden
+    together with enough of its neighbours that no subtraction gives it back.
+
+    Parameters
+    ----------
+    counts : mapping
+        ``{(group, step): patients}`` for every group and step (each step a subset of
+        the one before).
+    steps, groups
+        Their order.
+    threshold : int
+        Counts from 1 to this are hidden.
+    shown_elsewhere : iterable of (group, step)
+        Counts another output prints (a table's N): they stay shown.
+    disclosure : SharedDisclosure, optional
+        One protection shared with the run's other outputs.
+
+    Returns
+    -------
+    dict
+        ``("flow", group, step)``, ``("left out", group, step)`` (before ``step``) and
+        ``("flow", "all", steps[0])`` -> printed text.
+
+    >>> flow = {("a", "in"): 40, ("a", "out"): 36, ("b", "in"): 50, ("b", "out"): 50}
+    >>> texts = protected_group_flow(flow, ["in", "out"], ["a", "b"])
+    >>> texts[("left out", "a", "out")], texts[("flow", "b", "out")]
+    ('<11', '50')
+    """
+    ledger = CountLedger(threshold=threshold)
+    elsewhere = set(shown_elsewhere)
+    keys: list[tuple[str, str, str]] = []
+    for group in groups:
+        for step in steps:
+            keys.append(("flow", group, step))
+            ledger.add(keys[-1], int(counts[(group, step)]), fixed=(group, step) in elsewhere)
+        for before, after in itertools.pairwise(steps):
+            keys.append(("left out", group, after))
+            ledger.add(keys[-1], int(counts[(group, before)]) - int(counts[(group, after)]))
+            ledger.relate([("flow", group, after), keys[-1]], ("flow", group, before))
+    if len(groups) > 1:
+        keys.append(("flow", "all", steps[0]))
+        ledger.add(keys[-1], sum(int(counts[(g, steps[0])]) for g in groups))
+        ledger.relate([("flow", g, steps[0]) for g in groups], keys[-1])
+    display = protect_part(ledger, disclosure, "patient_flow_by_group")
+    return {key: display(key) for key in keys}
 
 
 def disclosure_footnote(threshold: int = DEFAULT_SMALL_CELL_THRESHOLD) -> str:

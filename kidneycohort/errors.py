@@ -58,6 +58,10 @@ class AccountingError(KidneyCohortError, AssertionError):
     """Rows read != rows used + rejected + merged: a bug, never a user error."""
 
 
+class BrowserNotFoundError(KidneyCohortError, RuntimeError):
+    """A PDF of the report was asked for and no headless Chromium / Chrome is installed."""
+
+
 class KidneyCohortWarning(UserWarning):
     """Base class of all warnings issued by kidneycohort."""
 

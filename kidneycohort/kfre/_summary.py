@@ -62,9 +62,13 @@ def _denominator_hidden(long: pl.DataFrame) -> pl.Expr:
     hidden_of = long.filter(pl.col("_hidden")).select("_column", "_row")
     return (
         pl.when(pl.col("_kind") == "of_n")
-        .then(pl.col("_column").is_in(hidden_of.filter(pl.col("_row") == "n")["_column"]))
+        .then(pl.col("_column").is_in(hidden_of.filter(pl.col("_row") == "n")["_column"].implode()))
         .when(pl.col("_kind") == "of_applicable")
-        .then(pl.col("_column").is_in(hidden_of.filter(pl.col("_row") == "applicable")["_column"]))
+        .then(
+            pl.col("_column").is_in(
+                hidden_of.filter(pl.col("_row") == "applicable")["_column"].implode()
+            )
+        )
         .otherwise(pl.lit(False))
     )
 

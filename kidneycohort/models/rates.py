@@ -148,7 +148,8 @@ def incidence_rates(
         frame.group_by("endpoint", "group")
         .agg(
             pl.col("event").cast(pl.Int64).sum().alias("events"),
-            pl.col("years").sum().alias("person_years"),
+            # summed in sorted order: the same bits whatever order the rows came in
+            pl.col("years").sort().sum().alias("person_years"),
         )
         .sort("endpoint", "group")
     )

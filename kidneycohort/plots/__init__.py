@@ -42,6 +42,10 @@ from kidneycohort.plots._kdigo import (
     transition_cells,
     transition_heatmap_figure,
 )
+from kidneycohort.plots._patient_flow import (
+    patient_flow_boxes,
+    patient_flow_figure,
+)
 from kidneycohort.plots._slopes import (
     slope_density,
     slope_distribution,
@@ -70,6 +74,7 @@ from kidneycohort.plots._trajectories import (
 from kidneycohort.plots._write import (
     FIGURE_TITLES,
     FigureRule,
+    draw_figures,
     write_figures,
 )
 
@@ -84,6 +89,7 @@ __all__ = [
     "FigureRule",
     "attrition_boxes",
     "attrition_figure",
+    "draw_figures",
     "egfr_time_bins",
     "egfr_trajectory_figure",
     "forest_figure",
@@ -92,6 +98,8 @@ __all__ = [
     "kdigo_grid_cells",
     "kdigo_grid_figure",
     "model_trajectory_figure",
+    "patient_flow_boxes",
+    "patient_flow_figure",
     "slope_density",
     "slope_distribution",
     "slope_distribution_figure",

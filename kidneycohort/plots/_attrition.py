@@ -325,5 +325,5 @@ def attrition_figure(
         plot_title=element_text(size=BASE_SIZE + 2, weight="bold", margin={"b": 6}),
         plot_margin=0.02,
     )
-    plot += labs(title="Data flow: rows read, excluded and analysed")
+    plot += labs(title="Rows read, excluded and used by input table")
     return plot

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Final
 
+import pandas as pd
 import polars as pl
 from plotnine import (
     aes,
@@ -22,7 +23,11 @@ from plotnine import (
 )
 
 from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
-from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_cell_text
+from kidneycohort.disclosure import (
+    DEFAULT_SMALL_CELL_THRESHOLD,
+    small_cell_text,
+    small_count_text,
+)
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.kdigo import A_CATEGORIES, G_CATEGORIES
 from kidneycohort.plots._style import (
@@ -36,9 +41,16 @@ from kidneycohort.plots._style import (
     OKABE_ITO,
     base_theme,
     check_threshold,
+    wrap,
 )
 
-__all__ = ["kdigo_grid_cells", "kdigo_grid_figure", "transition_cells", "transition_heatmap_figure"]
+__all__ = [
+    "kdigo_grid_cells",
+    "kdigo_grid_figure",
+    "missing_category_note",
+    "transition_cells",
+    "transition_heatmap_figure",
+]
 
 
 def kdigo_grid_cells(
@@ -123,13 +135,23 @@ def kdigo_grid_figure(
     plotnine.ggplot
     """
     cells = kdigo_grid_cells(grid, small_cell_threshold=small_cell_threshold)
+    caption = "Colours: KDIGO 2012 prognosis of CKD (risk of adverse outcomes)."
+    missing = missing_category_note(grid, small_cell_threshold=small_cell_threshold)
+    if missing:
+        caption += " " + missing
+    cells = cells.with_columns(
+        text_colour=pl.when(pl.col("risk") == "very_high")
+        .then(pl.lit("white"))
+        .otherwise(pl.lit("black"))
+    )
     g_labels = [f"{g}  ({G_RANGES[g]})" for g in G_CATEGORIES]
     a_labels = [f"{a}\n{A_RANGES[a]}" for a in A_CATEGORIES]
     plot = (
         ggplot(data=cells.to_pandas(), mapping=aes("a_category", "g_category"))
         + base_theme()
         + geom_tile(aes(fill="risk"), colour="white", size=1.5)
-        + geom_text(aes(label="label"), size=11)
+        + geom_text(aes(label="label", colour="text_colour"), size=11)
+        + scale_color_identity()
         + scale_fill_manual(
             values=KDIGO_RISK_COLOURS,
             limits=list(KDIGO_RISK_LEVELS),
@@ -143,10 +165,47 @@ def kdigo_grid_figure(
             x="Albuminuria category (UACR)",
             y=f"GFR category ({EGFR_UNIT_LABEL})",
             title="Patients by KDIGO GFR and albuminuria category",
-            caption="Colours: KDIGO 2012 prognosis of CKD (risk of adverse outcomes).",
+            caption=wrap(caption, 82),
         )
     )
     return plot
+
+
+def missing_category_note(
+    grid: FrameLike, *, small_cell_threshold: int = DEFAULT_SMALL_CELL_THRESHOLD
+) -> str:
+    """The sentence under the grid about patients it cannot place: without a GFR or an
+    albuminuria category at baseline (the grid's ``missing`` row and column), counted
+    as the table prints them; empty when there are none."""
+    threshold = check_threshold(small_cell_threshold)
+    df = to_polars(grid, "kdigo_grid")
+    if not {"g_category", "a_category", "n"} <= set(df.columns):
+        return ""
+    g, a = pl.col("g_category").cast(pl.String), pl.col("a_category").cast(pl.String)
+    parts = []
+    for what, this, other in (("GFR", g, a), ("albuminuria", a, g)):
+        rows = df.filter(this == _MISSING)
+        margin = rows.filter(other == "all")
+        if margin.height and "n_display" in df.columns:
+            text = str(margin["n_display"][0])
+        else:
+            cells = rows.filter(other != "all")
+            total = int(cells["n"].cast(pl.Int64, strict=False).fill_null(0).sum())
+            text = small_count_text(total, threshold) if cells.height else "0"
+        if text not in ("0", ""):
+            parts.append(
+                f"{text} patients without a{'n' if what[0] in 'aeiou' else ''} {what} category"
+            )
+    if not parts:
+        return ""
+    return (
+        "Not in the grid: "
+        + " and ".join(parts)
+        + " at baseline (the 'missing' row or column of tables/kdigo_grid)."
+    )
+
+
+_MISSING: Final = "missing"
 
 
 def _category_axis(category: pl.Expr) -> pl.Expr:
@@ -251,8 +310,16 @@ def transition_heatmap_figure(
     )
     present = set(cells["from_category"].to_list())
     order = [c for c in (*G_CATEGORIES, *A_CATEGORIES) if c in present]
+    frame = cells.to_pandas()
+    # ordered categories: each panel's axes hold its own categories only (free scales)
+    frame["to_category"] = pd.Categorical(frame["to_category"], categories=order)
+    frame["from_category"] = pd.Categorical(frame["from_category"], categories=order[::-1])
+    frame["axis"] = pd.Categorical(
+        frame["axis"].map(_AXIS_TITLES), categories=list(_AXIS_TITLES.values())
+    )
+    panels = cells["axis"].n_unique()
     plot = (
-        ggplot(data=cells.to_pandas(), mapping=aes("to_category", "from_category"))
+        ggplot(data=frame, mapping=aes("to_category", "from_category"))
         + base_theme()
         + geom_tile(aes(fill="fill"), colour="white", size=1)
         + geom_text(aes(label="label", colour="text_colour"), size=9)
@@ -260,9 +327,13 @@ def transition_heatmap_figure(
         + scale_fill_gradient(
             low="#F4F8FB", high=OKABE_ITO["blue"], na_value="#C8C8C8", name="Transitions"
         )
-        + scale_x_discrete(limits=order)
-        + scale_y_discrete(limits=order[::-1])
-        + theme(panel_grid_major=element_blank(), figure_size=(6.4, 5.0))
+        + scale_x_discrete(drop=True)
+        + scale_y_discrete(drop=True)
+        + theme(
+            panel_grid_major=element_blank(),
+            figure_size=(7.5, 4.4) if panels > 1 else (6.4, 5.0),
+            panel_spacing=0.08,
+        )
         + labs(
             x="To category",
             y="From category",
@@ -270,6 +341,9 @@ def transition_heatmap_figure(
             caption=f"Grey: 1 to {threshold} transitions (shown as <{threshold + 1}).",
         )
     )
-    if cells["axis"].n_unique() > 1:
+    if panels > 1:
         plot += facet_wrap("axis", scales="free")
     return plot
+
+
+_AXIS_TITLES: Final = {"G": "GFR categories", "A": "Albuminuria categories"}

@@ -88,12 +88,15 @@ KDIGO_RISK_LABELS: Final[dict[str, str]] = {
 }
 
 
-# Okabe–Ito colours ordered from green to vermillion, as the guideline's heat map is.
+# Okabe–Ito colours from green to red, as the guideline's heat map runs; the highest
+# level is a darkened vermillion so that it differs from orange in lightness as well as
+# hue (orange and vermillion alone are hard to tell apart, on paper and under
+# colour-vision deficiencies), and takes white text.
 KDIGO_RISK_COLOURS: Final[dict[str, str]] = {
     "low": OKABE_ITO["bluish_green"],
     "moderately_increased": OKABE_ITO["yellow"],
     "high": OKABE_ITO["orange"],
-    "very_high": OKABE_ITO["vermillion"],
+    "very_high": "#8F2D00",
 }
 
 

@@ -212,9 +212,10 @@ def egfr_trajectory_figure(
     caption = (
         f"Thick lines: mean of patient means per {bin_years:g}-year bin with 95% CI; "
         f"faint lines: {lines['patient_id'].n_unique()} patients drawn at random (up to "
-        f"{sample_patients} per group, seed {seed}). "
-        f"Bins with fewer than {threshold + 1} patients are not shown."
+        f"{sample_patients} per group, seed {seed})."
     )
+    if threshold > 0:
+        caption += f" Bins with fewer than {threshold + 1} patients are not shown."
     plot = ggplot() + base_theme()
     if lines.height:
         plot += geom_line(

@@ -10,25 +10,28 @@ from __future__ import annotations
 import base64
 import datetime as dt
 import logging
+import os
 import re
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import Path, PurePosixPath, PureWindowsPath
 from typing import Any, Final
 
 import polars as pl
 
 from kidneycohort.cautions import CAUTIONS
-from kidneycohort.disclosure import HIDDEN, disclosure_footnote, small_count_text, suppression_label
+from kidneycohort.disclosure import small_count_text
 from kidneycohort.errors import InputDataError
-from kidneycohort.labels import display_label
+from kidneycohort.labels import display_label, label_map
 from kidneycohort.plots import FIGURE_TITLES, forest_rows, slope_distribution
 from kidneycohort.report._equations import equation_rows
+from kidneycohort.report._headline import headline
 from kidneycohort.report._methods import methods_from_config, readable_key
-from kidneycohort.run_folder import FILES, RunFolder
+from kidneycohort.report._rule import ReportRule
+from kidneycohort.run_folder import FILES, RunFolder, table_footnotes
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["SECTIONS", "Figure", "Table", "build_report_context"]
+__all__ = ["ALWAYS", "SECTIONS", "Figure", "Table", "build_report_context", "present_sections"]
 
 SECTIONS: Final = (
     ("summary", "Summary"),
@@ -43,7 +46,12 @@ SECTIONS: Final = (
     ("cautions", "Cautions"),
     ("provenance", "Provenance"),
 )
-"""(anchor, heading) of every report section, in order."""
+"""(anchor, heading) of every report section, in order. A section whose data the run
+does not have is left out (:func:`present_sections`); the KDIGO section is headed
+"KDIGO categories" when the run made no transition table or figure."""
+
+ALWAYS: Final = frozenset({"summary", "data", "methods", "cautions", "provenance"})
+"""Sections every report has, whatever the run made."""
 
 # shared tables of the run-folder contract: (title, section), in the order listed
 TABLES: Final[dict[str, tuple[str, str]]] = {
@@ -89,6 +97,7 @@ class Table:
     rows: list[list[str]]
     files: list[str] = field(default_factory=list)
     note: str = ""
+    notes: list[str] = field(default_factory=list)
 
 
 def _cells(df: pl.DataFrame) -> list[list[str]]:
@@ -108,14 +117,16 @@ def _figure(run: RunFolder, stem: str, title: str, caption: str = "") -> Figure 
     return Figure(stem=stem, title=title, data_uri=uri, caption=caption)
 
 
-def _figures(run: RunFolder) -> dict[str, list[Figure]]:
+def _figures(run: RunFolder, labels: dict[str, str]) -> dict[str, list[Figure]]:
     titles = FIGURE_TITLES
     wanted: list[tuple[str, str, str, str]] = [
         (
             "data",
-            "attrition",
-            titles["attrition"],
-            "Rows by input table; patients through the derivations.",
+            "patient_flow",
+            titles["patient_flow"],
+            "Patients of the patients table by group, from enrolment to the analysis; the "
+            "rows of every input table are accounted for in the tables above "
+            "(figures/attrition.png draws them).",
         ),
         ("slopes", "egfr_trajectories", titles["egfr_trajectories"], ""),
         ("slopes", "model_trajectories", titles["model_trajectories"], ""),
@@ -126,7 +137,7 @@ def _figures(run: RunFolder) -> dict[str, list[Figure]]:
     folder = run.path / "figures"
     for path in sorted(folder.glob("survival*.png")) if folder.is_dir() else []:
         endpoint = path.stem.removeprefix("survival").lstrip("_")
-        title = f"Time to {display_label(endpoint)}" if endpoint else titles["survival"]
+        title = f"Time to {display_label(endpoint, labels)}" if endpoint else titles["survival"]
         wanted.append(("endpoints", path.stem, title, ""))
     wanted.append(("endpoints", "forest_hazard_ratios", titles["forest_hazard_ratios"], ""))
     figures: dict[str, list[Figure]] = {key: [] for key, _ in SECTIONS}
@@ -151,30 +162,46 @@ def _shared_table(run: RunFolder, name: str) -> Table:
     if bad:
         logger.warning("tables/%s.csv has individual-level column %s; not printed", name, bad[0])
         return Table(name, title, [], [], files, f"Not printed: it has the column '{bad[0]}'.")
-    notes = []
-    hidden = {suppression_label(run.small_cell_threshold), HIDDEN}
-    texts = df.select(pl.all().cast(pl.String))
-    if any(texts[c].str.split(" ").list.first().is_in(list(hidden)).any() for c in texts.columns):
-        notes.append(disclosure_footnote(run.small_cell_threshold))
+    # the footnotes the Markdown file and the workbook print under the same table
+    notes = table_footnotes(name, df)
     if df.height > MAX_TABLE_ROWS:
         notes.append(
             f"First {MAX_TABLE_ROWS} of {df.height:,} rows; the full table is in the files."
         )
         df = df.head(MAX_TABLE_ROWS)
-    return Table(name, title, list(df.columns), _cells(df), files, " ".join(notes))
+    return Table(name, title, list(df.columns), _cells(df), files, notes=notes)
 
 
-def _model_tables(run: RunFolder) -> dict[str, list[Table]]:
+def _p_text(p: pl.Expr | pl.Series) -> pl.Expr:
+    """A p value as the shared tables print it: three decimals, ``<0.001`` below."""
+    value = pl.lit(p) if isinstance(p, pl.Series) else p
+    return (
+        pl.when(value.is_null() | value.is_nan())
+        .then(pl.lit(""))
+        .when(value < 0.001)
+        .then(pl.lit("<0.001"))
+        .otherwise(value.round(3).cast(pl.String).str.pad_end(5, "0"))
+    )
+
+
+def _reference(run: RunFolder) -> str | None:
+    """The study's reference group (``study.reference_group``)."""
+    value = (run.manifest.config.get("study") or {}).get("reference_group")
+    return str(value) if value else None
+
+
+def _model_tables(run: RunFolder, labels: dict[str, str]) -> dict[str, list[Table]]:
     out: dict[str, list[Table]] = {"endpoints": [], "slopes": []}
     hazard_ratios = run.table_or_none("models/hazard_ratios")
     if hazard_ratios is not None and hazard_ratios.height:
-        rows = forest_rows(hazard_ratios)
-        shown = hazard_ratios.select("endpoint", "term", "subgroup").with_columns(
-            **{
-                "hazard ratio (95% CI)": rows["label"].str.split(":  ").list.last(),
-                "p": rows["p"].round_sig_figs(2).cast(pl.String),
-                "proportional hazards p": hazard_ratios["ph_p"].round_sig_figs(2).cast(pl.String),
-            }
+        rows = forest_rows(hazard_ratios, labels=labels, reference_group=_reference(run))
+        shown = rows.select(
+            pl.col("endpoint_label").alias("endpoint"),
+            "comparison",
+            "subgroup",
+            rows["label"].str.split(":  ").list.last().alias("hazard ratio (95% CI)"),
+            _p_text(pl.col("p")).alias("p"),
+            _p_text(hazard_ratios["ph_p"].cast(pl.Float64)).alias("proportional hazards p"),
         )
         out["endpoints"].append(
             Table("hazard_ratios", "Hazard ratios (Cox models)", list(shown.columns), _cells(shown))
@@ -188,13 +215,16 @@ def _model_tables(run: RunFolder) -> dict[str, list[Table]]:
     return out
 
 
-def _tables(run: RunFolder) -> tuple[dict[str, list[Table]], list[Table]]:
+def _tables(run: RunFolder, labels: dict[str, str]) -> tuple[dict[str, list[Table]], list[Table]]:
     """Tables by section, and the index of shared tables for the Tables section."""
     tables: dict[str, list[Table]] = {key: [] for key, _ in SECTIONS}
     index = [_shared_table(run, name) for name in TABLES if run.has(f"tables/{name}")]
     for table in index:
-        tables[TABLES[table.name][1]].append(table)
-    for section, extra in _model_tables(run).items():
+        # an empty table (e.g. competing risks without a competing death) is listed in
+        # the Tables section, not printed as a heading over nothing
+        if table.rows or table.note:
+            tables[TABLES[table.name][1]].append(table)
+    for section, extra in _model_tables(run, labels).items():
         tables[section].extend(extra)
     return tables, index
 
@@ -207,7 +237,12 @@ def _group_counts(run: RunFolder) -> pl.DataFrame | None:
     return groups.group_by("group").agg(patients=pl.len()).sort("group")
 
 
-def _slope_lines(run: RunFolder, threshold: int) -> list[str]:
+def _shown_groups(text: str, labels: dict[str, str]) -> str:
+    """A group, or a contrast ``a - b`` of groups, in display labels."""
+    return " - ".join(display_label(part, labels) for part in str(text).split(" - "))
+
+
+def _slope_lines(run: RunFolder, threshold: int, labels: dict[str, str]) -> list[str]:
     lines: list[str] = []
     slopes = run.table_or_none("slopes")
     if slopes is not None and slopes.height:
@@ -215,7 +250,7 @@ def _slope_lines(run: RunFolder, threshold: int) -> list[str]:
         equation = run.primary_equation if run.primary_equation in have else min(have)
         dist = slope_distribution(slopes, run.patient_groups(), equation=equation)
         lines += [
-            f"Median eGFR slope, {row['group']}: {row['median']:.2f} mL/min/1.73 m² per year "
+            f"Median eGFR slope, {_shown_groups(row['group'], labels)}: {row['median']:.2f} mL/min/1.73 m² per year "
             f"(IQR {row['q1']:.2f} to {row['q3']:.2f}; n={row['n']:,})."
             for row in dist.filter(pl.col("n") > threshold).to_dicts()
         ]
@@ -231,7 +266,8 @@ def _slope_lines(run: RunFolder, threshold: int) -> list[str]:
         differences = summary.filter(pl.col("contrast").str.contains(" - "))
         for row in (differences if differences.height else summary.head(6)).to_dicts():
             lines.append(
-                f"{readable_key(str(row['quantity']))}, {row['contrast']}: {_estimate_text(row)}."
+                f"{readable_key(str(row['quantity']))}, {_shown_groups(row['contrast'], labels)}: "
+                f"{_estimate_text(row)}."
             )
     return lines
 
@@ -249,7 +285,7 @@ def _estimate_text(row: dict[str, Any]) -> str:
     return text
 
 
-def _summary(run: RunFolder, threshold: int) -> list[str]:
+def _summary(run: RunFolder, threshold: int, labels: dict[str, str]) -> list[str]:
     lines: list[str] = []
     # every count of people is printed as the shared tables print it (one protection)
     flow = run.printed_patient_flow()
@@ -257,28 +293,49 @@ def _summary(run: RunFolder, threshold: int) -> list[str]:
         lines.append("Patients: " + "; ".join(f"{k} {v}" for k, v in flow.items()) + ".")
     group_sizes = _printed_group_sizes(run, threshold)
     if len(group_sizes) > 1:
-        listed = ", ".join(f"{g} ({n})" for g, n in group_sizes.items())
+        listed = ", ".join(f"{display_label(g, labels)} ({n})" for g, n in group_sizes.items())
         lines.append(f"Groups: {listed}.")
-    lines += _slope_lines(run, threshold)
-    lines += _event_lines(run)
+    lines += _slope_lines(run, threshold, labels)
+    lines += _event_lines(run, labels)
     hazard_ratios = run.table_or_none("models/hazard_ratios")
     if hazard_ratios is not None and hazard_ratios.height:
-        lines += [f"Hazard ratio, {label}." for label in forest_rows(hazard_ratios)["label"]]
+        rows = forest_rows(hazard_ratios, labels=labels, reference_group=_reference(run))
+        lines += [f"Hazard ratio, {label.replace(':  ', ': ')}." for label in rows["label"]]
     return lines
 
 
-def _analysis_methods(run: RunFolder) -> list[dict[str, Any]]:
-    """Methods paragraphs the analyses wrote themselves (which hazard ratio is which)."""
-    out = []
+def _method_facts(run: RunFolder) -> dict[str, Any]:
+    """What the run recorded about its own analyses, for the Methods prose: the slope
+    model's fit, the competing-risks analysis' own methods texts, software versions."""
     tests = run.table_or_none("models/competing_tests")
-    if tests is not None and not tests.is_empty():
-        sentences = list(dict.fromkeys(tests["methods"].drop_nulls().to_list()))
-        out.append({"section": "Competing risks as analysed", "sentences": sentences})
+    fit = run.table_or_none("models/slope_model_fit")
+    manifest = run.manifest
+    return {
+        "slope_model_fit": [] if fit is None else fit.to_dicts(),
+        "competing_methods": []
+        if tests is None or "methods" not in tests.columns
+        else list(dict.fromkeys(tests.drop_nulls("methods").select("endpoint", "methods").rows())),
+        "kidneycohort_version": manifest.kidneycohort_version,
+        "packages": dict(manifest.packages),
+        "seed": manifest.seed,
+    }
+
+
+def _dropout_methods(run: RunFolder) -> list[dict[str, Any]]:
+    """The paragraph the dropout analysis wrote about itself (models/dropout_methods)."""
     dropout = run.table_or_none("models/dropout_methods")
-    if dropout is not None and not dropout.is_empty():
-        sentences = dropout["paragraph"].drop_nulls().to_list()
-        out.append({"section": "Slopes under informative dropout", "sentences": sentences})
-    return out
+    if dropout is None or dropout.is_empty() or "paragraph" not in dropout.columns:
+        return []
+    sentences = dropout["paragraph"].drop_nulls().to_list()
+    return [{"section": "Slopes under informative dropout", "sentences": sentences}]
+
+
+def _with_analysis_methods(
+    methods: list[dict[str, Any]], extra: list[dict[str, Any]]
+) -> list[dict[str, Any]]:
+    """``extra`` paragraphs placed before software and the list of other settings."""
+    tail = [m for m in methods if m["section"] in ("Software", "Other settings")]
+    return [m for m in methods if m not in tail] + extra + tail
 
 
 def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:
@@ -295,7 +352,7 @@ def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:
     return {g: small_count_text(int(n), threshold) for g, n in counts.rows()}
 
 
-def _event_lines(run: RunFolder) -> list[str]:
+def _event_lines(run: RunFolder, labels: dict[str, str]) -> list[str]:
     """Events per endpoint, from the endpoint table's overall row (as it prints them)."""
     table = run.table_or_none("tables/endpoint_table")
     if table is None or not {"endpoint", "group", "events", "n_patients"} <= set(table.columns):
@@ -304,9 +361,14 @@ def _event_lines(run: RunFolder) -> list[str]:
     if overall.is_empty():  # whole-cohort analysis: one row per endpoint
         overall = table.unique("endpoint", keep="first", maintain_order=True)
     return [
-        f"{display_label(name)}: {events.split(' (')[0]} events among {n} patients."
+        f"{_capital(display_label(name, labels))}: {events.split(' (')[0]} events among "
+        f"{n} patients."
         for name, events, n in overall.select("endpoint", "events", "n_patients").rows()
     ]
+
+
+def _capital(text: str) -> str:
+    return text if text.startswith("eGFR") else text[:1].upper() + text[1:]
 
 
 # ---- accounting and provenance ------------------------------------------------------------
@@ -329,6 +391,47 @@ def _accounting(run: RunFolder, threshold: int) -> tuple[list[list[str]], list[l
     return rows, reasons
 
 
+_WINDOWS_ABSOLUTE = re.compile(r"^(?:[A-Za-z]:[\\/]|\\\\)")
+
+
+def relative_override(override: str, run_path: Path) -> str:
+    """``key=/abs/path`` as ``key=<path relative to the run folder>``; other overrides as
+    given. A report travels; the machine's folder layout is not printed.
+
+    Parameters
+    ----------
+    override : str
+        One ``--set`` override as recorded in the manifest.
+    run_path : Path
+        The run folder, which relative paths start from.
+
+    Returns
+    -------
+    str
+        The override with an absolute path made relative (POSIX separators).
+    """
+    key, sep, value = override.partition("=")
+    text = value.strip().strip("'\"")
+    if not sep:
+        return override
+    if _WINDOWS_ABSOLUTE.match(text):
+        return f"{key}={PureWindowsPath(text).name}"
+    if not PurePosixPath(text).is_absolute():
+        return override
+    try:
+        relative = os.path.relpath(text, run_path.resolve())
+    except ValueError:  # another drive
+        relative = PurePosixPath(text).name
+    return f"{key}={PurePosixPath(*Path(relative).parts).as_posix()}"
+
+
+_ABSOLUTE_PATH = re.compile(r"(?<![\w.:/])/(?:[\w.-]+/)+[\w.-]+")
+
+
+def _relative_path(path: str, run_path: Path) -> str:
+    return relative_override(f"x={path}", run_path).partition("=")[2]
+
+
 def _provenance(run: RunFolder) -> dict[str, Any]:
     manifest = run.manifest
     return {
@@ -337,7 +440,7 @@ def _provenance(run: RunFolder) -> dict[str, Any]:
         "created_utc": manifest.created_utc or "not recorded",
         "seed": manifest.seed,
         "recipe": manifest.study.recipe or "not recorded",
-        "overrides": list(manifest.overrides),
+        "overrides": [relative_override(o, run.path) for o in manifest.overrides],
         "inputs": [
             {
                 "path": Path(i.path).name if i.path else i.table,
@@ -363,19 +466,59 @@ def _provenance(run: RunFolder) -> dict[str, Any]:
     }
 
 
-def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
+def present_sections(
+    figures: dict[str, list[Figure]],
+    tables: dict[str, list[Table]],
+    *,
+    equations: bool,
+    index: bool,
+) -> list[dict[str, Any]]:
+    """The sections a report shows, numbered in order: those of :data:`ALWAYS`, and
+    each other section only when the run has figures or tables for it.
+
+    Parameters
+    ----------
+    figures, tables
+        What each section would show, by section id.
+    equations, index
+        Whether the run records eGFR equations; whether it wrote shared tables.
+
+    Returns
+    -------
+    list of dict
+        ``{"id", "title", "number"}`` per section shown.
+    """
+    has = {key for key, _ in SECTIONS if figures.get(key) or tables.get(key)}
+    has |= ALWAYS | ({"equations"} if equations else set()) | ({"tables"} if index else set())
+    titles = dict(SECTIONS)
+    transitions = any(f.stem == "transition_matrix" for f in figures.get("kdigo", [])) or any(
+        t.name == "transition_matrix" for t in tables.get("kdigo", [])
+    )
+    if not transitions:
+        titles["kdigo"] = "KDIGO categories"
+    shown = [key for key, _ in SECTIONS if key in has]
+    return [{"id": key, "title": titles[key], "number": i + 1} for i, key in enumerate(shown)]
+
+
+def build_report_context(
+    run_dir: str | Path | RunFolder, *, rule: ReportRule | None = None
+) -> dict[str, Any]:
     """Everything the report template prints, read from a run folder.
 
     Parameters
     ----------
     run_dir
         The run folder (a path or a :class:`~kidneycohort.run_folder.RunFolder`). Absent
-        files are tolerated: the sections they feed say that the run did not make them.
+        files are tolerated: a section without data is left out
+        (:func:`present_sections`).
+    rule
+        Report options; by default the run's ``report`` config section.
 
     Returns
     -------
     dict
-        Template variables: ``title``, ``sections``, ``summary``, ``figures`` (by section),
+        Template variables: ``title``, ``sections`` (those shown), ``present`` (their
+        ids), ``summary``, ``figures`` (by section),
         ``tables`` (by section), ``equations``, ``methods``, ``cautions``, ``warnings``,
         ``provenance``, ``accounting``.
 
@@ -387,12 +530,17 @@ def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
     run = run_dir if isinstance(run_dir, RunFolder) else RunFolder(run_dir)
     manifest, study = run.manifest, run.manifest.study
     threshold = run.small_cell_threshold
+    rule = rule or ReportRule.model_validate(manifest.section("report"))
+    display = label_map(manifest.config)
+    display.update(rule.labels)
     equation = study.primary_equation
     equations = equation_rows(run, study.equations or ([equation] if equation else []), threshold)
     labels = {e["id"]: e["label"] for e in equations}
-    tables, index = _tables(run)
+    tables, index = _tables(run, display)
+    figures = _figures(run, display)
     accounting, by_reason = _accounting(run, threshold)
     provenance = _provenance(run)
+    sections = present_sections(figures, tables, equations=bool(equations), index=bool(index))
     return {
         "title": study.name or run.path.name,
         "description": study.description or "",
@@ -400,22 +548,32 @@ def build_report_context(run_dir: str | Path | RunFolder) -> dict[str, Any]:
         "created_utc": provenance["created_utc"],
         "primary_equation": labels.get(equation, equation) if equation else "",
         "threshold": threshold,
-        "sections": [
-            {"id": key, "title": title, "number": i + 1} for i, (key, title) in enumerate(SECTIONS)
-        ],
-        "summary": _summary(run, threshold),
-        "figures": _figures(run),
+        "sections": sections,
+        "present": [section["id"] for section in sections],
+        "headline": headline(run, rule, display),
+        "summary": _summary(run, threshold, display),
+        "figures": figures,
         "tables": tables,
         "table_index": index,
         "xlsx": "tables/tables.xlsx" if (run.path / "tables" / "tables.xlsx").is_file() else "",
         "equations": equations,
-        "methods": methods_from_config(manifest.config, labels) + _analysis_methods(run),
+        "methods": _with_analysis_methods(
+            methods_from_config(manifest.config, {**display, **labels}, facts=_method_facts(run)),
+            _dropout_methods(run),
+        ),
         "cautions": list(CAUTIONS),
-        "warnings": [_ISO_DATE.sub("[date removed]", w) for w in manifest.warnings],
+        "warnings": [
+            _ABSOLUTE_PATH.sub(
+                lambda m: _relative_path(m[0], run.path), _ISO_DATE.sub("[date removed]", w)
+            )
+            for w in manifest.warnings
+        ],
         "accounting": accounting,
         "accounting_by_reason": by_reason,
         # as the baseline table prints them (one protection for every output)
-        "groups": [[g, n] for g, n in _printed_group_sizes(run, threshold).items()],
+        "groups": [
+            [display_label(g, display), n] for g, n in _printed_group_sizes(run, threshold).items()
+        ],
         "provenance": provenance,
         "generated": dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M UTC"),
     }

@@ -12,6 +12,7 @@ through both, for the figures, the report and your own analysis:
 
 from __future__ import annotations
 
+from kidneycohort.run_folder._footnotes import table_footnotes
 from kidneycohort.run_folder._layout import (
     FILES,
     RunFile,
@@ -42,6 +43,7 @@ from kidneycohort.run_folder._writer import (
     csv_safe,
     markdown_table,
     write_csv,
+    write_sheets,
     write_table,
     write_workbook,
 )
@@ -70,8 +72,10 @@ __all__ = [
     "package_versions",
     "read_manifest",
     "sha256_of",
+    "table_footnotes",
     "write_csv",
     "write_manifest",
+    "write_sheets",
     "write_table",
     "write_workbook",
 ]

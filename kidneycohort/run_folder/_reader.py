@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from functools import cached_property
 from pathlib import Path
+from typing import Final
 
 import polars as pl
 
@@ -17,10 +18,13 @@ from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.run_folder._layout import FILES
 from kidneycohort.run_folder._manifest import Manifest, read_manifest
 
-__all__ = ["RunFolder"]
+__all__ = ["FLOW_STEPS", "RunFolder"]
 
 # Per-patient files that carry the group column a run adds, in the order they are tried.
 _GROUPED = ("baseline", "slopes", "endpoints", "egfr")
+
+FLOW_STEPS: Final = ("enrolled", "with lab results", "with eGFR", "with a baseline (analysed)")
+"""Steps of the patient flow, each a subset of the one before."""
 
 
 class RunFolder:
@@ -69,13 +73,18 @@ class RunFolder:
         return name in FILES and self._data_file(name).is_file()
 
     def scan(self, name: str) -> pl.LazyFrame:
-        """Table ``name`` as a lazy frame (CSV files are read as text)."""
+        """Table ``name`` as a lazy frame (CSV files are read as text, without the quote
+        :func:`~kidneycohort.run_folder.csv_safe` puts before formula-like text)."""
         path = self._data_file(name)
         if not path.is_file():
             raise InputDataError(f"run folder: '{path.name}' was not written by this run")
         if path.suffix == ".parquet":
             return pl.scan_parquet(path)
-        return pl.scan_csv(path, infer_schema=False)
+        # text cells as written before the CSV writer's guard against formulas (a quote
+        # before a leading = + - @): the report prints "-4.58 to -3.84", not "'-4.58 ..."
+        return pl.scan_csv(path, infer_schema=False).with_columns(
+            pl.all().str.replace(r"^'([=+\-@\t\r])", "$1")
+        )
 
     def table(self, name: str, columns: list[str] | None = None) -> pl.DataFrame:
         """Table ``name`` (only ``columns`` when given)."""
@@ -169,29 +178,58 @@ class RunFolder:
         return protected_flow(flow, self.small_cell_threshold, shown_elsewhere=shown)
 
     def patient_flow(self, equation: str | None = None) -> dict[str, int]:
-        """Patient counts of the attrition flow: with lab results, with eGFR, with a baseline."""
-        out: dict[str, int] = {}
-        ids = [
-            self.scan(name).select(pl.col("patient_id").cast(pl.String))
-            for name in ("labs", "rejected_rows")
-            if self.has(name)
-        ]
-        if ids:
-            out["with any lab row"] = int(
-                pl.concat(ids).drop_nulls().unique().select(pl.len()).collect().item()
+        """Patient counts of the attrition flow, from the patients enrolled (the patients
+        table) to those analysed; lab rows of unknown patient ids are a data defect
+        counted in the row accounting, not patients."""
+        by_group = self.patient_flow_by_group(equation)
+        if by_group.is_empty():
+            return {}
+        totals = by_group.group_by("step", maintain_order=True).agg(pl.col("n").sum())
+        return dict(zip(totals["step"].to_list(), totals["n"].to_list(), strict=True))
+
+    def patient_flow_by_group(self, equation: str | None = None) -> pl.DataFrame:
+        """``group``, ``step``, ``n``: per group, the patients enrolled, with lab results,
+        with eGFR (by ``equation``) and with a baseline eGFR (analysed), in that order.
+        Empty when the run has no per-patient file with groups."""
+        groups = self.patient_groups()
+        if groups is None:
+            for name in _GROUPED:
+                if self.has(name):
+                    groups = (
+                        self.scan(name)
+                        .select(pl.col("patient_id").cast(pl.String), group=pl.lit(None, pl.String))
+                        .unique("patient_id")
+                        .collect()
+                    )
+                    break
+        if groups is None:
+            return pl.DataFrame(schema={"group": pl.String, "step": pl.String, "n": pl.Int64})
+        flags = [pl.lit(True).alias(FLOW_STEPS[0])]
+        frame = groups.lazy()
+        for step, name, value in (
+            (FLOW_STEPS[1], "labs", None),
+            (FLOW_STEPS[2], "egfr", "egfr"),
+            (FLOW_STEPS[3], "baseline", "baseline_egfr"),
+        ):
+            if not self.has(name):
+                continue
+            scan = self.scan(name)
+            if value is not None:
+                scan = scan.filter(pl.col(value).is_not_null() & pl.col(value).is_not_nan())
+                if equation is not None:
+                    scan = scan.filter(pl.col("equation") == equation)
+            ids = scan.select(pl.col("patient_id").cast(pl.String)).unique()
+            frame = frame.join(
+                ids.with_columns(**{step: pl.lit(True)}), on="patient_id", how="left"
             )
-        if self.has("egfr"):
-            egfr = self.scan("egfr").filter(
-                pl.col("egfr").is_not_null() & pl.col("egfr").is_not_nan()
-            )
-            if equation is not None:
-                egfr = egfr.filter(pl.col("equation") == equation)
-            out["with eGFR"] = int(egfr.select(pl.col("patient_id").n_unique()).collect().item())
-        if self.has("baseline"):
-            base = self.scan("baseline").filter(pl.col("baseline_egfr").is_not_null())
-            if equation is not None:
-                base = base.filter(pl.col("equation") == equation)
-            out["with a baseline (analysed)"] = int(
-                base.select(pl.col("patient_id").n_unique()).collect().item()
-            )
-        return out
+            flags.append(pl.col(step).fill_null(False))
+        wide = (
+            frame.select(pl.col("group").fill_null("no group"), *flags)
+            .group_by("group")
+            .agg(pl.all().sum())
+            .sort("group")
+            .collect()
+        )
+        return wide.unpivot(index="group", variable_name="step", value_name="n").with_columns(
+            pl.col("n").cast(pl.Int64)
+        )

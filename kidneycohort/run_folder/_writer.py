@@ -8,13 +8,14 @@ fixed date.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import polars as pl
 
 from kidneycohort._batches import BATCH_ROWS, patient_range_parts
+from kidneycohort.run_folder._footnotes import table_footnotes
 from kidneycohort.run_folder._layout import FILES, RunFile, check_layout
 
 __all__ = [
@@ -23,6 +24,7 @@ __all__ = [
     "csv_safe",
     "markdown_table",
     "write_csv",
+    "write_sheets",
     "write_table",
     "write_workbook",
 ]
@@ -92,8 +94,9 @@ def canonical_order(df: pl.DataFrame) -> pl.DataFrame:
     return df.sort(cols, nulls_last=False, maintain_order=True)
 
 
-def markdown_table(df: pl.DataFrame) -> str:
-    """A GitHub-style pipe table of ``df`` (numbers as polars prints them as text)."""
+def markdown_table(df: pl.DataFrame, notes: Sequence[str] = ()) -> str:
+    """A GitHub-style pipe table of ``df`` (numbers as polars prints them as text), with
+    its footnotes as a list under it."""
     if df.width == 0:
         return ""
     header = "| " + " | ".join(df.columns) + " |"
@@ -103,7 +106,8 @@ def markdown_table(df: pl.DataFrame) -> str:
     )
     rows = text.select(pl.concat_str(pl.all(), separator=" | ").alias("row"))["row"]
     body = ["| " + r + " |" for r in rows.to_list()]
-    return "\n".join([header, rule, *body]) + "\n"
+    footer = ["", "Notes:", "", *(f"- {note}" for note in notes)] if notes else []
+    return "\n".join([header, rule, *body, *footer]) + "\n"
 
 
 def write_table(
@@ -135,7 +139,10 @@ def write_table(
         table.write_parquet(run_dir / paths[0], statistics=False)
     else:  # shared tables: the builder's row order is the reading order; keep it
         write_csv(table, run_dir / paths[0])
-        (run_dir / paths[1]).write_text(markdown_table(table), encoding="utf-8")
+        short = name.split("/", 1)[-1]
+        (run_dir / paths[1]).write_text(
+            markdown_table(table, table_footnotes(short, table)), encoding="utf-8"
+        )
     return list(paths)
 
 
@@ -156,7 +163,102 @@ def write_workbook(
     path.parent.mkdir(parents=True, exist_ok=True)
     with xlsxwriter.Workbook(str(path), XLSX_OPTIONS) as workbook:
         workbook.set_properties({"created": _XLSX_DATE})
-        for sheet, table in sorted(sheets.items()):
-            # Excel limits sheet names to 31 characters
-            table.write_excel(workbook, worksheet=sheet[:31], autofit=True)
+        ordered = dict(sorted(sheets.items()))
+        write_sheets(workbook, ordered, {n: table_footnotes(n, t) for n, t in ordered.items()})
     return "tables/tables.xlsx"
+
+
+def write_sheets(
+    workbook: Any, tables: Mapping[str, pl.DataFrame], notes: Mapping[str, Sequence[str]]
+) -> None:
+    """Each table on its own sheet of an open xlsxwriter ``workbook`` (a frozen, styled
+    header row; numbers as numbers with the printed decimals; columns as wide as their
+    text; its footnotes under it), then a ``footnotes`` sheet listing every footnote by
+    table when there are any.
+
+    Parameters
+    ----------
+    workbook : xlsxwriter.Workbook
+        Open, created with :data:`XLSX_OPTIONS`.
+    tables : mapping
+        ``{sheet name: table}`` in sheet order (names of at most 31 characters).
+    notes : mapping
+        ``{sheet name: footnotes}``.
+    """
+    styles = _Styles(workbook)
+    listed: list[tuple[str, str]] = []
+    for name, table in tables.items():
+        lines = list(notes.get(name, ()))
+        _write_sheet(workbook.add_worksheet(name[:31]), table, lines, styles)
+        listed += [(name, line) for line in lines]
+    if listed:
+        _write_sheet(
+            workbook.add_worksheet("footnotes"),
+            pl.DataFrame(listed, schema=["table", "footnote"], orient="row"),
+            [],
+            styles,
+        )
+
+
+class _Styles:
+    """The workbook's cell formats: header, footnote, and one number format per
+    number of decimals."""
+
+    def __init__(self, workbook: Any) -> None:
+        self._workbook = workbook
+        self.header = workbook.add_format(
+            {"bold": True, "bg_color": "#DDE6F0", "bottom": 1, "text_wrap": True, "valign": "top"}
+        )
+        self.note = workbook.add_format({"italic": True, "font_color": "#444444"})
+        self._numbers: dict[int | None, Any] = {None: None}
+
+    def number(self, decimals: int | None) -> Any:
+        """``0`` for counts, ``0.00`` for two decimals ...; None: General."""
+        if decimals not in self._numbers:
+            pattern = "0" if not decimals else "0." + "0" * decimals
+            self._numbers[decimals] = self._workbook.add_format({"num_format": pattern})
+        return self._numbers[decimals]
+
+
+_INTEGER = r"^-?\d+$"
+_DECIMAL = r"^-?\d+\.(\d+)$"
+
+
+def column_cells(column: pl.Series) -> tuple[list[Any], int | None]:
+    """A shared table's column as workbook cells: numbers where the printed text is a
+    plain number (so a spreadsheet can compute with it), text otherwise; and the
+    number of decimals that prints every number as the CSV does (0 for counts, None
+    when the column mixes decimals, so Excel's General format shows them as typed)."""
+    text = column.cast(pl.String)
+    integer = text.str.contains(_INTEGER).fill_null(False)
+    places = text.str.extract(_DECIMAL, 1).str.len_chars()
+    number = integer | places.is_not_null()
+    distinct = pl.concat(
+        [places.drop_nulls(), pl.Series([0] * int(integer.sum()), dtype=places.dtype)]
+    )
+    decimals = int(distinct[0]) if distinct.n_unique() == 1 else None
+    values = text.cast(pl.Float64, strict=False)
+    # one cell each: the tables of this folder are aggregates (a few hundred rows at most)
+    cells = [
+        (int(v) if whole else v) if is_number else t
+        for t, v, is_number, whole in zip(
+            text.to_list(), values.to_list(), number.to_list(), integer.to_list(), strict=True
+        )
+    ]
+    return cells, decimals
+
+
+def _write_sheet(sheet: Any, table: pl.DataFrame, notes: Sequence[str], styles: _Styles) -> None:
+    """One table on its sheet: a frozen, styled header row, numbers as numbers with the
+    table's decimals, columns as wide as their text, the footnotes under the table."""
+    sheet.freeze_panes(1, 0)
+    for index, name in enumerate(table.columns):
+        cells, decimals = column_cells(table[name])
+        sheet.write_string(0, index, name, styles.header)
+        sheet.write_column(
+            1, index, ["" if c is None else c for c in cells], styles.number(decimals)
+        )
+        longest = max([len(name), *(len(str(c)) for c in cells if c is not None)])
+        sheet.set_column(index, index, min(max(longest + 2, 8), 60))
+    for offset, note in enumerate(notes):
+        sheet.write_string(table.height + 2 + offset, 0, note, styles.note)

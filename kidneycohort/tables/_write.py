@@ -10,7 +10,7 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
-from kidneycohort.run_folder import XLSX_OPTIONS, write_csv
+from kidneycohort.run_folder import XLSX_OPTIONS, write_csv, write_sheets
 from kidneycohort.tables._format import _DASH, _format_fixed
 
 __all__ = ["to_markdown", "write_tables"]
@@ -29,8 +29,10 @@ def write_tables(
     workbook_name: str = "tables.xlsx",
 ) -> dict[str, Path]:
     """Write each table as ``<name>.csv`` and all of them into one XLSX workbook with a
-    sheet per table (polars ``write_excel``); notes (footnotes) go under each sheet's
-    table and into ``<name>.notes.txt`` beside the CSV.
+    sheet per table, formatted as the run's ``tables.xlsx``
+    (:func:`kidneycohort.run_folder.write_sheets`); notes (footnotes) go under each
+    sheet's table, onto a ``footnotes`` sheet and into ``<name>.notes.txt`` beside the
+    CSV.
 
     Returns
     -------
@@ -55,19 +57,16 @@ def write_tables(
                 f"write_tables: notes for unknown table '{name}'{did_you_mean(name, tables)}"
             )
     workbook_path = target / workbook_name
+    frames = {name: to_polars(table, name) for name, table in tables.items()}
+    for name, frame in frames.items():
+        csv_path = target / f"{name}.csv"
+        write_csv(frame, csv_path)
+        written[name] = csv_path
+        lines = list(notes.get(name, ()))
+        if lines:
+            (target / f"{name}.notes.txt").write_text("\n".join(lines) + "\n", encoding="utf-8")
     with xlsxwriter.Workbook(str(workbook_path), XLSX_OPTIONS) as workbook:
-        for name, table in tables.items():
-            frame = to_polars(table, name)
-            csv_path = target / f"{name}.csv"
-            write_csv(frame, csv_path)
-            written[name] = csv_path
-            frame.write_excel(workbook=workbook, worksheet=name, autofit=True)
-            lines = list(notes.get(name, ()))
-            if lines:
-                (target / f"{name}.notes.txt").write_text("\n".join(lines) + "\n", encoding="utf-8")
-                sheet = workbook.get_worksheet_by_name(name)
-                for offset, line in enumerate(lines):
-                    sheet.write_string(frame.height + 2 + offset, 0, line)
+        write_sheets(workbook, frames, notes)
     written["workbook"] = workbook_path
     logger.info("wrote %d tables to %s", len(tables), target)
     return written

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as dt
 import io
+import itertools
 import shutil
 from pathlib import Path
 
@@ -62,7 +63,31 @@ def test_okabe_ito_colours_match_the_published_rgb_values() -> None:
         hex_colour = plots.OKABE_ITO[name]
         assert tuple(int(hex_colour[i : i + 2], 16) for i in (1, 3, 5)) == rgb, name
     assert set(plots.GROUP_COLOURS) == set(plots.OKABE_ITO.values())
-    assert set(plots.KDIGO_RISK_COLOURS.values()) <= set(plots.OKABE_ITO.values())
+    risk = plots.KDIGO_RISK_COLOURS
+    assert {risk[k] for k in ("low", "moderately_increased", "high")} <= set(
+        plots.OKABE_ITO.values()
+    )
+
+
+def _relative_luminance(hex_colour: str) -> float:
+    # WCAG 2.1 relative luminance (sRGB linearised, Rec. 709 weights)
+    channels = [int(hex_colour[i : i + 2], 16) / 255 for i in (1, 3, 5)]
+    linear = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
+    return 0.2126 * linear[0] + 0.7152 * linear[1] + 0.0722 * linear[2]
+
+
+def test_adjacent_kdigo_risk_colours_differ_in_lightness() -> None:
+    # neighbouring risk levels must be told apart without hue (greyscale print,
+    # colour-vision deficiency): WCAG 2.1 contrast ratio (L1 + 0.05) / (L2 + 0.05) of
+    # at least 1.5 between neighbours (common practice for adjacent fills)
+    levels = ["low", "moderately_increased", "high", "very_high"]
+    lum = [_relative_luminance(plots.KDIGO_RISK_COLOURS[k]) for k in levels]
+    ratios = [(max(a, b) + 0.05) / (min(a, b) + 0.05) for a, b in itertools.pairwise(lum)]
+    assert min(ratios) >= 1.5, dict(zip(levels[1:], ratios, strict=True))
+    # the two highest levels (orange and plain vermillion gave 1.7): clearly apart, the
+    # darker one is the very high risk
+    assert lum[3] < lum[2]
+    assert ratios[2] >= 2.5
 
 
 def test_group_colours_do_not_depend_on_order_or_duplicates() -> None:
@@ -311,9 +336,9 @@ def test_forest_rows_labels_and_non_estimable_rows() -> None:
     )
     rows = plots.forest_rows(hrs)
     assert rows["label"].to_list() == [
-        "egfr_decline_40pct · active vs placebo:  0.70 (0.50–0.98)",
-        "kidney_failure · active vs placebo:  not estimable",
-        "kidney_failure · active vs placebo [age >= 65]:  1.25 (0.40–3.90)",
+        "eGFR decline 40pct · active vs placebo:  0.70 (0.50–0.98)",
+        "kidney failure · active vs placebo:  not estimable",
+        "kidney failure · active vs placebo [age >= 65]:  1.25 (0.40–3.90)",
     ]
     plot = plots.forest_figure(hrs)
     assert len(plot.data) == 2  # the non-estimable row is listed, not drawn
@@ -587,6 +612,7 @@ def test_write_figures_draws_what_the_folder_has(tmp_path: Path, run: dict) -> N
     assert stems == [
         "attrition",
         "egfr_trajectories",
+        "patient_flow",
         "slope_distribution",
         "survival_egfr_decline_40pct",
         "survival_kidney_failure",

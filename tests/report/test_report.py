@@ -95,7 +95,8 @@ def test_self_contained_no_external_requests(full: dict) -> None:
 
 def test_every_embedded_image_decodes(full: dict) -> None:
     images = full["page"].images
-    written = sorted((full["run"] / "figures").glob("*.png"))
+    # every figure but the row-flow diagram (the row accounting is printed as tables)
+    written = sorted(p for p in (full["run"] / "figures").glob("*.png") if p.stem != "attrition")
     assert len(images) == len(written) >= 8
     for uri in images:
         data = base64.b64decode(uri.removeprefix("data:image/png;base64,"), validate=True)
@@ -157,11 +158,11 @@ def test_equations_section_uses_the_registry(full: dict) -> None:
 
 def test_methods_and_cautions_in_plain_language(full: dict) -> None:
     html = full["html"]
-    assert "linear spline with a knot at 0.25 years" in html
-    assert "repeat value at least 28 days later confirms it" in html
+    assert "a linear spline in time with a knot at 0.25 years" in html
+    assert "the next eligible value at least 28 days later also qualified" in html
     assert (
-        "Rapid decline: an eGFR fall faster than 5 mL/min/1.73 m² per year (slope below -5)."
-        in html
+        "Rapid decline was defined as a fall faster than 5 mL/min/1.73 m² per year "
+        "(slope below -5)." in html
     )
     for caution in CAUTIONS:
         assert caution in html
@@ -180,28 +181,38 @@ def test_methods_tolerate_missing_and_unknown_keys() -> None:
     )
     sections = {m["section"]: m["sentences"] for m in out}
     assert "Data" not in sections  # file locations belong to provenance
-    assert sections["Aki"] == ["Exclude aki days: 7.", "Use inpatient: no."]
-    assert sections["EGFR"] == ["Equations: CKD-EPI creatinine 2021 (race-free), made_up_eq."]
-    assert sections["Study"] == ["Recipe: cohort."]
+    assert sections["Other settings"] == ["Aki, exclude aki days: 7.", "Aki, use inpatient: no."]
+    assert "CKD-EPI creatinine 2021 (race-free) equation" in sections["Estimated GFR"][0]
+    assert "made_up_eq (not in the kidneycohort equation registry)" in sections["Estimated GFR"][1]
 
 
-def test_absent_files_leave_sections_that_say_so(tmp_path: Path, full: dict) -> None:
+def test_sections_without_data_are_left_out(tmp_path: Path, full: dict) -> None:
     run = tmp_path / "cohort"
     shutil.copytree(full["run"], run)
     shutil.rmtree(run / "figures")
-    for name in (
-        "models/kdigo_grid.parquet",
-        "models/transition_counts.parquet",
-        "tables/kdigo_grid.csv",
-        "tables/transition_matrix.csv",
-    ):
+    for name in ("models/transition_counts.parquet", "tables/transition_matrix.csv"):
         (run / name).unlink()
+    plots.write_figures(run, formats=("png",), dpi=50)
+    page = Page()
+    page.feed(write_report(run).read_text(encoding="utf-8"))
+    # the grid is still there: the section stays, without "transitions" in its heading
+    titles = [h.split(". ", 1)[1] for h in page.h2]
+    assert "KDIGO categories" in titles
+    assert "KDIGO categories and transitions" not in titles
+    for name in ("models/kdigo_grid.parquet", "tables/kdigo_grid.csv"):
+        (run / name).unlink()
+    shutil.rmtree(run / "figures")
     plots.write_figures(run, formats=("png",), dpi=50)
     html = write_report(run).read_text(encoding="utf-8")
     page = Page()
     page.feed(html)
-    assert len(page.h2) == len(SECTIONS)
-    assert "This run has no KDIGO grid or category transitions." in html
+    titles = [h.split(". ", 1)[1] for h in page.h2]
+    assert not [t for t in titles if t.startswith("KDIGO")]
+    assert 'id="kdigo"' not in html and 'href="#kdigo"' not in html
+    # the others keep their order and are numbered without a gap
+    assert [int(h.split(".")[0]) for h in page.h2] == list(range(1, len(SECTIONS)))
+    order = [title for _, title in SECTIONS]
+    assert titles == [t for t in order if not t.startswith("KDIGO")]
 
 
 def test_minimal_folder_renders(tmp_path: Path) -> None:
@@ -211,9 +222,15 @@ def test_minimal_folder_renders(tmp_path: Path) -> None:
     html = write_report(tmp_path).read_text(encoding="utf-8")
     page = Page()
     page.feed(html)
-    assert len(page.h2) == len(SECTIONS)
+    # a run that made nothing: only the sections every report has
+    assert page.h2 == [
+        "1. Summary",
+        "2. Data and attrition",
+        "3. Methods",
+        "4. Cautions",
+        "5. Provenance",
+    ]
     assert "The manifest records no configuration." in html
-    assert "The run records no eGFR equations." in html
     empty = tmp_path / "no_manifest"
     empty.mkdir()
     assert "no_manifest" in write_report(empty).read_text(encoding="utf-8")
@@ -243,6 +260,32 @@ def test_bad_run_folder(tmp_path: Path) -> None:
     (tmp_path / "manifest.json").write_text("[1, 2", encoding="utf-8")
     with pytest.raises(InputDataError, match=r"manifest\.json: not valid JSON"):
         write_report(tmp_path)
+
+
+def test_an_empty_table_is_listed_not_printed(tmp_path: Path, full: dict) -> None:
+    run = tmp_path / "run"
+    shutil.copytree(full["run"], run)
+    (run / "tables/incidence_rates.csv").write_text("endpoint,group,events\n", encoding="utf-8")
+    html = write_report(run).read_text(encoding="utf-8")
+    endpoints = html.split('id="endpoints"', 1)[1].split('class="section-heading"', 1)[0]
+    assert "<h3>Incidence rates</h3>" not in endpoints
+    assert "The table is empty." not in html
+    assert "Incidence rates (no rows in this run)" in html
+
+
+def test_summary_and_group_table_use_group_labels(tmp_path: Path, full: dict) -> None:
+    run = tmp_path / "run"
+    shutil.copytree(full["run"], run)
+    manifest = json.loads((run / "manifest.json").read_text(encoding="utf-8"))
+    groups = sorted(full["patients"]["group"].unique().to_list())
+    manifest["config"]["report"] = {"labels": {groups[0]: "Arm One (invented)"}}
+    (run / "manifest.json").write_text(json.dumps(manifest), encoding="utf-8")
+    context = build_report_context(run)
+    summary = " ".join(context["summary"])
+    assert "Arm One (invented)" in summary
+    assert f"Median eGFR slope, {groups[0]}:" not in summary
+    assert any(line.startswith("Median eGFR slope, Arm One") for line in context["summary"])
+    assert "Arm One (invented)" in [g for g, _ in context["groups"]]
 
 
 def test_methods_say_how_death_before_a_laboratory_endpoint_was_handled() -> None:

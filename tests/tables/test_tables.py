@@ -308,7 +308,8 @@ def test_write_tables_csv_xlsx_and_notes(tmp_path: Path) -> None:
     )
     assert_frame_equal(pl.read_csv(written["kdigo_grid"], schema=grid.schema), grid)
     back = pd.read_excel(written["workbook"], sheet_name=None)  # openpyxl reads it back
-    assert list(back) == ["kdigo_grid", "transitions"]
+    assert list(back) == ["kdigo_grid", "transitions", "footnotes"]
+    assert back["footnotes"].iloc[0].tolist() == ["kdigo_grid", suppression_footnote()]
     assert back["transitions"].iloc[0].tolist() == ["G2", "G3a", 12]
     assert back["kdigo_grid"].iloc[grid.height + 1, 0].startswith("Counts of people from 1 to 10")
     assert (

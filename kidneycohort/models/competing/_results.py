@@ -206,6 +206,9 @@ def fit_checked(
         return ModelOutcome(cause_label, n_events, None, None, {}, check.fatal)
     reasons = {rows.terms[i]: r for i, r in check.dropped_terms.items()}
     kept = [i for i in range(len(rows.terms)) if i not in check.dropped_terms]
+    if not kept:  # every term left out (e.g. the only compared group has no events)
+        reason = "; ".join(dict.fromkeys(reasons.values()))
+        return ModelOutcome(cause_label, n_events, None, None, reasons, reason)
     used = subset_rows(rows, check.keep, kept)
     fit = fitter(used)
     if not fit.converged:

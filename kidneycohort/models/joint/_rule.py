@@ -8,7 +8,7 @@ from pydantic import Field
 
 from kidneycohort._rules import RuleModel
 
-__all__ = ["SUMMARY_COLUMNS", "JointSlopeRule"]
+__all__ = ["NOT_ESTIMABLE_NOTES", "SUMMARY_COLUMNS", "JointSlopeRule"]
 
 SUMMARY_COLUMNS = (
     "model",

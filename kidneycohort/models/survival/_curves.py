@@ -6,9 +6,10 @@ from typing import Any
 
 import numpy as np
 import polars as pl
-from lifelines import AalenJohansenFitter, KaplanMeierFitter
+from lifelines import KaplanMeierFitter
 from lifelines.statistics import multivariate_logrank_test
 from lifelines.utils import median_survival_times
+from scipy import stats
 
 from kidneycohort._frames import FrameLike
 from kidneycohort._rules import resolve_rules
@@ -171,6 +172,106 @@ class KaplanMeier(_CurveModel):
         return table.with_columns(pl.lit(p, dtype=pl.Float64).alias("logrank_p"))
 
 
+def aalen_johansen(
+    years: np.ndarray, state: np.ndarray, *, confidence: float = 0.95
+) -> pl.DataFrame:
+    r"""Aalen–Johansen cumulative incidence of state 1 with its delta-method variance.
+
+    At the distinct times :math:`t_j` (with :math:`n_j` at risk, :math:`d_{1j}` endpoint
+    events and :math:`d_j` events of either kind)
+
+    .. math::
+
+        \hat F(t) = \sum_{t_j \le t} \hat S(t_{j-1}) \frac{d_{1j}}{n_j},
+        \qquad
+        \widehat{\mathrm{Var}}\,\hat F(t) = \sum_{t_j \le t}
+        \Big[ (\hat F(t) - \hat F(t_j))^2 \frac{d_j}{n_j (n_j - d_j)}
+        + \hat S(t_{j-1})^2 \frac{d_{1j} (n_j - d_{1j})}{n_j^3}
+        - 2 (\hat F(t) - \hat F(t_j)) \hat S(t_{j-1}) \frac{d_{1j}}{n_j^2} \Big]
+
+    (Greenwood-type variance, Collett 2015 §12.2, as documented for lifelines'
+    ``AalenJohansenFitter``), with limits on the log(-log) scale. Ties are handled as
+    the estimator defines them (every event at :math:`t_j` counts at :math:`t_j`). The
+    limits are 0 where the incidence is 0 (no uncertainty before the first endpoint
+    event) and equal the estimate where the variance is 0. The sums are cumulative sums
+    of the expanded squares, so the computation is linear in the number of times.
+
+    Parameters
+    ----------
+    years : numpy.ndarray
+        Follow-up times.
+    state : numpy.ndarray
+        1 endpoint event, 2 competing event, 0 censored.
+    confidence : float, default 0.95
+        Level of the pointwise limits.
+
+    Returns
+    -------
+    polars.DataFrame
+        ``years, estimate, variance, lower, upper``: time 0 and every distinct time.
+    """
+    frame = (
+        pl.DataFrame({"years": np.asarray(years, float), "state": np.asarray(state, np.int64)})
+        .group_by("years")
+        .agg(
+            (pl.col("state") == 1).sum().cast(pl.Float64).alias("d1"),
+            (pl.col("state") != 0).sum().cast(pl.Float64).alias("d"),
+            pl.len().cast(pl.Float64).alias("removed"),
+        )
+        .sort("years")
+    )
+    times = frame["years"].to_numpy()
+    d1, d = frame["d1"].to_numpy(), frame["d"].to_numpy()
+    removed = frame["removed"].to_numpy()
+    n = removed[::-1].cumsum()[::-1]  # at risk: still followed at t_j
+    survival = np.cumprod(1.0 - d / n)
+    lagged = np.concatenate([[1.0], survival[:-1]])
+    incidence = np.cumsum(lagged * d1 / n)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        # n = d only at the last time anyone is followed, where F(t) - F(t_j) = 0
+        a = np.where(n > d, d / (n * (n - d)), 0.0)
+    b = lagged**2 * d1 * (n - d1) / n**3
+    c = lagged * d1 / n**2
+    variance = (
+        incidence**2 * np.cumsum(a)
+        - 2 * incidence * np.cumsum(a * incidence)
+        + np.cumsum(a * incidence**2)
+        + np.cumsum(b)
+        - 2 * (incidence * np.cumsum(c) - np.cumsum(c * incidence))
+    )
+    variance = np.clip(variance, 0.0, None)  # rounding below zero
+    if times.size == 0 or times[0] > 0:
+        times, incidence, variance = (
+            np.concatenate([[0.0], times]),
+            np.concatenate([[0.0], incidence]),
+            np.concatenate([[0.0], variance]),
+        )
+    lower, upper = _log_log_limits(incidence, variance, confidence)
+    return pl.DataFrame(
+        {
+            "years": times,
+            "estimate": incidence,
+            "variance": variance,
+            "lower": lower,
+            "upper": upper,
+        }
+    )
+
+
+def _log_log_limits(
+    incidence: np.ndarray, variance: np.ndarray, confidence: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Pointwise limits of an incidence on the log(-log) scale (delta method)."""
+    z = stats.norm.ppf(0.5 + confidence / 2)
+    inner = (incidence > 0) & (incidence < 1) & (variance > 0)
+    safe = np.where(inner, incidence, 0.5)
+    se = np.sqrt(np.where(inner, variance, 0.0)) / (safe * np.abs(np.log(safe)))
+    centre = np.log(-np.log(safe))
+    lower = np.where(inner, np.exp(-np.exp(centre + z * se)), incidence)
+    upper = np.where(inner, np.exp(-np.exp(centre - z * se)), incidence)
+    return lower, upper
+
+
 class CumulativeIncidence(_CurveModel):
     r"""Cumulative incidence of the endpoint with death as a competing event (Aalen–Johansen).
 
@@ -179,18 +280,12 @@ class CumulativeIncidence(_CurveModel):
         \hat F_1(t) = \sum_{t_j \le t} \hat S(t_{j-1}) \frac{d_{1j}}{n_j}
 
     where :math:`\hat S` is the Kaplan–Meier estimate of being free of *any* event and
-    :math:`d_{1j}` the endpoint events at :math:`t_j`; limits from the delta-method
-    variance on the log(-log) scale (lifelines ``AalenJohansenFitter``). A row is the
-    competing event when ``competing == 1`` and ``event == 0``; a null ``competing`` is
-    read as 0 (no competing event recorded).
-
-    Ties between an endpoint event and a competing event at the same time are ordered
-    endpoint first, then competing event, then censoring, by offsets of 1e-9 years
-    removed again from the output times (all times move up by at least one offset, so
-    events at time zero are counted). This reproduces the Aalen–Johansen estimate with
-    ties exactly (lifelines would otherwise move tied times at random). All times move
-    up by at least one offset, because lifelines sets the incidence at its first time
-    point to zero, which would drop endpoint events recorded at time zero.
+    :math:`d_{1j}` the endpoint events at :math:`t_j`; pointwise limits from the
+    Greenwood-type delta-method variance on the log(-log) scale (:func:`aalen_johansen`).
+    A row is the competing event when ``competing == 1`` and ``event == 0``; a null
+    ``competing`` is read as 0 (no competing event recorded). Ties are handled as the
+    estimator defines them: endpoint and competing events at the same time all count at
+    that time. Before the first endpoint event the incidence and both limits are 0.
 
     Parameters and attributes are those of :class:`KaplanMeier` (``measure =
     "cumulative_incidence"``), without the log-rank test (Gray's test is not provided).
@@ -201,10 +296,11 @@ class CumulativeIncidence(_CurveModel):
        chains based on censored observations. Scand J Stat 1978;5:141-150.
     .. [2] Putter H, Fiocco M, Geskus RB. Tutorial in biostatistics: competing risks and
        multi-state models. Stat Med 2007;26:2389-2430. doi:10.1002/sim.2712
+    .. [3] Collett D. Modelling Survival Data in Medical Research, 3rd ed. CRC Press, 2015
+       (variance of the cumulative incidence function).
     """
 
     _measure = "cumulative_incidence"
-    _tie_offset_years = 1e-9
 
     def fit(self, endpoints: FrameLike, patients: FrameLike | None = None) -> CumulativeIncidence:
         """Fit one cumulative-incidence curve per group; returns ``self``."""
@@ -232,52 +328,18 @@ class CumulativeIncidence(_CurveModel):
             .alias("state"),
         )
         self.excluded_ = excluded
-        alpha = 1.0 - self.rule.confidence
         curves = []
         for group in sorted(rows["group"].unique().to_list()):
             part = rows.filter(pl.col("group") == group)
-            years = part["years"].to_numpy().astype(float)
-            state = part["state"].to_numpy()
-            # every time moves up by 1-3 offsets: lifelines sets the incidence at its first
-            # time point to zero, which would drop endpoint events recorded at time zero
-            order = np.where(state == 1, 1.0, np.where(state == 2, 2.0, 3.0))
-            shifted = years + order * self._tie_offset_years
-            fitter = AalenJohansenFitter(alpha=alpha, calculate_variance=True)
-            with capture_warnings() as captured:
-                fitter.fit(shifted, state, event_of_interest=1, label="aj")
-            _warn_all(captured.convergence, f"Aalen–Johansen ({group})")
-            timeline = fitter.cumulative_density_.index.to_numpy().astype(float)
-            curve = _curve_frame(
-                group,
-                timeline,
-                fitter.cumulative_density_.iloc[:, 0].to_numpy(),
-                fitter.confidence_interval_,
-                self._measure,
+            curve = aalen_johansen(
+                part["years"].to_numpy(), part["state"].to_numpy(), confidence=self.rule.confidence
             )
-            # back to the recorded times: the state after all events tied at a time
-            recorded = pl.DataFrame(
-                {
-                    "years": np.concatenate([[0.0], shifted]),
-                    "_recorded": np.concatenate([[0.0], years]),
-                }
-            ).unique("years")
-            curve = (
-                curve.join(recorded, on="years", how="left")
-                .with_columns(pl.col("_recorded").fill_null(pl.col("years")).alias("years"))
-                .drop("_recorded")
-                .group_by("years", maintain_order=True)
-                .last()
-                .with_columns(pl.col("lower", "upper").fill_nan(None))
+            curves.append(
+                curve.with_columns(
+                    pl.lit(group, pl.String).alias("group"),
+                    pl.lit(self._measure, pl.String).alias("measure"),
+                ).select(CURVE_COLUMNS)
             )
-            # before any event the incidence is 0 with no uncertainty
-            curve = curve.with_columns(
-                pl.when((pl.col("years") == 0) & (pl.col("estimate") == 0))
-                .then(0.0)
-                .otherwise(pl.col(c))
-                .alias(c)
-                for c in ("lower", "upper")
-            )
-            curves.append(curve.select(CURVE_COLUMNS))
         self._finish(rows, curves)
         self.counts_ = self.counts_.join(
             rows.group_by("group").agg(

@@ -236,14 +236,15 @@ def proportional_hazards_test(
     ss = float(centred @ centred)
     u = centred @ residuals  # time-weighted column sums of the raw residuals
     scaled_sum = d * (u @ v)  # = centred @ (d * residuals @ V)
-    if ss > 0:
-        per_term = scaled_sum**2 / (d * np.diag(v) * ss)
-        overall = float(d * (u @ v @ u) / ss)
-    else:
-        # every event at one (transformed) time, e.g. a single event: no trend in time
-        # can be tested; the statistics are not estimable (NaN), never a number
+    scale = d * np.diag(v) * ss
+    if ss <= 0 or not np.all(scale > 0):
+        # one distinct event time (or no information): nothing to correlate the residuals
+        # with, so the test is not defined; NaN says so instead of a number
         per_term = np.full(p, np.nan)
         overall = float("nan")
+    else:
+        per_term = scaled_sum**2 / scale
+        overall = float(d * (u @ v @ u) / ss)
     return pl.DataFrame(
         {
             "term": [*labels, "GLOBAL"],

@@ -216,11 +216,13 @@ def add_figures(registry: StepRegistry) -> None:
 
 def add_report(registry: StepRegistry) -> None:
     """Step ``report``: the self-contained report of the run folder."""
-    from kidneycohort.report import write_report
+    from kidneycohort.report import ReportRule, write_report
 
     @registry.register(
         "report",
         makes=["report_file"],
+        section="report",
+        options=ReportRule,
         reads_folder=True,
         description="report.html from the run folder as written so far (kidneycohort.report).",
     )

@@ -306,3 +306,24 @@ def test_stratified_gray_test_through_the_analysis() -> None:
     )
     assert analysis.gray_test_["test_statistic"][0] == pytest.approx(direct.statistic, rel=1e-12)
     assert "stratified by female" in analysis.methods_text()
+
+
+def test_only_compared_group_without_events_is_a_statement_not_a_crash() -> None:
+    """Two groups, no covariates, and the one compared group has no events: every term
+    is left out, so there is nothing to fit; each model says why (found on an invented
+    50-patient cohort with a single event)."""
+    endpoints, patients = simulate_competing(200, seed=14)
+    treated = patients.filter(pl.col("group") == "treated")["patient_id"].implode()
+    cleared = endpoints.with_columns(
+        pl.when(pl.col("patient_id").is_in(treated))
+        .then(0)
+        .otherwise(pl.col("event"))
+        .cast(pl.Int8)
+        .alias("event")
+    )
+    for model in (FineGray(), CauseSpecificCox()):
+        table = model.fit(cleared, patients).summary()
+        table = table.filter(pl.col("cause") == "kidney_failure")
+        assert table.height == 1 and not table["estimable"].any()
+        assert table["hr"].to_list() == [None]
+        assert table["reason"][0].startswith("no kidney_failure events among the")

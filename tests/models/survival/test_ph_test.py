@@ -228,3 +228,19 @@ def test_one_event_is_not_estimable() -> None:
     )
     assert out.height == 3
     assert out["test_statistic"].is_nan().all() and out["p"].is_nan().all()
+
+
+def test_one_event_time_is_not_testable_and_says_so_quietly() -> None:
+    # a single event: the transformed event times have no spread, so the statistic is
+    # 0/0; it is NaN (not a number that looks real) and numpy is not left to warn
+    durations = np.linspace(0.5, 3.0, 12)
+    events = np.zeros(12, dtype=int)
+    events[0] = 1
+    covariates = np.repeat([[0.0], [1.0]], 6, axis=0)
+    with np.errstate(all="raise"):
+        table = proportional_hazards_test(
+            durations, events, covariates, np.array([0.3]), np.array([[0.8]]), names=["group"]
+        )
+    assert table["term"].to_list() == ["group", "GLOBAL"]
+    assert np.isnan(table["p"].to_numpy()).all()
+    assert np.isnan(table["test_statistic"].to_numpy()).all()

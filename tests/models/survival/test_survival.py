@@ -286,3 +286,99 @@ def test_whole_cohort_without_a_group_column(rossi: tuple[pl.DataFrame, pl.DataF
     assert model.horizon_estimates_["estimate"].to_numpy() == pytest.approx(expected, abs=1e-9)
     cox = CoxModel(group_column=None, covariates=["age"]).fit(endpoints, patients)
     assert cox.summary()["term"].to_list() == ["age"]
+
+
+def _direct_aalen_johansen_variance(years: np.ndarray, state: np.ndarray) -> list[float]:
+    """The Greenwood-type variance of the cumulative incidence written out term by term
+    (Collett D. Modelling Survival Data in Medical Research, 3rd ed., 2015, §12.2; the
+    formula lifelines documents for AalenJohansenFitter._bounds), as a double sum."""
+    times = sorted(set(years.tolist()))
+    n = [float((years >= t).sum()) for t in times]
+    d = [float(((years == t) & (state != 0)).sum()) for t in times]
+    d1 = [float(((years == t) & (state == 1)).sum()) for t in times]
+    surv, lagged, incidence = 1.0, [], []
+    total = 0.0
+    for j in range(len(times)):
+        lagged.append(surv)
+        total += surv * d1[j] / n[j]
+        incidence.append(total)
+        surv *= 1 - d[j] / n[j]
+    out = []
+    for k in range(len(times)):
+        var = 0.0
+        for j in range(k + 1):
+            gap = incidence[k] - incidence[j]
+            if n[j] > d[j]:
+                var += gap**2 * d[j] / (n[j] * (n[j] - d[j]))
+            var += lagged[j] ** 2 * d1[j] * (n[j] - d1[j]) / n[j] ** 3
+            var -= 2 * gap * lagged[j] * d1[j] / n[j] ** 2
+        out.append(var)
+    return out
+
+
+def test_aalen_johansen_band_against_direct_variance() -> None:
+    """Delta-method band of the Aalen–Johansen estimate on the hand example: the variance
+    equals the term-by-term double sum; at t=1 (n=8, d=2, d1=1, S(0)=1) it is
+    1 * 1 * 7 / 8**3 = 7/512 by hand; the limits are exp(-exp(log(-log F) +- z se)) with
+    se = sqrt(var) / (F |log F|) (log(-log) scale, Collett 2015)."""
+    from kidneycohort.models.survival._curves import aalen_johansen
+
+    frame = _competing_example()
+    years = frame["years"].to_numpy()
+    state = np.where(frame["event"] == 1, 1, np.where(frame["competing"] == 1, 2, 0))
+    result = aalen_johansen(years, state)
+    direct = _direct_aalen_johansen_variance(years, state)
+    assert result["years"].to_list() == [0.0, 1.0, 2.0, 3.0, 4.0]
+    assert result["variance"].to_list()[1:] == pytest.approx(direct, rel=1e-12, abs=1e-15)
+    assert result["variance"][1] == pytest.approx(7 / 512, rel=1e-12)
+    f, var = result["estimate"][2], result["variance"][2]
+    se = np.sqrt(var) / (f * abs(np.log(f)))
+    z = 1.959963984540054  # standard normal 97.5th percentile
+    assert result["lower"][2] == pytest.approx(np.exp(-np.exp(np.log(-np.log(f)) + z * se)))
+    assert result["upper"][2] == pytest.approx(np.exp(-np.exp(np.log(-np.log(f)) - z * se)))
+
+
+def test_cumulative_incidence_band_is_zero_before_the_first_event_and_set_at_deaths() -> None:
+    """Before the first endpoint event the incidence is 0 with no uncertainty, even when
+    deaths come first; at a death time the band is defined (Aalen–Johansen: a competing
+    event changes S, not F, so the band at a death equals the band just before it)."""
+    frame = pl.DataFrame(
+        {
+            "patient_id": [str(i) for i in range(10)],
+            "endpoint": "kidney_failure",
+            "years": [0.5, 0.8, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 5.0],
+            "event": [0, 0, 1, 0, 1, 0, 0, 1, 0, 0],
+            "competing": [1, 0, 0, 1, 0, 1, 0, 0, 1, 0],
+            "group": "all",
+        }
+    )
+    curve = CumulativeIncidence().fit(frame).curves_
+    assert curve.select(pl.col("lower", "upper").null_count()).row(0) == (0, 0)
+    early = curve.filter(pl.col("years") < 1.0)
+    assert early["lower"].to_list() == early["upper"].to_list() == [0.0] * early.height
+    at_death = curve.filter(pl.col("years").is_in([1.5, 2.5]))
+    before = curve.filter(pl.col("years").is_in([1.0, 2.0]))
+    assert at_death["lower"].to_list() == pytest.approx(before["lower"].to_list())
+    assert at_death["upper"].to_list() == pytest.approx(before["upper"].to_list())
+    inner = curve.filter(pl.col("estimate") > 0)
+    assert ((inner["lower"] < inner["estimate"]) & (inner["estimate"] < inner["upper"])).all()
+
+
+def test_aalen_johansen_variance_matches_lifelines_without_ties() -> None:
+    """Without tied times lifelines' AalenJohansenFitter applies the same documented
+    variance; the two agree (lifelines as the reference implementation)."""
+    from lifelines import AalenJohansenFitter
+
+    from kidneycohort.models.survival._curves import aalen_johansen
+
+    rng = np.random.default_rng(11)
+    years = rng.permutation(np.arange(1, 41) / 10.0)
+    state = rng.choice([0, 1, 2], size=40, p=[0.4, 0.35, 0.25])
+    state[0] = 1
+    ours = aalen_johansen(years, state).filter(pl.col("years") > 0)
+    reference = AalenJohansenFitter(calculate_variance=True).fit(years, state, event_of_interest=1)
+    ref_var = reference.variance_.to_numpy()[1:]  # lifelines' first row is time 0
+    ref_f = reference.cumulative_density_.iloc[1:, 0].to_numpy()
+    assert ours["estimate"].to_numpy() == pytest.approx(ref_f, abs=1e-12)
+    # lifelines' first row is forced to F = 0; its variance there is not comparable
+    assert ours["variance"].to_numpy()[1:] == pytest.approx(ref_var[1:], rel=1e-9, abs=1e-15)
