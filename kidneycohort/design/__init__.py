@@ -1,0 +1,1 @@
+"""Trial design by simulation (placeholder, filled below)."""
