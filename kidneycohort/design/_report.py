@@ -85,12 +85,13 @@ def power_curve_figure(summary: pl.DataFrame, alpha: float) -> Any:
         (pl.col("analysis").replace_strict({"slope_model": "slope", "cox": "Cox"})
          + ": " + pl.col("endpoint")).alias("endpoint_label"),
     ).to_pandas()
-    lines = ggplot(data, aes("sample_size", "rejection_rate", colour="endpoint_label"))
+    plot = ggplot(data, aes("sample_size", "rejection_rate", colour="endpoint_label"))
+    if summary["sample_size"].n_unique() > 1:  # a curve needs two sizes; one is points
+        plot = plot + geom_line()
     return (
-        lines
+        plot
         + geom_hline(yintercept=alpha, linetype="dotted")
         + geom_hline(yintercept=0.8, linetype="dashed", alpha=0.4)
-        + geom_line()
         + geom_point()
         + geom_errorbar(aes(ymin="lo", ymax="hi"), width=0)
         + facet_wrap("scenario", scales="free_y")

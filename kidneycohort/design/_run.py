@@ -16,9 +16,8 @@ import logging
 import multiprocessing
 import os
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
-from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -29,6 +28,7 @@ import polars as pl
 from kidneycohort.design._config import DesignConfig, load_design
 from kidneycohort.design._scenario import data_cut_date, design_scenarios, true_effects
 from kidneycohort.design._summary import summarise_estimates
+from kidneycohort.design._threads import one_blas_thread, single_threaded_children
 from kidneycohort.design._trials import ESTIMATES_SCHEMA, Chunk, simulate_chunk
 from kidneycohort.errors import ConfigError
 from kidneycohort.synthetic import Scenario
@@ -117,21 +117,6 @@ def _run_one(
     return chunk
 
 
-@contextmanager
-def _single_threaded_children() -> Iterator[None]:
-    """Worker processes use one thread each for BLAS and polars (processes are the
-    parallelism); variables the user set are left alone."""
-    names = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "POLARS_MAX_THREADS")
-    added = [n for n in names if n not in os.environ]
-    for name in added:
-        os.environ[name] = "1"
-    try:
-        yield
-    finally:
-        for name in added:
-            os.environ.pop(name, None)
-
-
 def _fingerprint(config: DesignConfig, scenarios: dict[str, Scenario]) -> str:
     """What the chunk files depend on; a folder made with another is not resumed."""
     text = json.dumps(
@@ -168,12 +153,13 @@ def _execute(
 ) -> None:
     """Run the pending chunks in this process (1 worker) or in a process pool."""
     if workers <= 1 or len(pending) <= 1:
-        for chunk, path in pending:
-            _run_one(*run(chunk, path))
-            report(chunk)
+        with one_blas_thread():
+            for chunk, path in pending:
+                _run_one(*run(chunk, path))
+                report(chunk)
         return
     context = multiprocessing.get_context("spawn")  # polars and forked threads do not mix
-    with _single_threaded_children(), ProcessPoolExecutor(workers, mp_context=context) as pool:
+    with single_threaded_children(), ProcessPoolExecutor(workers, mp_context=context) as pool:
         futures: set[Future[Chunk]] = {pool.submit(_run_one, *run(c, p)) for c, p in pending}
         try:
             while futures:

@@ -27,7 +27,7 @@ from kidneycohort.egfr import compute_egfr
 from kidneycohort.endpoints import derive_endpoints
 from kidneycohort.errors import InputDataError, KidneyCohortError
 from kidneycohort.harmonize import harmonize_tables
-from kidneycohort.models.mixed import SlopeModel
+from kidneycohort.models.mixed import SlopeModel, SlopeModelRule
 from kidneycohort.synthetic import Scenario, generate_cohort
 
 __all__ = ["ESTIMATES_SCHEMA", "Chunk", "simulate_chunk"]
@@ -53,6 +53,7 @@ ESTIMATES_SCHEMA: dict[str, pl.DataType] = {
     "patients_treatment": pl.Int64(),
     "events_control": pl.Int64(),
     "events_treatment": pl.Int64(),
+    "patients_not_evaluable": pl.Int64(),  # endpoint rows without follow-up (Cox only)
 }
 
 
@@ -145,12 +146,11 @@ def _slope_estimates(
     )
     people = patients.select("patient_id", "group", "trial")
     values = egfr.join(people.select("patient_id", "trial"), on="patient_id", how="left")
-    by_trial = values.partition_by("trial", as_dict=True, include_key=False)
-    people_by_trial = people.partition_by("trial", as_dict=True, include_key=False)
+    by_trial = {int(f["trial"][0]): f for f in values.partition_by("trial")}
     rows = []
-    for key in sorted(people_by_trial):  # one exact mixed-model fit per trial
-        trial = int(key[0])  # type: ignore[call-overload]
-        rows.extend(_one_slope_fit(rule, by_trial.get(key), people_by_trial[key], trial, quantities))
+    for group in people.sort("trial").partition_by("trial", maintain_order=True):
+        trial = int(group["trial"][0])  # one exact mixed-model fit per trial
+        rows.extend(_one_slope_fit(rule, by_trial.get(trial), group, trial, quantities))
     return pl.DataFrame(
         rows,
         schema={
@@ -167,7 +167,7 @@ def _slope_estimates(
 
 
 def _one_slope_fit(
-    rule: object,
+    rule: SlopeModelRule,
     values: pl.DataFrame | None,
     people: pl.DataFrame,
     trial: int,
@@ -180,7 +180,7 @@ def _one_slope_fit(
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            model = SlopeModel(rule).fit(values, people)  # type: ignore[arg-type]
+            model = SlopeModel(rule).fit(values, people)
         except KidneyCohortError as exc:
             reason = f"slope_model_failed: {str(exc).splitlines()[0]}"
             return [(trial, q, nan, nan, nan, reason, None) for q in quantities]
@@ -204,10 +204,22 @@ def _hazard_estimates(
     names = config.time_to_event_names()
     if not names:
         return pl.DataFrame()
-    rows = (
-        endpoints.filter(pl.col("endpoint").is_in(names))
-        .join(patients.select("patient_id", "group", "trial"), on="patient_id", how="left")
-        .filter(pl.col("years").is_not_null() & pl.col("event").is_not_null())
-        .select("endpoint", "trial", "group", "years", "event")
+    every = endpoints.filter(pl.col("endpoint").is_in(names)).join(
+        patients.select("patient_id", "group", "trial"), on="patient_id", how="left"
     )
-    return hazards_by_trial(rows, TREATMENT).with_columns(pl.lit("cox").alias("analysis"))
+    evaluable = pl.col("years").is_not_null() & pl.col("event").is_not_null()
+    # patients a definition cannot evaluate (e.g. no baseline) are counted, not dropped
+    not_evaluable = every.group_by("endpoint", "trial").agg(
+        (~evaluable).sum().cast(pl.Int64).alias("patients_not_evaluable")
+    )
+    rows = every.filter(evaluable).select("endpoint", "trial", "group", "years", "event")
+    # every (endpoint, trial) keeps its row, even one without any evaluable patient
+    return (
+        not_evaluable.join(hazards_by_trial(rows, TREATMENT), on=["endpoint", "trial"], how="left")
+        .with_columns(
+            pl.col("reason").fill_null(
+                pl.when(pl.col("events_control").is_null()).then(pl.lit("no_evaluable_patients"))
+            ),
+            pl.lit("cox").alias("analysis"),
+        )
+    )
