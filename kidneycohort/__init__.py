@@ -41,6 +41,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort import cautions as cautions
     from kidneycohort import cli as cli
     from kidneycohort import data_contract as data_contract
+    from kidneycohort import design as design
     from kidneycohort import disclosure as disclosure
     from kidneycohort import egfr as egfr
     from kidneycohort import endpoints as endpoints
@@ -83,6 +84,10 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.baseline import BaselineRule as BaselineRule
     from kidneycohort.baseline import egfr_baseline as egfr_baseline
     from kidneycohort.baseline import uacr_baseline as uacr_baseline
+    from kidneycohort.design import DesignConfig as DesignConfig
+    from kidneycohort.design import DesignResult as DesignResult
+    from kidneycohort.design import load_design as load_design
+    from kidneycohort.design import simulate_power as simulate_power
     from kidneycohort.egfr import AgeBand as AgeBand
     from kidneycohort.egfr import EgfrRule as EgfrRule
     from kidneycohort.egfr import compute_egfr as compute_egfr
@@ -503,6 +508,10 @@ _PUBLIC: dict[str, str] = {
         )
     },
     **{
+        name: "kidneycohort.design"
+        for name in ("DesignConfig", "DesignResult", "load_design", "simulate_power")
+    },
+    **{
         name: "kidneycohort.provenance"
         for name in (
             "Constant",
@@ -523,6 +532,7 @@ _SUBMODULES = (
     "cautions",
     "cli",
     "data_contract",
+    "design",
     "disclosure",
     "value_filter",
     "egfr",

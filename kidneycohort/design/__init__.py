@@ -16,43 +16,7 @@ scenario, bias and coverage, expected events, a power curve and a short report.
 
 from __future__ import annotations
 
-from kidneycohort.design._config import (
-    BaselineEgfr,
-    BaselineUacr,
-    DesignConfig,
-    DesignOutput,
-    DesignScenario,
-    DesignSection,
-    Dropout,
-    EgfrSlope,
-    Measurement,
-    Treatment,
-    VisitPlan,
-    default_design_endpoints,
-    load_design,
-)
-from kidneycohort.design._cox import TreatmentHazard, treatment_hazard
-from kidneycohort.design._run import DesignResult, design_chunks, simulate_power
-from kidneycohort.design._summary import summarise_estimates
+from kidneycohort.design._config import DesignConfig, load_design
+from kidneycohort.design._run import DesignResult, simulate_power
 
-__all__ = [
-    "BaselineEgfr",
-    "BaselineUacr",
-    "DesignConfig",
-    "DesignOutput",
-    "DesignResult",
-    "DesignScenario",
-    "DesignSection",
-    "Dropout",
-    "EgfrSlope",
-    "Measurement",
-    "Treatment",
-    "TreatmentHazard",
-    "VisitPlan",
-    "default_design_endpoints",
-    "design_chunks",
-    "load_design",
-    "simulate_power",
-    "summarise_estimates",
-    "treatment_hazard",
-]
+__all__ = ["DesignConfig", "DesignResult", "load_design", "simulate_power"]

@@ -90,17 +90,23 @@ class Treatment(RuleModel):
     chronic_effect_sd: float = Field(
         0.0, ge=0, description="Between-patient standard deviation of the chronic effect."
     )
-    fraction: float = Field(0.5, gt=0, lt=1, description="Fraction of patients randomised to treatment.")
+    fraction: float = Field(
+        0.5, gt=0, lt=1, description="Fraction of patients randomised to treatment."
+    )
 
 
 class Dropout(RuleModel):
     """Why follow-up ends early: death, kidney failure, loss to follow-up."""
 
     death_per_year_at_60: float | None = Field(
-        None, ge=0, description="Death rate per year at age 60 and GFR >= 60 (null: the base scenario's)."
+        None,
+        ge=0,
+        description="Death rate per year at age 60 and GFR >= 60 (null: the base scenario's).",
     )
     kidney_failure_gfr: float | None = Field(
-        None, gt=0, description="Mean true GFR at which kidney failure starts (null: the base scenario's)."
+        None,
+        gt=0,
+        description="Mean true GFR at which kidney failure starts (null: the base scenario's).",
     )
     loss_to_followup_per_year: float | None = Field(
         None, ge=0, description="Rate of loss to follow-up per year (null: the base scenario's)."
@@ -111,7 +117,9 @@ class VisitPlan(RuleModel):
     """Scheduled creatinine visits, days from randomisation (0 must be one of them)."""
 
     days: list[int] = Field(min_length=2, description="Visit days; must include 0 and increase.")
-    window_days: int = Field(7, ge=0, description="Visits fall uniformly within +/- this many days.")
+    window_days: int = Field(
+        7, ge=0, description="Visits fall uniformly within +/- this many days."
+    )
     missed_fraction: float = Field(
         0.05, ge=0, lt=1, description="Probability that a post-randomisation visit is missed."
     )
@@ -195,9 +203,10 @@ class DesignSection(RuleModel):
     reference_patients: int = Field(
         0,
         ge=0,
-        description="Patients of one large simulated trial per scenario whose Cox hazard "
-        "ratio is the reference ('true') value for bias and coverage; 0 = none (hazard-"
-        "ratio bias and coverage are then reported as not estimable).",
+        description="Patients of one large simulated trial under the treatment effect whose "
+        "Cox log hazard ratio is the reference ('true') value for bias and coverage of the "
+        "hazard ratios (under the null it is 0); 0 = none (their bias and coverage under "
+        "the effect are then reported as not estimable).",
     )
 
     @model_validator(mode="after")
@@ -336,8 +345,8 @@ def load_design(
     if overrides:
         raw = apply_overrides(raw, overrides)
     if "design" not in raw:
-        raise ConfigError(f"{where}: section 'design' missing; add design: with seed, "
-                          "sample_sizes and trials")
+        raise ConfigError(
+            f"{where}: section 'design' missing; add design: with seed, sample_sizes and trials"
+        )
     config = validate_config(DesignConfig.model_validate, raw, where, message=_one_line)
     return config, folder.resolve()
-

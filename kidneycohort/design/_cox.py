@@ -13,6 +13,7 @@ applied. ``tests/design`` checks the estimates against ``CoxModel``.
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 
 import numpy as np
@@ -104,14 +105,17 @@ def hazards_by_trial(rows: pl.DataFrame, treated_label: str) -> pl.DataFrame:
         keys.select(
             (pl.col("endpoint") != pl.col("endpoint").shift(1))
             | (pl.col("trial") != pl.col("trial").shift(1))
-        ).to_series().fill_null(True).to_numpy()
+        )
+        .to_series()
+        .fill_null(True)
+        .to_numpy()
     )
     bounds = np.append(change, rows.height)
     years = rows["years"].to_numpy()
     event = rows["event"].to_numpy()
     treated = (rows["group"] == treated_label).to_numpy()
     out = []
-    for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):  # one small fit per trial
+    for lo, hi in itertools.pairwise(bounds):  # one small fit per trial
         fit = treatment_hazard(years[lo:hi], event[lo:hi], treated[lo:hi])
         out.append(
             (

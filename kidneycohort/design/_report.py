@@ -82,8 +82,11 @@ def power_curve_figure(summary: pl.DataFrame, alpha: float) -> Any:
         ),
         (pl.col("rejection_rate") - 1.96 * pl.col("rejection_rate_mc_se")).clip(0, 1).alias("lo"),
         (pl.col("rejection_rate") + 1.96 * pl.col("rejection_rate_mc_se")).clip(0, 1).alias("hi"),
-        (pl.col("analysis").replace_strict({"slope_model": "slope", "cox": "Cox"})
-         + ": " + pl.col("endpoint")).alias("endpoint_label"),
+        (
+            pl.col("analysis").replace_strict({"slope_model": "slope", "cox": "Cox"})
+            + ": "
+            + pl.col("endpoint")
+        ).alias("endpoint_label"),
     ).to_pandas()
     plot = ggplot(data, aes("sample_size", "rejection_rate", colour="endpoint_label"))
     if summary["sample_size"].n_unique() > 1:  # a curve needs two sizes; one is points
@@ -175,8 +178,13 @@ def _report(cfg: DesignConfig, result: DesignResult, cut: dt.date, png: Path) ->
     image = base64.b64encode(png.read_bytes()).decode("ascii")
     power = result.power.select(_POWER_COLUMNS)
     null = result.type_one_error.select(
-        "analysis", "endpoint", "sample_size", "trials", "rejection_rate",
-        "rejection_rate_mc_se", "note",
+        "analysis",
+        "endpoint",
+        "sample_size",
+        "trials",
+        "rejection_rate",
+        "rejection_rate_mc_se",
+        "note",
     )
     parts = [
         "<!doctype html><html lang='en'><head><meta charset='utf-8'>",
@@ -187,7 +195,8 @@ def _report(cfg: DesignConfig, result: DesignResult, cut: dt.date, png: Path) ->
         "padding-left:1em}</style></head><body>",
         f"<h1>{html.escape(cfg.design.name)}: power by simulation</h1>",
         f"<p>{html.escape(cfg.design.description)}</p>" if cfg.design.description else "",
-        "<div class='caution'>" + "".join(f"<p>{html.escape(c)}</p>" for c in CAUTIONS)
+        "<div class='caution'>"
+        + "".join(f"<p>{html.escape(c)}</p>" for c in CAUTIONS)
         + "<p>Simulated operating characteristics hold for the stated scenario only; they "
         "are not a prediction for a real trial.</p></div>",
         "<h2>Methods</h2>",
@@ -199,8 +208,9 @@ def _report(cfg: DesignConfig, result: DesignResult, cut: dt.date, png: Path) ->
         "<p>Empty bias or coverage cells are not estimable; the note says why.</p>",
         _html_table(power),
         "<h2>Type I error under the null scenario</h2>",
-        _html_table(null) if null.height else "<p>No null scenario was simulated "
-        "(design.null_trials: 0).</p>",
+        _html_table(null)
+        if null.height
+        else "<p>No null scenario was simulated (design.null_trials: 0).</p>",
         "</body></html>",
     ]
     return "\n".join(p for p in parts if p)
@@ -221,8 +231,16 @@ def write_outputs(
     _write_table(result.power.select(_POWER_COLUMNS), tables, "power")
     _write_table(
         result.type_one_error.select(
-            "analysis", "endpoint", "sample_size", "trials", "rejections",
-            "rejection_rate", "rejection_rate_mc_se", "bias", "coverage", "note",
+            "analysis",
+            "endpoint",
+            "sample_size",
+            "trials",
+            "rejections",
+            "rejection_rate",
+            "rejection_rate_mc_se",
+            "bias",
+            "coverage",
+            "note",
         ),
         tables,
         "type_one_error",
@@ -232,8 +250,9 @@ def write_outputs(
     png, _ = _save_figure(result.summary, cfg.design.alpha, figures)
     (folder / "report.html").write_text(_report(cfg, result, cut, png), encoding="utf-8")
     outputs = sorted(
-        p for p in folder.rglob("*") if p.is_file() and p.suffix != ".partial"
-        and p.name != "manifest.json"
+        p
+        for p in folder.rglob("*")
+        if p.is_file() and p.suffix != ".partial" and p.name != "manifest.json"
     )
     manifest = {
         "kind": "kidneycohort design",

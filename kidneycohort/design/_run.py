@@ -101,14 +101,14 @@ def design_chunks(config: DesignConfig) -> list[Chunk]:
 
 
 def _chunk_path(folder: Path, chunk: Chunk) -> Path:
-    return folder / "chunks" / (
-        f"{chunk.scenario_label}_n{chunk.sample_size}_chunk{chunk.index:05d}.parquet"
+    return (
+        folder
+        / "chunks"
+        / (f"{chunk.scenario_label}_n{chunk.sample_size}_chunk{chunk.index:05d}.parquet")
     )
 
 
-def _run_one(
-    config: DesignConfig, scenario: Scenario, chunk: Chunk, cut: Any, path: Path
-) -> Chunk:
+def _run_one(config: DesignConfig, scenario: Scenario, chunk: Chunk, cut: Any, path: Path) -> Chunk:
     """Simulate one chunk and write it atomically (a partial file is never left)."""
     frame = simulate_chunk(config, scenario, chunk, cut)
     tmp = path.with_suffix(".parquet.partial")
@@ -121,7 +121,9 @@ def _fingerprint(config: DesignConfig, scenarios: dict[str, Scenario]) -> str:
     """What the chunk files depend on; a folder made with another is not resumed."""
     text = json.dumps(
         {
-            "design": config.model_dump(mode="json", exclude={"design": {"workers"}, "output": True}),
+            "design": config.model_dump(
+                mode="json", exclude={"design": {"workers"}, "output": True}
+            ),
             "scenarios": {k: v.to_plain() for k, v in scenarios.items()},
         },
         sort_keys=True,
@@ -235,9 +237,11 @@ def simulate_power(
 
     logger.info("design: %d chunks, %d to run, in %s", len(chunks), len(pending), folder)
     _execute(pending, arguments, workers or cfg.design.workers, report)
-    estimates = pl.concat(
-        [pl.read_parquet(_chunk_path(folder, c)) for c in chunks], how="vertical"
-    ) if chunks else pl.DataFrame(schema=ESTIMATES_SCHEMA)
+    estimates = (
+        pl.concat([pl.read_parquet(_chunk_path(folder, c)) for c in chunks], how="vertical")
+        if chunks
+        else pl.DataFrame(schema=ESTIMATES_SCHEMA)
+    )
     trial_rows, truth = _with_truth(cfg, estimates)
     summary = summarise_estimates(trial_rows)
     chunk_table = pl.DataFrame(
@@ -275,15 +279,24 @@ def _with_truth(cfg: DesignConfig, estimates: pl.DataFrame) -> tuple[pl.DataFram
     trial when there is one, zero for everything under the null."""
     reference = estimates.filter(pl.col("scenario").str.ends_with("_reference"))
     trials = estimates.filter(~pl.col("scenario").str.ends_with("_reference"))
-    rows = [("effect", "slope_model", q, v, "scenario") for q, v in true_effects(cfg).items()]
+    rows: list[tuple[str, str, str, float | None, str | None]] = [
+        ("effect", "slope_model", q, v, "scenario") for q, v in true_effects(cfg).items()
+    ]
     for name in cfg.time_to_event_names():
         ref = reference.filter(
             (pl.col("scenario") == "effect_reference") & (pl.col("endpoint") == name)
         )
         value = ref["estimate"][0] if ref.height and ref["estimable"][0] else None
-        source = f"reference trial of {cfg.design.reference_patients} patients" if value is not None else None
+        source = (
+            f"reference trial of {cfg.design.reference_patients} patients"
+            if value is not None
+            else None
+        )
         rows.append(("effect", "cox", name, value, source))
-    for analysis, names in (("slope_model", cfg.slope_quantity_names()), ("cox", cfg.time_to_event_names())):
+    for analysis, names in (
+        ("slope_model", cfg.slope_quantity_names()),
+        ("cox", cfg.time_to_event_names()),
+    ):
         rows.extend(("null", analysis, n, 0.0, "no treatment effect") for n in names)
     truth = pl.DataFrame(
         rows,

@@ -55,23 +55,22 @@ def summarise_estimates(estimates: pl.DataFrame) -> pl.DataFrame:
     """
     ok = pl.col("estimable")
     covered = (pl.col("lower") <= pl.col("true_value")) & (pl.col("true_value") <= pl.col("upper"))
-    grouped = (
-        estimates.group_by("scenario", "analysis", "endpoint", "sample_size")
-        .agg(
-            pl.len().cast(pl.Int64).alias("trials"),
-            ok.sum().cast(pl.Int64).alias("estimable_trials"),
-            pl.col("rejected").sum().cast(pl.Int64).alias("rejections"),
-            pl.col("true_value").first().alias("true_value"),
-            pl.col("estimate").filter(ok).mean().alias("mean_estimate"),
-            pl.col("estimate").filter(ok).std().alias("empirical_se"),
-            pl.col("se").filter(ok).mean().alias("mean_model_se"),
-            covered.filter(ok).cast(pl.Float64).mean().alias("coverage"),
-            (pl.col("events_control") + pl.col("events_treatment")).cast(pl.Float64).mean()
-            .alias("mean_events"),
-            pl.col("events_control").cast(pl.Float64).mean().alias("mean_events_control"),
-            pl.col("events_treatment").cast(pl.Float64).mean().alias("mean_events_treatment"),
-            pl.col("reason").drop_nulls().mode().first().alias("_reason"),
-        )
+    grouped = estimates.group_by("scenario", "analysis", "endpoint", "sample_size").agg(
+        pl.len().cast(pl.Int64).alias("trials"),
+        ok.sum().cast(pl.Int64).alias("estimable_trials"),
+        pl.col("rejected").sum().cast(pl.Int64).alias("rejections"),
+        pl.col("true_value").first().alias("true_value"),
+        pl.col("estimate").filter(ok).mean().alias("mean_estimate"),
+        pl.col("estimate").filter(ok).std().alias("empirical_se"),
+        pl.col("se").filter(ok).mean().alias("mean_model_se"),
+        covered.filter(ok).cast(pl.Float64).mean().alias("coverage"),
+        (pl.col("events_control") + pl.col("events_treatment"))
+        .cast(pl.Float64)
+        .mean()
+        .alias("mean_events"),
+        pl.col("events_control").cast(pl.Float64).mean().alias("mean_events_control"),
+        pl.col("events_treatment").cast(pl.Float64).mean().alias("mean_events_treatment"),
+        pl.col("reason").drop_nulls().mode().first().alias("_reason"),
     )
     rate = pl.col("rejections") / pl.col("trials")
     n_ok = pl.col("estimable_trials")

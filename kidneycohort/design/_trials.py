@@ -80,9 +80,13 @@ def simulate_chunk(
     problems = clean.unusable()
     if problems:
         raise InputDataError("simulated trial data: " + "; ".join(problems))
-    patients = clean.patients.with_row_index("_row").with_columns(
-        (pl.lit(chunk.first_trial) + pl.col("_row").cast(pl.Int64) // n).alias("trial")
-    ).drop("_row")
+    patients = (
+        clean.patients.with_row_index("_row")
+        .with_columns(
+            (pl.lit(chunk.first_trial) + pl.col("_row").cast(pl.Int64) // n).alias("trial")
+        )
+        .drop("_row")
+    )
     equation = config.design.equation
     egfr = compute_egfr(clean.labs, patients, equations=[equation])
     baseline = egfr_baseline(egfr, rule=config.baseline)
@@ -125,9 +129,9 @@ def simulate_chunk(
     for column, dtype in ESTIMATES_SCHEMA.items():
         if column not in out.columns:
             out = out.with_columns(pl.lit(None, dtype=dtype).alias(column))
-    return out.select(
-        [pl.col(c).cast(t) for c, t in ESTIMATES_SCHEMA.items()]
-    ).sort("trial", "analysis", "endpoint")
+    return out.select([pl.col(c).cast(t) for c, t in ESTIMATES_SCHEMA.items()]).sort(
+        "trial", "analysis", "endpoint"
+    )
 
 
 def _slope_estimates(
@@ -214,12 +218,11 @@ def _hazard_estimates(
     )
     rows = every.filter(evaluable).select("endpoint", "trial", "group", "years", "event")
     # every (endpoint, trial) keeps its row, even one without any evaluable patient
-    return (
-        not_evaluable.join(hazards_by_trial(rows, TREATMENT), on=["endpoint", "trial"], how="left")
-        .with_columns(
-            pl.col("reason").fill_null(
-                pl.when(pl.col("events_control").is_null()).then(pl.lit("no_evaluable_patients"))
-            ),
-            pl.lit("cox").alias("analysis"),
-        )
+    return not_evaluable.join(
+        hazards_by_trial(rows, TREATMENT), on=["endpoint", "trial"], how="left"
+    ).with_columns(
+        pl.col("reason").fill_null(
+            pl.when(pl.col("events_control").is_null()).then(pl.lit("no_evaluable_patients"))
+        ),
+        pl.lit("cox").alias("analysis"),
     )

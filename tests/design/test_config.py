@@ -9,7 +9,8 @@ import pytest
 from click.testing import CliRunner
 
 from kidneycohort.cli import cli
-from kidneycohort.design import design_chunks, load_design
+from kidneycohort.design import load_design
+from kidneycohort.design._run import design_chunks
 from kidneycohort.design._scenario import design_scenarios, true_effects
 from kidneycohort.errors import ConfigError
 from tests._fixtures import REPO_ROOT
@@ -56,8 +57,9 @@ def test_chunks_and_seeds_depend_on_the_design_only() -> None:
     assert [c.trials for c in chunks if c.scenario_label == "effect"] == [20, 20, 5]
     assert len({c.seed for c in chunks}) == len(chunks)  # every chunk its own stream
     assert design_chunks(config) == chunks
-    other, _ = load_design({"design": {**MINIMAL["design"], "trials": 45, "trials_per_chunk": 20,
-                                       "seed": 2}})
+    other, _ = load_design(
+        {"design": {**MINIMAL["design"], "trials": 45, "trials_per_chunk": 20, "seed": 2}}
+    )
     assert {c.seed for c in design_chunks(other)}.isdisjoint({c.seed for c in chunks})
 
 
@@ -109,3 +111,15 @@ def test_command_line_needs_an_output_folder(tmp_path: Path) -> None:
     result = CliRunner().invoke(cli, ["design", str(path)])
     assert result.exit_code == 2
     assert "output.dir" in result.output
+
+
+def test_committed_design_reference_is_current() -> None:
+    # regenerate with: python -m kidneycohort.design._reference docs/design_config_reference.md
+    from kidneycohort.design._config import DesignScenario, DesignSection
+    from kidneycohort.design._reference import design_reference
+
+    text = design_reference()
+    assert (REPO_ROOT / "docs" / "design_config_reference.md").read_text(encoding="utf-8") == text
+    for prefix, model in (("design", DesignSection), ("scenario", DesignScenario)):
+        for field in model.model_fields:
+            assert f"`{prefix}.{field}`" in text

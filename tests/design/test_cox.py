@@ -6,7 +6,7 @@ import numpy as np
 import polars as pl
 import pytest
 
-from kidneycohort.design import treatment_hazard
+from kidneycohort.design._cox import treatment_hazard
 from kidneycohort.models.survival import CoxModel
 
 

@@ -93,10 +93,18 @@ def test_the_folder_holds_every_output_and_a_manifest(tmp_path: Path) -> None:
     estimates = pl.read_parquet(folder / "estimates.parquet")
     # every trial of every scenario and size has a row per analysed endpoint
     counts = estimates.group_by("scenario", "sample_size").agg(pl.col("trial").n_unique())
-    assert sorted(counts.rows()) == [("effect", 40, 4), ("effect", 60, 4), ("null", 40, 2),
-                                     ("null", 60, 2)]
+    assert sorted(counts.rows()) == [
+        ("effect", 40, 4),
+        ("effect", 60, 4),
+        ("null", 40, 2),
+        ("null", 60, 2),
+    ]
     assert set(estimates["endpoint"]) == {
-        "acute_change", "chronic_slope", "total_slope_2y", "total_slope_3y", "egfr_decline_40"
+        "acute_change",
+        "chronic_slope",
+        "total_slope_2y",
+        "total_slope_3y",
+        "egfr_decline_40",
     }
     # a rejection is an estimable p below alpha, nothing else
     wrong = estimates.filter(pl.col("rejected") != (pl.col("estimable") & (pl.col("p") < 0.05)))
