@@ -59,13 +59,18 @@ def _write_table(frame: pl.DataFrame, folder: Path, stem: str) -> None:
     (folder / f"{stem}.md").write_text(markdown_table(shown) + "\n", encoding="utf-8")
 
 
+_PANELS = {"effect": "power (treatment effect)", "null": "type I error (no effect)"}
+_ANALYSES = {"slope_model": "slope model", "cox": "time to event (Cox)"}
+
+
 def power_curve_figure(summary: pl.DataFrame, alpha: float) -> Any:
-    """Power (and type I error under the null) against sample size, one line per
-    endpoint, with +/- 1.96 Monte Carlo SE bars (plotnine)."""
+    """Power (and type I error under the null) against sample size: one panel per
+    scenario and analysis, one line per endpoint, +/- 1.96 Monte Carlo SE bars
+    (plotnine). Dotted: alpha; dashed: power 0.8 (effect panels only)."""
     from plotnine import (
         aes,
         element_blank,
-        facet_wrap,
+        facet_grid,
         geom_errorbar,
         geom_hline,
         geom_line,
@@ -77,36 +82,41 @@ def power_curve_figure(summary: pl.DataFrame, alpha: float) -> Any:
     )
 
     data = summary.with_columns(
-        pl.col("scenario").replace_strict(
-            {"effect": "power (treatment effect)", "null": "type I error (no effect)"}
-        ),
+        pl.col("scenario").replace_strict(_PANELS),
+        pl.col("analysis").replace_strict(_ANALYSES),
         (pl.col("rejection_rate") - 1.96 * pl.col("rejection_rate_mc_se")).clip(0, 1).alias("lo"),
         (pl.col("rejection_rate") + 1.96 * pl.col("rejection_rate_mc_se")).clip(0, 1).alias("hi"),
-        (
-            pl.col("analysis").replace_strict({"slope_model": "slope", "cox": "Cox"})
-            + ": "
-            + pl.col("endpoint")
-        ).alias("endpoint_label"),
-    ).to_pandas()
-    plot = ggplot(data, aes("sample_size", "rejection_rate", colour="endpoint_label"))
+    )
+    panels = data.select("scenario", "analysis").unique()
+    lines = pl.concat(
+        [
+            panels.with_columns(pl.lit(alpha).alias("y"), pl.lit("dotted").alias("kind")),
+            panels.filter(pl.col("scenario") == _PANELS["effect"]).with_columns(
+                pl.lit(0.8).alias("y"), pl.lit("dashed").alias("kind")
+            ),
+        ]
+    )
+    plot = ggplot(data.to_pandas(), aes("sample_size", "rejection_rate", colour="endpoint"))
     if summary["sample_size"].n_unique() > 1:  # a curve needs two sizes; one is points
         plot = plot + geom_line()
+    for kind in ("dotted", "dashed"):
+        chosen = lines.filter(pl.col("kind") == kind).to_pandas()
+        plot = plot + geom_hline(aes(yintercept="y"), chosen, linetype=kind, colour="grey")
     return (
         plot
-        + geom_hline(yintercept=alpha, linetype="dotted")
-        + geom_hline(yintercept=0.8, linetype="dashed", alpha=0.4)
         + geom_point()
         + geom_errorbar(aes(ymin="lo", ymax="hi"), width=0)
-        + facet_wrap("scenario", scales="free_y")
+        + facet_grid("analysis ~ scenario", scales="free_y")
         + labs(
             x="patients per trial",
             y="rejection rate",
             colour="endpoint",
             title="Power and type I error by simulation",
-            caption=f"Bars: +/- 1.96 Monte Carlo SE. Dotted: alpha = {alpha:g}; dashed: 0.8.",
+            caption=f"Bars: +/- 1.96 Monte Carlo SE. Dotted: alpha = {alpha:g}; "
+            "dashed: power 0.8.",
         )
         + theme_bw(base_size=10)
-        + theme(figure_size=(9, 5), legend_position="bottom", panel_grid_minor=element_blank())
+        + theme(figure_size=(10, 7), legend_position="right", panel_grid_minor=element_blank())
     )
 
 
