@@ -112,8 +112,7 @@ def power_curve_figure(summary: pl.DataFrame, alpha: float) -> Any:
             y="rejection rate",
             colour="endpoint",
             title="Power and type I error by simulation",
-            caption=f"Bars: +/- 1.96 Monte Carlo SE. Dotted: alpha = {alpha:g}; "
-            "dashed: power 0.8.",
+            caption=f"Bars: +/- 1.96 Monte Carlo SE. Dotted: alpha = {alpha:g}; dashed: power 0.8.",
         )
         + theme_bw(base_size=10)
         + theme(figure_size=(10, 7), legend_position="right", panel_grid_minor=element_blank())
