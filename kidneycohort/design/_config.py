@@ -106,7 +106,8 @@ class Dropout(RuleModel):
     kidney_failure_gfr: float | None = Field(
         None,
         gt=0,
-        description="Mean true GFR at which kidney failure starts (null: the base scenario's).",
+        description="Mean true GFR at which kidney failure starts (between-patient SD 20 % "
+        "of it, truncated to 0.5-1.5 times it; null: the base scenario's).",
     )
     loss_to_followup_per_year: float | None = Field(
         None, ge=0, description="Rate of loss to follow-up per year (null: the base scenario's)."
@@ -153,14 +154,32 @@ class DesignScenario(RuleModel):
         description="Synthetic scenario file to start from (relative to the config); null "
         "uses the package's invented two-arm trial scenario.",
     )
-    baseline_egfr: BaselineEgfr | None = Field(None, description="True GFR at randomisation.")
+    baseline_egfr: BaselineEgfr | None = Field(
+        None,
+        description="True GFR at randomisation (replaces the base's intercept and its "
+        "covariate effects).",
+    )
     baseline_uacr: BaselineUacr | None = Field(None, description="UACR at randomisation.")
-    egfr_slope: EgfrSlope | None = Field(None, description="Chronic slope of the control arm.")
+    egfr_slope: EgfrSlope | None = Field(
+        None,
+        description="Chronic slope of the control arm (replaces the base's slope and its "
+        "covariate effects).",
+    )
     treatment: Treatment = Field(default_factory=Treatment, description="Treatment effects.")
     dropout: Dropout = Field(default_factory=Dropout, description="Death, kidney failure, loss.")
     accrual_years: float | None = Field(None, ge=0, description="Enrolment period (years).")
     followup_years: float | None = Field(
-        None, gt=0, description="Follow-up of each patient after randomisation (years)."
+        None,
+        gt=0,
+        description="Follow-up after randomisation (years): of each patient, or with "
+        "followup_until_close the minimum (that of the last patient enrolled).",
+    )
+    followup_until_close: bool = Field(
+        False,
+        description="Follow every patient until the study closes (accrual_years + "
+        "followup_years after the first randomisation), so early patients are followed "
+        "longer; list visits up to the longest follow-up. False: each patient for "
+        "followup_years.",
     )
     visits: VisitPlan | None = Field(None, description="Visit schedule (creatinine only).")
     measurement: Measurement | None = Field(None, description="Creatinine variation.")

@@ -30,6 +30,7 @@ __all__ = [
 CONTROL = "control"
 TREATMENT = "treatment"
 _DEFAULT_BASE = "trial_two_arm.yaml"
+_NO_EFFECTS = {"age_per_10_years": 0.0, "female": 0.0, "diabetes": 0.0, "log2_uacr": 0.0}
 
 
 def _base_path(spec: DesignScenario, folder: Path) -> Path:
@@ -41,13 +42,22 @@ def _base_path(spec: DesignScenario, folder: Path) -> Path:
 def _updates(spec: DesignScenario) -> dict[str, Any]:
     """Nested scenario keys the design replaces (only those it states)."""
     out: dict[str, Any] = {"trajectory": {}, "population": {}, "calendar": {}, "events": {}}
+    # a stated distribution is the population's: the base's covariate effects on it go
     if spec.baseline_egfr is not None:
         b = spec.baseline_egfr
         out["trajectory"].update(
-            intercept_mean=b.mean, intercept_sd=b.sd, intercept_min=b.min, intercept_max=b.max
+            intercept_mean=b.mean,
+            intercept_sd=b.sd,
+            intercept_min=b.min,
+            intercept_max=b.max,
+            intercept_effects=_NO_EFFECTS,
         )
     if spec.egfr_slope is not None:
-        out["trajectory"].update(slope_mean=spec.egfr_slope.mean, slope_sd=spec.egfr_slope.sd)
+        out["trajectory"].update(
+            slope_mean=spec.egfr_slope.mean,
+            slope_sd=spec.egfr_slope.sd,
+            slope_effects=_NO_EFFECTS,
+        )
     if spec.baseline_uacr is not None:
         out["population"].update(
             uacr_median_mg_g=spec.baseline_uacr.median_mg_g,
@@ -58,6 +68,8 @@ def _updates(spec: DesignScenario) -> dict[str, Any]:
         out["calendar"]["enrolment_years"] = spec.accrual_years
     if spec.followup_years is not None:
         out["calendar"]["followup_years"] = spec.followup_years
+    if spec.followup_until_close:
+        out["calendar"]["end_date"] = "close"  # filled in once the calendar is known
     drop = spec.dropout
     if drop.loss_to_followup_per_year is not None:
         out["events"]["loss_to_followup_per_year"] = drop.loss_to_followup_per_year
@@ -124,6 +136,13 @@ def design_scenarios(config: DesignConfig, folder: Path) -> dict[str, Scenario]:
         "uacr": None,
     }
     plain.update(dirty=None, noise_off=False, name=config.design.name, id_prefix="T")
+    calendar = plain["calendar"]
+    if calendar.get("end_date") == "close":  # every patient followed until the study closes
+        years = calendar["lookback_years"] + calendar["enrolment_years"]
+        years += calendar["followup_years"] or 0.0
+        start = dt.date.fromisoformat(str(calendar["start_date"]))
+        calendar["end_date"] = (start + dt.timedelta(days=math.ceil(years * 365.25))).isoformat()
+        calendar["followup_years"] = None
     where = f"scenario (from {_base_path(config.scenario, folder).name})"
     out = {}
     for label, null in (("effect", False), ("null", True)):

@@ -123,3 +123,30 @@ def test_committed_design_reference_is_current() -> None:
     for prefix, model in (("design", DesignSection), ("scenario", DesignScenario)):
         for field in model.model_fields:
             assert f"`{prefix}.{field}`" in text
+
+
+def test_stated_distributions_replace_covariate_effects_and_close_date() -> None:
+    config, folder = load_design(
+        {
+            **MINIMAL,
+            "scenario": {
+                "egfr_slope": {"mean": -3.0, "sd": 2.0},
+                "accrual_years": 1.5,
+                "followup_years": 2.0,
+                "followup_until_close": True,
+            },
+        }
+    )
+    scenario = design_scenarios(config, folder)["effect"]
+    # the stated slope is the population's: no covariate shifts it
+    assert scenario.trajectory.slope_effects.model_dump() == {
+        "age_per_10_years": 0.0,
+        "female": 0.0,
+        "diabetes": 0.0,
+        "log2_uacr": 0.0,
+    }
+    assert scenario.trajectory.intercept_effects.log2_uacr != 0.0  # not stated: the base's
+    # every patient followed until 1.5 + 2 years after the first randomisation
+    calendar = scenario.calendar
+    assert calendar.followup_years is None and calendar.end_date is not None
+    assert (calendar.end_date - calendar.start_date).days == 1279  # ceil(3.5 * 365.25)

@@ -86,13 +86,15 @@ def test_slope_power_matches_the_two_sample_closed_form(
 def test_cox_power_matches_schoenfeld_and_type_one_error_is_nominal(
     tmp_path: Path, trials: int
 ) -> None:
-    design = cox_design(sizes=[90], trials=trials, reference=20_000)
+    # about 45 events per trial and a hazard ratio of about 0.5: Schoenfeld's formula is
+    # an asymptotic one and is optimistic with a few dozen events or fewer
+    design = cox_design(sizes=[200], trials=trials, reference=20_000)
     result = simulate_power(design, out=tmp_path / "d")
     for endpoint in ("egfr_decline_40", "decline_40_or_kidney_failure"):
         row = result.power.filter(result.power["endpoint"] == endpoint).row(0, named=True)
         # the "true" log hazard ratio: one trial of 20,000 patients (recorded SE below)
         log_hr = row["true_value"]
-        reference_se = math.sqrt(4 / (20_000 / 90 * row["mean_events"]))
+        reference_se = math.sqrt(4 / (20_000 / 200 * row["mean_events"]))
         expected = _schoenfeld_power(row["mean_events"], log_hr)
         slope = stats.norm.pdf(stats.norm.ppf(expected)) * math.sqrt(row["mean_events"] / 4)
         tolerance = 3 * math.sqrt(expected * (1 - expected) / trials + (slope * reference_se) ** 2)
