@@ -78,7 +78,7 @@ def cox_design(*, sizes: list[int], trials: int, reference: int = 0) -> dict[str
         "scenario": {
             "baseline_egfr": {"mean": 45, "sd": 10, "min": 25, "max": 70},
             "egfr_slope": {"mean": -5.0, "sd": 3.0},
-            "treatment": {"chronic_effect": 1.5},
+            "treatment": {"chronic_effect": 0.75},
             "followup_years": 3.0,
         },
     }
