@@ -219,6 +219,8 @@ def simulate_power(
     _prepare_folder(folder, _fingerprint(cfg, scenarios), force)
     chunks = design_chunks(cfg)
     pending = [(c, _chunk_path(folder, c)) for c in chunks if not _chunk_path(folder, c).exists()]
+    # the large reference trial first, so that it does not finish alone at the end
+    pending.sort(key=lambda item: not item[0].scenario_label.endswith("_reference"))
     total = sum(c.trials for c in chunks if not c.scenario_label.endswith("_reference"))
     done = total - sum(c.trials for c, _ in pending if not c.scenario_label.endswith("_reference"))
     if progress is not None:
