@@ -154,17 +154,32 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.kfre import kfre_inputs as kfre_inputs
     from kidneycohort.kfre import kfre_risk as kfre_risk
     from kidneycohort.kfre import kfre_summary_table as kfre_summary_table
+    from kidneycohort.models import CauseSpecificCox as CauseSpecificCox
+    from kidneycohort.models import CompetingRisks as CompetingRisks
+    from kidneycohort.models import CompetingRisksRule as CompetingRisksRule
     from kidneycohort.models import CoxModel as CoxModel
     from kidneycohort.models import CumulativeIncidence as CumulativeIncidence
+    from kidneycohort.models import DropoutAnalysisRule as DropoutAnalysisRule
+    from kidneycohort.models import FineGray as FineGray
+    from kidneycohort.models import JointSlopeModel as JointSlopeModel
+    from kidneycohort.models import JointSlopeRule as JointSlopeRule
     from kidneycohort.models import KaplanMeier as KaplanMeier
+    from kidneycohort.models import MixedModelFit as MixedModelFit
     from kidneycohort.models import SlopeModel as SlopeModel
     from kidneycohort.models import SlopeModelRule as SlopeModelRule
     from kidneycohort.models import SurvivalRule as SurvivalRule
+    from kidneycohort.models import delta_adjusted_slopes as delta_adjusted_slopes
+    from kidneycohort.models import dropout_analysis as dropout_analysis
     from kidneycohort.models import exact_poisson_interval as exact_poisson_interval
+    from kidneycohort.models import fit_mixed_model as fit_mixed_model
+    from kidneycohort.models import gray_test as gray_test
     from kidneycohort.models import incidence_rates as incidence_rates
     from kidneycohort.models import numbers_at_risk as numbers_at_risk
+    from kidneycohort.models import patient_blocks as patient_blocks
     from kidneycohort.models import rate_difference as rate_difference
     from kidneycohort.models import rate_ratio as rate_ratio
+    from kidneycohort.models import simulate_joint_cohort as simulate_joint_cohort
+    from kidneycohort.models import stated_value_at_kidney_failure as stated_value_at_kidney_failure
     from kidneycohort.pipeline import DataSection as DataSection
     from kidneycohort.pipeline import OutputSection as OutputSection
     from kidneycohort.pipeline import ProgressObserver as ProgressObserver
@@ -246,6 +261,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.tables import TableRule as TableRule
     from kidneycohort.tables import baseline_characteristics_table as baseline_characteristics_table
     from kidneycohort.tables import competing_risks_table as competing_risks_table
+    from kidneycohort.tables import dropout_table as dropout_table
     from kidneycohort.tables import endpoint_table as endpoint_table
     from kidneycohort.tables import kdigo_grid_table as kdigo_grid_table
     from kidneycohort.tables import rate_comparison_table as rate_comparison_table
@@ -263,267 +279,95 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
 
 __version__ = "0.1.0"
 
-# public name -> module that defines it
-_PUBLIC: dict[str, str] = {
-    # equations
-    **{
-        name: "kidneycohort.equations"
-        for name in (
-            "REGISTRY",
-            "EquationSpec",
-            "evaluate",
-            "evaluate_with_reason",
-            "equation_ids",
-            "get_equation",
-            "registry_table",
-            "solve_creatinine",
-            "solve_cystatin_c",
-            "bsa_dubois",
-            "bsa_mosteller",
-            "deindex_egfr",
-            "index_gfr",
-            "EquationResult",
-        )
-    },
-    # reading and harmonising
-    **{
-        name: "kidneycohort.io"
-        for name in (
-            "FileSource",
-            "read_source",
-            "read_labs",
-            "read_patients",
-            "read_events",
-            "loinc_table",
-            "read_many",
-            "infer_date_format",
-            "parse_date_columns",
-        )
-    },
-    "OmopSource": "kidneycohort.io.omop",
-    "SdtmSource": "kidneycohort.io.sdtm",
-    **{
-        name: "kidneycohort.harmonize"
-        for name in ("HarmonizeRule", "HarmonizeResult", "PlausibleRange", "harmonize_tables")
-    },
-    **{name: "kidneycohort.egfr" for name in ("compute_egfr", "egfr_wide", "EgfrRule", "AgeBand")},
-    # per-patient derivations
-    **{
-        name: "kidneycohort.value_filter"
-        for name in ("ValueFilterRule", "flag_aki", "apply_value_filter")
-    },
-    **{
-        name: "kidneycohort.baseline" for name in ("uacr_baseline", "egfr_baseline", "BaselineRule")
-    },
-    **{name: "kidneycohort.uacr" for name in ("uacr_timeline",)},
-    **{name: "kidneycohort.slopes" for name in ("egfr_slopes", "SlopeRule")},
-    **{
-        name: "kidneycohort.kdigo"
-        for name in (
-            "SustainRule",
-            "gfr_category",
-            "albuminuria_category",
-            "risk_grid",
-            "category_results",
-            "sustained_stages",
-            "transitions",
-            "transition_matrix",
-            "time_to_first_worsening",
-            "ckd_status",
-            "kdigo_progression",
-            "baseline_categories",
-            "kdigo_grid_counts",
-            "KdigoGridRule",
-            "gfr_category_expr",
-            "albuminuria_category_expr",
-            "kdigo_risk_expr",
-        )
-    },
-    **{
-        name: "kidneycohort.kfre"
-        for name in ("kfre_risk", "kfre_inputs", "add_kfre_risk", "KfreRule")
-    },
-    # endpoints
-    **{
-        name: "kidneycohort.endpoints"
-        for name in (
-            "derive_endpoints",
-            "EndpointRule",
-            "EgfrDecline",
-            "EgfrBelow",
-            "KidneyFailure",
-            "Death",
-            "KidneyDeath",
-            "Composite",
-            "parse_endpoint_definitions",
-            "usual_kidney_composite",
-        )
-    },
-    # ADaM datasets
-    **{
-        name: "kidneycohort.adam"
-        for name in (
-            "to_adam_tte",
-            "AdamRule",
-            "AdamDataset",
-            "Variable",
-            "VisitWindow",
-            "default_visit_windows",
-            "adsl_dataset",
-            "adegfr_dataset",
-            "adtte_dataset",
-            "subject_facts",
-            "write_adam",
-            "spec_sheet",
-            "check_dataset",
-            "check_xpt_round_trip",
-            "read_back_xpt",
-        )
-    },
-    **{name: "kidneycohort.kfre" for name in ("kfre_at_baseline", "kfre_summary_table")},
-    # models and tables
-    **{
-        name: "kidneycohort.models"
-        for name in (
-            "SlopeModel",
-            "SlopeModelRule",
-            "KaplanMeier",
-            "CumulativeIncidence",
-            "CoxModel",
-            "SurvivalRule",
-            "incidence_rates",
-            "exact_poisson_interval",
-            "rate_difference",
-            "rate_ratio",
-            "numbers_at_risk",
-        )
-    },
-    **{
-        name: "kidneycohort.tables"
-        for name in (
-            "TableRule",
-            "endpoint_table",
-            "competing_risks_table",
-            "slope_table",
-            "baseline_characteristics_table",
-            "kdigo_grid_table",
-            "write_tables",
-            "rate_comparison_table",
-            "transition_table",
-            "to_markdown",
-            "suppress_small_counts",
-            "suppression_footnote",
-            "suppression_label",
-        )
-    },
-    # figures, report, synthetic cohorts, pipeline
-    **{
-        name: "kidneycohort.plots"
-        for name in (
-            "write_figures",
-            "FigureRule",
-            "attrition_boxes",
-            "attrition_figure",
-            "egfr_time_bins",
-            "egfr_trajectory_figure",
-            "model_trajectory_figure",
-            "forest_rows",
-            "forest_figure",
-            "group_palette",
-            "kdigo_grid_cells",
-            "kdigo_grid_figure",
-            "transition_cells",
-            "transition_heatmap_figure",
-            "slope_density",
-            "slope_distribution",
-            "slope_distribution_figure",
-            "survival_steps",
-            "survival_figure",
-        )
-    },
-    **{
-        name: "kidneycohort.report"
-        for name in ("write_report", "render_report", "build_report_context", "methods_from_config")
-    },
-    **{
-        name: "kidneycohort.synthetic"
-        for name in (
-            "generate_cohort",
-            "write_cohort",
-            "load_scenario",
-            "Scenario",
-            "SyntheticCohort",
-        )
-    },
-    **{
-        name: "kidneycohort.pipeline"
-        for name in (
-            "load_config",
-            "run_pipeline",
-            "check_inputs",
-            "StudyConfig",
-            "RunResult",
-            "StepRegistry",
-            "StudySection",
-            "DataSection",
-            "OutputSection",
-            "Recipe",
-            "Step",
-            "StepContext",
-            "ProgressObserver",
-            "apply_overrides",
-            "check_chain",
-            "default_registry",
-            "read_sources",
-        )
-    },
-    # run folders and the provenance of published constants
-    **{
-        name: "kidneycohort.run_folder"
-        for name in (
-            "RunFolder",
-            "RunFile",
-            "Manifest",
-            "AccountingRecord",
-            "InputRecord",
-            "OutputRecord",
-            "ReasonCount",
-            "StepRecord",
-            "StudyFacts",
-            "canonical_order",
-            "check_layout",
-            "csv_safe",
-            "write_csv",
-            "declared",
-            "file_for",
-            "is_written",
-            "markdown_table",
-            "output_records",
-            "package_versions",
-            "read_manifest",
-            "sha256_of",
-            "write_manifest",
-            "write_table",
-            "write_workbook",
-        )
-    },
-    **{
-        name: "kidneycohort.design"
-        for name in ("DesignConfig", "DesignResult", "load_design", "simulate_power")
-    },
-    **{
-        name: "kidneycohort.provenance"
-        for name in (
-            "Constant",
-            "Publication",
-            "constants_table",
-            "get_constant",
-            "get_publication",
-            "read_code_location",
-            "status_counts",
-        )
-    },
-}
+
+def _by_module(groups: dict[str, str]) -> dict[str, str]:
+    """``{module: "Name other_name ..."}`` -> ``{name: module}``."""
+    return {name: module for module, names in groups.items() for name in names.split()}
+
+
+# every public name -> the module it is loaded from on first use
+_PUBLIC: dict[str, str] = _by_module(
+    {
+        "kidneycohort.equations": (
+            "REGISTRY EquationSpec evaluate evaluate_with_reason equation_ids get_equation "
+            "registry_table solve_creatinine solve_cystatin_c bsa_dubois bsa_mosteller "
+            "deindex_egfr index_gfr EquationResult"
+        ),
+        "kidneycohort.io": (
+            "FileSource read_source read_labs read_patients read_events loinc_table read_many "
+            "infer_date_format parse_date_columns"
+        ),
+        "kidneycohort.io.omop": "OmopSource",
+        "kidneycohort.io.sdtm": "SdtmSource",
+        "kidneycohort.harmonize": "HarmonizeRule HarmonizeResult PlausibleRange harmonize_tables",
+        "kidneycohort.egfr": "compute_egfr egfr_wide EgfrRule AgeBand",
+        "kidneycohort.value_filter": "ValueFilterRule flag_aki apply_value_filter",
+        "kidneycohort.baseline": "uacr_baseline egfr_baseline BaselineRule",
+        "kidneycohort.uacr": "uacr_timeline",
+        "kidneycohort.slopes": "egfr_slopes SlopeRule",
+        "kidneycohort.kdigo": (
+            "SustainRule gfr_category albuminuria_category risk_grid category_results "
+            "sustained_stages transitions transition_matrix time_to_first_worsening "
+            "ckd_status kdigo_progression baseline_categories kdigo_grid_counts KdigoGridRule "
+            "gfr_category_expr albuminuria_category_expr kdigo_risk_expr"
+        ),
+        "kidneycohort.kfre": (
+            "kfre_risk kfre_inputs add_kfre_risk KfreRule kfre_at_baseline kfre_summary_table"
+        ),
+        "kidneycohort.endpoints": (
+            "derive_endpoints EndpointRule EgfrDecline EgfrBelow KidneyFailure Death "
+            "KidneyDeath Composite parse_endpoint_definitions usual_kidney_composite"
+        ),
+        "kidneycohort.adam": (
+            "to_adam_tte AdamRule AdamDataset Variable VisitWindow default_visit_windows "
+            "adsl_dataset adegfr_dataset adtte_dataset subject_facts write_adam spec_sheet "
+            "check_dataset check_xpt_round_trip read_back_xpt"
+        ),
+        "kidneycohort.models": (
+            "SlopeModel SlopeModelRule CauseSpecificCox CompetingRisks CompetingRisksRule "
+            "FineGray gray_test JointSlopeModel DropoutAnalysisRule dropout_analysis "
+            "JointSlopeRule delta_adjusted_slopes simulate_joint_cohort "
+            "stated_value_at_kidney_failure MixedModelFit fit_mixed_model patient_blocks "
+            "KaplanMeier CumulativeIncidence CoxModel SurvivalRule incidence_rates "
+            "exact_poisson_interval rate_difference rate_ratio numbers_at_risk"
+        ),
+        "kidneycohort.tables": (
+            "TableRule endpoint_table competing_risks_table dropout_table slope_table "
+            "baseline_characteristics_table kdigo_grid_table write_tables "
+            "rate_comparison_table transition_table to_markdown suppress_small_counts "
+            "suppression_footnote suppression_label"
+        ),
+        "kidneycohort.plots": (
+            "write_figures FigureRule attrition_boxes attrition_figure egfr_time_bins "
+            "egfr_trajectory_figure model_trajectory_figure forest_rows forest_figure "
+            "group_palette kdigo_grid_cells kdigo_grid_figure transition_cells "
+            "transition_heatmap_figure slope_density slope_distribution "
+            "slope_distribution_figure survival_steps survival_figure"
+        ),
+        "kidneycohort.report": (
+            "write_report render_report build_report_context methods_from_config"
+        ),
+        "kidneycohort.synthetic": (
+            "generate_cohort write_cohort load_scenario Scenario SyntheticCohort"
+        ),
+        "kidneycohort.pipeline": (
+            "load_config run_pipeline check_inputs StudyConfig RunResult StepRegistry "
+            "StudySection DataSection OutputSection Recipe Step StepContext ProgressObserver "
+            "apply_overrides check_chain default_registry read_sources"
+        ),
+        "kidneycohort.run_folder": (
+            "RunFolder RunFile Manifest AccountingRecord InputRecord OutputRecord ReasonCount "
+            "StepRecord StudyFacts canonical_order check_layout csv_safe write_csv declared "
+            "file_for is_written markdown_table output_records package_versions read_manifest "
+            "sha256_of write_manifest write_table write_workbook"
+        ),
+        "kidneycohort.design": "DesignConfig DesignResult load_design simulate_power",
+        "kidneycohort.provenance": (
+            "Constant Publication constants_table get_constant get_publication "
+            "read_code_location status_counts"
+        ),
+    }
+)
 
 _SUBMODULES = (
     "adam",

@@ -16,7 +16,11 @@ __all__ = [
     "BASELINE",
     "BASELINE_CATEGORIES",
     "CANONICAL_EVENTS",
+    "COMPETING_HAZARDS",
+    "COMPETING_TESTS",
     "DAYS_PER_YEAR",
+    "DROPOUT_SENSITIVITY",
+    "DROPOUT_SLOPES",
     "EGFR",
     "ENDPOINTS",
     "EVENTS",
@@ -279,6 +283,40 @@ COMPETING_HAZARDS: Final[dict[str, pl.DataType]] = {
     "reason": pl.String(),  # null when estimable; else one line saying why not
 }
 """Fine–Gray and cause-specific hazard ratios per endpoint analysed with competing risks."""
+
+DROPOUT_SLOPES: Final[dict[str, pl.DataType]] = {
+    "model": pl.String(),  # "joint" (with the dropout model) or "mixed" (eGFR model alone)
+    "contrast": pl.String(),
+    "quantity": pl.String(),
+    "estimate": pl.Float64(),
+    "se": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+    "p": pl.Float64(),
+    "estimable": pl.Boolean(),
+    "reason": pl.String(),
+    "note": pl.String(),
+}
+"""The joint model's slope contrasts beside the ordinary mixed model's."""
+
+DROPOUT_SENSITIVITY: Final[dict[str, pl.DataType]] = {
+    "analysis": pl.String(),  # "delta_adjusted" or "stated_value_at_kidney_failure"
+    "delta": pl.Float64(),  # mL/min/1.73 m² per year since dropout (delta_adjusted)
+    "step": pl.String(),  # grid / extension / bisection; observed / stated_value
+    "contrast": pl.String(),
+    "quantity": pl.String(),
+    "estimate": pl.Float64(),
+    "se": pl.Float64(),
+    "lower": pl.Float64(),
+    "upper": pl.Float64(),
+    "p": pl.Float64(),
+    "tipping_point": pl.Float64(),  # the delta at which the conclusion changes, if any
+    "estimable": pl.Boolean(),
+    "reason": pl.String(),
+    "note": pl.String(),
+}
+"""Sensitivity of the slope difference to dropout not at random, one row per analysis
+step (each delta evaluated; the observed and the stated-value analysis)."""
 
 COMPETING_TESTS: Final[dict[str, pl.DataType]] = {
     "endpoint": pl.String(),

@@ -19,6 +19,7 @@ NO_TABLE_INPUT = {
     "read_sources",
     "spec_sheet",
     "canonical_order",
+    "simulate_joint_cohort",  # a simulator: generates its tables
 }
 # building blocks the figures, the report and the ADaM datasets call with the tables they
 # were given; they return polars to those callers (exported with the typed API, see

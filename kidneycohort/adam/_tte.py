@@ -84,6 +84,8 @@ _CENSOR_TEXT: Final = {
     "data_cut": "data cut-off",
     "end_of_followup": "end of follow-up",
     "death": "death (competing event)",
+    "death_censored_at_last_assessment": "death before an event: censored at the last eGFR "
+    "assessment (cause-specific)",
     **{code: f"origin date: not evaluable, {text}" for code, text in NOT_EVALUABLE_REASONS.items()},
 }
 # Which dataset variable gives ADT, by reason code (SRCDOM, SRCVAR). eGFR-based dates
@@ -99,6 +101,7 @@ _SOURCE: Final[dict[str, tuple[str, str]]] = {
             "unconfirmed_then_kidney_failure",
             "unconfirmed_last_value",
             "last_assessment",
+            "death_censored_at_last_assessment",
         )
     },
     "dialysis": ("ADSL", "KFRTDT"),

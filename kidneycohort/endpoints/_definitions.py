@@ -142,6 +142,15 @@ class EndpointRule(_ConfigModel):
             "end_of_followup or data cut, whichever is first)."
         ),
     )
+    death_before_event: Literal["competing", "censor_at_last_assessment"] = Field(
+        "competing",
+        description=(
+            "Death before a laboratory endpoint occurred (or was confirmed): a competing "
+            "event at the death date (for cumulative incidence and subdistribution "
+            "hazards), or censoring at the last eligible eGFR assessment, as "
+            "cause-specific analysis plans state it."
+        ),
+    )
     min_dialysis_days: int = Field(
         90,
         ge=0,

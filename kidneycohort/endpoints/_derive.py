@@ -159,9 +159,13 @@ def _lab_endpoint(ctx: _Context, defn: EgfrDecline | EgfrBelow, rule: EndpointRu
         last, on="pcode", how="left", maintain_order="left"
     )
 
-    death_competes = (pl.col("death_date") <= fu_end) & (
+    death_first = (pl.col("death_date") <= fu_end) & (
         pl.col("kf_date").is_null() | (pl.col("death_date") <= pl.col("kf_date"))
     )
+    # a death censored at the last assessment (cause-specific plans) is not competing
+    censor_death = rule.death_before_event == "censor_at_last_assessment"
+    death_competes = death_first & pl.lit(not censor_death)
+    death_censored = death_first & pl.lit(censor_death)
     kf_ends = pl.col("kf_date") <= fu_end
     if rule.lab_censoring == "last_assessment":
         last_or_start = pl.coalesce("last_date", "index_date")
@@ -179,6 +183,8 @@ def _lab_endpoint(ctx: _Context, defn: EgfrDecline | EgfrBelow, rule: EndpointRu
         .then(pl.col("event_date"))
         .when(death_competes)
         .then(pl.col("death_date"))
+        .when(death_censored)
+        .then(pl.coalesce("last_date", "index_date"))
         .when(kf_ends)
         .then(kf_end)
         .otherwise(plain_end)
@@ -189,6 +195,8 @@ def _lab_endpoint(ctx: _Context, defn: EgfrDecline | EgfrBelow, rule: EndpointRu
         .then(pl.col("event_reason"))
         .when(death_competes)
         .then(pl.lit("death"))
+        .when(death_censored)
+        .then(pl.lit("death_censored_at_last_assessment"))
         .when(kf_ends)
         .then(pl.lit("kidney_failure"))
         .otherwise(plain_reason)

@@ -106,6 +106,16 @@ def _module_of(filename: str) -> str | None:
     return None
 
 
+def _first_statement(message: str) -> str:
+    """The first line of a library's warning, without a trailing sentence that
+    introduces code it goes on to show (``"For example, try the following code:"``)."""
+    line = message.strip().splitlines()[0].strip() if message.strip() else ""
+    if line.endswith(":"):
+        head, _, _ = line.rpartition(". ")
+        line = f"{head}." if head else line.rstrip(":")
+    return line
+
+
 @contextmanager
 def capture_warnings() -> Iterator[CapturedWarnings]:
     """Record warnings of a statsmodels / lifelines fit so that convergence problems are
@@ -116,7 +126,7 @@ def capture_warnings() -> Iterator[CapturedWarnings]:
         yield captured
     for record in records:
         if _is_convergence(record):
-            captured.convergence.append(str(record.message).strip().splitlines()[0])
+            captured.convergence.append(_first_statement(str(record.message)))
         else:
             warnings.warn_explicit(
                 record.message,

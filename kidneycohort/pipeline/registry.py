@@ -77,7 +77,9 @@ class Step:
     name : str
         The name recipes use.
     run : callable
-        ``run(context) -> {table_name: table}``; must return exactly ``makes``.
+        ``run(context) -> {table_name: table}``; must return exactly ``makes`` (a value
+        of ``None`` says the run has no data for that output: it is neither kept nor
+        written).
     needs : tuple of str
         Tables that must exist before the step runs.
     makes : tuple of str

@@ -549,6 +549,8 @@ def _call_step(
             f"{sorted(made)} (missing {missing}, undeclared {extra})"
         )
     for name in step.makes:
+        if made[name] is None:  # an output this run has no data for: not written
+            continue
         tables[name] = made[name]
         write_table(run_dir, name, _with_group(name, made[name], tables), run_files(config))
     state.accounting.extend(context.accounting)

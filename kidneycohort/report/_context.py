@@ -49,6 +49,7 @@ SECTIONS: Final = (
 TABLES: Final[dict[str, tuple[str, str]]] = {
     "baseline_characteristics": ("Baseline characteristics", "baseline"),
     "slope_table": ("eGFR slopes", "slopes"),
+    "dropout_analysis": ("eGFR slopes under informative dropout", "slopes"),
     "kdigo_grid": ("KDIGO GFR x albuminuria grid", "kdigo"),
     "transition_matrix": ("KDIGO category transitions", "kdigo"),
     "endpoint_table": ("Endpoints", "endpoints"),
@@ -268,11 +269,16 @@ def _summary(run: RunFolder, threshold: int) -> list[str]:
 
 def _analysis_methods(run: RunFolder) -> list[dict[str, Any]]:
     """Methods paragraphs the analyses wrote themselves (which hazard ratio is which)."""
+    out = []
     tests = run.table_or_none("models/competing_tests")
-    if tests is None or tests.is_empty():
-        return []
-    sentences = list(dict.fromkeys(tests["methods"].drop_nulls().to_list()))
-    return [{"section": "Competing risks as analysed", "sentences": sentences}]
+    if tests is not None and not tests.is_empty():
+        sentences = list(dict.fromkeys(tests["methods"].drop_nulls().to_list()))
+        out.append({"section": "Competing risks as analysed", "sentences": sentences})
+    dropout = run.table_or_none("models/dropout_methods")
+    if dropout is not None and not dropout.is_empty():
+        sentences = dropout["paragraph"].drop_nulls().to_list()
+        out.append({"section": "Slopes under informative dropout", "sentences": sentences})
+    return out
 
 
 def _printed_group_sizes(run: RunFolder, threshold: int) -> dict[str, str]:

@@ -60,6 +60,18 @@ _PHRASES: Final[dict[str, Callable[[Any], str]]] = {
         f"A decline counts only when a repeat value at least {v} days later confirms it."
     ),
     "min_values": lambda v: f"A per-patient slope needs at least {v} eGFR values.",
+    "death_before_event": lambda v: (
+        "Death before a laboratory endpoint: a competing event at the death date "
+        "(cumulative incidence, subdistribution hazards)."
+        if v == "competing"
+        else "Death before a laboratory endpoint: censored at the last eGFR assessment "
+        "(cause-specific analysis); it is not counted as a competing event."
+    ),
+    "lab_censoring": lambda v: (
+        "Laboratory endpoints without an event are censored at the last eGFR assessment."
+        if v == "last_assessment"
+        else "Laboratory endpoints without an event are censored at the end of follow-up."
+    ),
     "min_span_years": lambda v: (
         f"A per-patient slope needs values spanning at least {_readable_value(v)} "
         f"{'year' if float(v) == 1 else 'years'}."

@@ -137,6 +137,25 @@ FILES: Final[dict[str, RunFile]] = _files(
         schemas.COMPETING_TESTS,
         "Gray's test per endpoint analysed with competing risks, and its methods text.",
     ),
+    RunFile(
+        "models/dropout_slopes",
+        "model",
+        schemas.DROPOUT_SLOPES,
+        "Slope contrasts of the joint model of eGFR and dropout beside the mixed model alone.",
+    ),
+    RunFile(
+        "models/dropout_sensitivity",
+        "model",
+        schemas.DROPOUT_SENSITIVITY,
+        "Slope difference under dropout not at random: delta-adjusted tipping point and eGFR "
+        "set to a stated value at kidney failure.",
+    ),
+    RunFile(
+        "models/dropout_methods",
+        "model",
+        {"paragraph": pl.String()},
+        "Methods paragraphs of the dropout analyses, as they ran.",
+    ),
     RunFile("models/kdigo_grid", "model", schemas.KDIGO_GRID_COUNTS, "Patients per KDIGO cell."),
     RunFile(
         "models/transition_counts",
@@ -165,6 +184,11 @@ FILES: Final[dict[str, RunFile]] = _files(
             (
                 "competing_risks",
                 "Subdistribution (Fine–Gray) and cause-specific hazard ratios side by side.",
+            ),
+            (
+                "dropout_analysis",
+                "The slope difference under each dropout assumption (joint model, mixed "
+                "model alone, delta-adjusted imputation, eGFR set at kidney failure).",
             ),
         )
     ),

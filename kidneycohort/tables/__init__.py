@@ -28,6 +28,9 @@ from kidneycohort.tables._baseline import (
 from kidneycohort.tables._competing import (
     competing_risks_table,
 )
+from kidneycohort.tables._dropout import (
+    dropout_table,
+)
 from kidneycohort.tables._endpoints import (
     endpoint_table,
 )
@@ -54,6 +57,7 @@ __all__ = [
     "TableRule",
     "baseline_characteristics_table",
     "competing_risks_table",
+    "dropout_table",
     "endpoint_table",
     "kdigo_grid_table",
     "rate_comparison_table",

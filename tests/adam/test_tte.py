@@ -114,3 +114,17 @@ def test_bad_arguments(endpoints: pl.DataFrame) -> None:
         to_adam_tte(endpoints, DEFS, time_unit="day")  # type: ignore[arg-type]
     with pytest.raises(InputDataError, match=r"endpoints: missing required column 'competing'"):
         to_adam_tte(endpoints.drop("competing"), DEFS)
+
+
+def test_death_censored_at_the_last_assessment_is_described_and_not_competing() -> None:
+    # q04 dies at day 211 without a decline: under the cause-specific rule it is censored
+    # at its last eGFR assessment (day 180), not flagged as a competing event
+    endpoints = derive(COHORT, DEFS, {"death_before_event": "censor_at_last_assessment"})
+    adam = to_adam_tte(endpoints, DEFS)
+    q04 = adam.filter((pl.col("PARAMCD") == "DEC40") & (pl.col("USUBJID") == "q04"))
+    assert q04["CNSR"][0] == 1 and q04["CMPEVFL"][0] == "N"
+    assert q04["ADT"][0] == INDEX + dt.timedelta(days=180)
+    assert q04["CNSDTDSC"][0] == (
+        "death before an event: censored at the last eGFR assessment (cause-specific)"
+    )
+    assert q04["SRCDOM"][0] == "ADEGFR"

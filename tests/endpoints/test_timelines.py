@@ -347,6 +347,25 @@ CASES = [
         {"death": (None, None, "no_index_date", None)},
         definitions=[Death()],
     ),
+    # 42. Death before confirmation under the cause-specific rule: censored at the last
+    # eGFR assessment (day 180), not a competing event (common practice in analysis plans
+    # with cause-specific hazards; case 4 is the same patient under the competing rule).
+    Case(
+        "death_censored_at_last_assessment",
+        T("p44", [(90, 100), (180, 55)], death=200),
+        {DEC: (0, 180, "death_censored_at_last_assessment", 0)},
+        rule={
+            "unconfirmed_last_value": "censor",
+            "death_before_event": "censor_at_last_assessment",
+        },
+    ),
+    # 43. ...and a death with no eGFR after the index date: censored at the index date.
+    Case(
+        "death_censored_without_assessment",
+        T("p45", [], death=300),
+        {LT15: (0, 0, "death_censored_at_last_assessment", 0)},
+        rule={"death_before_event": "censor_at_last_assessment"},
+    ),
 ]
 
 

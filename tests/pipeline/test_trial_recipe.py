@@ -383,3 +383,29 @@ def test_trial_tables_print_exact_counts(demo) -> None:
     assert joined.height == rates.height
     assert (joined["events"] == joined["exact"]).all()
     assert joined["exact"].cast(pl.Int64).is_between(1, 10).any()  # rare endpoints shown
+
+
+def test_the_slope_analysis_under_dropout_is_reported(demo) -> None:
+    """The joint model beside the mixed model alone, the tipping point and the stated
+    value at kidney failure: model tables, the shared table and the report's methods."""
+    run, _, _ = demo
+    slopes = pl.read_parquet(run / "models" / "dropout_slopes.parquet")
+    assert set(slopes["model"]) == {"joint", "mixed"}
+    # the mixed model alone (ML) and the slope model (REML) estimate the same chronic
+    # slope difference; ML and REML differ by far less than one standard error here
+    mixed = slopes.filter(
+        (pl.col("model") == "mixed")
+        & (pl.col("quantity") == "chronic_slope")
+        & pl.col("contrast").str.contains(" - ")
+    )
+    reml = pl.read_parquet(run / "models" / "slope_summary.parquet").filter(
+        (pl.col("quantity") == "chronic_slope") & pl.col("contrast").str.contains(" - ")
+    )
+    assert abs(mixed["estimate"][0] - reml["estimate"][0]) < 0.2 * reml["se"][0]
+    sensitivity = pl.read_parquet(run / "models" / "dropout_sensitivity.parquet")
+    assert set(sensitivity["analysis"]) == {"delta_adjusted", "stated_value_at_kidney_failure"}
+    shared = (run / "tables" / "dropout_analysis.md").read_text(encoding="utf-8")
+    assert "Joint model of eGFR and dropout" in shared
+    report = (run / "report.html").read_text(encoding="utf-8")
+    assert "eGFR slopes under informative dropout" in report
+    assert "Slopes under informative dropout" in report and "Rubin" in report

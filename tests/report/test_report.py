@@ -243,3 +243,13 @@ def test_bad_run_folder(tmp_path: Path) -> None:
     (tmp_path / "manifest.json").write_text("[1, 2", encoding="utf-8")
     with pytest.raises(InputDataError, match=r"manifest\.json: not valid JSON"):
         write_report(tmp_path)
+
+
+def test_methods_say_how_death_before_a_laboratory_endpoint_was_handled() -> None:
+    for rule, phrase in (
+        ("competing", "a competing event at the death date"),
+        ("censor_at_last_assessment", "censored at the last eGFR assessment"),
+    ):
+        config = {"endpoints": {"rule": {"death_before_event": rule}}}
+        text = " ".join(s for m in methods_from_config(config) for s in m["sentences"])
+        assert phrase in text

@@ -10,13 +10,20 @@ Two models, one class (:class:`SlopeModel`):
   the acute change (baseline to knot), the chronic slope and the total slope over each
   horizon, per group and as differences between groups (delta method, 95 % CI, p).
 
-The fitting is statsmodels' ``MixedLM``; this module builds the design, handles
-non-convergence (a stated fallback sequence, each step announced by a
-:class:`~kidneycohort.errors.StatisticalWarning`), and lays out the results.
+The fitting is the package's exact engine (:func:`fit_mixed_model`): REML or ML for one
+grouping level from per-patient blocks, covariance parameters profiled (Bates et al.,
+J Stat Softw 2015, section 3); statsmodels ``MixedLM`` stays available as a cross-check
+engine. Non-convergence follows a stated fallback sequence, each step announced by a
+:class:`~kidneycohort.errors.StatisticalWarning`.
 """
 
 from __future__ import annotations
 
+from kidneycohort.models.mixed._engine import (
+    MixedModelFit,
+    fit_mixed_model,
+    patient_blocks,
+)
 from kidneycohort.models.mixed._rule import (
     RandomEffects,
     SlopeModelRule,
@@ -26,7 +33,10 @@ from kidneycohort.models.mixed._slope_model import (
 )
 
 __all__ = [
+    "MixedModelFit",
     "RandomEffects",
     "SlopeModel",
     "SlopeModelRule",
+    "fit_mixed_model",
+    "patient_blocks",
 ]

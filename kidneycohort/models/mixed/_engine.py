@@ -54,6 +54,7 @@ from kidneycohort.models.mixed._blocks import (
     patient_blocks_from_frame,
 )
 from kidneycohort.models.mixed._checks import check_estimable
+from kidneycohort.models.mixed._linalg import one_blas_thread
 from kidneycohort.models.mixed._objective import Covariance, ProfiledDeviance
 from kidneycohort.models.mixed._optimise import (
     FitConvergence,
@@ -197,9 +198,10 @@ def _attempt(
         residual_by_group=rule.residual_variance_by_group,
     )
     try:
-        x, _, report = minimise_deviance(
-            deviance, tolerance=rule.tolerance, max_iterations=rule.max_iterations
-        )
+        with one_blas_thread():
+            x, _, report = minimise_deviance(
+                deviance, tolerance=rule.tolerance, max_iterations=rule.max_iterations
+            )
     except OptimisationFailed as error:
         return deviance, None, None, str(error)
     if not report.converged:

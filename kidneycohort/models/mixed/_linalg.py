@@ -9,6 +9,8 @@ over patients and no call into LAPACK per patient.
 
 from __future__ import annotations
 
+from contextlib import AbstractContextManager
+
 import numpy as np
 
 __all__ = [
@@ -18,6 +20,7 @@ __all__ = [
     "forward_solve",
     "gram",
     "left_multiply",
+    "one_blas_thread",
     "pair_contract",
     "quadratic_sum",
     "transpose",
@@ -132,3 +135,14 @@ def gram(stack: np.ndarray) -> np.ndarray:
         piece = np.ascontiguousarray(stack[a])
         total += piece @ piece.T
     return total
+
+
+def one_blas_thread() -> AbstractContextManager[object]:
+    """A context with one BLAS thread. The optimisers make thousands of tiny BLAS calls
+    (L-BFGS-B's own, small solves); with a thread pool each call pays the pool's start
+    and stop, which made a 1,500-patient fit about three times slower on 2 cores
+    (measured). The batched per-patient arithmetic is not BLAS-threaded, so nothing is
+    lost."""
+    from threadpoolctl import threadpool_limits
+
+    return threadpool_limits(limits=1, user_api="blas")

@@ -188,6 +188,34 @@ def _boundary(deviance: ProfiledDeviance, x: np.ndarray) -> tuple[str, ...]:
     return tuple(notes)
 
 
+def _escape_starts(
+    deviance: ProfiledDeviance, x: np.ndarray, lower: np.ndarray
+) -> list[np.ndarray]:
+    """Restarts for a search that stopped with a diagonal entry of Lambda at zero.
+
+    The deviance depends on a diagonal entry only through its square, so its gradient
+    there is exactly zero: a search that reaches the bound cannot leave it even when the
+    optimum lies inside (a stationary point, not a minimum). Two restarts away from the
+    bound: the same factor with each zero diagonal entry set to the length of its row,
+    and lme4's default start (Lambda = identity). The best of all searches is kept.
+    """
+    diagonal = np.isfinite(lower) & (lower == 0.0)
+    stuck = diagonal & (x <= BOUNDARY)
+    if not stuck.any():
+        return []
+    factor = deviance.factor(x)
+    row_length = np.sqrt(np.sum(factor**2, axis=1))
+    moved = x.copy()
+    positions = np.flatnonzero(stuck)
+    # the k-th diagonal parameter belongs to Lambda's row of the k-th diagonal entry
+    diagonal_rows = {p: r for r, p in enumerate(np.flatnonzero(diagonal))}
+    for position in positions:
+        moved[position] = max(row_length[diagonal_rows[position]], 0.1)
+    identity = np.zeros_like(x)
+    identity[diagonal] = 1.0
+    return [moved, identity]
+
+
 def minimise_deviance(
     deviance: ProfiledDeviance, *, tolerance: float, max_iterations: int
 ) -> tuple[np.ndarray, Evaluation, FitConvergence]:
@@ -209,14 +237,25 @@ def minimise_deviance(
         evaluation = counter(x)
         return evaluation.value * scale, _gradient(evaluation) * scale
 
-    search = optimize.minimize(
-        value_and_gradient,
-        deviance.start(),
-        jac=True,
-        method="L-BFGS-B",
-        bounds=bounds,
-        options={"maxiter": max_iterations, "ftol": 1e-13, "gtol": 1e-9, "maxcor": 20},
-    )
+    def search_from(start: np.ndarray) -> optimize.OptimizeResult:
+        return optimize.minimize(
+            value_and_gradient,
+            start,
+            jac=True,
+            method="L-BFGS-B",
+            bounds=bounds,
+            options={"maxiter": max_iterations, "ftol": 1e-13, "gtol": 1e-9, "maxcor": 20},
+        )
+
+    search = search_from(deviance.start())
+    for start in _escape_starts(deviance, search.x, lower):
+        try:
+            other = search_from(start)
+        except OptimisationFailed:
+            continue
+        if other.fun < search.fun - _ROUNDING * max(1.0, abs(search.fun)):
+            logger.debug("boundary escape: deviance %.6g -> %.6g", search.fun, other.fun)
+            search = other
     logger.debug("L-BFGS-B: %d iterations, %d evaluations", search.nit, counter.count)
     x, evaluation, decrement, steps = _newton_polish(
         counter, search.x, lower, upper, tolerance * deviance.n

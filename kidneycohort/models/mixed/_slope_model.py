@@ -26,7 +26,11 @@ logger = logging.getLogger(__name__)
 
 
 class SlopeModel:
-    r"""Linear mixed model of eGFR over time by group (statsmodels ``MixedLM``, REML).
+    r"""Linear mixed model of eGFR over time by group (REML by default).
+
+    Fitted by the package's exact per-patient-block engine
+    (:func:`~kidneycohort.models.mixed.fit_mixed_model`; ``engine="statsmodels"`` keeps
+    statsmodels ``MixedLM`` for cross-checks).
 
     With ``knot_years`` :math:`k`, time enters as a linear spline,
     :math:`t_1 = \min(t, k)` and :math:`t_2 = \max(t - k, 0)`, and for patient
@@ -61,8 +65,9 @@ class SlopeModel:
 
     Attributes
     ----------
-    result_ : statsmodels MixedLMResults
-        The accepted fit.
+    result_ : statsmodels MixedLMResults or None
+        The accepted statsmodels fit (``engine="statsmodels"`` only; ``None`` with the
+        exact engine, whose fit is ``fit_.exact``).
     random_effects_structure_ : str
         Structure of the accepted fit (``unstructured`` unless a fallback was needed).
     fit_messages_ : list of str

@@ -23,7 +23,11 @@ from kidneycohort.pipeline.steps._derive import (
     add_kfre,
 )
 from kidneycohort.pipeline.steps._facts import primary_equation, study_equations
-from kidneycohort.pipeline.steps._models import add_slope_model, add_survival
+from kidneycohort.pipeline.steps._models import (
+    add_dropout_analysis,
+    add_slope_model,
+    add_survival,
+)
 from kidneycohort.pipeline.steps._outputs import add_figures, add_report, add_tables
 from kidneycohort.pipeline.steps._prepare import add_egfr, add_harmonize
 
@@ -40,6 +44,7 @@ _STAGES = (
     add_adam,
     add_survival,
     add_slope_model,
+    add_dropout_analysis,
     add_tables,
     add_figures,
     add_report,

@@ -1,4 +1,5 @@
-"""Model steps: Kaplan–Meier, Aalen–Johansen and Cox per endpoint; the eGFR slope model."""
+"""Model steps: Kaplan–Meier, Aalen–Johansen and Cox per endpoint; the eGFR slope model;
+the slope analysis under informative dropout."""
 
 from __future__ import annotations
 
@@ -10,7 +11,7 @@ from kidneycohort.pipeline.registry import StepContext, StepRegistry
 from kidneycohort.pipeline.steps._facts import primary_equation
 from kidneycohort.schemas import MODEL_SLOPES
 
-__all__ = ["add_slope_model", "add_survival"]
+__all__ = ["add_dropout_analysis", "add_slope_model", "add_survival"]
 
 
 def add_survival(registry: StepRegistry) -> None:
@@ -129,4 +130,58 @@ def add_slope_model(registry: StepRegistry) -> None:
             if model.engine_ == "exact"
             else pl.DataFrame(schema=MODEL_SLOPES),
             "slope_model_fit": model,
+        }
+
+
+def add_dropout_analysis(registry: StepRegistry) -> None:
+    """Step ``dropout_analysis``: the slope analysis under informative dropout."""
+    from kidneycohort.models.joint import DropoutAnalysisRule, dropout_analysis
+
+    @registry.register(
+        "dropout_analysis",
+        needs=["egfr", "cohort", "endpoints"],
+        makes=[
+            "models/dropout_slopes",
+            "models/dropout_sensitivity",
+            "models/dropout_methods",
+            "tables/dropout_analysis",
+        ],
+        section="dropout_analysis",
+        options=DropoutAnalysisRule,
+        description="Joint model of eGFR slope and dropout beside the mixed model alone; "
+        "delta-adjusted tipping point; eGFR set to a stated value at kidney failure.",
+    )
+    def dropout_analysis_step(ctx: StepContext) -> dict[str, Any]:
+        """The joint model and the sensitivity analyses (kidneycohort.models.joint)."""
+        from kidneycohort.disclosure import small_count_text
+        from kidneycohort.tables import TableRule, dropout_table
+
+        rule = ctx.options
+        assert isinstance(rule, DropoutAnalysisRule)
+        update: dict[str, Any] = {}
+        if rule.equation is None:
+            update["equation"] = primary_equation(ctx.sections, ctx.tables)
+        slope_rule = ctx.sections.get("slope_model")
+        if "knot_years" not in rule.model_fields_set and slope_rule is not None:
+            # the same slopes as the slope model unless the section says otherwise
+            update["knot_years"] = getattr(slope_rule, "knot_years", None)
+        rule = rule.model_copy(update=update)
+        tables_rule = ctx.sections.get("tables")
+        table_rule = tables_rule if isinstance(tables_rule, TableRule) else TableRule()
+        threshold = table_rule.small_cell_threshold
+        result = dropout_analysis(
+            ctx.tables["egfr"],
+            ctx.tables["cohort"],
+            ctx.tables["endpoints"],
+            rule=rule,
+            count_text=lambda n: small_count_text(n, threshold),
+        )
+        methods = pl.DataFrame({"paragraph": list(result.methods)}, schema={"paragraph": pl.String})
+        return {
+            "models/dropout_slopes": result.slopes,
+            "models/dropout_sensitivity": result.sensitivity,
+            "models/dropout_methods": methods,
+            "tables/dropout_analysis": dropout_table(
+                result.slopes, result.sensitivity, rule=table_rule
+            ),
         }

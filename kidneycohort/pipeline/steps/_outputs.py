@@ -81,7 +81,7 @@ def _shared_tables(ctx: StepContext, disclosure: Any, *, cohort_tables: bool) ->
     out["tables/competing_risks"] = (
         tb.competing_risks_table(hazards, ctx.tables.get("models/competing_tests"), rule=rule)
         if hazards is not None
-        else pl.DataFrame(schema={"endpoint": pl.String, "term": pl.String})
+        else None  # no competing-risks analysis in this run: no table (not an empty one)
     )
     if cohort_tables:
         out["tables/kfre_summary"] = _kfre_summary(ctx, survival.group_column, disclosure)

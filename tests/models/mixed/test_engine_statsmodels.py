@@ -84,3 +84,54 @@ def test_predicted_random_effects_match(paired_fits) -> None:
     np.testing.assert_allclose(
         blups.select([f"{n}_se" for n in ours.random_names]).to_numpy(), spread, rtol=1e-5
     )
+
+
+def test_a_search_that_reaches_a_zero_diagonal_restarts_and_finds_the_inner_optimum() -> None:
+    """statsmodels MixedLM (ML) as reference. On this cohort (a simulated joint cohort
+    with eGFR 10 added at each kidney failure) a single search from the moment start
+    stopped at a correlation of +1 with a log-likelihood 33 units below the optimum: the
+    deviance depends on a diagonal entry of Lambda only through its square, so its
+    gradient there is zero and the search cannot leave. The engine restarts away from
+    the bound and keeps the best search."""
+    import warnings
+
+    import polars as pl
+    from statsmodels.regression.mixed_linear_model import MixedLM
+
+    from kidneycohort.models.joint import simulate_joint_cohort
+    from kidneycohort.models.mixed import fit_mixed_model, patient_blocks
+
+    egfr, patients, endpoints = simulate_joint_cohort(300, seed=21)
+    failures = endpoints.filter(pl.col("endpoint") == "kidney_failure", pl.col("event") == 1)
+    added = failures.select(
+        "patient_id", pl.col("years").alias("years_from_index"), pl.lit(10.0).alias("egfr")
+    )
+    rows = (
+        pl.concat([egfr.drop("equation"), added])
+        .join(patients, on="patient_id")
+        .sort("patient_id", "years_from_index")
+    )
+    years = rows["years_from_index"].to_numpy()
+    active = (rows["group"] == "active").to_numpy().astype(float)
+    design = np.column_stack([np.ones_like(years), years])
+    fixed = np.hstack([design * (1 - active)[:, None], design * active[:, None]])
+    reference = MixedLM(
+        rows["egfr"].to_numpy(), fixed, groups=rows["patient_id"].to_numpy(), exog_re=design
+    ).fit(reml=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # an inner optimum: no boundary warning either
+        ours = fit_mixed_model(
+            patient_blocks(
+                rows["patient_id"].to_numpy(),
+                rows["egfr"].to_numpy(),
+                fixed,
+                design,
+                fixed_names=["p_int", "p_slope", "a_int", "a_slope"],
+                random_names=["intercept", "slope"],
+            ),
+            method="ml",
+            fallback=False,
+        )
+    assert ours.convergence.converged and not ours.convergence.boundary
+    assert ours.log_likelihood == pytest.approx(reference.llf, abs=1e-4)
+    np.testing.assert_allclose(ours.fixed_effects, reference.fe_params, rtol=1e-5)
