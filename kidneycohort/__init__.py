@@ -41,6 +41,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort import cautions as cautions
     from kidneycohort import cli as cli
     from kidneycohort import data_contract as data_contract
+    from kidneycohort import design as design
     from kidneycohort import disclosure as disclosure
     from kidneycohort import egfr as egfr
     from kidneycohort import endpoints as endpoints
@@ -83,6 +84,10 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.baseline import BaselineRule as BaselineRule
     from kidneycohort.baseline import egfr_baseline as egfr_baseline
     from kidneycohort.baseline import uacr_baseline as uacr_baseline
+    from kidneycohort.design import DesignConfig as DesignConfig
+    from kidneycohort.design import DesignResult as DesignResult
+    from kidneycohort.design import load_design as load_design
+    from kidneycohort.design import simulate_power as simulate_power
     from kidneycohort.egfr import AgeBand as AgeBand
     from kidneycohort.egfr import EgfrRule as EgfrRule
     from kidneycohort.egfr import compute_egfr as compute_egfr
@@ -372,6 +377,7 @@ _PUBLIC: dict[str, str] = _by_module(
             "file_for is_written markdown_table output_records package_versions read_manifest "
             "sha256_of write_manifest write_table write_workbook table_footnotes write_sheets"
         ),
+        "kidneycohort.design": "DesignConfig DesignResult load_design simulate_power",
         "kidneycohort.provenance": (
             "Constant Publication constants_table get_constant get_publication "
             "read_code_location status_counts"
@@ -386,6 +392,7 @@ _SUBMODULES = (
     "cautions",
     "cli",
     "data_contract",
+    "design",
     "disclosure",
     "value_filter",
     "egfr",

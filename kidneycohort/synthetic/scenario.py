@@ -91,17 +91,20 @@ class Arm(_Strict):
     """One group: a trial arm (randomised) or an exposure level (from diabetes status).
 
     ``acute_dip`` (mL/min/1.73 m2) is the mean early haemodynamic fall in true GFR,
-    reached linearly over ``dip_days`` and then held; ``slope_difference`` (mL/min/1.73
-    m2/yr) is added to the chronic slope (positive = slower decline);
-    ``uacr_log_change`` is the change in log UACR reached over the same ramp.
+    reached linearly over ``dip_days`` and then held (a negative value is an early
+    rise; each patient's draw keeps the sign of the mean); ``slope_difference``
+    (mL/min/1.73 m2/yr) is added to the chronic slope (positive = slower decline), with
+    between-patient standard deviation ``slope_difference_sd``; ``uacr_log_change`` is
+    the change in log UACR reached over the same ramp.
     """
 
     label: str
     fraction: float = Field(0.5, gt=0)
-    acute_dip: float = Field(0.0, ge=0)
+    acute_dip: float = 0.0
     acute_dip_sd: float = Field(0.0, ge=0)
     dip_days: float = Field(28.0, gt=0)
     slope_difference: float = 0.0
+    slope_difference_sd: float = Field(0.0, ge=0)
     uacr_log_change: float = 0.0
 
 

@@ -7,7 +7,8 @@ Every patient has a piecewise-quadratic true GFR path in years ``t`` from index:
     g_i(t) = \\max\\{f,\\; b_{0i} + b_{1i} t + a_i t_+^2 - D_i \\min(t_+ / r_i, 1)\\}
 
 with intercept :math:`b_{0i}`, chronic slope :math:`b_{1i}`, acceleration
-:math:`a_i \\le 0`, acute dip :math:`D_i \\ge 0` reached over :math:`r_i` years, and
+:math:`a_i \\le 0`, acute dip :math:`D_i` (a fall; negative for an early rise) reached
+over :math:`r_i` years, and
 the physiological floor :math:`f`. Intercept and slope are bivariate normal given the
 baseline covariates; the intercept is truncated to the scenario's inclusion range and
 the slope is drawn from its conditional normal given the intercept residual, so the
@@ -245,8 +246,13 @@ def draw_trajectories(rng: np.random.Generator, s: Scenario, pop: Population) ->
     accel = np.minimum(tr.acceleration_mean + tr.acceleration_sd * rng.standard_normal(n), 0.0)
     dip_mean = np.array([a.acute_dip for a in arms])[pop.arm]
     dip_sd = np.array([a.acute_dip_sd for a in arms])[pop.arm]
-    dip = np.maximum(dip_mean + dip_sd * rng.standard_normal(n), 0.0)
+    dip_draw = dip_mean + dip_sd * rng.standard_normal(n)
+    # a dip stays a fall and a rise stays a rise: the draw keeps the sign of its arm's mean
+    dip = np.where(dip_mean >= 0, np.maximum(dip_draw, 0.0), np.minimum(dip_draw, 0.0))
     dip_years = np.array([a.dip_days for a in arms])[pop.arm] / 365.25
+    effect_sd = np.array([a.slope_difference_sd for a in arms])[pop.arm]
+    if np.any(effect_sd > 0):  # drawn only when asked, so other scenarios keep their draws
+        slope = slope + effect_sd * rng.standard_normal(n)
     return Trajectories(
         intercept=intercept,
         chronic_slope=slope,
