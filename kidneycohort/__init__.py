@@ -115,6 +115,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.harmonize import HarmonizeRule as HarmonizeRule
     from kidneycohort.harmonize import PlausibleRange as PlausibleRange
     from kidneycohort.harmonize import harmonize_tables as harmonize_tables
+    from kidneycohort.harmonize import unusable_tables as unusable_tables
     from kidneycohort.io import FileSource as FileSource
     from kidneycohort.io import infer_date_format as infer_date_format
     from kidneycohort.io import loinc_table as loinc_table
@@ -161,6 +162,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.models import rate_difference as rate_difference
     from kidneycohort.models import rate_ratio as rate_ratio
     from kidneycohort.pipeline import DataSection as DataSection
+    from kidneycohort.pipeline import ExecutionSection as ExecutionSection
     from kidneycohort.pipeline import OutputSection as OutputSection
     from kidneycohort.pipeline import ProgressObserver as ProgressObserver
     from kidneycohort.pipeline import Recipe as Recipe
@@ -299,7 +301,13 @@ _PUBLIC: dict[str, str] = {
     "SdtmSource": "kidneycohort.io.sdtm",
     **{
         name: "kidneycohort.harmonize"
-        for name in ("HarmonizeRule", "HarmonizeResult", "PlausibleRange", "harmonize_tables")
+        for name in (
+            "HarmonizeRule",
+            "HarmonizeResult",
+            "PlausibleRange",
+            "harmonize_tables",
+            "unusable_tables",
+        )
     },
     **{name: "kidneycohort.egfr" for name in ("compute_egfr", "egfr_wide", "EgfrRule", "AgeBand")},
     # per-patient derivations
@@ -461,6 +469,7 @@ _PUBLIC: dict[str, str] = {
             "StepRegistry",
             "StudySection",
             "DataSection",
+            "ExecutionSection",
             "OutputSection",
             "Recipe",
             "Step",

@@ -23,6 +23,7 @@ from kidneycohort.pipeline.config._sections import (
     FIXED_SECTIONS,
     STUDY_FACTS,
     DataSection,
+    ExecutionSection,
     OutputSection,
     Recipe,
     StudyConfig,
@@ -77,6 +78,8 @@ def load_config(
     study: StudySection = validate_section(StudySection, data["study"], "study")  # type: ignore[assignment]
     data_section: DataSection = validate_section(DataSection, data["data"], "data")  # type: ignore[assignment]
     output: OutputSection = validate_section(OutputSection, data.get("output"), "output")  # type: ignore[assignment]
+    execution = validate_section(ExecutionSection, data.get("execution"), "execution")
+    assert isinstance(execution, ExecutionSection)
 
     recipe_path = find_recipe(study.recipe, config_dir)
     recipe = load_recipe(recipe_path)
@@ -106,6 +109,7 @@ def load_config(
         config_path=config_path,
         recipe_path=recipe_path,
         overrides=list(overrides),
+        execution=execution,
     )
     for step in steps:
         if step.check is not None:

@@ -37,6 +37,7 @@ def add_survival(registry: StepRegistry) -> None:
         section="survival",
         options=SurvivalRule,
         description="Kaplan–Meier curves per endpoint and group (kidneycohort.models.survival).",
+        cohort_level=True,
     )
     def kaplan_meier_step(ctx: StepContext) -> dict[str, Any]:
         """Kaplan–Meier curves and numbers at risk per endpoint and group."""
@@ -49,6 +50,7 @@ def add_survival(registry: StepRegistry) -> None:
         section="survival",
         options=SurvivalRule,
         description="Aalen–Johansen cumulative incidence with death competing, per endpoint.",
+        cohort_level=True,
     )
     def cumulative_incidence_step(ctx: StepContext) -> dict[str, Any]:
         """Aalen–Johansen cumulative incidence per endpoint and group."""
@@ -61,6 +63,7 @@ def add_survival(registry: StepRegistry) -> None:
         section="survival",
         options=SurvivalRule,
         description="Cox hazard ratios per endpoint with the proportional-hazards test.",
+        cohort_level=True,
     )
     def cox_step(ctx: StepContext) -> dict[str, Any]:
         """Cox hazard ratios (group, covariates, strata; subgroups) per endpoint."""
@@ -79,6 +82,7 @@ def add_survival(registry: StepRegistry) -> None:
         options=SurvivalRule,
         description="Fine–Gray and cause-specific hazard ratios side by side, with Gray's "
         "test, for endpoints with death competing (survival.competing_risks).",
+        cohort_level=True,
     )
     def competing_risks_step(ctx: StepContext) -> dict[str, Any]:
         """Competing-risks regression of the endpoints death competes with."""
@@ -109,6 +113,7 @@ def add_slope_model(registry: StepRegistry) -> None:
         section="slope_model",
         options=SlopeModelRule,
         description="Linear mixed model of eGFR (one slope or two slopes with a knot) by group.",
+        cohort_level=True,
     )
     def slope_model_step(ctx: StepContext) -> dict[str, Any]:
         """Mixed-model mean trajectories and slope contrasts (kidneycohort.models.mixed)."""
