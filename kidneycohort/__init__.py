@@ -210,6 +210,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.report import render_report as render_report
     from kidneycohort.report import write_report as write_report
     from kidneycohort.run_folder import AccountingRecord as AccountingRecord
+    from kidneycohort.run_folder import ExecutionRecord as ExecutionRecord
     from kidneycohort.run_folder import InputRecord as InputRecord
     from kidneycohort.run_folder import Manifest as Manifest
     from kidneycohort.run_folder import OutputRecord as OutputRecord
@@ -492,6 +493,7 @@ _PUBLIC: dict[str, str] = {
             "InputRecord",
             "OutputRecord",
             "ReasonCount",
+            "ExecutionRecord",
             "StepRecord",
             "StudyFacts",
             "canonical_order",

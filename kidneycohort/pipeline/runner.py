@@ -9,6 +9,7 @@ so it can never be mistaken for a finished run.
 from __future__ import annotations
 
 import errno
+import functools
 import logging
 import os
 import re
@@ -30,12 +31,13 @@ from kidneycohort.errors import ConfigError, KidneyCohortError
 from kidneycohort.pipeline import placement
 from kidneycohort.pipeline._peak_memory import StepPeakMemory
 from kidneycohort.pipeline.config import StudyConfig
-from kidneycohort.pipeline.registry import Step, StepContext
+from kidneycohort.pipeline.registry import Step, StepContext, StepFunction
 from kidneycohort.pipeline.sources import input_records, read_sources
 from kidneycohort.pipeline.standard_sources import write_results_after_run
 from kidneycohort.run_folder import (
     FILES,
     AccountingRecord,
+    ExecutionRecord,
     Manifest,
     ReasonCount,
     RunFile,
@@ -150,6 +152,7 @@ class _RunState:
     merged: list[dict[str, Any]] = field(default_factory=list)
     caught: list[warnings.WarningMessage] = field(default_factory=list)
     run_id: str = field(default_factory=lambda: uuid.uuid4().hex)
+    execution: ExecutionRecord = field(default_factory=ExecutionRecord)
 
     def manifest(self) -> Manifest:
         config = self.config
@@ -168,6 +171,7 @@ class _RunState:
             steps=list(self.steps),
             warnings=[_format_warning(w) for w in self.caught],
             study=_study_facts(config),
+            execution=self.execution,
         )
 
 
@@ -385,7 +389,8 @@ def _execute(
             len(config.steps),
             run_dir,
         )
-        progress.start(["read"] + [s.name for s in config.steps])
+        spark = config.execution.engine == "spark"
+        progress.start(["read", *(["spark_partitions"] if spark else []), *_names(config.steps)])
         progress.step_started("read")
         started = time.perf_counter()
         with StepPeakMemory() as memory:
@@ -400,6 +405,7 @@ def _execute(
         )
         logger.info("step read: %s rows of labs in %.2f s", rows, seconds)
         progress.step_finished("read", seconds, rows)
+        partitioned = _spark_partitions(state, run_dir, progress) if spark else None
         last_use = _last_use(config.steps)
         for index, step in enumerate(config.steps):
             folder = None
@@ -407,7 +413,7 @@ def _execute(
                 _finish_tables(run_dir, state.tables, config)
                 state.caught = list(caught)
                 folder = RunFolder(run_dir, manifest=state.manifest())
-            _run_step(step, state, run_dir, progress, folder)
+            _run_step(step, state, run_dir, progress, folder, partitioned)
             _release(state.tables, last_use, index, config)
         _finish_tables(run_dir, state.tables, config)
         state.caught = list(caught)
@@ -492,18 +498,44 @@ def _with_group(name: str, table: Any, tables: Mapping[str, Any]) -> Any:
     return table.join(groups, on="patient_id", how="left", maintain_order="left")
 
 
+def _names(steps: list[Step]) -> list[str]:
+    return [s.name for s in steps]
+
+
+def _spark_partitions(state: _RunState, run_dir: Path, progress: ProgressObserver) -> Any:
+    """The spark engine's pass over partitions of patients (pyspark imported here only)."""
+    from kidneycohort.pipeline.spark._engine import run_partitions
+
+    progress.step_started("spark_partitions")
+    started = time.perf_counter()
+    with StepPeakMemory() as memory:
+        partitioned = run_partitions(state.config, state.tables, run_dir)
+    seconds = time.perf_counter() - started
+    state.execution = partitioned.record
+    state.steps.append(
+        StepRecord(name="spark_partitions", seconds=round(seconds, 3), peak_rss_mib=memory.peak_mib)
+    )
+    logger.info("step spark_partitions: %.2f s", seconds)
+    progress.step_finished("spark_partitions", seconds, None)
+    return partitioned
+
+
 def _run_step(
     step: Step,
     state: _RunState,
     run_dir: Path,
     progress: ProgressObserver,
     folder: RunFolder | None,
+    partitioned: Any = None,
 ) -> None:
     progress.step_started(step.name)
     started = time.perf_counter()
+    on_partitions = partitioned is not None and partitioned.covers(step)
+    run: StepFunction = functools.partial(partitioned.run, step) if on_partitions else step.run
     with StepPeakMemory() as memory:
-        made = _call_step(step, state, run_dir, folder)
+        made = _call_step(step, state, run_dir, folder, run)
     seconds = time.perf_counter() - started
+    executor = partitioned.executor_figures(step) if on_partitions else (None, None)
     rows_out = _rows(made[step.makes[0]]) if step.makes else None
     logger.info(
         "step %s: %s rows in %.2f s, peak %s MiB", step.name, rows_out, seconds, memory.peak_mib
@@ -515,12 +547,14 @@ def _run_step(
             seconds=round(seconds, 3),
             rows_out=rows_out,
             peak_rss_mib=memory.peak_mib,
+            executor_seconds=executor[0],
+            executor_peak_rss_mib=executor[1],
         )
     )
 
 
 def _call_step(
-    step: Step, state: _RunState, run_dir: Path, folder: RunFolder | None
+    step: Step, state: _RunState, run_dir: Path, folder: RunFolder | None, run: StepFunction
 ) -> dict[str, Any]:
     """Run one step, check what it made against its declaration, write its tables."""
     config, tables = state.config, state.tables
@@ -536,7 +570,7 @@ def _call_step(
     )
     logger.debug("step %s: starting with %s", step.name, sorted(given))
     try:
-        made = dict(step.run(context))
+        made = dict(run(context))
     except KidneyCohortError as exc:
         # keep the user's one-line message, but say which step found the problem
         exc.args = (f"step '{step.name}': {exc}", *exc.args[1:])

@@ -23,6 +23,7 @@ from kidneycohort.run_folder._layout import (
 from kidneycohort.run_folder._manifest import (
     RECORDED_PACKAGES,
     AccountingRecord,
+    ExecutionRecord,
     InputRecord,
     Manifest,
     OutputRecord,
@@ -51,6 +52,7 @@ __all__ = [
     "RECORDED_PACKAGES",
     "XLSX_OPTIONS",
     "AccountingRecord",
+    "ExecutionRecord",
     "InputRecord",
     "Manifest",
     "OutputRecord",

@@ -31,6 +31,7 @@ from kidneycohort.pipeline.config._sections import (
 )
 from kidneycohort.pipeline.config._yaml import apply_overrides, deep_merge, read_yaml
 from kidneycohort.pipeline.registry import StepRegistry, default_registry
+from kidneycohort.pipeline.spark import partition_plan
 
 __all__ = ["load_config"]
 
@@ -99,6 +100,9 @@ def load_config(
         output.dir = absolute(config_dir / "runs" / stem)
 
     check_chain(steps, source_tables(data_section), f"recipe '{recipe.name}'")
+    if execution.engine == "spark":
+        # a step that cannot run on partitions of patients is refused before any data
+        partition_plan(steps, source_tables(data_section))
     resolved = StudyConfig(
         study=study,
         data=data_section,
