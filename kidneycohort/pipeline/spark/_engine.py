@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING, Any
 import polars as pl
 
 from kidneycohort import errors
+from kidneycohort._frames import as_float
 from kidneycohort.errors import ConfigError
 from kidneycohort.pipeline.config import ExecutionSection, StudyConfig
 from kidneycohort.pipeline.registry import Step, StepContext
@@ -233,7 +234,8 @@ class PartitionedRun:
         rows = self._rows(step)
         if rows.height == 0:
             return None, None
-        return round(float(rows["seconds"].sum()), 3), float(rows["peak_rss_mib"].max())
+        seconds = as_float(rows["seconds"].sum(), "task seconds")
+        return round(seconds, 3), as_float(rows["peak_rss_mib"].max(), "task peak memory")
 
     def _raise_failure(self, rows: pl.DataFrame, step: Step) -> None:
         failed = rows.filter(pl.col("error").is_not_null())

@@ -166,7 +166,11 @@ def run_partition(job: PartitionJob, batches: Iterator[pa.RecordBatch]) -> Itera
         return
     context = TaskContext.get()
     partition = context.partitionId() if context is not None else 0
-    patients = int(packed[KEY].drop_nulls().n_unique())
+    # patients: ids in the patients table (lab rows of unknown ids are counted apart)
+    people = (
+        packed.filter(pl.col("patients").list.len() > 0) if "patients" in job.inputs else packed
+    )
+    patients = int(people[KEY].drop_nulls().n_unique())
     tables = unpack(packed, job.inputs)
     del packed, collected
     rows = []
