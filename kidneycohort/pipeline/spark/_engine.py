@@ -16,6 +16,7 @@ import functools
 import json
 import logging
 import os
+import re
 import shutil
 import sys
 from collections.abc import Mapping
@@ -30,6 +31,7 @@ from kidneycohort.errors import ConfigError
 from kidneycohort.pipeline.config import ExecutionSection, StudyConfig
 from kidneycohort.pipeline.registry import Step, StepContext
 from kidneycohort.pipeline.sources import SOURCE_TABLES
+from kidneycohort.pipeline.spark._datasets import DatasetSource, dataset_sources, spark_rows
 from kidneycohort.pipeline.spark._partition import (
     KEY,
     ROW,
@@ -92,27 +94,44 @@ def partition_expression(key: Column) -> Column:
 
 
 def _stage(tables: Mapping[str, Any], inputs: tuple[str, ...], folder: Path) -> dict[str, Path]:
-    """Write each source table with its row positions for Spark to read."""
+    """Write each source table the driver read, with its row positions, for Spark."""
     folder.mkdir(parents=True, exist_ok=True)
     staged = {}
     for name in inputs:
-        path = folder / f"{name}.parquet"
         table = tables[name]
+        if not isinstance(table, pl.DataFrame):
+            continue
+        path = folder / f"{name}.parquet"
         table.with_row_index(ROW).with_columns(pl.col(ROW).cast(pl.Int64)).write_parquet(path)
         staged[name] = path
     return staged
 
 
-def _packed(spark: SparkSession, staged: Mapping[str, Path]) -> DataFrame:
+def _datasets(config: StudyConfig, tables: Mapping[str, Any]) -> dict[str, list[DatasetSource]]:
+    """The source tables Spark reads from Parquet folders (left unread by the driver)."""
+    out = {}
+    for table, (name, kind) in SOURCE_TABLES.items():
+        if isinstance(tables.get(name), pl.LazyFrame):
+            out[name] = dataset_sources(config.data.specs(table), kind)
+    return out
+
+
+def _packed(
+    spark: SparkSession, staged: Mapping[str, Path], datasets: Mapping[str, list[DatasetSource]]
+) -> DataFrame:
     """One row per patient key: that patient's rows of every source table."""
     from pyspark.sql import functions as F
 
+    parts: list[tuple[str, DataFrame, str]] = [
+        (name, spark.read.parquet(str(path)), "patient_id") for name, path in staged.items()
+    ]
+    for name, sources in datasets.items():
+        parts += [(f"{name}#{i}", spark_rows(spark, s), s.key) for i, s in enumerate(sources)]
     packed: DataFrame | None = None
-    for name, path in staged.items():
-        frame = spark.read.parquet(str(path))
+    for column, frame, key in parts:
         rows = F.struct(*[F.col(f"`{c}`") for c in frame.columns])
-        grouped = frame.groupBy(F.col("patient_id").cast("string").alias(KEY)).agg(
-            F.collect_list(rows).alias(name)
+        grouped = frame.groupBy(F.col(f"`{key}`").cast("string").alias(KEY)).agg(
+            F.collect_list(rows).alias(column)
         )
         packed = grouped if packed is None else packed.join(grouped, on=KEY, how="full_outer")
     assert packed is not None
@@ -133,6 +152,7 @@ def run_partitions(config: StudyConfig, tables: Mapping[str, Any], run_dir: Path
     inputs = tuple(name for name, _ in SOURCE_TABLES.values() if name in tables)
     plan = partition_plan(config.steps, inputs)
     execution = config.execution
+    datasets = _datasets(config, tables)
     spark = spark_session(execution)
     # every patient's rows stay in one of exactly `partitions` partitions
     spark.conf.set("spark.sql.adaptive.coalescePartitions.enabled", "false")
@@ -141,7 +161,8 @@ def run_partitions(config: StudyConfig, tables: Mapping[str, Any], run_dir: Path
     job = PartitionJob(
         steps=plan.steps,
         patient_tables=plan.patient_tables,
-        inputs={name: dict(tables[name].schema) for name in inputs},
+        inputs={name: dict(tables[name].collect_schema()) for name in inputs},
+        datasets=datasets,
         sections={"study": config.study, **config.sections},
         seed=config.study.seed,
         run_dir=str(run_dir),
@@ -149,7 +170,7 @@ def run_partitions(config: StudyConfig, tables: Mapping[str, Any], run_dir: Path
     staging = run_dir / _STAGING
     try:
         staged = _stage(tables, inputs, staging)
-        packed = _packed(spark, staged)
+        packed = _packed(spark, staged, datasets)
         from pyspark.sql import functions as F
 
         spread = packed.repartition(execution.partitions, partition_expression(F.col(KEY)))
@@ -157,9 +178,9 @@ def run_partitions(config: StudyConfig, tables: Mapping[str, Any], run_dir: Path
         try:
             result = pl.from_arrow(summary.toArrow())
         except Exception as exc:
-            first = (str(exc).strip() or type(exc).__name__).splitlines()[0]
+            logger.debug("partition task failure: %s", exc)
             raise RuntimeError(
-                f"spark engine: a partition task failed outside a step ({first})"
+                f"spark engine: a partition task failed outside a step ({_cause(exc)})"
             ) from None
     finally:
         shutil.rmtree(staging, ignore_errors=True)
@@ -180,6 +201,13 @@ def run_partitions(config: StudyConfig, tables: Mapping[str, Any], run_dir: Path
         else 0,
     )
     return PartitionedRun(plan, result, run_dir, record)
+
+
+def _cause(exc: Exception) -> str:
+    """The Python error inside a Spark task failure (its last ``...Error: ...`` line)."""
+    lines = [line.strip() for line in str(exc).splitlines()]
+    found = [line for line in lines if re.match(r"^[\w.]+(Error|Exception): ", line)]
+    return found[-1] if found else (lines[0] if lines and lines[0] else type(exc).__name__)
 
 
 def _summed(records: list[dict[str, Any]], keys: list[str]) -> list[dict[str, Any]]:

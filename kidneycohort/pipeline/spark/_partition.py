@@ -27,6 +27,12 @@ import pyarrow as pa
 from pydantic import BaseModel
 
 from kidneycohort.pipeline.registry import Step, StepContext
+from kidneycohort.pipeline.spark._datasets import (
+    DatasetSource,
+    concat_sources,
+    normalised,
+    raw_schema,
+)
 
 __all__ = [
     "KEY",
@@ -72,6 +78,9 @@ class PartitionJob:
         Step name -> its per-patient tables (written per partition).
     inputs : dict
         Source table -> its polars schema as read (restored after Spark).
+    datasets : dict
+        Source table read by Spark from Parquet folders -> its folders (the packed
+        column of folder ``i`` is ``<table>#<i>``).
     sections : dict
         The validated config sections, with ``study``.
     seed : int
@@ -83,6 +92,7 @@ class PartitionJob:
     steps: tuple[Step, ...]
     patient_tables: dict[str, tuple[str, ...]]
     inputs: dict[str, dict[str, pl.DataType]]
+    datasets: dict[str, list[DatasetSource]]
     sections: dict[str, BaseModel]
     seed: int
     run_dir: str
@@ -93,19 +103,25 @@ def piece_path(run_dir: str | Path, table: str, partition: int) -> Path:
     return Path(run_dir) / "patient_partitions" / table / f"part-{partition:05d}.parquet"
 
 
-def unpack(packed: pl.DataFrame, inputs: Mapping[str, Mapping[str, pl.DataType]]) -> dict[str, Any]:
+def _rows(packed: pl.DataFrame, column: str, schema: Mapping[str, pl.DataType]) -> pl.DataFrame:
+    rows = packed.select(pl.col(column)).explode(column).filter(pl.col(column).is_not_null())
+    if rows.height == 0:
+        return pl.DataFrame(schema=dict(schema))
+    return rows.unnest(column)
+
+
+def unpack(packed: pl.DataFrame, job: PartitionJob) -> dict[str, Any]:
     """The source tables of a partition from its packed rows, in their order as read."""
     out: dict[str, Any] = {}
-    for name, schema in inputs.items():
-        rows = (
-            packed.select(pl.col(name))
-            .explode(name)
-            .filter(pl.col(name).is_not_null())
-            .unnest(name)
-        )
-        if rows.height == 0:
-            rows = pl.DataFrame(schema={**schema, ROW: pl.Int64})
-        rows = rows.sort(ROW).drop(ROW)
+    for name, schema in job.inputs.items():
+        if name in job.datasets:
+            parts = [
+                normalised(_rows(packed, f"{name}#{i}", raw_schema(source)), source)
+                for i, source in enumerate(job.datasets[name])
+            ]
+            out[name] = concat_sources(parts, schema)
+            continue
+        rows = _rows(packed, name, {**schema, ROW: pl.Int64()}).sort(ROW).drop(ROW)
         out[name] = rows.select(pl.col(c).cast(t) for c, t in schema.items())
     return out
 
@@ -171,7 +187,7 @@ def run_partition(job: PartitionJob, batches: Iterator[pa.RecordBatch]) -> Itera
         packed.filter(pl.col("patients").list.len() > 0) if "patients" in job.inputs else packed
     )
     patients = int(people[KEY].drop_nulls().n_unique())
-    tables = unpack(packed, job.inputs)
+    tables = unpack(packed, job)
     del packed, collected
     rows = []
     for step in job.steps:
