@@ -41,8 +41,9 @@ from pathlib import Path
 from kidneycohort.pipeline.config import load_config
 from kidneycohort.pipeline.demo import demo_config_path
 from kidneycohort.pipeline.runner import run_pipeline
-data, out, engine, master, partitions, memory = sys.argv[1:7]
-overrides = [f"data.{k}.path={(data + '/' + k + '.parquet')}" for k in ("patients", "labs", "events")]
+data, out, engine, master, partitions, memory, inputs = sys.argv[1:8]
+suffix = "" if inputs == "folders" else ".parquet"
+overrides = [f"data.{k}.path={data}/{k}{suffix}" for k in ("patients", "labs", "events")]
 overrides += [f"execution.engine={engine}", f"execution.partitions={partitions}"]
 jvm = None
 started = time.perf_counter()
@@ -89,6 +90,17 @@ def ensure_data(folder: Path, patients: int) -> Path:
     return target
 
 
+def as_folders(data: Path) -> Path:
+    """Each table of ``data`` as a one-file Parquet dataset folder (hard links)."""
+    target = data / "folders"
+    for table in ("patients", "labs", "events"):
+        link = target / table / "part-0.parquet"
+        if not link.exists():
+            link.parent.mkdir(parents=True, exist_ok=True)
+            os.link(data / f"{table}.parquet", link)
+    return target
+
+
 def _value(text: str, key: str) -> float | None:
     if key not in text:
         return None
@@ -107,6 +119,7 @@ def run_once(data: Path, out: Path, engine: str, args: argparse.Namespace) -> di
             args.master,
             str(args.partitions),
             args.spark_memory,
+            args.inputs,
         ],
         cwd=data.parent,
         capture_output=True,
@@ -177,6 +190,13 @@ def main() -> None:
     parser.add_argument("--partitions", type=int, default=8)
     parser.add_argument("--master", default="local[2]")
     parser.add_argument("--spark-memory", default="4g", help="spark.driver.memory (local mode)")
+    parser.add_argument(
+        "--inputs",
+        choices=["folders", "files"],
+        default="folders",
+        help="folders: each table as a Parquet dataset folder (Spark reads it, the driver "
+        "does not); files: single Parquet files (read on the driver, handed to Spark)",
+    )
     parser.add_argument("--data", type=Path, default=Path(tempfile.gettempdir()) / "kc_scale")
     parser.add_argument("--keep", type=Path, help="write the run folders here (default: temp)")
     args = parser.parse_args()
@@ -189,6 +209,8 @@ def main() -> None:
         runs_dir = args.keep or Path(tmp)
         for n in sizes:
             data = ensure_data(args.data, n)
+            if args.inputs == "folders":
+                data = as_folders(data)
             polars_run = run_once(data, runs_dir / f"polars_{n}", "polars", args)
             spark_run = run_once(data, runs_dir / f"spark_{n}", "spark", args)
             report(n, polars_run, spark_run)
