@@ -52,7 +52,7 @@ if engine == "spark":
     from pyspark.sql import SparkSession
     os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
     spark = (SparkSession.builder.master(master).appName("kidneycohort-benchmark")
-             .config("spark.driver.memory", memory).config("spark.ui.enabled", "false")
+             .config("spark.driver.memory", memory)
              .config("spark.ui.showConsoleProgress", "false")
              .config("spark.sql.session.timeZone", "UTC").getOrCreate())
     spark.sparkContext.setLogLevel("ERROR")
@@ -64,6 +64,17 @@ if jvm is not None:
     for line in Path(f"/proc/{jvm}/status").read_text().splitlines():
         if line.startswith("VmHWM:"):
             print(f"JVMPEAK {int(line.split()[1]) / 1024:.0f}")
+    # shuffle volume of the run's Spark stages, from Spark's own monitoring API
+    import urllib.request
+    sc = spark.sparkContext
+    url = f"{sc.uiWebUrl}/api/v1/applications/{sc.applicationId}/stages"
+    try:
+        stages = json.loads(urllib.request.urlopen(url, timeout=30).read())
+    except OSError as exc:
+        print(f"# no Spark monitoring API at {url}: {exc}")
+    else:
+        print(f"SHUFFLEWRITE {sum(s.get('shuffleWriteBytes', 0) for s in stages) / 2**20:.1f}")
+        print(f"INPUTREAD {sum(s.get('inputBytes', 0) for s in stages) / 2**20:.1f}")
 """
 
 
@@ -133,6 +144,8 @@ def run_once(data: Path, out: Path, engine: str, args: argparse.Namespace) -> di
         "wall": _value(done.stdout, "WALL"),
         "spark_start": _value(done.stdout, "SPARKSTART"),
         "jvm_peak": _value(done.stdout, "JVMPEAK"),
+        "shuffle_mib": _value(done.stdout, "SHUFFLEWRITE"),
+        "input_mib": _value(done.stdout, "INPUTREAD"),
         "steps": manifest["steps"],
     }
 
@@ -176,6 +189,10 @@ def report(n: int, polars_run: dict, spark_run: dict) -> None:
         print(f"{name:<22}{''.join(cells)}")
     print(f"{'total (wall)':<22}{polars_run['wall']:>10.1f}{spark_run['wall']:>16.1f}")
     print(f"  of which Spark session start: {spark_run['spark_start']:.1f} s")
+    print(
+        f"Spark read {spark_run['input_mib']} MiB of input and wrote "
+        f"{spark_run['shuffle_mib']} MiB of shuffle"
+    )
     peak = lambda run, key: max((s.get(key) or 0) for s in run["steps"])  # noqa: E731
     print(
         f"peak MiB: polars process {peak(polars_run, 'peak_rss_mib'):.0f}; spark driver "
