@@ -285,12 +285,12 @@ def test_parquet_dataset_folders_read_by_spark_equal_the_polars_run(
     inputs = tmp_path / "inputs"
     write_cohort(demo_scenario_path("trial"), inputs, patients=40, fmt="parquet")
     _as_dataset(pl.read_parquet(inputs / "labs.parquet"), tmp_path / "labs", files=3)
-    _as_dataset(pl.read_parquet(inputs / "events.parquet"), tmp_path / "events", files=1)
+    _as_dataset(pl.read_parquet(inputs / "patients.parquet"), tmp_path / "patients", files=1)
     overrides = [
         f"study.recipe={_recipe_without_pictures(tmp_path, 'trial_endpoints').as_posix()}",
-        f"data.patients.path={(inputs / 'patients.parquet').as_posix()}",
+        f"data.patients.path={(tmp_path / 'patients').as_posix()}",
         f"data.labs.path={(tmp_path / 'labs').as_posix()}",
-        f"data.events.path={(tmp_path / 'events').as_posix()}",
+        f"data.events.path={(inputs / 'events.parquet').as_posix()}",
     ]
     runs = {}
     for engine in ("polars", "spark"):
@@ -307,7 +307,7 @@ def test_parquet_dataset_folders_read_by_spark_equal_the_polars_run(
     # rejected rows name the same source rows: numbered through the files in path order
     rejected = pl.read_csv(runs["spark"].run_dir / "rejected_rows.csv")
     assert rejected.filter(pl.col("table") == "labs")["source_row"].max() <= labs_input.rows
-    # the driver held the patients it read, never the lab rows: Spark read those
+    # the driver held the events it read, never the lab rows: Spark read those
     read = {s.name: s for s in spark_manifest.steps}["read"]
     assert read.rows_out is None
     assert {s.name: s for s in polars_manifest.steps}["read"].rows_out == labs_input.rows

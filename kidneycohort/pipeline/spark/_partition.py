@@ -183,9 +183,9 @@ def run_partition(job: PartitionJob, batches: Iterator[pa.RecordBatch]) -> Itera
     context = TaskContext.get()
     partition = context.partitionId() if context is not None else 0
     # patients: ids in the patients table (lab rows of unknown ids are counted apart)
-    people = (
-        packed.filter(pl.col("patients").list.len() > 0) if "patients" in job.inputs else packed
-    )
+    listed = [c for c in packed.columns if c == "patients" or c.startswith("patients#")]
+    held = pl.any_horizontal(pl.col(c).list.len() > 0 for c in listed)
+    people = packed.filter(held) if listed else packed
     patients = int(people[KEY].drop_nulls().n_unique())
     tables = unpack(packed, job)
     del packed, collected
