@@ -126,6 +126,8 @@ def test_spark_run_equals_polars_run(
     )
     result = run_pipeline(config, out_dir=base / f"spark_{layout}")
     _assert_same_files(expected.run_dir, result.run_dir)
+    # the shared session keeps its own settings (the fixture's 4 shuffle partitions)
+    assert spark_session.conf.get("spark.sql.shuffle.partitions") == "4"
 
     manifest = json.loads((result.run_dir / "manifest.json").read_text(encoding="utf-8"))
     assert manifest["execution"]["engine"] == "spark"

@@ -154,10 +154,15 @@ def run_partitions(config: StudyConfig, tables: Mapping[str, Any], run_dir: Path
     execution = config.execution
     datasets = _datasets(config, tables)
     spark = spark_session(execution)
-    # every patient's rows stay in one of exactly `partitions` partitions
-    spark.conf.set("spark.sql.adaptive.coalescePartitions.enabled", "false")
-    # the grouping and joining shuffles use as many partitions as the patients get
-    spark.conf.set("spark.sql.shuffle.partitions", str(execution.partitions))
+    # every patient's rows stay in one of exactly `partitions` partitions, and the
+    # grouping and joining shuffles use as many; the session's own values come back
+    settings = {
+        "spark.sql.adaptive.coalescePartitions.enabled": "false",
+        "spark.sql.shuffle.partitions": str(execution.partitions),
+    }
+    before = {key: spark.conf.get(key, None) for key in settings}
+    for key, value in settings.items():
+        spark.conf.set(key, value)
     job = PartitionJob(
         steps=plan.steps,
         patient_tables=plan.patient_tables,
@@ -184,6 +189,11 @@ def run_partitions(config: StudyConfig, tables: Mapping[str, Any], run_dir: Path
             ) from None
     finally:
         shutil.rmtree(staging, ignore_errors=True)
+        for key, old in before.items():
+            if old is None:
+                spark.conf.unset(key)
+            else:
+                spark.conf.set(key, old)
     assert isinstance(result, pl.DataFrame)
     record = ExecutionRecord(
         engine="spark",
