@@ -74,7 +74,6 @@ if jvm is not None:
         print(f"# no Spark monitoring API at {url}: {exc}")
     else:
         print(f"SHUFFLEWRITE {sum(s.get('shuffleWriteBytes', 0) for s in stages) / 2**20:.1f}")
-        print(f"INPUTREAD {sum(s.get('inputBytes', 0) for s in stages) / 2**20:.1f}")
 """
 
 
@@ -145,7 +144,6 @@ def run_once(data: Path, out: Path, engine: str, args: argparse.Namespace) -> di
         "spark_start": _value(done.stdout, "SPARKSTART"),
         "jvm_peak": _value(done.stdout, "JVMPEAK"),
         "shuffle_mib": _value(done.stdout, "SHUFFLEWRITE"),
-        "input_mib": _value(done.stdout, "INPUTREAD"),
         "steps": manifest["steps"],
     }
 
@@ -189,10 +187,7 @@ def report(n: int, polars_run: dict, spark_run: dict) -> None:
         print(f"{name:<22}{''.join(cells)}")
     print(f"{'total (wall)':<22}{polars_run['wall']:>10.1f}{spark_run['wall']:>16.1f}")
     print(f"  of which Spark session start: {spark_run['spark_start']:.1f} s")
-    print(
-        f"Spark read {spark_run['input_mib']} MiB of input and wrote "
-        f"{spark_run['shuffle_mib']} MiB of shuffle"
-    )
+    print(f"Spark wrote {spark_run['shuffle_mib']} MiB of shuffle")
     peak = lambda run, key: max((s.get(key) or 0) for s in run["steps"])  # noqa: E731
     print(
         f"peak MiB: polars process {peak(polars_run, 'peak_rss_mib'):.0f}; spark driver "
