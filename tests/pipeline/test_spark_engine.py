@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import re
+import sys
 from pathlib import Path
 
 import polars as pl
@@ -313,3 +314,14 @@ def test_parquet_dataset_folders_read_by_spark_equal_the_polars_run(
     read = {s.name: s for s in spark_manifest.steps}["read"]
     assert read.rows_out is None
     assert {s.name: s for s in polars_manifest.steps}["read"].rows_out == labs_input.rows
+
+
+def test_without_pyspark_the_spark_engine_says_what_to_install(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    from kidneycohort.pipeline import ExecutionSection
+    from kidneycohort.pipeline.spark._engine import spark_session
+
+    monkeypatch.setitem(sys.modules, "pyspark.sql", None)  # import fails as if absent
+    with pytest.raises(ConfigError, match=r"execution\.engine: 'spark' needs pyspark"):
+        spark_session(ExecutionSection(engine="spark"))
