@@ -124,6 +124,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.harmonize import HarmonizeRule as HarmonizeRule
     from kidneycohort.harmonize import PlausibleRange as PlausibleRange
     from kidneycohort.harmonize import harmonize_tables as harmonize_tables
+    from kidneycohort.harmonize import unusable_tables as unusable_tables
     from kidneycohort.io import FileSource as FileSource
     from kidneycohort.io import infer_date_format as infer_date_format
     from kidneycohort.io import loinc_table as loinc_table
@@ -185,6 +186,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.models import simulate_joint_cohort as simulate_joint_cohort
     from kidneycohort.models import stated_value_at_kidney_failure as stated_value_at_kidney_failure
     from kidneycohort.pipeline import DataSection as DataSection
+    from kidneycohort.pipeline import ExecutionSection as ExecutionSection
     from kidneycohort.pipeline import OutputSection as OutputSection
     from kidneycohort.pipeline import ProgressObserver as ProgressObserver
     from kidneycohort.pipeline import Recipe as Recipe
@@ -239,6 +241,7 @@ if TYPE_CHECKING:  # the lazily loaded names, spelled out for type checkers
     from kidneycohort.report import require_browser as require_browser
     from kidneycohort.report import write_report as write_report
     from kidneycohort.run_folder import AccountingRecord as AccountingRecord
+    from kidneycohort.run_folder import ExecutionRecord as ExecutionRecord
     from kidneycohort.run_folder import InputRecord as InputRecord
     from kidneycohort.run_folder import Manifest as Manifest
     from kidneycohort.run_folder import OutputRecord as OutputRecord
@@ -313,7 +316,9 @@ _PUBLIC: dict[str, str] = _by_module(
         ),
         "kidneycohort.io.omop": "OmopSource",
         "kidneycohort.io.sdtm": "SdtmSource",
-        "kidneycohort.harmonize": "HarmonizeRule HarmonizeResult PlausibleRange harmonize_tables",
+        "kidneycohort.harmonize": (
+            "HarmonizeRule HarmonizeResult PlausibleRange harmonize_tables unusable_tables"
+        ),
         "kidneycohort.egfr": "compute_egfr egfr_wide EgfrRule AgeBand",
         "kidneycohort.value_filter": "ValueFilterRule flag_aki apply_value_filter",
         "kidneycohort.baseline": "uacr_baseline egfr_baseline BaselineRule",
@@ -369,13 +374,14 @@ _PUBLIC: dict[str, str] = _by_module(
         "kidneycohort.pipeline": (
             "load_config run_pipeline check_inputs StudyConfig RunResult StepRegistry "
             "StudySection DataSection OutputSection Recipe Step StepContext ProgressObserver "
-            "apply_overrides check_chain default_registry read_sources"
+            "apply_overrides check_chain default_registry read_sources ExecutionSection"
         ),
         "kidneycohort.run_folder": (
             "RunFolder RunFile Manifest AccountingRecord InputRecord OutputRecord ReasonCount "
             "StepRecord StudyFacts canonical_order check_layout csv_safe write_csv declared "
             "file_for is_written markdown_table output_records package_versions read_manifest "
-            "sha256_of write_manifest write_table write_workbook table_footnotes write_sheets"
+            "sha256_of write_manifest write_table write_workbook table_footnotes write_sheets "
+            "ExecutionRecord"
         ),
         "kidneycohort.design": "DesignConfig DesignResult load_design simulate_power",
         "kidneycohort.provenance": (

@@ -138,3 +138,29 @@ def test_import_loads_no_heavy_library() -> None:
         [sys.executable, "-c", code], capture_output=True, text=True, check=True
     )
     assert result.stdout.strip() == "", f"import kidneycohort loaded {result.stdout.strip()}"
+
+
+def test_the_polars_engine_never_imports_spark(tmp_path: Path) -> None:
+    """Validating a config (either engine) and a whole polars run leave pyspark unloaded."""
+    code = f"""
+import sys
+from pathlib import Path
+from kidneycohort.pipeline import load_config, run_pipeline
+from kidneycohort.pipeline.demo import demo_scenario_path
+from kidneycohort.synthetic import write_cohort
+
+base = Path({str(tmp_path)!r})
+write_cohort(demo_scenario_path("trial"), base / "inputs", patients=40, fmt="parquet")
+(base / "tiny.yaml").write_text("name: tiny\\nsteps: [harmonize, egfr, baseline, slopes]\\n")
+raw = {{
+    "study": {{"name": "import check", "recipe": "tiny.yaml"}},
+    "data": {{t: {{"path": f"inputs/{{t}}.parquet"}} for t in ("patients", "labs", "events")}},
+}}
+load_config(raw={{**raw, "execution": {{"engine": "spark"}}}}, base_dir=base)
+run_pipeline(load_config(raw=raw, base_dir=base), out_dir=base / "run")
+print(",".join(m for m in sys.modules if m.split(".")[0] in ("pyspark", "py4j")))
+"""
+    result = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True
+    )
+    assert result.stdout.strip() == "", f"the polars engine loaded {result.stdout.strip()}"

@@ -24,7 +24,8 @@ def test_readme_opens_with_job_then_two_setup_commands() -> None:
     assert len(blocks) >= 2
     demo, tests = blocks[0], blocks[1]
     assert "pip install -e ." in demo and "kidneycohort demo" in demo
-    assert "pip install -e '.[test]'" in tests and "pytest" in tests
+    # the spark extra too: CI runs the spark engine tests (Spark in local mode)
+    assert "pip install -e '.[test,spark]'" in tests and "pytest" in tests
     # the CI script runs the line after the marker, i.e. the second block
     assert "<!-- test-command -->\n```bash\n" + tests in text
     first_paragraph = text.split("\n\n")[1]

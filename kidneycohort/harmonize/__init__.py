@@ -38,6 +38,7 @@ from kidneycohort.harmonize._rule import (
     HarmonizeResult,
     HarmonizeRule,
     PlausibleRange,
+    unusable_tables,
 )
 
 __all__ = [
@@ -48,4 +49,5 @@ __all__ = [
     "HarmonizeRule",
     "PlausibleRange",
     "harmonize_tables",
+    "unusable_tables",
 ]

@@ -20,6 +20,7 @@ __all__ = [
     "HarmonizeRule",
     "PlausibleRange",
     "resolve_rules",
+    "unusable_tables",
 ]
 
 REASON_CODES: Final[dict[str, str]] = {
@@ -212,21 +213,34 @@ class HarmonizeResult:
     def unusable(self, tables: tuple[str, ...] = ("labs", "patients")) -> list[str]:
         """One line per table of ``tables`` that has no usable row: the table, the rows
         read and the top rejection reasons (or that it has no data rows at all)."""
-        lines = []
-        for row in self.accounting.iter_rows(named=True):
-            if row["table"] not in tables or row["rows_used"] > 0:
-                continue
-            if row["rows_read"] == 0:
-                lines.append(f"{row['table']}: no data rows (a header only); nothing to analyse")
-                continue
-            top = (
-                self.accounting_by_reason.filter(pl.col("table") == row["table"])
-                .sort(["rows", "reason"], descending=[True, False])
-                .head(3)
-            )
-            reasons = ", ".join(f"{r} {n}" for r, n in zip(top["reason"], top["rows"], strict=True))
-            lines.append(
-                f"{row['table']}: all {row['rows_read']} rows read were rejected "
-                f"(top reasons: {reasons}); nothing to analyse"
-            )
-        return lines
+        return unusable_tables(self.accounting, self.accounting_by_reason, tables)
+
+
+def unusable_tables(
+    accounting: pl.DataFrame,
+    by_reason: pl.DataFrame,
+    tables: tuple[str, ...] = ("labs", "patients"),
+) -> list[str]:
+    """One line per table of ``tables`` without a usable row, from row accounting.
+
+    ``accounting`` has ``table, rows_read, rows_used`` per table and ``by_reason``
+    ``table, reason, rows`` (the counts may be sums over partitions of patients).
+    """
+    lines = []
+    for row in accounting.iter_rows(named=True):
+        if row["table"] not in tables or row["rows_used"] > 0:
+            continue
+        if row["rows_read"] == 0:
+            lines.append(f"{row['table']}: no data rows (a header only); nothing to analyse")
+            continue
+        top = (
+            by_reason.filter(pl.col("table") == row["table"])
+            .sort(["rows", "reason"], descending=[True, False])
+            .head(3)
+        )
+        reasons = ", ".join(f"{r} {n}" for r, n in zip(top["reason"], top["rows"], strict=True))
+        lines.append(
+            f"{row['table']}: all {row['rows_read']} rows read were rejected "
+            f"(top reasons: {reasons}); nothing to analyse"
+        )
+    return lines

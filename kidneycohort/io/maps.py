@@ -99,7 +99,10 @@ class FileSource(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    path: str = Field(description="File to read: .csv/.tsv/.txt, .parquet, or a DuckDB file.")
+    path: str = Field(
+        description="File to read: .csv/.tsv/.txt, .parquet, or a DuckDB file; or a folder "
+        "of Parquet files (a dataset, optionally in hive `key=value` folders)."
+    )
     name: str | None = Field(
         default=None,
         description="Label written to the `source` column; defaults to the file name stem.",
@@ -173,6 +176,8 @@ class FileSource(BaseModel):
         """The file format, from ``format`` or the file suffix."""
         if self.format is not None:
             return self.format
+        if Path(self.path).is_dir():
+            return "parquet"  # a folder is a Parquet dataset
         suffix = Path(self.path).suffix.lower()
         if suffix not in _FORMATS:
             raise ConfigError(

@@ -39,7 +39,10 @@ __all__ = [
     "ISO",
     "REQUIRED",
     "SCHEMAS",
+    "dataset_files",
+    "date_formats",
     "infer_date_format",
+    "normalise_source",
     "parse_date_columns",
     "read_events",
     "read_labs",
@@ -148,43 +151,76 @@ def infer_date_format(values: pl.Series, *, name: str, column: str) -> str:
     return best
 
 
+def _text_date_columns(
+    schema: Mapping[str, pl.DataType], targets: Mapping[str, pl.DataType]
+) -> list[str]:
+    return [
+        column
+        for column, dtype in targets.items()
+        if column in schema
+        and dtype.is_temporal()
+        and not schema[column].is_temporal()
+        and schema[column] != pl.Null
+    ]
+
+
+def _column_format(frame: pl.LazyFrame, column: str, name: str) -> str:
+    """The format a text date column is read with, inferred from its first values."""
+    sample = (
+        frame.select(pl.col(column).cast(pl.String).str.strip_chars())
+        .filter(pl.col(column).is_not_null() & (pl.col(column) != ""))
+        .head(_INFER_SAMPLE)
+        .collect()
+        .to_series()
+    )
+    fmt = infer_date_format(sample, name=name, column=column)
+    logger.info("%s: date column '%s' read with format %s", name, column, fmt)
+    return fmt
+
+
+def date_formats(
+    frame: pl.LazyFrame,
+    targets: Mapping[str, pl.DataType],
+    *,
+    name: str,
+    date_format: str | None = None,
+) -> dict[str, str]:
+    """The format :func:`parse_date_columns` reads each text date column with.
+
+    Fixing them once (from the whole source) lets parts of the source be parsed
+    separately with the same formats.
+    """
+    columns = _text_date_columns(frame.collect_schema(), targets)
+    if date_format is not None:
+        return dict.fromkeys(columns, date_format)
+    return {column: _column_format(frame, column, name) for column in columns}
+
+
 def parse_date_columns(
     frame: pl.LazyFrame,
     targets: Mapping[str, pl.DataType],
     *,
     name: str,
     date_format: str | None = None,
+    formats: Mapping[str, str] | None = None,
 ) -> pl.LazyFrame:
     """Parse the text date columns of ``frame`` named in ``targets`` (column -> type).
 
     Columns already of a temporal type are cast; text columns are parsed with
-    ``date_format`` or an inferred format (:func:`infer_date_format` on the first
-    values). Text that does not parse becomes null and is kept in
-    ``<column>_as_read``.
+    ``formats[column]``, else ``date_format``, else an inferred format
+    (:func:`infer_date_format` on the first values). Text that does not parse becomes
+    null and is kept in ``<column>_as_read``.
     """
     schema = frame.collect_schema()
+    text_columns = _text_date_columns(schema, targets)
     exprs: list[pl.Expr] = []
     for column, dtype in targets.items():
         if column not in schema or not dtype.is_temporal():
             continue
-        have = schema[column]
-        if have.is_temporal():
+        if column not in text_columns:
             exprs.append(pl.col(column).cast(dtype))
             continue
-        if have == pl.Null:
-            exprs.append(pl.col(column).cast(dtype))
-            continue
-        fmt = date_format
-        if fmt is None:
-            sample = (
-                frame.select(pl.col(column).cast(pl.String).str.strip_chars())
-                .filter(pl.col(column).is_not_null() & (pl.col(column) != ""))
-                .head(_INFER_SAMPLE)
-                .collect()
-                .to_series()
-            )
-            fmt = infer_date_format(sample, name=name, column=column)
-            logger.info("%s: date column '%s' read with format %s", name, column, fmt)
+        fmt = (formats or {}).get(column) or date_format or _column_format(frame, column, name)
         parsed = _parse_with(pl.col(column), fmt)
         raw = pl.col(column).cast(pl.String).str.strip_chars()
         exprs.append(parsed.cast(dtype).alias(column))
@@ -266,8 +302,24 @@ def _read_duckdb(spec: FileSource, path: Path, name: str) -> pl.LazyFrame:
     )
 
 
+def dataset_files(folder: str | Path) -> list[Path]:
+    """The Parquet files of a dataset folder, at any depth (hive ``key=value`` folders
+    included), in path order; hidden and ``_``-prefixed entries are not data."""
+    root = Path(folder)
+    return sorted(
+        p
+        for p in root.rglob("*.parquet")
+        if p.is_file()
+        and not any(part.startswith((".", "_")) for part in p.relative_to(root).parts)
+    )
+
+
 def scan_source(spec: FileSource) -> pl.LazyFrame:
-    """Open ``spec``'s file as a LazyFrame with its own column names (no mapping)."""
+    """Open ``spec``'s file as a LazyFrame with its own column names (no mapping).
+
+    A folder is a Parquet dataset: its files in path order, hive ``key=value`` folder
+    names as columns, ``source_row`` counting through the files in that order.
+    """
     path = Path(spec.path)
     name = str(spec.path)
     if not path.exists():
@@ -276,8 +328,18 @@ def scan_source(spec: FileSource) -> pl.LazyFrame:
     if fmt == "csv":
         frame = _scan_csv(spec, path, name)
     elif fmt == "parquet":
+        files: Any = path
+        if path.is_dir():
+            files = dataset_files(path)
+            if not files:
+                raise InputDataError(f"{name}: folder holds no .parquet files")
         try:
-            frame = pl.scan_parquet(path, row_index_name="source_row", row_index_offset=1)
+            frame = pl.scan_parquet(
+                files,
+                row_index_name="source_row",
+                row_index_offset=1,
+                hive_partitioning=path.is_dir(),
+            )
             frame.collect_schema()
         except (pl.exceptions.ComputeError, OSError) as exc:
             raise InputDataError(f"{name}: not a readable Parquet file ({exc})") from None
@@ -318,8 +380,20 @@ def read_source(
         spec = spec.model_copy(update=fields)
     if kind not in SCHEMAS:
         raise InputDataError(f"unknown table kind {kind!r}{did_you_mean(kind, SCHEMAS)}")
+    return normalise_source(scan_source(spec), spec, kind)
+
+
+def normalise_source(
+    frame: pl.LazyFrame,
+    spec: FileSource,
+    kind: TableKind = "labs",
+    *,
+    formats: Mapping[str, str] | None = None,
+) -> pl.LazyFrame:
+    """The canonical ``kind`` table from rows of ``spec`` as :func:`scan_source` opens
+    them (any subset of them, given the date ``formats`` of the whole source from
+    :func:`date_formats`): column map, defaults, value maps, dates."""
     name = str(spec.path)
-    frame = scan_source(spec)
     have = _mapped_columns(frame, spec, kind, name)
     frame = frame.rename(spec.columns).with_columns(_defaults(spec, have))
     value_maps = {
@@ -331,7 +405,9 @@ def read_source(
         frame = frame.with_columns(
             pl.col(c).cast(pl.String).str.strip_chars().replace(m) for c, m in value_maps.items()
         )
-    return parse_date_columns(frame, SCHEMAS[kind], name=name, date_format=spec.date_format)
+    return parse_date_columns(
+        frame, SCHEMAS[kind], name=name, date_format=spec.date_format, formats=formats
+    )
 
 
 def _mapped_columns(frame: pl.LazyFrame, spec: FileSource, kind: str, name: str) -> list[str]:

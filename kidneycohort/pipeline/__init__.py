@@ -9,6 +9,7 @@ Typical use::
 
 from kidneycohort.pipeline.config import (
     DataSection,
+    ExecutionSection,
     OutputSection,
     Recipe,
     StudyConfig,
@@ -23,6 +24,7 @@ from kidneycohort.pipeline.sources import check_inputs, read_sources
 
 __all__ = [
     "DataSection",
+    "ExecutionSection",
     "OutputSection",
     "ProgressObserver",
     "Recipe",

@@ -19,7 +19,15 @@ from pydantic import BaseModel
 from kidneycohort.errors import ConfigError, did_you_mean
 from kidneycohort.run_folder import FILES, RunFile, RunFolder
 
-__all__ = ["Step", "StepContext", "StepFunction", "StepRegistry", "default_registry"]
+__all__ = [
+    "PatientWise",
+    "Step",
+    "StepContext",
+    "StepFunction",
+    "StepRegistry",
+    "default_registry",
+    "patient_then_cohort",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -67,6 +75,53 @@ class StepContext:
 
 StepFunction = Callable[[StepContext], Mapping[str, Any]]
 
+CohortFunction = Callable[[StepContext, Mapping[str, Any]], Mapping[str, Any]]
+
+
+@dataclass(frozen=True)
+class PatientWise:
+    """How a partition-safe step splits into per-patient work and a cohort-level rest.
+
+    A step declared with ``patient_wise=PatientWise(...)`` promises the partition rule:
+    ``per_patient`` gives the same rows on any partition of patients as on the whole
+    cohort, so an engine may run it on each partition and concatenate the rows.
+
+    Parameters
+    ----------
+    per_patient : callable
+        ``per_patient(context) -> {table: frame}``: the step's per-patient tables, from
+        the rows of the patients it is given. Row accounting it records is summed over
+        partitions.
+    cohort : callable or None
+        ``cohort(context, per_patient_tables) -> {table: value}``: the step's remaining
+        tables (counts, matrices, checks over the whole cohort), from the concatenated
+        per-patient tables and the summed accounting in ``context``.
+    """
+
+    per_patient: StepFunction
+    cohort: CohortFunction | None = None
+
+    def tables(self, makes: tuple[str, ...], cohort_makes: tuple[str, ...]) -> tuple[str, ...]:
+        """The per-patient tables among ``makes``."""
+        return tuple(name for name in makes if name not in cohort_makes)
+
+
+def patient_then_cohort(
+    per_patient: StepFunction, cohort: CohortFunction | None = None
+) -> StepFunction:
+    """One step function from its per-patient part and its cohort-level rest (the way
+    the polars engine runs a :class:`PatientWise` step: the whole cohort as one
+    partition)."""
+
+    def run(context: StepContext) -> dict[str, Any]:
+        made = dict(per_patient(context))
+        if cohort is not None:
+            made.update(cohort(context, made))
+        return made
+
+    run.__doc__ = per_patient.__doc__
+    return run
+
 
 @dataclass(frozen=True)
 class Step:
@@ -107,6 +162,15 @@ class Step:
         Run-folder files this step adds to the contract (:data:`kidneycohort.run_folder.FILES`),
         for steps outside the library; a name in ``makes`` that contains ``/`` must be
         declared in the contract or here.
+    patient_wise : PatientWise or None
+        The step is partition-safe: its per-patient part may run on partitions of
+        patients (see :class:`PatientWise`).
+    cohort_makes : tuple of str
+        With ``patient_wise``: the names in ``makes`` its cohort part returns.
+    cohort_level : bool
+        The step works on whole-cohort tables (models, tables, figures, the report): an
+        engine that partitions patients runs it on the driver. A step that is neither
+        ``patient_wise`` nor ``cohort_level`` is refused by such an engine.
     """
 
     name: str
@@ -121,6 +185,9 @@ class Step:
     check: Callable[[Any], None] | None = None
     reads_folder: bool = False
     files: tuple[RunFile, ...] = ()
+    patient_wise: PatientWise | None = None
+    cohort_makes: tuple[str, ...] = ()
+    cohort_level: bool = False
 
     def section_models(self) -> dict[str, type[BaseModel] | None]:
         """Every config section this step reads -> the model validating it."""
@@ -180,8 +247,10 @@ class StepRegistry:
         check: Callable[[Any], None] | None = None,
         reads_folder: bool = False,
         files: Iterable[RunFile] = (),
+        cohort_level: bool = False,
     ) -> Callable[[StepFunction], StepFunction]:
-        """Decorator form of :meth:`add`."""
+        """Decorator form of :meth:`add` (for a partition-safe step, see
+        :meth:`register_patient_wise`)."""
 
         def decorate(func: StepFunction) -> StepFunction:
             self.add(
@@ -198,11 +267,45 @@ class StepRegistry:
                     check=check,
                     reads_folder=reads_folder,
                     files=tuple(files),
+                    cohort_level=cohort_level,
                 )
             )
             return func
 
         return decorate
+
+    def register_patient_wise(
+        self,
+        name: str,
+        *,
+        per_patient: StepFunction,
+        cohort: CohortFunction | None = None,
+        cohort_makes: Iterable[str] = (),
+        **fields: Any,
+    ) -> Step:
+        """Register a partition-safe step from its per-patient part and cohort rest.
+
+        ``fields`` are the other :class:`Step` fields (``needs``, ``makes``, ...). The
+        step's ``run`` is :func:`patient_then_cohort` of the two parts.
+        """
+        description = (
+            fields.pop("description", "") or ((per_patient.__doc__ or "").strip().split("\n")[0])
+        )
+        for key in ("needs", "makes", "optional_needs", "files"):
+            if key in fields:
+                fields[key] = tuple(fields[key])
+        step = Step(
+            name=name,
+            run=patient_then_cohort(per_patient, cohort),
+            description=description,
+            patient_wise=PatientWise(per_patient, cohort),
+            cohort_makes=tuple(cohort_makes),
+            **fields,
+        )
+        missing = [n for n in step.cohort_makes if n not in step.makes]
+        if missing:
+            raise ValueError(f"step '{name}': cohort_makes {missing} are not in makes")
+        return self.add(step)
 
     def get(self, name: str, where: str = "recipe steps") -> Step:
         """Return the step called ``name`` or raise :class:`ConfigError` naming ``where``."""

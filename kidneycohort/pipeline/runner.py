@@ -8,14 +8,9 @@ so it can never be mistaken for a finished run.
 
 from __future__ import annotations
 
-import errno
 import functools
 import logging
-import os
-import re
 import shutil
-import signal
-import threading
 import time
 import uuid
 import warnings
@@ -27,16 +22,18 @@ from typing import Any, Protocol
 
 import polars as pl
 
-from kidneycohort.errors import ConfigError, KidneyCohortError
+from kidneycohort.errors import KidneyCohortError
 from kidneycohort.pipeline import placement
+from kidneycohort.pipeline._failures import disk_error, is_disk_error, sigterm_as_interrupt
 from kidneycohort.pipeline._peak_memory import StepPeakMemory
 from kidneycohort.pipeline.config import StudyConfig
-from kidneycohort.pipeline.registry import Step, StepContext
+from kidneycohort.pipeline.registry import Step, StepContext, StepFunction
 from kidneycohort.pipeline.sources import input_records, read_sources
 from kidneycohort.pipeline.standard_sources import write_results_after_run
 from kidneycohort.run_folder import (
     FILES,
     AccountingRecord,
+    ExecutionRecord,
     Manifest,
     ReasonCount,
     RunFile,
@@ -151,6 +148,7 @@ class _RunState:
     merged: list[dict[str, Any]] = field(default_factory=list)
     caught: list[warnings.WarningMessage] = field(default_factory=list)
     run_id: str = field(default_factory=lambda: uuid.uuid4().hex)
+    execution: ExecutionRecord = field(default_factory=ExecutionRecord)
 
     def manifest(self) -> Manifest:
         config = self.config
@@ -169,6 +167,7 @@ class _RunState:
             steps=list(self.steps),
             warnings=[_format_warning(w) for w in self.caught],
             study=_study_facts(config),
+            execution=self.execution,
         )
 
 
@@ -246,7 +245,7 @@ def run_pipeline(
     tmp = placement.prepare(target, force, protected_paths(config))
     state = _RunState(config)
     try:
-        with _run_log(tmp), _sigterm_as_interrupt():
+        with _run_log(tmp), sigterm_as_interrupt():
             for stale in placement.remove_stale(target):
                 logger.info("removed the unfinished folder of a run that died: %s", stale)
             _execute(state, tmp, progress, reader or read_sources)
@@ -260,16 +259,16 @@ def run_pipeline(
             write_manifest(tmp, final)
             logger.info("run complete: %s", target)
     except BaseException as exc:
-        if _is_disk_error(exc, target):
+        if is_disk_error(exc, target):
             _discard(tmp, target, progress)
-            raise _disk_error(target, exc) from None
+            raise disk_error(target, exc) from None
         _fail(tmp, target, exc, progress)
         raise
     try:
         placement.commit(tmp, target)
     except OSError as exc:
         _discard(tmp, target, progress)
-        raise _disk_error(target, exc) from None
+        raise disk_error(target, exc) from None
     # an OMOP source may take the finished run's outputs back (results_schema)
     write_results_after_run(config.data.source, target)
     progress.finish(True)
@@ -305,57 +304,6 @@ def _discard(tmp: Path, target: Path, progress: ProgressObserver) -> None:
     placement.release(target)
 
 
-def _is_disk_error(exc: BaseException, target: Path) -> bool:
-    """A full or read-only disk, or a folder we may not write to, under the target's
-    parent (an unreadable input is not one)."""
-    if not isinstance(exc, OSError | pl.exceptions.PolarsError):
-        return False
-    code = getattr(exc, "errno", None)
-    found = _OS_ERROR.search(str(exc))  # polars and pyarrow say "(os error 28)"
-    if found and code is None:
-        code = int(found.group(1))
-    if code in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
-        return True
-    if not isinstance(exc, OSError):
-        return False
-    name = str(exc.filename or "")
-    return exc.errno in (errno.EACCES, errno.EPERM) and name.startswith(str(target.parent))
-
-
-_OS_ERROR = re.compile(r"\(os error (\d+)\)")
-
-
-def _disk_error(target: Path, exc: BaseException) -> KidneyCohortError:
-    code = getattr(exc, "errno", None)
-    found = _OS_ERROR.search(str(exc))
-    if found and code is None:
-        code = int(found.group(1))
-    reason = "no space left on the device" if code == errno.ENOSPC else os.strerror(code or 0)
-    filename = getattr(exc, "filename", None)
-    where = f" ({filename})" if filename else ""
-    return ConfigError(
-        f"output.dir: cannot write the run folder '{target}': {reason}{where}; "
-        "nothing was written; free space or choose another --out"
-    )
-
-
-@contextmanager
-def _sigterm_as_interrupt() -> Iterator[None]:
-    """While the run lasts, SIGTERM is handled like SIGINT (the run fails cleanly)."""
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-
-    def interrupt(signum: int, frame: Any) -> None:
-        raise KeyboardInterrupt(f"signal {signum}")
-
-    previous = signal.signal(signal.SIGTERM, interrupt)
-    try:
-        yield
-    finally:
-        signal.signal(signal.SIGTERM, previous)
-
-
 def protected_paths(config: StudyConfig) -> list[Path]:
     """The config, its recipe and every input file: a run folder may never hold one."""
     paths = [p for p in (config.config_path, config.recipe_path) if p is not None]
@@ -386,7 +334,8 @@ def _execute(
             len(config.steps),
             run_dir,
         )
-        progress.start(["read"] + [s.name for s in config.steps])
+        spark = config.execution.engine == "spark"
+        progress.start(["read", *(["spark_partitions"] if spark else []), *_names(config.steps)])
         progress.step_started("read")
         started, cpu_started = time.perf_counter(), time.process_time()
         with StepPeakMemory() as memory:
@@ -405,6 +354,7 @@ def _execute(
         )
         logger.info("step read: %s rows of labs in %.2f s", rows, seconds)
         progress.step_finished("read", seconds, rows)
+        partitioned = _spark_partitions(state, run_dir, progress) if spark else None
         last_use = _last_use(config.steps)
         for index, step in enumerate(config.steps):
             folder = None
@@ -415,7 +365,7 @@ def _execute(
             # tables this step reads last are handed over: the step holds the only
             # reference and may free one as soon as it has read it (the raw labs)
             hand_over = functools.partial(_release, state.tables, last_use, index, config)
-            _run_step(step, state, run_dir, progress, folder, hand_over)
+            _run_step(step, state, run_dir, progress, folder, partitioned, hand_over)
             _release(state.tables, last_use, index, config)
         _finish_tables(run_dir, state.tables, config)
         state.caught = list(caught)
@@ -500,20 +450,46 @@ def _with_group(name: str, table: Any, tables: Mapping[str, Any]) -> Any:
     return table.join(groups, on="patient_id", how="left", maintain_order="left")
 
 
+def _names(steps: list[Step]) -> list[str]:
+    return [s.name for s in steps]
+
+
+def _spark_partitions(state: _RunState, run_dir: Path, progress: ProgressObserver) -> Any:
+    """The spark engine's pass over partitions of patients (pyspark imported here only)."""
+    from kidneycohort.pipeline.spark._engine import run_partitions
+
+    progress.step_started("spark_partitions")
+    started = time.perf_counter()
+    with StepPeakMemory() as memory:
+        partitioned = run_partitions(state.config, state.tables, run_dir)
+    seconds = time.perf_counter() - started
+    state.execution = partitioned.record
+    state.steps.append(
+        StepRecord(name="spark_partitions", seconds=round(seconds, 3), peak_rss_mib=memory.peak_mib)
+    )
+    logger.info("step spark_partitions: %.2f s", seconds)
+    progress.step_finished("spark_partitions", seconds, None)
+    return partitioned
+
+
 def _run_step(
     step: Step,
     state: _RunState,
     run_dir: Path,
     progress: ProgressObserver,
     folder: RunFolder | None,
+    partitioned: Any = None,
     hand_over: Callable[[], None] | None = None,
 ) -> None:
     progress.step_started(step.name)
     started, cpu_started = time.perf_counter(), time.process_time()
+    on_partitions = partitioned is not None and partitioned.covers(step)
+    run: StepFunction = functools.partial(partitioned.run, step) if on_partitions else step.run
     with StepPeakMemory() as memory:
-        made = _call_step(step, state, run_dir, folder, hand_over)
+        made = _call_step(step, state, run_dir, folder, run, hand_over)
     seconds = time.perf_counter() - started
     cpu_seconds = time.process_time() - cpu_started
+    executor = partitioned.executor_figures(step) if on_partitions else (None, None)
     rows_out = _rows(made[step.makes[0]]) if step.makes else None
     logger.info(
         "step %s: %s rows in %.2f s, peak %s MiB", step.name, rows_out, seconds, memory.peak_mib
@@ -526,6 +502,8 @@ def _run_step(
             rows_out=rows_out,
             peak_rss_mib=memory.peak_mib,
             cpu_seconds=round(cpu_seconds, 3),
+            executor_seconds=executor[0],
+            executor_peak_rss_mib=executor[1],
         )
     )
 
@@ -535,6 +513,7 @@ def _call_step(
     state: _RunState,
     run_dir: Path,
     folder: RunFolder | None,
+    run: StepFunction,
     hand_over: Callable[[], None] | None = None,
 ) -> dict[str, Any]:
     """Run one step, check what it made against its declaration, write its tables.
@@ -557,7 +536,7 @@ def _call_step(
     )
     logger.debug("step %s: starting with %s", step.name, sorted(given))
     try:
-        made = dict(step.run(context))
+        made = dict(run(context))
     except KidneyCohortError as exc:
         # keep the user's one-line message, but say which step found the problem
         exc.args = (f"step '{step.name}': {exc}", *exc.args[1:])

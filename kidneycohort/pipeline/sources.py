@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
@@ -9,14 +11,21 @@ import polars as pl
 
 from kidneycohort.errors import InputDataError
 from kidneycohort.io import FileSource, read_source
-from kidneycohort.io.readers import utf8_error_line
+from kidneycohort.io.readers import dataset_files, utf8_error_line
 from kidneycohort.pipeline.config import StudyConfig
 from kidneycohort.pipeline.standard_sources import check_source
 from kidneycohort.pipeline.standard_sources import input_records as standard_input_records
 from kidneycohort.pipeline.standard_sources import read_source as read_standard_source
 from kidneycohort.run_folder import sha256_of
 
-__all__ = ["SOURCE_TABLES", "check_inputs", "input_records", "read_sources"]
+__all__ = [
+    "SOURCE_TABLES",
+    "check_inputs",
+    "dataset_sha256",
+    "input_records",
+    "read_sources",
+    "spark_datasets",
+]
 
 # config table -> (run table name, reader kind)
 SOURCE_TABLES = {
@@ -57,7 +66,7 @@ def check_inputs(config: StudyConfig) -> dict[str, list[str]]:
     for table in SOURCE_TABLES:
         specs = config.data.specs(table)
         for i, spec in enumerate(specs):
-            if not Path(spec.path).is_file():
+            if not Path(spec.path).is_file() and not Path(spec.path).is_dir():
                 raise InputDataError(
                     f"{_where(table, specs, i)}.path: file '{spec.path}' not found; paths "
                     "are relative to the config file"
@@ -85,14 +94,37 @@ def _collect(frame: pl.LazyFrame, spec: FileSource, where: str) -> pl.DataFrame:
         raise InputDataError(f"{where}: {spec.path}: cannot be read ({first})") from None
 
 
-def read_sources(config: StudyConfig) -> dict[str, pl.DataFrame]:
-    """Read the configured sources into ``patients``, ``raw_labs`` (and ``events``)."""
+def spark_datasets(config: StudyConfig) -> list[str]:
+    """Source tables the spark engine reads itself: every source of them is a folder
+    (a Parquet dataset). Other tables are read on the driver."""
+    if config.execution.engine != "spark" or config.data.source is not None:
+        return []
+    return [
+        table
+        for table in SOURCE_TABLES
+        if config.data.specs(table)
+        and all(Path(spec.path).is_dir() for spec in config.data.specs(table))
+    ]
+
+
+def read_sources(config: StudyConfig) -> Mapping[str, pl.DataFrame | pl.LazyFrame]:
+    """Read the configured sources into ``patients``, ``raw_labs`` (and ``events``).
+
+    A table the spark engine reads itself (:func:`spark_datasets`) is left as the
+    LazyFrame of its sources: its schema, not its rows, on the driver.
+    """
     if config.data.source is not None:
         return read_standard_source(config.data.source)
     check_inputs(config)
-    out: dict[str, pl.DataFrame] = {}
+    out: dict[str, pl.DataFrame | pl.LazyFrame] = {}
+    datasets = spark_datasets(config)
     for table, (name, kind) in SOURCE_TABLES.items():
         specs = config.data.specs(table)
+        if table in datasets:
+            lazy = _lazy(config, table)
+            assert lazy is not None
+            out[name] = lazy
+            continue
         frames = []
         for i, spec in enumerate(specs):
             where = _where(table, specs, i)
@@ -116,17 +148,29 @@ def input_records(config: StudyConfig, tables: dict[str, Any]) -> list[dict[str,
         for spec in config.data.specs(table):
             path = Path(spec.path)
             rows = None
-            if isinstance(read, pl.DataFrame) and "source" in read.columns:
+            if path.is_dir():
+                import pyarrow.parquet as pq
+
+                rows = sum(pq.read_metadata(f).num_rows for f in dataset_files(path))
+            elif isinstance(read, pl.DataFrame) and "source" in read.columns:
                 rows = int(read.filter(pl.col("source") == spec.source_name()).height)
             records.append(
                 {
                     "table": table,
                     "path": _display_path(path, config),
-                    "sha256": sha256_of(path),
+                    "sha256": dataset_sha256(path) if path.is_dir() else sha256_of(path),
                     "rows": rows,
                 }
             )
     return records
+
+
+def dataset_sha256(folder: Path) -> str:
+    """SHA-256 of a Parquet dataset: over each file's path in the folder and its hash."""
+    digest = hashlib.sha256()
+    for path in dataset_files(folder):
+        digest.update(f"{path.relative_to(folder).as_posix()}\0{sha256_of(path)}\n".encode())
+    return digest.hexdigest()
 
 
 def _display_path(path: Path, config: StudyConfig) -> str:

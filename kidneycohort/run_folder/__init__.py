@@ -24,6 +24,7 @@ from kidneycohort.run_folder._layout import (
 from kidneycohort.run_folder._manifest import (
     RECORDED_PACKAGES,
     AccountingRecord,
+    ExecutionRecord,
     InputRecord,
     Manifest,
     OutputRecord,
@@ -53,6 +54,7 @@ __all__ = [
     "RECORDED_PACKAGES",
     "XLSX_OPTIONS",
     "AccountingRecord",
+    "ExecutionRecord",
     "InputRecord",
     "Manifest",
     "OutputRecord",

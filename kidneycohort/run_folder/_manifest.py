@@ -24,6 +24,7 @@ from kidneycohort.schemas import SCHEMA_VERSION
 __all__ = [
     "RECORDED_PACKAGES",
     "AccountingRecord",
+    "ExecutionRecord",
     "InputRecord",
     "Manifest",
     "OutputRecord",
@@ -105,6 +106,23 @@ class StepRecord(_Record):
     rows_out: int | None = None
     peak_rss_mib: float | None = None
     cpu_seconds: float | None = None
+    executor_seconds: float | None = Field(
+        None,
+        description="Spark engine: the step's per-patient part, seconds summed over the "
+        "partition tasks (the driver's own time is `seconds`).",
+    )
+    executor_peak_rss_mib: float | None = Field(
+        None, description="Spark engine: the highest peak of a task's Python worker process."
+    )
+
+
+class ExecutionRecord(_Record):
+    """How the steps ran: the engine and, for Spark, the master and partition count."""
+
+    engine: str = "polars"
+    master: str | None = None
+    partitions: int | None = None
+    spark_version: str | None = None
 
 
 class OutputRecord(_Record):
@@ -146,6 +164,7 @@ class Manifest(BaseModel):
     steps: list[StepRecord] = Field(default_factory=list)
     warnings: list[str] = Field(default_factory=list)
     study: StudyFacts = Field(default_factory=StudyFacts)
+    execution: ExecutionRecord = Field(default_factory=ExecutionRecord)
     outputs: list[OutputRecord] = Field(default_factory=list)
 
     def section(self, name: str) -> dict[str, Any]:

@@ -93,6 +93,41 @@ def test_parquet_round_trip(tmp_path: Path) -> None:
     )
 
 
+def test_parquet_dataset_folder_in_path_order_with_hive_columns(tmp_path: Path) -> None:
+    folder = tmp_path / "labs"
+    rows = {
+        ("site=north", "b.parquet"): ["N3"],
+        ("site=north", "a.parquet"): ["N1", "N2"],
+        ("site=south", "a.parquet"): ["S1"],
+    }
+    for (site, name), ids in rows.items():
+        (folder / site).mkdir(parents=True, exist_ok=True)
+        pl.DataFrame(
+            {
+                "patient_id": ids,
+                "sample_date": ["2020-01-0" + str(i + 1) for i in range(len(ids))],
+                "analyte": ["2160-0"] * len(ids),
+                "value": ["1.0"] * len(ids),
+                "unit": ["mg/dL"] * len(ids),
+            }
+        ).write_parquet(folder / site / name)
+    (folder / "_SUCCESS.parquet").write_bytes(b"")  # a marker, not data
+    got = read_labs(folder).collect()
+    # files in path order; source_row counts through them; the folder names are columns
+    assert got["patient_id"].to_list() == ["N1", "N2", "N3", "S1"]
+    assert got["source_row"].to_list() == [1, 2, 3, 4]
+    assert got["site"].to_list() == ["north", "north", "north", "south"]
+    assert got["sample_date"].dtype == pl.Datetime("us")
+    with pytest.raises(InputDataError, match=r"holds no \.parquet files"):
+        read_labs(_empty_folder(tmp_path))
+
+
+def _empty_folder(tmp_path: Path) -> Path:
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    return empty
+
+
 def test_duckdb_table_and_query(tmp_path: Path) -> None:
     db = tmp_path / "cohort.duckdb"
     con = duckdb.connect(str(db))

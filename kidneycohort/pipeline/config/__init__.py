@@ -32,6 +32,7 @@ from kidneycohort.pipeline.config._recipes import (
 from kidneycohort.pipeline.config._sections import (
     FIXED_SECTIONS,
     DataSection,
+    ExecutionSection,
     OutputSection,
     Recipe,
     StudyConfig,
@@ -46,6 +47,7 @@ from kidneycohort.pipeline.config._yaml import (
 __all__ = [
     "FIXED_SECTIONS",
     "DataSection",
+    "ExecutionSection",
     "OutputSection",
     "Recipe",
     "StudyConfig",

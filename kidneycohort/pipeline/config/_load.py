@@ -23,6 +23,7 @@ from kidneycohort.pipeline.config._sections import (
     FIXED_SECTIONS,
     STUDY_FACTS,
     DataSection,
+    ExecutionSection,
     OutputSection,
     Recipe,
     StudyConfig,
@@ -30,6 +31,7 @@ from kidneycohort.pipeline.config._sections import (
 )
 from kidneycohort.pipeline.config._yaml import apply_overrides, deep_merge, read_yaml
 from kidneycohort.pipeline.registry import StepRegistry, default_registry
+from kidneycohort.pipeline.spark import partition_plan
 
 __all__ = ["load_config"]
 
@@ -77,6 +79,8 @@ def load_config(
     study: StudySection = validate_section(StudySection, data["study"], "study")  # type: ignore[assignment]
     data_section: DataSection = validate_section(DataSection, data["data"], "data")  # type: ignore[assignment]
     output: OutputSection = validate_section(OutputSection, data.get("output"), "output")  # type: ignore[assignment]
+    execution = validate_section(ExecutionSection, data.get("execution"), "execution")
+    assert isinstance(execution, ExecutionSection)
 
     recipe_path = find_recipe(study.recipe, config_dir)
     recipe = load_recipe(recipe_path)
@@ -96,6 +100,9 @@ def load_config(
         output.dir = absolute(config_dir / "runs" / stem)
 
     check_chain(steps, source_tables(data_section), f"recipe '{recipe.name}'")
+    if execution.engine == "spark":
+        # a step that cannot run on partitions of patients is refused before any data
+        partition_plan(steps, source_tables(data_section))
     resolved = StudyConfig(
         study=study,
         data=data_section,
@@ -106,6 +113,7 @@ def load_config(
         config_path=config_path,
         recipe_path=recipe_path,
         overrides=list(overrides),
+        execution=execution,
     )
     for step in steps:
         if step.check is not None:

@@ -7,7 +7,7 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
@@ -19,13 +19,14 @@ __all__ = [
     "FIXED_SECTIONS",
     "STUDY_FACTS",
     "DataSection",
+    "ExecutionSection",
     "OutputSection",
     "Recipe",
     "StudyConfig",
     "StudySection",
 ]
 
-FIXED_SECTIONS = ("study", "data", "output")
+FIXED_SECTIONS = ("study", "data", "output", "execution")
 
 
 # ---- fixed sections -------------------------------------------------------------------
@@ -147,6 +148,35 @@ class OutputSection(_Strict):
     markdown: bool = Field(True, description="Also write each table as `tables/<name>.md`.")
 
 
+class ExecutionSection(_Strict):
+    """Which engine runs the steps: polars on this machine, or Apache Spark.
+
+    With ``spark``, the per-patient steps run on partitions of patients (each partition
+    through the same step code as with polars) and the cohort-level steps on the driver;
+    the run folder is the same. Spark is an optional extra: ``pip install -e '.[spark]'``
+    and a Java runtime.
+    """
+
+    engine: Literal["polars", "spark"] = Field(
+        "polars",
+        description="`polars` (one machine) or `spark` (per-patient steps on partitions "
+        "of patients, cohort-level steps on the driver).",
+    )
+    master: str = Field(
+        "local[2]",
+        min_length=1,
+        description="Spark master URL (`local[N]`, `spark://host:7077`, `yarn`, ...); "
+        "used by the spark engine only, and only when no Spark session is active.",
+    )
+    partitions: int = Field(
+        8,
+        ge=1,
+        le=1_000_000,
+        description="Number of patient partitions the spark engine splits the cohort into "
+        "(every patient's rows stay in one partition).",
+    )
+
+
 class Recipe(_Strict):
     """A recipe: ordered steps and the default options of their sections."""
 
@@ -166,7 +196,7 @@ class StudyConfig:
 
     Attributes
     ----------
-    study, data, output : pydantic models
+    study, data, output, execution : pydantic models
         The fixed sections (data paths already resolved against the config folder).
     sections : dict
         Stage section name -> validated options model.
@@ -191,6 +221,7 @@ class StudyConfig:
     config_path: Path | None
     recipe_path: Path
     overrides: list[str] = field(default_factory=list)
+    execution: ExecutionSection = field(default_factory=lambda: ExecutionSection())
 
     def resolved(self) -> dict[str, Any]:
         """The config as run: every section with its defaults filled in (JSON-ready)."""
@@ -198,6 +229,7 @@ class StudyConfig:
             "study": self.study.model_dump(mode="json"),
             "data": self.data.model_dump(mode="json", exclude_none=True),
             "output": self.output.model_dump(mode="json"),
+            "execution": self.execution.model_dump(mode="json"),
         }
         for name, model in self.sections.items():
             out[name] = model.model_dump(mode="json")

@@ -77,6 +77,7 @@ def add_adam(registry: StepRegistry) -> None:
         options=AdamRule,
         description="CDISC ADaM datasets: ADTTE (adam_tte.csv/.parquet) and ADSL, ADEGFR, "
         "ADTTE as XPT and Dataset-JSON in adam/ with a spec sheet.",
+        cohort_level=True,
     )
     def adam_step(ctx: StepContext) -> dict[str, Any]:
         """ADSL, ADEGFR and ADTTE (every randomised subject, with treatment and flags)."""

@@ -36,15 +36,6 @@ def add_baseline_and_slopes(registry: StepRegistry) -> None:
     from kidneycohort.baseline import BaselineRule, egfr_baseline
     from kidneycohort.slopes import SlopeRule, egfr_slopes
 
-    @registry.register(
-        "baseline",
-        needs=["egfr"],
-        makes=["baseline"],
-        section="baseline",
-        options=BaselineRule,
-        extra_sections={"value_filter": ValueFilterRule},
-        description="Baseline eGFR per patient and equation (kidneycohort.baseline).",
-    )
     def baseline_step(ctx: StepContext) -> dict[str, Any]:
         """Baseline eGFR per patient and equation."""
         value_filter = ctx.sections.get("value_filter")
@@ -54,15 +45,17 @@ def add_baseline_and_slopes(registry: StepRegistry) -> None:
 
         return {"baseline": _per_patient_equation(derive, ctx)}
 
-    @registry.register(
-        "slopes",
+    registry.register_patient_wise(
+        "baseline",
+        per_patient=baseline_step,
         needs=["egfr"],
-        makes=["slopes"],
-        section="slopes",
-        options=SlopeRule,
+        makes=["baseline"],
+        section="baseline",
+        options=BaselineRule,
         extra_sections={"value_filter": ValueFilterRule},
-        description="Per-patient least-squares eGFR slopes (kidneycohort.slopes).",
+        description="Baseline eGFR per patient and equation (kidneycohort.baseline).",
     )
+
     def slopes_step(ctx: StepContext) -> dict[str, Any]:
         """Per-patient eGFR slopes."""
         value_filter = ctx.sections.get("value_filter")
@@ -71,6 +64,17 @@ def add_baseline_and_slopes(registry: StepRegistry) -> None:
             return egfr_slopes(tables["egfr"], rule=ctx.options, value_filter=value_filter)  # type: ignore[arg-type]
 
         return {"slopes": _per_patient_equation(derive, ctx)}
+
+    registry.register_patient_wise(
+        "slopes",
+        per_patient=slopes_step,
+        needs=["egfr"],
+        makes=["slopes"],
+        section="slopes",
+        options=SlopeRule,
+        extra_sections={"value_filter": ValueFilterRule},
+        description="Per-patient least-squares eGFR slopes (kidneycohort.slopes).",
+    )
 
 
 def _per_patient_equation(
@@ -108,16 +112,6 @@ def add_endpoints(registry: StepRegistry) -> None:
     """Step ``endpoints``: time-to-event rows per patient and definition."""
     from kidneycohort.endpoints import derive_endpoints
 
-    @registry.register(
-        "endpoints",
-        needs=["egfr", "baseline", "cohort"],
-        optional_needs=["cohort_events"],
-        makes=["endpoints"],
-        section="endpoints",
-        options=EndpointsSection,
-        check=check_data_cut,
-        description="Time-to-event rows per patient and endpoint (kidneycohort.endpoints).",
-    )
     def endpoints_step(ctx: StepContext) -> dict[str, Any]:
         """Time-to-event rows, one per patient per endpoint definition."""
         opts = ctx.options
@@ -134,22 +128,25 @@ def add_endpoints(registry: StepRegistry) -> None:
         )
         return {"endpoints": table}
 
+    registry.register_patient_wise(
+        "endpoints",
+        per_patient=endpoints_step,
+        needs=["egfr", "baseline", "cohort"],
+        optional_needs=["cohort_events"],
+        makes=["endpoints"],
+        section="endpoints",
+        options=EndpointsSection,
+        check=check_data_cut,
+        description="Time-to-event rows per patient and endpoint (kidneycohort.endpoints).",
+    )
+
 
 def add_kdigo(registry: StepRegistry) -> None:
     """Step ``kdigo``: sustained KDIGO stages, transitions and their counts."""
     from kidneycohort.kdigo import SustainRule, sustained_stages, transition_matrix, transitions
 
-    @registry.register(
-        "kdigo",
-        needs=["egfr", "labs", "cohort"],
-        makes=["stages", "transitions", "transition_matrix", "models/transition_counts"],
-        section="sustain",
-        options=SustainRule,
-        extra_sections={"value_filter": ValueFilterRule},
-        description="Sustained KDIGO G and A stages and their transitions (kidneycohort.kdigo).",
-    )
     def kdigo_step(ctx: StepContext) -> dict[str, Any]:
-        """Sustained KDIGO stages, transitions and transition counts."""
+        """Sustained KDIGO stages and transitions per patient."""
         stages = sustained_stages(
             ctx.tables["egfr"],
             ctx.tables["labs"],
@@ -157,7 +154,11 @@ def add_kdigo(registry: StepRegistry) -> None:
             rule=ctx.options,  # type: ignore[arg-type]
             value_filter=ctx.sections.get("value_filter"),  # type: ignore[arg-type]
         )
-        matrix = transition_matrix(stages)
+        return {"stages": stages, "transitions": transitions(stages)}
+
+    def kdigo_counts(ctx: StepContext, made: Mapping[str, Any]) -> dict[str, Any]:
+        """Transition counts and rates over the cohort, from everyone's stages."""
+        matrix = transition_matrix(made["stages"])
         primary = primary_equation(ctx.sections, ctx.tables)
         # the figure reads one matrix per axis: G on the primary equation, and A
         counts = matrix.filter(
@@ -169,12 +170,20 @@ def add_kdigo(registry: StepRegistry) -> None:
             pl.col("n_transitions").alias("n"),
             "rate_per_100_person_years",
         )
-        return {
-            "stages": stages,
-            "transitions": transitions(stages),
-            "transition_matrix": matrix,
-            "models/transition_counts": counts,
-        }
+        return {"transition_matrix": matrix, "models/transition_counts": counts}
+
+    registry.register_patient_wise(
+        "kdigo",
+        per_patient=kdigo_step,
+        cohort=kdigo_counts,
+        cohort_makes=["transition_matrix", "models/transition_counts"],
+        needs=["egfr", "labs", "cohort"],
+        makes=["stages", "transitions", "transition_matrix", "models/transition_counts"],
+        section="sustain",
+        options=SustainRule,
+        extra_sections={"value_filter": ValueFilterRule},
+        description="Sustained KDIGO G and A stages and their transitions (kidneycohort.kdigo).",
+    )
 
 
 def add_kdigo_grid(registry: StepRegistry) -> None:
@@ -183,17 +192,8 @@ def add_kdigo_grid(registry: StepRegistry) -> None:
     from kidneycohort.kdigo import KdigoGridRule, baseline_categories, kdigo_grid_counts
     from kidneycohort.tables import TableRule
 
-    @registry.register(
-        "kdigo_grid",
-        needs=["baseline", "labs", "cohort"],
-        makes=["baseline_categories", "models/kdigo_grid"],
-        section="kdigo_grid",
-        options=KdigoGridRule,
-        extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
-        description="Baseline KDIGO G x A category per patient and the prognosis grid counts.",
-    )
     def kdigo_grid_step(ctx: StepContext) -> dict[str, Any]:
-        """Baseline G and A categories per patient; patients per KDIGO grid cell."""
+        """Baseline G and A categories per patient."""
         opts = ctx.options
         assert isinstance(opts, KdigoGridRule)
         uacr = uacr_baseline(
@@ -205,10 +205,24 @@ def add_kdigo_grid(registry: StepRegistry) -> None:
         categories = baseline_categories(
             ctx.tables["baseline"], uacr, equation=primary_equation(ctx.sections, ctx.tables)
         )
-        return {
-            "baseline_categories": categories,
-            "models/kdigo_grid": kdigo_grid_counts(categories),
-        }
+        return {"baseline_categories": categories}
+
+    def kdigo_grid_cells(ctx: StepContext, made: Mapping[str, Any]) -> dict[str, Any]:
+        """Patients per KDIGO grid cell, from everyone's baseline categories."""
+        return {"models/kdigo_grid": kdigo_grid_counts(made["baseline_categories"])}
+
+    registry.register_patient_wise(
+        "kdigo_grid",
+        per_patient=kdigo_grid_step,
+        cohort=kdigo_grid_cells,
+        cohort_makes=["models/kdigo_grid"],
+        needs=["baseline", "labs", "cohort"],
+        makes=["baseline_categories", "models/kdigo_grid"],
+        section="kdigo_grid",
+        options=KdigoGridRule,
+        extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
+        description="Baseline KDIGO G x A category per patient and the prognosis grid counts.",
+    )
 
 
 def add_kfre(registry: StepRegistry) -> None:
@@ -216,15 +230,6 @@ def add_kfre(registry: StepRegistry) -> None:
     from kidneycohort.kfre import KfreRule, kfre_at_baseline
     from kidneycohort.tables import TableRule
 
-    @registry.register(
-        "kfre",
-        needs=["egfr", "labs", "cohort"],
-        makes=["kfre"],
-        section="kfre",
-        options=KfreRule,
-        extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
-        description="2- and 5-year KFRE risk per patient at baseline, with applicability.",
-    )
     def kfre_step(ctx: StepContext) -> dict[str, Any]:
         """KFRE risk at the index date and its distribution by group."""
         group = group_column(ctx)
@@ -252,3 +257,14 @@ def add_kfre(registry: StepRegistry) -> None:
         )
         # its summary table is printed by the tables step, protected with the others
         return {"kfre": rows}
+
+    registry.register_patient_wise(
+        "kfre",
+        per_patient=kfre_step,
+        needs=["egfr", "labs", "cohort"],
+        makes=["kfre"],
+        section="kfre",
+        options=KfreRule,
+        extra_sections={"value_filter": ValueFilterRule, "tables": TableRule},
+        description="2- and 5-year KFRE risk per patient at baseline, with applicability.",
+    )

@@ -38,6 +38,7 @@ def add_survival(registry: StepRegistry) -> None:
         section="survival",
         options=SurvivalRule,
         description="Kaplan–Meier curves per endpoint and group (kidneycohort.models.survival).",
+        cohort_level=True,
     )
     def kaplan_meier_step(ctx: StepContext) -> dict[str, Any]:
         """Kaplan–Meier curves and numbers at risk per endpoint and group."""
@@ -50,6 +51,7 @@ def add_survival(registry: StepRegistry) -> None:
         section="survival",
         options=SurvivalRule,
         description="Aalen–Johansen cumulative incidence with death competing, per endpoint.",
+        cohort_level=True,
     )
     def cumulative_incidence_step(ctx: StepContext) -> dict[str, Any]:
         """Aalen–Johansen cumulative incidence per endpoint and group."""
@@ -62,6 +64,7 @@ def add_survival(registry: StepRegistry) -> None:
         section="survival",
         options=SurvivalRule,
         description="Cox hazard ratios per endpoint with the proportional-hazards test.",
+        cohort_level=True,
     )
     def cox_step(ctx: StepContext) -> dict[str, Any]:
         """Cox hazard ratios (group, covariates, strata; subgroups) per endpoint."""
@@ -80,6 +83,7 @@ def add_survival(registry: StepRegistry) -> None:
         options=SurvivalRule,
         description="Fine–Gray and cause-specific hazard ratios side by side, with Gray's "
         "test, for endpoints with death competing (survival.competing_risks).",
+        cohort_level=True,
     )
     def competing_risks_step(ctx: StepContext) -> dict[str, Any]:
         """Competing-risks regression of the endpoints death competes with."""
@@ -110,6 +114,7 @@ def add_slope_model(registry: StepRegistry) -> None:
         section="slope_model",
         options=SlopeModelRule,
         description="Linear mixed model of eGFR (one slope or two slopes with a knot) by group.",
+        cohort_level=True,
     )
     def slope_model_step(ctx: StepContext) -> dict[str, Any]:
         """Mixed-model mean trajectories and slope contrasts (kidneycohort.models.mixed)."""
@@ -148,6 +153,7 @@ def add_dropout_analysis(registry: StepRegistry) -> None:
         ],
         section="dropout_analysis",
         options=DropoutAnalysisRule,
+        cohort_level=True,
         description="Joint model of eGFR slope and dropout beside the mixed model alone; "
         "delta-adjusted tipping point; eGFR set to a stated value at kidney failure.",
     )

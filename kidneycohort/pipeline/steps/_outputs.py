@@ -168,6 +168,7 @@ def add_tables(registry: StepRegistry) -> None:
         options=TableRule,
         description="Endpoint, baseline, incidence-rate, KDIGO grid and slope tables, "
         "protected together (kidneycohort.tables, kidneycohort.disclosure).",
+        cohort_level=True,
     )
     def trial_tables_step(ctx: StepContext) -> dict[str, Any]:
         """The trial's endpoint, baseline, incidence, KDIGO grid and slope tables."""
@@ -188,6 +189,7 @@ def add_tables(registry: StepRegistry) -> None:
         options=TableRule,
         description="Endpoint, baseline, incidence-rate, KDIGO grid, G-transition and slope "
         "tables, protected together.",
+        cohort_level=True,
     )
     def cohort_tables_step(ctx: StepContext) -> dict[str, Any]:
         """The cohort's endpoint, baseline, incidence, grid, transition and slope tables."""
@@ -205,6 +207,7 @@ def add_figures(registry: StepRegistry) -> None:
         options=FigureRule,
         reads_folder=True,
         description="Every figure the run folder has data for, into figures/ (kidneycohort.plots).",
+        cohort_level=True,
     )
     def figures_step(ctx: StepContext) -> dict[str, Any]:
         """Draw the figures from the run folder as written so far."""
@@ -225,6 +228,7 @@ def add_report(registry: StepRegistry) -> None:
         options=ReportRule,
         reads_folder=True,
         description="report.html from the run folder as written so far (kidneycohort.report).",
+        cohort_level=True,
     )
     def report_step(ctx: StepContext) -> dict[str, Any]:
         """Render the self-contained report of the run folder."""

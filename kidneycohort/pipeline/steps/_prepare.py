@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 import polars as pl
@@ -16,17 +17,8 @@ __all__ = ["add_egfr", "add_harmonize"]
 
 def add_harmonize(registry: StepRegistry) -> None:
     """Step ``harmonize``: raw tables -> labs, patients, events, rejected rows."""
-    from kidneycohort.harmonize import HarmonizeRule, harmonize_tables
+    from kidneycohort.harmonize import HarmonizeRule, harmonize_tables, unusable_tables
 
-    @registry.register(
-        "harmonize",
-        needs=["raw_labs", "patients"],
-        optional_needs=["events"],
-        makes=["labs", "rejected_rows", "cohort", "cohort_events"],
-        section="harmonize",
-        options=HarmonizeRule,
-        description="Raw labs -> labs in standard units; every unused row with a reason.",
-    )
     def harmonize_step(ctx: StepContext) -> dict[str, Any]:
         """Harmonise labs, patients and events (kidneycohort.harmonize)."""
         # taken out of the context: harmonize_tables frees the raw labs once read
@@ -36,9 +28,6 @@ def add_harmonize(registry: StepRegistry) -> None:
             ctx.tables.get("events"),
             rule=ctx.options,  # type: ignore[arg-type]
         )
-        nothing = result.unusable()
-        if nothing:
-            raise InputDataError("; ".join(nothing))
         ctx.accounting.extend(
             records(
                 result.accounting,
@@ -68,13 +57,46 @@ def add_harmonize(registry: StepRegistry) -> None:
             "cohort_events": result.events,
         }
 
+    def harmonize_check(ctx: StepContext, made: Mapping[str, Any]) -> dict[str, Any]:
+        """A cohort without one usable lab or patient row stops the run (the rows read
+        and the top reasons, over all patients)."""
+        counts = {"table": pl.String, "rows_read": pl.Int64, "rows_used": pl.Int64}
+        nothing = unusable_tables(
+            pl.DataFrame([{k: r[k] for k in counts} for r in ctx.accounting], schema=counts),
+            pl.DataFrame(
+                ctx.accounting_by_reason,
+                schema={"table": pl.String, "reason": pl.String, "rows": pl.Int64},
+            ),
+        )
+        if nothing:
+            raise InputDataError("; ".join(nothing))
+        return {}
+
+    registry.register_patient_wise(
+        "harmonize",
+        per_patient=harmonize_step,
+        cohort=harmonize_check,
+        needs=["raw_labs", "patients"],
+        optional_needs=["events"],
+        makes=["labs", "rejected_rows", "cohort", "cohort_events"],
+        section="harmonize",
+        options=HarmonizeRule,
+        description="Raw labs -> labs in standard units; every unused row with a reason.",
+    )
+
 
 def add_egfr(registry: StepRegistry) -> None:
     """Step ``egfr``: every chosen equation for every sample."""
     from kidneycohort.egfr import EgfrRule, compute_egfr
 
-    @registry.register(
+    def egfr_step(ctx: StepContext) -> dict[str, Any]:
+        """eGFR by each chosen equation for every creatinine / cystatin C sample."""
+        egfr = compute_egfr(ctx.tables["labs"], ctx.tables["cohort"], rule=ctx.options)  # type: ignore[arg-type]
+        return {"egfr": egfr}
+
+    registry.register_patient_wise(
         "egfr",
+        per_patient=egfr_step,
         needs=["labs", "cohort"],
         makes=["egfr"],
         section="egfr",
@@ -82,7 +104,3 @@ def add_egfr(registry: StepRegistry) -> None:
         check=check_primary,
         description="eGFR by each chosen equation for every sample (kidneycohort.egfr).",
     )
-    def egfr_step(ctx: StepContext) -> dict[str, Any]:
-        """eGFR by each chosen equation for every creatinine / cystatin C sample."""
-        egfr = compute_egfr(ctx.tables["labs"], ctx.tables["cohort"], rule=ctx.options)  # type: ignore[arg-type]
-        return {"egfr": egfr}
