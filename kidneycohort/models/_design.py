@@ -18,6 +18,7 @@ __all__ = [
     "CapturedWarnings",
     "capture_warnings",
     "encode_covariates",
+    "one_equation",
     "split_complete_cases",
     "with_group",
 ]
@@ -195,3 +196,24 @@ def with_group(
             f"{bad_event['event'][0]!r}; expected 1 (event) or 0 (censored)"
         )
     return frame.with_columns(pl.col("event").cast(pl.Int8))
+
+
+def one_equation(values: pl.DataFrame, equation: str | None) -> pl.DataFrame:
+    """The eGFR rows of ``equation`` (needed when the table holds several)."""
+    require_columns(values, ("patient_id", "years_from_index", "egfr"), "egfr")
+    if "equation" not in values.columns:
+        return values
+    equations = sorted(values["equation"].drop_nulls().unique().to_list())
+    if equation is not None:
+        if equation not in equations:
+            raise InputDataError(
+                f"egfr: equation '{equation}' is not in the table (equations: "
+                f"{equations}){did_you_mean(equation, equations)}"
+            )
+        return values.filter(pl.col("equation") == equation)
+    if len(equations) > 1:
+        raise InputDataError(
+            f"egfr: the table holds {len(equations)} equations {equations}; pass "
+            "equation=... to model one"
+        )
+    return values

@@ -16,6 +16,7 @@ import polars as pl
 
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
+from kidneycohort.models._design import one_equation
 
 __all__ = ["JointData", "joint_data", "time_design"]
 
@@ -65,25 +66,6 @@ def time_design(years: np.ndarray, knot: float | None) -> np.ndarray:
     return np.stack(
         [np.ones_like(years), np.minimum(years, knot), np.maximum(years - knot, 0.0)], axis=-1
     )
-
-
-def _one_equation(values: pl.DataFrame, equation: str | None) -> pl.DataFrame:
-    require_columns(values, ("patient_id", "years_from_index", "egfr"), "egfr")
-    if "equation" not in values.columns:
-        return values
-    equations = sorted(values["equation"].drop_nulls().unique().to_list())
-    if equation is not None:
-        if equation not in equations:
-            raise InputDataError(
-                f"egfr: equation '{equation}' is not in the table (equations: {equations})"
-                f"{did_you_mean(equation, equations)}"
-            )
-        return values.filter(pl.col("equation") == equation)
-    if len(equations) > 1:
-        raise InputDataError(
-            f"egfr: the table holds {len(equations)} equations {equations}; pass equation=..."
-        )
-    return values
 
 
 def dropout_times(endpoints: FrameLike, names: Sequence[str]) -> pl.DataFrame:
@@ -147,7 +129,7 @@ def _rows_with_reasons(
     equation: str | None,
     whole_cohort: bool,
 ) -> pl.DataFrame:
-    values = _one_equation(to_polars(egfr, "egfr"), equation).select(
+    values = one_equation(to_polars(egfr, "egfr"), equation).select(
         pl.col("patient_id").cast(pl.String),
         pl.col("years_from_index").cast(pl.Float64),
         pl.col("egfr").cast(pl.Float64),

@@ -15,7 +15,7 @@ from kidneycohort.errors import (
     InputDataError,
     did_you_mean,
 )
-from kidneycohort.models._design import encode_covariates
+from kidneycohort.models._design import encode_covariates, one_equation
 from kidneycohort.models.mixed._fitters import fit_exact, fit_statsmodels
 from kidneycohort.models.mixed._rule import TRAJECTORY_COLUMNS, SlopeModelRule
 from kidneycohort.schemas import SLOPE_MODEL_FIT
@@ -140,7 +140,7 @@ class SlopeModel:
     def _rows(
         self, egfr: FrameLike, patients: FrameLike | None, spec: SlopeModelRule
     ) -> pl.DataFrame:
-        values = _one_equation(to_polars(egfr, "egfr"), spec.equation)
+        values = one_equation(to_polars(egfr, "egfr"), spec.equation)
         rows = _with_patient_columns(values, patients, spec)
         group = (
             pl.col(spec.group_column).cast(pl.String)
@@ -488,27 +488,6 @@ def _format_years(value: float) -> str:
 
 WHOLE_COHORT = "all"
 """The one group of a model fitted without a group column."""
-
-
-def _one_equation(values: pl.DataFrame, equation: str | None) -> pl.DataFrame:
-    """The eGFR rows of ``equation`` (needed when the table holds several)."""
-    require_columns(values, ("patient_id", "years_from_index", "egfr"), "egfr")
-    if "equation" not in values.columns:
-        return values
-    equations = sorted(values["equation"].drop_nulls().unique().to_list())
-    if equation is not None:
-        if equation not in equations:
-            raise InputDataError(
-                f"egfr: equation '{equation}' is not in the table (equations: "
-                f"{equations}){did_you_mean(equation, equations)}"
-            )
-        return values.filter(pl.col("equation") == equation)
-    if len(equations) > 1:
-        raise InputDataError(
-            f"egfr: the table holds {len(equations)} equations {equations}; pass "
-            "equation=... to model one"
-        )
-    return values
 
 
 def _with_patient_columns(
