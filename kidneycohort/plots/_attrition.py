@@ -13,7 +13,6 @@ from plotnine import (
     element_text,
     geom_segment,
     geom_text,
-    geom_tile,
     ggplot,
     labs,
     scale_fill_manual,
@@ -23,9 +22,10 @@ from plotnine import (
     theme_void,
 )
 
-from kidneycohort._frames import FrameLike, as_float, require_columns, to_polars
+from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, small_count_text
 from kidneycohort.errors import InputDataError
+from kidneycohort.plots._flow_layers import box_limits, flow_layers
 from kidneycohort.plots._style import (
     BASE_SIZE,
     check_threshold,
@@ -283,22 +283,7 @@ def attrition_figure(
             mapping=aes(x="x0", xend="x1", y="y", yend="y"),
             arrow=arrow(length=0.08, type="closed"),
         )
-    plot += geom_segment(
-        data=main.to_pandas(),
-        mapping=aes(x="x", xend="x", y="y0", yend="y1"),
-        arrow=arrow(length=0.08, type="closed"),
-    )
-    plot += geom_segment(
-        data=side.to_pandas(),
-        mapping=aes(x="x0", xend="x1", y="y", yend="y"),
-        arrow=arrow(length=0.08, type="closed"),
-    )
-    plot += geom_tile(
-        data=boxes.to_pandas(),
-        mapping=aes("x", "y", width="w", height="h", fill="kind"),
-        colour="#333333",
-        size=0.5,
-    )
+    plot += flow_layers(main, side, boxes)
     plot += geom_text(
         data=boxes.filter(pl.col("kind") != "excluded").to_pandas(),
         mapping=aes("x", "y", label="text"),
@@ -314,10 +299,7 @@ def attrition_figure(
         values={"read": "#FFFFFF", "used": "#E8F1F8", "excluded": "#FFF6E0", "patients": "#EAF6F1"},
         guide=None,
     )
-    x_lo = as_float((boxes["x"] - boxes["w"] / 2).min(), "attrition: left edge") - 0.05
-    x_hi = as_float((boxes["x"] + boxes["w"] / 2).max(), "attrition: right edge") + 0.05
-    y_lo = as_float((boxes["y"] - boxes["h"] / 2).min(), "attrition: bottom edge") - 0.05
-    y_hi = as_float((boxes["y"] + boxes["h"] / 2).max(), "attrition: top edge") + 0.05
+    x_lo, x_hi, y_lo, y_hi = box_limits(boxes, 0.05, "attrition")
     plot += scale_x_continuous(limits=(x_lo, x_hi), expand=(0, 0))
     plot += scale_y_continuous(limits=(y_lo, y_hi), expand=(0, 0))
     plot += theme(

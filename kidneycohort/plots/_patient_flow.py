@@ -13,7 +13,6 @@ from plotnine import (
     element_text,
     geom_segment,
     geom_text,
-    geom_tile,
     ggplot,
     labs,
     scale_fill_manual,
@@ -27,6 +26,7 @@ from kidneycohort._frames import FrameLike, as_float, follows_input, require_col
 from kidneycohort.disclosure import DEFAULT_SMALL_CELL_THRESHOLD, protected_group_flow
 from kidneycohort.errors import InputDataError
 from kidneycohort.labels import display_label
+from kidneycohort.plots._flow_layers import box_limits, flow_layers
 from kidneycohort.plots._style import BASE_SIZE, check_threshold, wrap
 
 __all__ = ["flow_note", "patient_flow_boxes", "patient_flow_figure"]
@@ -221,30 +221,12 @@ def patient_flow_figure(
             ).to_pandas(),
             mapping=aes(x="x0", xend="x1", y="y0", yend="y1"),
         )  # fmt: skip
-    plot += geom_segment(
-        data=down.to_pandas(),
-        mapping=aes(x="x", xend="x", y="y0", yend="y1"),
-        arrow=arrow(length=0.08, type="closed"),
-    )
-    plot += geom_segment(
-        data=side.to_pandas(),
-        mapping=aes(x="x0", xend="x1", y="y", yend="y"),
-        arrow=arrow(length=0.08, type="closed"),
-    )
-    plot += geom_tile(
-        data=boxes.to_pandas(),
-        mapping=aes("x", "y", width="w", height="h", fill="kind"),
-        colour="#333333",
-        size=0.5,
-    )
+    plot += flow_layers(down, side, boxes)
     plot += geom_text(data=boxes.to_pandas(), mapping=aes("x", "y", label="text"), size=8)
     plot += scale_fill_manual(
         values={"total": "#FFFFFF", "step": "#E8F1F8", "excluded": "#FFF6E0"}, guide=None
     )
-    x_lo = as_float((boxes["x"] - boxes["w"] / 2).min(), "patient flow: left") - 0.1
-    x_hi = as_float((boxes["x"] + boxes["w"] / 2).max(), "patient flow: right") + 0.1
-    y_lo = as_float((boxes["y"] - boxes["h"] / 2).min(), "patient flow: bottom") - 0.1
-    y_hi = as_float((boxes["y"] + boxes["h"] / 2).max(), "patient flow: top") + 0.1
+    x_lo, x_hi, y_lo, y_hi = box_limits(boxes, 0.1, "patient flow")
     plot += scale_x_continuous(limits=(x_lo, x_hi), expand=(0, 0))
     plot += scale_y_continuous(limits=(y_lo, y_hi), expand=(0, 0))
     plot += theme(
