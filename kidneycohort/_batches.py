@@ -38,12 +38,22 @@ def patient_range_cuts(frames: Sequence[pl.DataFrame], max_rows: int) -> pl.Seri
     rows = sum(f.height for f in frames)
     if rows <= max_rows:
         return pl.Series(_ID, [], dtype=pl.String)
+    # rows per patient of each frame, then summed: no concatenated copy of every id
     counts = (
-        pl.concat([f.select(pl.col(_ID).cast(pl.String)) for f in frames])
-        .drop_nulls()
+        pl.concat(
+            [
+                f.lazy()
+                .select(pl.col(_ID).cast(pl.String))
+                .drop_nulls()
+                .group_by(_ID)
+                .agg(pl.len().cast(pl.Int64))
+                for f in frames
+            ]
+        )
         .group_by(_ID)
-        .len()
+        .agg(pl.col("len").sum())
         .sort(_ID)
+        .collect()
     )
     n_ranges = -(-rows // max_rows)
     # cut where the running row count passes each multiple of rows / n_ranges
