@@ -59,6 +59,7 @@ from kidneycohort.errors import InputDataError, did_you_mean
 __all__ = [
     "AKI_CRITERIA",
     "EGFR_REQUIRED",
+    "FILTER_COLUMNS",
     "KNOWN_SETTINGS",
     "ValueFilterRule",
     "apply_value_filter",
@@ -66,6 +67,7 @@ __all__ = [
     "flag_aki",
     "sample_time_expr",
     "usable_egfr",
+    "value_filter_reasons",
 ]
 
 logger = logging.getLogger(__name__)
@@ -372,6 +374,46 @@ def usable_egfr(
         _days=(pl.col("years_from_index") * schemas.DAYS_PER_YEAR).round(6),
         _finite=pl.col("egfr").is_not_null() & pl.col("egfr").is_finite(),
     )
+
+
+FILTER_COLUMNS: Final = (
+    "sample_date",
+    "sample_datetime",
+    "setting",
+    "creatinine_mg_dl",
+    "qualified",
+    "excluded",
+    "exclusion_reason",
+)
+"""eGFR columns the value filter reads (or gives, when a table was filtered before)."""
+
+
+def value_filter_reasons(egfr: pl.DataFrame, rule: ValueFilterRule | None) -> pl.Series:
+    """Why each row of ``egfr`` does not count (null when it does), as text.
+
+    With ``rule`` the reasons of :func:`apply_value_filter`. Without it an ``excluded``
+    column already in the table is honoured (its ``exclusion_reason``, else
+    ``"excluded"``) and a qualified result ("<20") is still never used as a value
+    (``qualified_value``), as in :func:`usable_egfr`. For the models that read eGFR
+    rows directly (the mixed and joint slope models), so that they use the values the
+    baseline, slope and category stages use.
+    """
+    if rule is not None:
+        flagged = apply_value_filter(egfr, rule)
+    elif "excluded" in egfr.columns:
+        stated = (
+            pl.col("exclusion_reason").cast(pl.String).fill_null("excluded")
+            if "exclusion_reason" in egfr.columns
+            else pl.lit("excluded")
+        )
+        flagged = egfr.select(
+            exclusion_reason=pl.when(pl.col("excluded").fill_null(False)).then(stated)
+        )
+    elif "qualified" in egfr.columns:
+        flagged = apply_value_filter(egfr, ValueFilterRule(exclude_settings=(), exclude_aki=False))
+    else:
+        return pl.Series("exclusion_reason", [None] * egfr.height, dtype=pl.String)
+    return flagged["exclusion_reason"].cast(pl.String)
 
 
 def egfr_keys(df: pl.DataFrame) -> pl.DataFrame:

@@ -17,6 +17,7 @@ import polars as pl
 from kidneycohort._frames import FrameLike, require_columns, to_polars
 from kidneycohort.errors import InputDataError, did_you_mean
 from kidneycohort.models._design import one_equation
+from kidneycohort.value_filter import value_filter_reasons
 
 __all__ = ["JointData", "joint_data", "time_design"]
 
@@ -129,11 +130,15 @@ def _rows_with_reasons(
     equation: str | None,
     whole_cohort: bool,
 ) -> pl.DataFrame:
-    values = one_equation(to_polars(egfr, "egfr"), equation).select(
+    table = one_equation(to_polars(egfr, "egfr"), equation)
+    values = table.select(
         pl.col("patient_id").cast(pl.String),
         pl.col("years_from_index").cast(pl.Float64),
         pl.col("egfr").cast(pl.Float64),
+        # a value the study's value filter left out (marked by the caller), or a limit
+        value_filter_reasons(table, None).alias("_value_filter"),
     )
+    del table
     rows = values.join(patients, on="patient_id", how="left").join(
         dropout, on="patient_id", how="left"
     )
@@ -147,6 +152,8 @@ def _rows_with_reasons(
         .then(pl.lit("years_missing"))
         .when(years < 0)
         .then(pl.lit("before_index"))
+        .when(pl.col("_value_filter").is_not_null())
+        .then(pl.col("_value_filter"))
         .when(pl.col("_group").is_null())
         .then(pl.lit("group_missing"))
         .when(pl.col("dropout_years").is_null())

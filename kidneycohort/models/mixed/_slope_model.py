@@ -19,6 +19,7 @@ from kidneycohort.models._design import encode_covariates, one_equation
 from kidneycohort.models.mixed._fitters import fit_exact, fit_statsmodels
 from kidneycohort.models.mixed._rule import TRAJECTORY_COLUMNS, SlopeModelRule
 from kidneycohort.schemas import SLOPE_MODEL_FIT
+from kidneycohort.value_filter import FILTER_COLUMNS, ValueFilterRule, value_filter_reasons
 
 __all__ = ["SlopeModel"]
 
@@ -84,7 +85,8 @@ class SlopeModel:
     excluded_ : polars.DataFrame
         ``reason, n_rows, n_patients`` of eGFR rows not used (``egfr_missing``,
         ``years_missing``, ``before_index``, ``after_max_years``, ``group_missing``,
-        ``missing_<covariate>``); ``excluded_rows_`` lists them row by row.
+        ``missing_<covariate>``, and the value filter's ``setting_<setting>``, ``aki``,
+        ``aki_recovery``, ``qualified_value``); ``excluded_rows_`` lists them row by row.
 
     Raises
     ------
@@ -138,9 +140,21 @@ class SlopeModel:
     # ---- data -------------------------------------------------------------------------
 
     def _rows(
-        self, egfr: FrameLike, patients: FrameLike | None, spec: SlopeModelRule
+        self,
+        egfr: FrameLike,
+        patients: FrameLike | None,
+        spec: SlopeModelRule,
+        value_filter: ValueFilterRule | None,
     ) -> pl.DataFrame:
-        values = one_equation(to_polars(egfr, "egfr"), spec.equation)
+        table = to_polars(egfr, "egfr")
+        # only the columns the model reads: the filter and sort below copy every column
+        # they are given (a million patients' eGFR table has 27 M rows of 13 columns)
+        wanted = (*_KEYS, "equation", spec.group_column, *spec.covariates, *FILTER_COLUMNS)
+        table = one_equation(table.select(c for c in table.columns if c in wanted), spec.equation)
+        values = table.select(c for c in table.columns if c not in FILTER_COLUMNS).with_columns(
+            value_filter_reasons(table, value_filter).alias("_value_filter")
+        )
+        del table
         rows = _with_patient_columns(values, patients, spec)
         group = (
             pl.col(spec.group_column).cast(pl.String)
@@ -173,7 +187,11 @@ class SlopeModel:
                 dropped.height,
                 ", ".join(f"{r}: {n}" for r, n in self.excluded_.select("reason", "n_rows").rows()),
             )
-        used = rows.filter(pl.col("_reason").is_null()).sort("patient_id", "years_from_index")
+        used = (
+            rows.filter(pl.col("_reason").is_null())
+            .drop("_reason", "_value_filter", "equation", strict=False)
+            .sort("patient_id", "years_from_index")
+        )
         if used.height == 0:
             raise InputDataError(
                 "egfr: no usable eGFR values left (see .excluded_ for the reasons)"
@@ -182,11 +200,24 @@ class SlopeModel:
 
     # ---- fit --------------------------------------------------------------------------
 
-    def fit(self, egfr: FrameLike, patients: FrameLike | None = None) -> Self:
+    def fit(
+        self,
+        egfr: FrameLike,
+        patients: FrameLike | None = None,
+        *,
+        value_filter: ValueFilterRule | None = None,
+    ) -> Self:
         """Fit the model to ``egfr`` (``schemas.EGFR`` layout) with groups and covariates
-        from ``patients``; returns ``self``."""
+        from ``patients``; returns ``self``.
+
+        ``value_filter`` leaves out the values the baseline, slope and category stages
+        leave out (care settings, acute kidney injury, qualified results; reasons as in
+        :func:`kidneycohort.value_filter.apply_value_filter`). Without it an ``excluded``
+        column already in ``egfr`` is honoured, and a qualified result ("<20") is still
+        never used as a value.
+        """
         spec = self.rule
-        rows = self._rows(egfr, patients, spec)
+        rows = self._rows(egfr, patients, spec, value_filter)
         groups = sorted(rows["_group"].unique().to_list())
         reference = spec.reference_group if spec.reference_group is not None else groups[0]
         if reference not in groups:
@@ -486,6 +517,8 @@ def _format_years(value: float) -> str:
     return f"{value:g}"
 
 
+_KEYS = ("patient_id", "years_from_index", "egfr")
+
 WHOLE_COHORT = "all"
 """The one group of a model fitted without a group column."""
 
@@ -529,6 +562,7 @@ def _exclusion_reason(rows: pl.DataFrame, spec: SlopeModelRule) -> pl.Expr:
     )
     if spec.max_years is not None:
         reason = reason.when(years > spec.max_years).then(pl.lit("after_max_years"))
+    reason = reason.when(pl.col("_value_filter").is_not_null()).then(pl.col("_value_filter"))
     if spec.group_column is not None:
         reason = reason.when(pl.col(spec.group_column).is_null()).then(pl.lit("group_missing"))
     for name in spec.covariates:

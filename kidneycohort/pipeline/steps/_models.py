@@ -10,6 +10,7 @@ import polars as pl
 from kidneycohort.pipeline.registry import StepContext, StepRegistry
 from kidneycohort.pipeline.steps._facts import primary_equation
 from kidneycohort.schemas import MODEL_SLOPES
+from kidneycohort.value_filter import ValueFilterRule, apply_value_filter
 
 __all__ = ["add_dropout_analysis", "add_slope_model", "add_survival"]
 
@@ -113,6 +114,7 @@ def add_slope_model(registry: StepRegistry) -> None:
         ],
         section="slope_model",
         options=SlopeModelRule,
+        extra_sections={"value_filter": ValueFilterRule},
         description="Linear mixed model of eGFR (one slope or two slopes with a knot) by group.",
         cohort_level=True,
     )
@@ -122,7 +124,12 @@ def add_slope_model(registry: StepRegistry) -> None:
         assert isinstance(rule, SlopeModelRule)
         if rule.equation is None:
             rule = rule.model_copy(update={"equation": primary_equation(ctx.sections, ctx.tables)})
-        model = SlopeModel(rule).fit(ctx.tables["egfr"], ctx.tables["cohort"])
+        # the values the per-patient slopes and baselines use, no others
+        value_filter = ctx.sections.get("value_filter")
+        assert value_filter is None or isinstance(value_filter, ValueFilterRule)
+        model = SlopeModel(rule).fit(
+            ctx.tables["egfr"], ctx.tables["cohort"], value_filter=value_filter
+        )
         name = "two_slope" if rule.knot_years is not None else "one_slope"
         return {
             "models/trajectories": model.trajectories_.select(
@@ -153,6 +160,7 @@ def add_dropout_analysis(registry: StepRegistry) -> None:
         ],
         section="dropout_analysis",
         options=DropoutAnalysisRule,
+        extra_sections={"value_filter": ValueFilterRule},
         cohort_level=True,
         description="Joint model of eGFR slope and dropout beside the mixed model alone; "
         "delta-adjusted tipping point; eGFR set to a stated value at kidney failure.",
@@ -175,8 +183,14 @@ def add_dropout_analysis(registry: StepRegistry) -> None:
         tables_rule = ctx.sections.get("tables")
         table_rule = tables_rule if isinstance(tables_rule, TableRule) else TableRule()
         threshold = table_rule.small_cell_threshold
+        # the values the baselines and slopes use: the models leave out the rows the
+        # study's value filter marks (each counted under its reason)
+        egfr = ctx.tables["egfr"]
+        value_filter = ctx.sections.get("value_filter")
+        if isinstance(value_filter, ValueFilterRule):
+            egfr = apply_value_filter(egfr, value_filter)
         result = dropout_analysis(
-            ctx.tables["egfr"],
+            egfr,
             ctx.tables["cohort"],
             ctx.tables["endpoints"],
             rule=rule,

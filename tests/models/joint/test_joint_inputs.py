@@ -141,3 +141,23 @@ def test_rows_after_dropout_are_excluded_with_a_reason(cohort):
     assert reasons.get("after_dropout") == 1
     assert int(model.data_.n_values.sum()) == egfr.height
     assert np.isfinite(model.diagnostics_["loglik"])
+
+
+def test_values_the_value_filter_marked_and_limits_are_not_modelled(cohort):
+    """The joint model uses the values the baselines and slopes use: rows the study's
+    value filter marked (``excluded``, as the pipeline step passes them) and qualified
+    results ("<20", a limit, not a value) are left out, each counted under its reason."""
+    egfr, patients, endpoints = cohort
+    row = pl.int_range(pl.len())
+    marked = egfr.with_columns(
+        (row % 9 == 4).alias("excluded"),
+        pl.when(row % 9 == 4).then(pl.lit("setting_inpatient")).alias("exclusion_reason"),
+    )
+    model = JointSlopeModel(reference_group="placebo").fit(marked, patients, endpoints)
+    reasons = dict(model.excluded_.select("reason", "n_rows").iter_rows())
+    assert reasons == {"setting_inpatient": egfr.filter(row % 9 == 4).height}
+    assert int(model.data_.n_values.sum()) == egfr.height - reasons["setting_inpatient"]
+    limits = egfr.with_columns((row % 13 == 6).alias("qualified"))
+    model = JointSlopeModel(reference_group="placebo").fit(limits, patients, endpoints)
+    reasons = dict(model.excluded_.select("reason", "n_rows").iter_rows())
+    assert reasons == {"qualified_value": egfr.filter(row % 13 == 6).height}

@@ -298,3 +298,45 @@ def test_no_group_column_fits_the_whole_cohort(dietox: pl.DataFrame) -> None:
     grouped = SlopeModel(knot_years=None).fit(plain.with_columns(group=pl.lit("all")))
     assert overall.groups_ == ["all"]
     np.testing.assert_allclose(overall.fit_.beta, grouped.fit_.beta, rtol=1e-10)
+
+
+def test_values_the_value_filter_leaves_out_are_not_modelled(dietox: pl.DataFrame) -> None:
+    """The model uses the values the baselines and per-patient slopes use: care settings,
+    qualified results ("<20") and AKI left out by the study's value filter, each with its
+    reason; the fit equals the fit on the remaining rows (the reference computation)."""
+    from kidneycohort.value_filter import ValueFilterRule
+
+    row = pl.int_range(pl.len())
+    marked = dietox.with_columns(
+        pl.when(row % 7 == 3)
+        .then(pl.lit("inpatient"))
+        .otherwise(pl.lit("outpatient"))
+        .alias("setting"),
+        (row % 11 == 5).alias("qualified"),
+        pl.lit(None, dtype=pl.Float64).alias("creatinine_mg_dl"),
+        # an inpatient value far below the pig's own path: it would tilt the slope
+        pl.when(row % 7 == 3).then(pl.col("egfr") * 0.5).otherwise(pl.col("egfr")).alias("egfr"),
+    )
+    rule = ValueFilterRule(exclude_settings=("inpatient",), exclude_aki=False)
+    model = SlopeModel(knot_years=None).fit(marked, value_filter=rule)
+    reasons = dict(model.excluded_.select("reason", "n_rows").rows())
+    inpatient = marked.filter(pl.col("setting") == "inpatient").height
+    qualified_only = marked.filter(pl.col("qualified") & (pl.col("setting") != "inpatient"))
+    assert reasons == {"setting_inpatient": inpatient, "qualified_value": qualified_only.height}
+    kept = marked.filter((pl.col("setting") == "outpatient") & ~pl.col("qualified"))
+    assert model.n_observations_ == kept.height
+    reference = SlopeModel(knot_years=None).fit(kept.drop("setting", "qualified"))
+    np.testing.assert_allclose(
+        model.fixed_effects_["estimate"].to_numpy(),
+        reference.fixed_effects_["estimate"].to_numpy(),
+        rtol=1e-10,
+    )
+    # without a value filter the setting counts for nothing, but a qualified result is
+    # still never a value (common practice: a limit is not a measurement)
+    with warnings.catch_warnings():
+        # the halved inpatient values push this fit's covariance to its boundary
+        warnings.simplefilter("ignore", StatisticalWarning)
+        unfiltered = SlopeModel(knot_years=None).fit(marked)
+    assert dict(unfiltered.excluded_.select("reason", "n_rows").rows()) == {
+        "qualified_value": marked.filter(pl.col("qualified")).height
+    }
