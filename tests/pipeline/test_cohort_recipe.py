@@ -104,8 +104,10 @@ def test_every_file_of_the_cohort_recipe(cohort_run) -> None:
 
 def test_cohort_slope_model_equals_a_direct_fit(cohort_run) -> None:
     # the mean slope by exposure group: one slope per patient (no knot), the exact engine;
-    # the same model fitted directly on the run's eGFR gives the same contrasts
+    # the same model fitted directly on the run's eGFR, with the run's value filter (the
+    # values the per-patient slopes use), gives the same contrasts
     from kidneycohort.models.mixed import SlopeModel
+    from kidneycohort.value_filter import ValueFilterRule
 
     run, _ = cohort_run
     fit = pl.read_parquet(run / "models/slope_model_fit.parquet").row(0, named=True)
@@ -115,8 +117,10 @@ def test_cohort_slope_model_equals_a_direct_fit(cohort_run) -> None:
     manifest = json.loads((run / "manifest.json").read_text())
     rule = manifest["config"]["slope_model"]
     direct = SlopeModel(**{**rule, "equation": manifest["study"]["primary_equation"]}).fit(
-        egfr, groups
+        egfr, groups, value_filter=ValueFilterRule(**manifest["config"]["value_filter"])
     )
+    reasons = set(direct.excluded_["reason"].to_list())
+    assert "setting_inpatient" in reasons  # the recipe's filter left these out
     written = pl.read_parquet(run / "models/slope_summary.parquet").drop("model")
     assert written["estimate"].to_list() == pytest.approx(direct.summary()["estimate"].to_list())
     slopes = pl.read_parquet(run / "model_slopes.parquet")
