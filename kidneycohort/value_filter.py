@@ -412,7 +412,7 @@ def value_filter_reasons(egfr: pl.DataFrame, rule: ValueFilterRule | None) -> pl
     elif "qualified" in egfr.columns:
         flagged = apply_value_filter(egfr, ValueFilterRule(exclude_settings=(), exclude_aki=False))
     else:
-        return pl.Series("exclusion_reason", [None] * egfr.height, dtype=pl.String)
+        return pl.repeat(None, egfr.height, dtype=pl.String, eager=True).alias("exclusion_reason")
     return flagged["exclusion_reason"].cast(pl.String)
 
 

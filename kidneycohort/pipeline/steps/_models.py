@@ -168,6 +168,7 @@ def add_dropout_analysis(registry: StepRegistry) -> None:
     def dropout_analysis_step(ctx: StepContext) -> dict[str, Any]:
         """The joint model and the sensitivity analyses (kidneycohort.models.joint)."""
         from kidneycohort.disclosure import small_count_text
+        from kidneycohort.models._design import one_equation
         from kidneycohort.tables import TableRule, dropout_table
 
         rule = ctx.options
@@ -188,7 +189,8 @@ def add_dropout_analysis(registry: StepRegistry) -> None:
         egfr = ctx.tables["egfr"]
         value_filter = ctx.sections.get("value_filter")
         if isinstance(value_filter, ValueFilterRule):
-            egfr = apply_value_filter(egfr, value_filter)
+            # flagged on the modelled equation's rows only (the flags are per sample)
+            egfr = apply_value_filter(one_equation(egfr, rule.equation), value_filter)
         result = dropout_analysis(
             egfr,
             ctx.tables["cohort"],
